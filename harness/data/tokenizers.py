@@ -1,0 +1,215 @@
+"""Tokenizers: text <-> integer ids. ``bytes`` (UTF-8, vocab 256), ``chars`` (the training split's
+characters plus an unknown id) and ``bpe`` (byte-level BPE trained with the ``tokenizers`` library).
+
+Every tokenizer round-trips the text it was built from: bytes and byte-level BPE round-trip any
+string, chars any string made of its characters. ``encode`` returns an ``np.ndarray`` of int64.
+Long texts are encoded in pieces (:func:`text_pieces`) cut where no tokenizer here merges across
+the cut, so piecewise encoding equals encoding the whole text.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Iterable, Iterator
+from pathlib import Path
+from typing import Protocol
+
+import numpy as np
+
+UNKNOWN_CHAR = "\ufffd"
+PIECE_CHARS = 1 << 20
+
+
+class Tokenizer(Protocol):
+    kind: str
+    vocab_size: int
+
+    def encode(self, text: str) -> np.ndarray: ...
+
+    def decode(self, ids: Iterable[int]) -> str: ...
+
+
+def text_pieces(text: str, max_chars: int = PIECE_CHARS) -> Iterator[str]:
+    """Consecutive slices of ``text`` (joined they give ``text``), each at most ``max_chars`` long
+    where possible, cut just after a newline that sits between two non-space characters.
+
+    Byte-level BPE pre-tokenizes with the GPT-2 pattern (Radford et al. 2019), under which such a
+    newline is a pre-token of its own, so no merge spans the cut; bytes and chars are per symbol.
+    """
+    start, n = 0, len(text)
+    while n - start > max_chars:
+        cut = -1
+        hi = start + max_chars
+        while True:
+            nl = text.rfind("\n", start + 1, hi)
+            if nl < 0:
+                break
+            if not text[nl - 1].isspace() and nl + 1 < n and not text[nl + 1].isspace():
+                cut = nl + 1
+                break
+            hi = nl
+        if cut < 0:
+            cut = start + max_chars  # no clean cut in range: rare (a megabyte without such a newline)
+        yield text[start:cut]
+        start = cut
+    if start < n or n == 0:
+        yield text[start:]
+
+
+def _as_ids(ids: Iterable[int]) -> np.ndarray:
+    return np.asarray(ids if not isinstance(ids, np.ndarray) else ids, dtype=np.int64).reshape(-1)
+
+
+class ByteTokenizer:
+    """UTF-8 bytes: id = byte value."""
+
+    kind = "bytes"
+    vocab_size = 256
+
+    def encode(self, text: str) -> np.ndarray:
+        return np.frombuffer(text.encode("utf-8"), dtype=np.uint8).astype(np.int64)
+
+    def decode(self, ids: Iterable[int]) -> str:
+        arr = _as_ids(ids)
+        if arr.size and (arr.min() < 0 or arr.max() > 255):
+            raise ValueError("byte ids must lie in 0..255")
+        # A window may cut a multi-byte character: render the pieces as U+FFFD.
+        return arr.astype(np.uint8).tobytes().decode("utf-8", errors="replace")
+
+
+class CharTokenizer:
+    """Characters of the training text, sorted by code point, id = rank; one extra unknown id."""
+
+    kind = "chars"
+
+    def __init__(self, chars: str) -> None:
+        if list(chars) != sorted(set(chars)):
+            raise ValueError("chars must be sorted and unique")
+        self.chars = chars
+        self._points = np.array([ord(c) for c in chars], dtype=np.uint32)
+        self.unknown_id = len(chars)
+        self.vocab_size = len(chars) + 1
+
+    @classmethod
+    def from_texts(cls, texts: Iterable[str]) -> CharTokenizer:
+        seen: set[str] = set()
+        for text in texts:
+            seen.update(text)
+        return cls("".join(sorted(seen)))
+
+    def encode(self, text: str) -> np.ndarray:
+        points = np.frombuffer(text.encode("utf-32-le", errors="surrogatepass"), dtype="<u4")
+        if not len(self._points):
+            return np.full(points.shape, self.unknown_id, dtype=np.int64)
+        rank = np.searchsorted(self._points, points)
+        found = self._points[np.minimum(rank, len(self._points) - 1)] == points
+        return np.where(found, rank, self.unknown_id).astype(np.int64)
+
+    def decode(self, ids: Iterable[int]) -> str:
+        table = self.chars + UNKNOWN_CHAR
+        return "".join(table[i] for i in _as_ids(ids).tolist())
+
+    def save(self, path: Path) -> None:
+        path.write_text(json.dumps({"kind": self.kind, "chars": self.chars}, ensure_ascii=True))
+
+    @classmethod
+    def load(cls, path: Path) -> CharTokenizer:
+        return cls(json.loads(path.read_text())["chars"])
+
+
+def bpe_trainer_settings(vocab_size: int) -> dict:
+    """The BpeTrainer arguments: the full byte alphabet first, no special tokens."""
+    from tokenizers import pre_tokenizers
+
+    return {"vocab_size": vocab_size, "min_frequency": 2, "special_tokens": [],
+            "initial_alphabet": pre_tokenizers.ByteLevel.alphabet(), "show_progress": False}
+
+
+class BpeTokenizer:
+    """Byte-level BPE (Sennrich et al. 2016 on bytes, as in Radford et al. 2019) from ``tokenizers``.
+
+    ``vocab_size`` is the configured id space (``data.bpe_vocab``); ``learned_size`` <= it is what
+    training found room for (a small corpus may run out of pairs worth merging).
+    """
+
+    kind = "bpe"
+
+    def __init__(self, backend: object, vocab_size: int) -> None:
+        self.backend = backend
+        self.vocab_size = vocab_size
+        self.learned_size = backend.get_vocab_size()
+        if self.learned_size > vocab_size:
+            raise ValueError(f"learned vocabulary {self.learned_size} exceeds {vocab_size}")
+
+    @staticmethod
+    def empty_backend() -> object:
+        from tokenizers import Tokenizer as HFTokenizer
+        from tokenizers import decoders, models, pre_tokenizers
+
+        backend = HFTokenizer(models.BPE())
+        backend.pre_tokenizer = pre_tokenizers.ByteLevel(add_prefix_space=False, use_regex=True)
+        backend.decoder = decoders.ByteLevel()
+        return backend
+
+    @classmethod
+    def train(cls, texts: Iterable[str], vocab_size: int) -> BpeTokenizer:
+        from tokenizers import trainers
+
+        backend = cls.empty_backend()
+        trainer = trainers.BpeTrainer(**bpe_trainer_settings(vocab_size))
+        backend.train_from_iterator((p for t in texts for p in text_pieces(t)), trainer=trainer)
+        return cls(backend, vocab_size)
+
+    def encode(self, text: str) -> np.ndarray:
+        return np.asarray(self.backend.encode(text).ids, dtype=np.int64)
+
+    def decode(self, ids: Iterable[int]) -> str:
+        return self.backend.decode(_as_ids(ids).tolist(), skip_special_tokens=False)
+
+    def save(self, path: Path) -> None:
+        path.write_text(json.dumps({"kind": self.kind, "vocab_size": self.vocab_size,
+                                    "backend": json.loads(self.backend.to_str())}))
+
+    @classmethod
+    def load(cls, path: Path) -> BpeTokenizer:
+        from tokenizers import Tokenizer as HFTokenizer
+
+        data = json.loads(path.read_text())
+        return cls(HFTokenizer.from_str(json.dumps(data["backend"])), data["vocab_size"])
+
+
+TOKENIZER_FILE = "tokenizer.json"
+
+
+def build_tokenizer(kind: str, train_texts: Iterable[str], bpe_vocab: int) -> Tokenizer:
+    """A tokenizer of ``kind`` fitted to the training texts (bytes needs none)."""
+    if kind == "bytes":
+        return ByteTokenizer()
+    if kind == "chars":
+        return CharTokenizer.from_texts(train_texts)
+    if kind == "bpe":
+        return BpeTokenizer.train(train_texts, bpe_vocab)
+    raise ValueError(f"unknown tokenizer kind {kind!r}")
+
+
+def save_tokenizer(tok: Tokenizer, folder: Path) -> None:
+    if isinstance(tok, (CharTokenizer, BpeTokenizer)):
+        tok.save(folder / TOKENIZER_FILE)
+
+
+def load_tokenizer(kind: str, folder: Path) -> Tokenizer:
+    if kind == "bytes":
+        return ByteTokenizer()
+    if kind == "chars":
+        return CharTokenizer.load(folder / TOKENIZER_FILE)
+    if kind == "bpe":
+        return BpeTokenizer.load(folder / TOKENIZER_FILE)
+    raise ValueError(f"unknown tokenizer kind {kind!r}")
+
+
+def storage_dtype(vocab_size: int) -> np.dtype:
+    """The smallest unsigned integer type that holds every id below ``vocab_size``."""
+    for dt in (np.uint8, np.uint16, np.uint32):
+        if vocab_size - 1 <= np.iinfo(dt).max:
+            return np.dtype(dt)
+    return np.dtype(np.uint64)

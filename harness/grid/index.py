@@ -1,0 +1,186 @@
+"""The grid index: one SQLite database per grid dir recording every cell and its outcome.
+
+Writes are transactions opened with ``BEGIN IMMEDIATE`` (the write lock is taken up front, so
+two writers never deadlock upgrading a read lock) under a busy timeout, so concurrent writers
+(the grid process, Ray result handlers, a second terminal's ``--status`` reads) are safe.
+The rollback journal (SQLite's default) is kept rather than WAL, which needs shared memory that
+network filesystems do not provide.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import sqlite3
+import time
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+INDEX_NAME = "index.sqlite"
+BUSY_TIMEOUT_S = 60.0
+
+# Cell statuses: pending (planned, never started), running, and the trainer's outcomes
+# (done, diverged, failed, interrupted).
+FINISHED = ("done", "diverged")
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS cells (
+    id TEXT PRIMARY KEY,
+    position INTEGER NOT NULL,      -- order in the plan (variant, axis point, seed)
+    variant TEXT NOT NULL,
+    seed INTEGER NOT NULL,
+    point TEXT NOT NULL,            -- JSON list of [dotted axis key, value]
+    config_hash TEXT NOT NULL,
+    adjustments TEXT NOT NULL,      -- JSON mapping of fairness adjustments
+    planned_tokens INTEGER NOT NULL,
+    flops_per_token REAL,
+    status TEXT NOT NULL DEFAULT 'pending',
+    attempts INTEGER NOT NULL DEFAULT 0,
+    started_at REAL,
+    ended_at REAL,
+    exit_code INTEGER,
+    message TEXT,
+    final_val_loss REAL,
+    best_val_loss REAL,
+    params_total INTEGER,
+    params_non_embedding INTEGER,
+    tokens_seen INTEGER,
+    steps INTEGER,
+    wall_s REAL,
+    tokens_per_s REAL,
+    peak_rss_bytes INTEGER
+);
+"""
+
+_SUMMARY_COLUMNS = ("final_val_loss", "best_val_loss", "tokens_seen", "steps", "wall_s", "tokens_per_s",
+                    "peak_rss_bytes")
+
+
+class GridIndex:
+    """Access to ``GRID_DIR/index.sqlite``; each method is one short transaction."""
+
+    def __init__(self, path: str | Path) -> None:
+        self.path = Path(path)
+        # isolation_level=None: no implicit transactions; we open them explicitly.
+        self._db = sqlite3.connect(self.path, timeout=BUSY_TIMEOUT_S, isolation_level=None)
+        self._db.row_factory = sqlite3.Row
+        self._db.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_S * 1000)}")
+        with self.transaction() as db:
+            for statement in _SCHEMA.split(";"):
+                if statement.strip():
+                    db.execute(statement)
+
+    def close(self) -> None:
+        self._db.close()
+
+    def __enter__(self) -> GridIndex:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    @contextlib.contextmanager
+    def transaction(self) -> Iterator[sqlite3.Connection]:
+        """BEGIN IMMEDIATE ... COMMIT (ROLLBACK on error)."""
+        self._db.execute("BEGIN IMMEDIATE")
+        try:
+            yield self._db
+        except BaseException:
+            self._db.execute("ROLLBACK")
+            raise
+        self._db.execute("COMMIT")
+
+    # ----- meta
+
+    def get_meta(self, key: str) -> str | None:
+        row = self._db.execute("SELECT value FROM meta WHERE key = ?", (key,)).fetchone()
+        return None if row is None else row["value"]
+
+    def set_meta(self, items: dict[str, str]) -> None:
+        with self.transaction() as db:
+            db.executemany("INSERT OR REPLACE INTO meta (key, value) VALUES (?, ?)", list(items.items()))
+
+    # ----- cells
+
+    def plan(self, rows: list[dict[str, Any]]) -> None:
+        """Insert planned cells; a cell already present with the same config hash keeps its record.
+
+        A cell whose config hash changed (only after ``--force``) is reset to pending.
+        """
+        columns = ("id", "position", "variant", "seed", "point", "config_hash", "adjustments", "planned_tokens",
+                   "flops_per_token", "params_total", "params_non_embedding")
+        insert = f"INSERT INTO cells ({', '.join(columns)}) VALUES ({', '.join('?' * len(columns))})"
+        with self.transaction() as db:
+            for position, row in enumerate(rows):
+                values = (row["id"], position, row["variant"], row["seed"], json.dumps(row["point"]),
+                          row["config_hash"], json.dumps(row["adjustments"], sort_keys=True),
+                          row["planned_tokens"], row["flops_per_token"], row["params_total"],
+                          row["params_non_embedding"])
+                old = db.execute("SELECT config_hash FROM cells WHERE id = ?", (row["id"],)).fetchone()
+                if old is not None and old["config_hash"] == row["config_hash"]:
+                    db.execute("UPDATE cells SET position = ? WHERE id = ?", (position, row["id"]))
+                    continue
+                if old is not None:
+                    db.execute("DELETE FROM cells WHERE id = ?", (row["id"],))
+                db.execute(insert, values)
+
+    def remove_unplanned(self, keep: set[str]) -> list[str]:
+        """Drop cells that are no longer in the plan (their dirs stay on disk); returns their ids."""
+        with self.transaction() as db:
+            ids = [r["id"] for r in db.execute("SELECT id FROM cells")]
+            gone = [i for i in ids if i not in keep]
+            db.executemany("DELETE FROM cells WHERE id = ?", [(i,) for i in gone])
+        return gone
+
+    def mark_running(self, cell_id: str, started_at: float | None = None) -> None:
+        with self.transaction() as db:
+            db.execute(
+                "UPDATE cells SET status = 'running', attempts = attempts + 1, started_at = ?, ended_at = NULL, "
+                "exit_code = NULL, message = NULL WHERE id = ?",
+                (time.time() if started_at is None else started_at, cell_id),
+            )
+
+    def mark_finished(
+        self,
+        cell_id: str,
+        status: str,
+        *,
+        summary: dict[str, Any] | None = None,
+        exit_code: int | None = None,
+        message: str | None = None,
+        ended_at: float | None = None,
+    ) -> None:
+        """Record a cell's outcome and, from its summary.json, its final metrics."""
+        summary = summary or {}
+        params = summary.get("params") or {}
+        values: dict[str, Any] = {c: summary.get(c) for c in _SUMMARY_COLUMNS}
+        if params:
+            values["params_total"] = params.get("total")
+            values["params_non_embedding"] = params.get("non_embedding")
+        sets = ", ".join(f"{c} = ?" for c in values)
+        with self.transaction() as db:
+            db.execute(
+                f"UPDATE cells SET status = ?, ended_at = ?, exit_code = ?, message = ?, {sets} WHERE id = ?",
+                (status, time.time() if ended_at is None else ended_at, exit_code, message, *values.values(),
+                 cell_id),
+            )
+
+    def cells(self) -> list[dict[str, Any]]:
+        """Every cell's record as a dict (point and adjustments decoded), in plan order."""
+        rows = self._db.execute("SELECT * FROM cells ORDER BY position").fetchall()
+        out = []
+        for r in rows:
+            d = dict(r)
+            d["point"] = [tuple(p) for p in json.loads(d["point"])]
+            d["adjustments"] = json.loads(d["adjustments"])
+            out.append(d)
+        return out
+
+    def cell(self, cell_id: str) -> dict[str, Any] | None:
+        return next((c for c in self.cells() if c["id"] == cell_id), None)
+
+
+def open_index(grid_dir: str | Path) -> GridIndex:
+    return GridIndex(Path(grid_dir) / INDEX_NAME)

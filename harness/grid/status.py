@@ -1,0 +1,173 @@
+"""The grid's progress line: cells done / running / failed / left, and an ETA.
+
+It reads only the index and the cells' ``metrics.jsonl``, so ``harness grid --status DIR``
+works from another terminal (or machine, on a shared filesystem) while the grid runs.
+
+ETA = tokens still to train (what running cells have left plus the budgets of cells not yet
+started) / the summed tokens/s of the running cells, i.e. it assumes the grid keeps running as
+many cells at once at the speed measured now.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import os
+import time
+from pathlib import Path
+from typing import Any
+
+from harness.errors import UserError
+from harness.grid.index import INDEX_NAME, open_index
+
+LOCK_NAME = "grid.lock"
+
+
+def read_jsonl(path: Path) -> list[dict[str, Any]]:
+    """The JSON lines of ``path``, stopping at a line cut short by a kill; [] when missing."""
+    try:
+        text = path.read_text()
+    except FileNotFoundError:
+        return []
+    lines = []
+    for raw in text.splitlines():
+        if not raw.strip():
+            continue
+        try:
+            line = json.loads(raw)
+        except ValueError:
+            break
+        if isinstance(line, dict):
+            lines.append(line)
+    return lines
+
+
+def read_summary(path: Path) -> dict[str, Any] | None:
+    try:
+        data = json.loads(path.read_text())
+    except (OSError, ValueError):
+        return None
+    return data if isinstance(data, dict) else None
+
+
+def cell_dir(grid_dir: Path, cell_id: str) -> Path:
+    return Path(grid_dir) / "cells" / cell_id
+
+
+def format_duration(seconds: float) -> str:
+    s = max(0, int(round(seconds)))
+    if s < 60:
+        return f"{s}s"
+    if s < 3600:
+        return f"{s // 60}m{s % 60:02d}s"
+    return f"{s // 3600}h{(s % 3600) // 60:02d}m"
+
+
+@dataclasses.dataclass(frozen=True)
+class CellProgress:
+    id: str
+    status: str
+    tokens_done: int
+    tokens_planned: int
+    tokens_per_s: float | None
+    step: int | None
+
+
+@dataclasses.dataclass(frozen=True)
+class GridProgress:
+    name: str
+    done: int
+    diverged: int
+    running: int
+    failed: int
+    left: int
+    eta_s: float | None
+    cells: list[CellProgress]
+
+    @property
+    def total(self) -> int:
+        return self.done + self.diverged + self.running + self.failed + self.left
+
+    def line(self) -> str:
+        parts = [f"{self.done + self.diverged}/{self.total} done"]
+        if self.diverged:
+            parts[0] += f" ({self.diverged} diverged)"
+        parts += [f"{self.running} running", f"{self.failed} failed", f"{self.left} left"]
+        eta = "ETA " + (format_duration(self.eta_s) if self.eta_s is not None else "unknown (no speed measured yet)")
+        if self.running == 0 and self.left == 0:
+            eta = "finished"
+        return f"grid {self.name}: " + ", ".join(parts) + f" | {eta}"
+
+
+def _running_progress(grid_dir: Path, row: dict[str, Any]) -> CellProgress:
+    lines = read_jsonl(cell_dir(grid_dir, row["id"]) / "metrics.jsonl")
+    train = [ln for ln in lines if ln.get("split") == "train"]
+    last = train[-1] if train else {}
+    return CellProgress(
+        id=row["id"],
+        status=row["status"],
+        tokens_done=int(last.get("tokens") or 0),
+        tokens_planned=int(row["planned_tokens"]),
+        tokens_per_s=last.get("tokens_per_s"),
+        step=last.get("step"),
+    )
+
+
+def grid_progress(grid_dir: str | Path, rows: list[dict[str, Any]] | None = None, name: str | None = None) -> GridProgress:
+    """Counts and ETA from the index rows (read from ``grid_dir`` when not given)."""
+    grid_dir = Path(grid_dir)
+    if rows is None or name is None:
+        with open_index(grid_dir) as index:
+            rows = index.cells() if rows is None else rows
+            name = name or index.get_meta("name") or grid_dir.name
+    counts = {"done": 0, "diverged": 0, "running": 0, "failed": 0, "left": 0}
+    running: list[CellProgress] = []
+    tokens_left = 0.0
+    for row in rows:
+        status = row["status"]
+        if status in ("done", "diverged", "running", "failed"):
+            counts[status] += 1
+        else:  # pending, interrupted: still to train
+            counts["left"] += 1
+            tokens_left += row["planned_tokens"]
+        if status == "running":
+            cp = _running_progress(grid_dir, row)
+            running.append(cp)
+            tokens_left += max(0, cp.tokens_planned - cp.tokens_done)
+    rates = [c.tokens_per_s for c in running if c.tokens_per_s]
+    eta = tokens_left / sum(rates) if rates else None
+    return GridProgress(name=name, eta_s=eta, cells=running, **counts)
+
+
+def lock_holder(grid_dir: Path) -> int | None:
+    """The pid recorded by the grid process that holds ``grid_dir`` (if it is alive here)."""
+    try:
+        pid = int((Path(grid_dir) / LOCK_NAME).read_text().split()[0])
+    except (OSError, ValueError, IndexError):
+        return None
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return None
+    except PermissionError:
+        return pid
+    return pid
+
+
+def status_text(grid_dir: str | Path) -> str:
+    """What ``harness grid --status DIR`` prints: the grid line, then one line per running cell."""
+    grid_dir = Path(grid_dir)
+    if not (grid_dir / INDEX_NAME).exists():
+        raise UserError(f"{grid_dir}: no grid here (no {INDEX_NAME}); pass the dir a grid was run in")
+    progress = grid_progress(grid_dir)
+    lines = [progress.line()]
+    for c in progress.cells:
+        speed = f"{c.tokens_per_s:,.0f} tok/s" if c.tokens_per_s else "starting"
+        share = f"{100 * c.tokens_done / c.tokens_planned:.0f}%" if c.tokens_planned else "?"
+        lines.append(f"  running {c.id}: step {c.step or 0}, {share} of {c.tokens_planned:,d} tokens, {speed}")
+    holder = lock_holder(grid_dir)
+    if holder is None and (progress.running or progress.left):
+        lines.append("  (no grid process holds this dir now: rerun the grid command to resume)")
+    elif holder is not None:
+        lines.append(f"  (grid process {holder}, checked {time.strftime('%H:%M:%S')})")
+    return "\n".join(lines)

@@ -1,0 +1,241 @@
+"""The config system (harness/config.py, harness/schema.py): defaults, inheritance, overrides, rejections."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+import yaml
+
+from harness.config import config_from_dict, config_hash, dump_config, load_config, replace
+from harness.errors import ConfigError, UserError
+from harness.mixers.attention import GlobalAttentionOptions
+
+REPO = Path(__file__).resolve().parent.parent
+
+
+def write(path: Path, data: dict | str) -> Path:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(data if isinstance(data, str) else yaml.safe_dump(data))
+    return path
+
+
+# ----------------------------------------------------------------------------- defaults
+
+
+def test_empty_config_takes_the_schema_defaults(tmp_path):
+    cfg = load_config(write(tmp_path / "tiny.yaml", ""))
+    assert cfg.name == "tiny"  # the file's stem
+    assert cfg.model.width == 128 and cfg.model.depth == 4 and cfg.model.mlp == "gated"
+    assert cfg.model.pattern == ("global_attention",)
+    # A bare kind in the pattern is that kind with its option defaults.
+    assert cfg.model.mixers["global_attention"].kind == "global_attention"
+    assert cfg.model.mixers["global_attention"].options == GlobalAttentionOptions()
+    opts = cfg.model.mixers["global_attention"].options
+    assert (opts.heads, opts.kv_heads, opts.rope, opts.rope_base) == (4, 0, True, 10000.0)
+    assert cfg.data.tokenizer == "bytes" and cfg.data.seq_len == 128
+    assert cfg.train.effective_data_seed == cfg.train.seed == 0
+
+
+def test_local_attention_defaults():
+    cfg = config_from_dict({"model": {"pattern": ["local_attention"]}})
+    assert cfg.model.mixers["local_attention"].options.window == 64
+
+
+# ----------------------------------------------------------------------------- extends and --set
+
+
+def test_extends_follows_a_relative_path_and_merges_nested_keys(tmp_path):
+    write(
+        tmp_path / "base" / "base.yaml",
+        {
+            "model": {
+                "width": 64,
+                "depth": 3,
+                "mixers": {"loc": {"kind": "local_attention", "window": 8}},
+                "pattern": ["loc"],
+            },
+            "train": {"lr": 0.01, "steps": 50},
+        },
+    )
+    write(tmp_path / "base" / "middle.yaml", {"extends": "base.yaml", "train": {"steps": 70}})
+    child = write(
+        tmp_path / "exp" / "child.yaml",
+        {
+            "extends": "../base/middle.yaml",
+            "model": {"mixers": {"loc": {"window": 16}}},
+        },
+    )
+    cfg = load_config(child)
+    assert cfg.name == "child"
+    assert cfg.model.width == 64 and cfg.model.depth == 3  # inherited from the grandparent
+    assert cfg.model.mixers["loc"].kind == "local_attention"  # nested mapping merged, not replaced
+    assert cfg.model.mixers["loc"].options.window == 16  # the child wins
+    assert cfg.train.steps == 70 and cfg.train.lr == 0.01  # the middle file wins over the base
+
+
+def test_extends_cycle_is_a_config_error(tmp_path):
+    write(tmp_path / "a.yaml", {"extends": "b.yaml"})
+    write(tmp_path / "b.yaml", {"extends": "a.yaml"})
+    with pytest.raises(ConfigError, match=r"^extends: .*cycle"):
+        load_config(tmp_path / "a.yaml")
+
+
+def test_set_overrides_are_parsed_as_yaml(tmp_path):
+    path = write(tmp_path / "c.yaml", {"model": {"width": 128}})
+    cfg = load_config(
+        path,
+        [
+            "model.width=64",
+            "model.pattern=[local_attention, global_attention]",
+            "model.mixers.local_attention.kind=local_attention",
+            "model.mixers.local_attention.window=32",
+            "model.tie_embeddings=false",
+            "train.lr=0.001",
+            "name=renamed",
+        ],
+    )
+    assert cfg.model.width == 64 and isinstance(cfg.model.width, int)
+    assert cfg.model.pattern == ("local_attention", "global_attention")
+    assert cfg.model.mixers["local_attention"].options.window == 32
+    assert cfg.model.tie_embeddings is False
+    assert cfg.train.lr == 0.001
+    assert cfg.name == "renamed"
+
+
+def test_malformed_override_is_a_user_error(tmp_path):
+    path = write(tmp_path / "c.yaml", "")
+    with pytest.raises(UserError, match="expected key.path=value"):
+        load_config(path, ["model.width"])
+
+
+# ----------------------------------------------------------------------------- round trip
+
+
+def test_resolved_config_round_trips_with_the_same_hash(tmp_path):
+    path = write(
+        tmp_path / "r.yaml",
+        {
+            "model": {
+                "width": 64,
+                "pattern": ["g", "loc"],
+                "mixers": {
+                    "g": {"kind": "global_attention", "kv_heads": 2, "rope": False},
+                    "loc": {"kind": "local_attention", "window": 16, "heads": 8, "kv_heads": 1},
+                },
+            },
+            "train": {"lr": 0.002},
+        },
+    )
+    cfg = load_config(path)
+    again = config_from_dict(yaml.safe_load(dump_config(cfg)))
+    assert again == cfg
+    assert config_hash(again) == config_hash(cfg)
+    # The hash does see changes (it would be useless otherwise), but not the name.
+    assert config_hash(replace(cfg, {"model.mixers.loc.window": 17})) != config_hash(cfg)
+    assert config_hash(replace(cfg, {"name": "other"})) == config_hash(cfg)
+
+
+@pytest.mark.parametrize("preset", sorted((REPO / "configs").glob("*.yaml")), ids=lambda p: p.stem)
+def test_presets_round_trip(preset):
+    cfg = load_config(preset)
+    again = config_from_dict(yaml.safe_load(dump_config(cfg)))
+    assert again == cfg and config_hash(again) == config_hash(cfg)
+
+
+# ----------------------------------------------------------------------------- rejections
+
+
+def attn(**options):
+    return {"model": {"width": 128, "pattern": ["attn"], "mixers": {"attn": {"kind": "global_attention", **options}}}}
+
+
+REJECTIONS = [
+    pytest.param({"model": {"widht": 64}}, "model.widht", "unknown key", id="unknown-key"),
+    pytest.param({"trian": {}}, "trian", "unknown key", id="unknown-section"),
+    pytest.param({"model": {"width": "big"}}, "model.width", "expected an integer", id="wrong-type"),
+    pytest.param({"train": {"lr": [1]}}, "train.lr", "expected a number", id="wrong-type-list"),
+    pytest.param({"model": {"depth": 0}}, "model.depth", "must be >= 1", id="depth-below-1"),
+    pytest.param(
+        {"model": {"pattern": ["l"], "mixers": {"l": {"kind": "local_attention", "window": 0}}}},
+        "model.mixers.l.window",
+        "must be >= 1",
+        id="window-below-1",
+    ),
+    pytest.param(attn(heads=6), "model.mixers.attn.heads", "6 does not divide model.width 128", id="heads"),
+    pytest.param(attn(kv_heads=3), "model.mixers.attn.kv_heads", "3 does not divide heads 4", id="kv-heads"),
+    pytest.param(attn(kv_heads=8), "model.mixers.attn.kv_heads", "8 does not divide heads 4", id="kv-above-heads"),
+    pytest.param(attn(heads=128), "model.mixers.attn.rope", "even head dim", id="odd-head-dim-with-rope"),
+    pytest.param(attn(rope="yes"), "model.mixers.attn.rope", "expected true or false", id="rope-not-bool"),
+    pytest.param(
+        {"model": {"pattern": ["global_attention", "fancy"]}},
+        "model.pattern[1]",
+        "'fancy' names no entry",
+        id="pattern-without-mixer",
+    ),
+    pytest.param(
+        {"model": {"mixers": {"x": {"kind": "transformerish"}}}},
+        "model.mixers.x.kind",
+        "is not a mixer kind",
+        id="unknown-kind",
+    ),
+    pytest.param(
+        {"model": {"mixers": {"x": {"window": 3}}}}, "model.mixers.x.kind", "is not a mixer kind", id="missing-kind"
+    ),
+    pytest.param({"model": {"mlp": "wide"}}, "model.mlp", "allowed: gated, plain", id="bad-choice"),
+]
+
+
+@pytest.mark.parametrize("data,key,what", REJECTIONS)
+def test_bad_values_raise_config_error_naming_the_key(data, key, what):
+    with pytest.raises(ConfigError) as info:
+        config_from_dict(data)
+    message = str(info.value)
+    assert message.startswith(f"{key}: "), message
+    assert what in message
+    assert "\n" not in message
+
+
+def test_odd_head_dim_is_fine_without_rope():
+    cfg = config_from_dict(attn(heads=128, rope=False))
+    assert cfg.model.mixers["attn"].options.heads == 128
+
+
+# ----------------------------------------------------------------------------- CLI
+
+
+def run_cli(*args: str, cwd: Path) -> subprocess.CompletedProcess:
+    return subprocess.run(
+        [sys.executable, "-m", "harness", *args], cwd=cwd, capture_output=True, text=True, timeout=120
+    )
+
+
+@pytest.mark.parametrize(
+    "content,overrides,key",
+    [
+        ("model:\n  depth: 0\n", [], "model.depth"),
+        (
+            "model:\n  width: 64\n  mixers:\n    a: {kind: global_attention, heads: 6}\n  pattern: [a]\n",
+            [],
+            "model.mixers.a.heads",
+        ),
+        ("model:\n  width: 64\n", ["--set", "model.pattern=[nosuch]"], "model.pattern[0]"),
+    ],
+    ids=["depth", "heads", "set-override"],
+)
+def test_train_with_a_bad_config_exits_2_with_one_error_line(tmp_path, content, overrides, key):
+    bad = write(tmp_path / "bad.yaml", content)
+    proc = run_cli("train", str(bad), "--out", str(tmp_path / "run"), *overrides, cwd=tmp_path)
+    assert proc.returncode == 2, proc.stderr
+    lines = proc.stderr.strip("\n").split("\n")
+    assert len(lines) == 1 and lines[0].startswith(f"error: {key}: "), proc.stderr
+    assert "Traceback" not in proc.stderr
+    assert not (tmp_path / "run").exists()  # nothing was written for a config that never loaded
+
+
+def test_train_with_a_missing_config_file_exits_2(tmp_path):
+    proc = run_cli("train", str(tmp_path / "nope.yaml"), cwd=tmp_path)
+    assert proc.returncode == 2
+    assert proc.stderr.startswith("error: ") and "nope.yaml" in proc.stderr and proc.stderr.count("\n") == 1
