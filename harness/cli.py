@@ -64,9 +64,67 @@ def _cmd_blocks(args: argparse.Namespace) -> int:
     return 0
 
 
+# ----------------------------------------------------------------------------- grid
+
+
+def _add_grid(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("grid", help="run an ablation grid (variants x axes x seeds), resumable; then report",
+                       description=(
+        "Train every cell of a grid file as an ordinary run dir under GRID_DIR/cells/, recording them in "
+        "GRID_DIR/index.sqlite, then write GRID_DIR/report.md. Rerunning resumes: finished cells are skipped, "
+        "interrupted ones resume from their checkpoints."))
+    p.add_argument("grid", nargs="?", help="grid YAML file")
+    p.add_argument("--out", default=None, help="grid dir (default: runs/grids/<grid name>)")
+    p.add_argument("--workers", type=int, default=None, help="cells trained at once (default: cores / threads)")
+    p.add_argument("--threads", type=int, default=None,
+                   help="torch threads per cell (default: cores / workers, at least 1; a grid keeps its first value)")
+    p.add_argument("--executor", default="local", choices=("local", "ray"), help="local processes or Ray tasks")
+    p.add_argument("--address", default=None, help="Ray cluster address HOST:PORT (default: a local Ray instance)")
+    p.add_argument("--dry-run", action="store_true",
+                   help="list the cells, params, FLOPs and estimated time; train nothing")
+    p.add_argument("--force", action="store_true",
+                   help="run a changed spec in an existing grid dir (changed cells are moved to superseded/)")
+    p.add_argument("--status", metavar="GRID_DIR", default=None, help="print the progress of a grid and exit")
+    p.set_defaults(func=_cmd_grid)
+
+
+def _cmd_grid(args: argparse.Namespace) -> int:
+    if args.status:
+        if args.grid:
+            raise UserError("--status GRID_DIR takes no grid file")
+        from harness.grid.status import status_text
+
+        print(status_text(args.status))
+        return 0
+    if not args.grid:
+        raise UserError("grid: give a grid YAML file (or --status GRID_DIR)")
+    from harness.grid.run import run_grid
+
+    return run_grid(args.grid, out=args.out, workers=args.workers, threads=args.threads, executor=args.executor,
+                    address=args.address, force=args.force, dry_run=args.dry_run,
+                    echo=lambda line: print(line, flush=True))
+
+
+# ----------------------------------------------------------------------------- report
+
+
+def _add_report(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("report", help="(re)write a grid's report: report.md, report.html, results.csv, plots")
+    p.add_argument("grid_dir", help="a grid dir (holds index.sqlite)")
+    p.set_defaults(func=_cmd_report)
+
+
+def _cmd_report(args: argparse.Namespace) -> int:
+    from harness.grid.report import write_report
+
+    print(f"wrote {write_report(args.grid_dir)}")
+    return 0
+
+
 # ----------------------------------------------------------------------------- registry
 
 _SUBCOMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [_add_train, _add_blocks]
+_SUBCOMMANDS += [_add_grid, _add_report]
 
 
 def build_parser() -> argparse.ArgumentParser:

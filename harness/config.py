@@ -14,6 +14,7 @@ import copy
 import dataclasses
 import hashlib
 import json
+import re
 from pathlib import Path
 from typing import Any
 
@@ -100,8 +101,10 @@ class TaskConfig:
     num_keys: int = opt(64, "MQAR: size of the key alphabet", min=2)
     num_values: int = opt(64, "MQAR: size of the value alphabet", min=2)
     copy_tokens: int = opt(16, "selective copying: tokens to copy", min=1)
+    copy_vocab: int = opt(16, "selective copying: size of the alphabet of the tokens to copy", min=1)
     passkey_digits: int = opt(5, "passkey retrieval: digits of the passkey", min=1)
-    num_sequences: int = opt(2048, "sequences in the fixed training pool of a task", min=1)
+    num_sequences: int = opt(2048, "sequences in the fixed training pool of a task (0 = fresh ones every step)",
+                             min=0)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -174,6 +177,22 @@ class Config:
 # ----------------------------------------------------------------------------- loading
 
 
+class _Loader(yaml.SafeLoader):
+    """SafeLoader that also reads ``1e-3`` as a float (YAML 1.2); PyYAML's 1.1 rules need ``1.0e-3``."""
+
+
+_Loader.add_implicit_resolver(
+    "tag:yaml.org,2002:float",
+    re.compile(r"^[-+]?(?:[0-9][0-9_]*)(?:\.[0-9_]*)?[eE][-+]?[0-9]+$"),
+    list("-+0123456789"),
+)
+
+
+def yaml_load(text: str) -> Any:
+    """Parse YAML text the way every config, grid spec and ``--set`` value is parsed."""
+    return yaml.load(text, Loader=_Loader)  # noqa: S506 - a SafeLoader subclass
+
+
 def deep_merge(base: dict[str, Any], over: dict[str, Any]) -> dict[str, Any]:
     """``over`` on top of ``base``: nested mappings merge, everything else replaces."""
     out = copy.deepcopy(base)
@@ -194,7 +213,7 @@ def read_yaml(path: Path) -> dict[str, Any]:
     except (IsADirectoryError, PermissionError, UnicodeDecodeError) as e:
         raise UserError(f"{path}: cannot read config ({e.__class__.__name__})") from None
     try:
-        data = yaml.safe_load(text)
+        data = yaml_load(text)
     except yaml.YAMLError as e:
         mark = getattr(e, "problem_mark", None)
         where = f" line {mark.line + 1}" if mark else ""
@@ -226,7 +245,7 @@ def parse_override(item: str) -> tuple[list[str], Any]:
     if not sep or not key or any(not part for part in key.split(".")):
         raise UserError(f"--set {item!r}: expected key.path=value")
     try:
-        value = yaml.safe_load(raw) if raw.strip() else ""
+        value = yaml_load(raw) if raw.strip() else ""
     except yaml.YAMLError:
         value = raw
     return key.split("."), value

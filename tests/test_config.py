@@ -239,3 +239,14 @@ def test_train_with_a_missing_config_file_exits_2(tmp_path):
     proc = run_cli("train", str(tmp_path / "nope.yaml"), cwd=tmp_path)
     assert proc.returncode == 2
     assert proc.stderr.startswith("error: ") and "nope.yaml" in proc.stderr and proc.stderr.count("\n") == 1
+
+
+def test_exponent_floats_without_a_dot_parse_as_numbers(tmp_path):
+    # YAML 1.2 core schema reads 1e-3 as a float; PyYAML's YAML 1.1 rules would make it a string.
+    from harness.config import load_config
+
+    path = tmp_path / "c.yaml"
+    path.write_text("train:\n  lr: 3e-4\n")
+    cfg = load_config(path, ["train.weight_decay=1e-2"])
+    assert cfg.train.lr == 3e-4
+    assert cfg.train.weight_decay == 1e-2

@@ -61,12 +61,16 @@ _SUMMARY_COLUMNS = ("final_val_loss", "best_val_loss", "tokens_seen", "steps", "
 class GridIndex:
     """Access to ``GRID_DIR/index.sqlite``; each method is one short transaction."""
 
-    def __init__(self, path: str | Path) -> None:
+    def __init__(self, path: str | Path, *, readonly: bool = False) -> None:
+        """Open (and create, unless ``readonly``) the index; ``readonly`` never writes to the file."""
         self.path = Path(path)
         # isolation_level=None: no implicit transactions; we open them explicitly.
-        self._db = sqlite3.connect(self.path, timeout=BUSY_TIMEOUT_S, isolation_level=None)
+        target = f"file:{self.path.resolve()}?mode=ro" if readonly else str(self.path)
+        self._db = sqlite3.connect(target, timeout=BUSY_TIMEOUT_S, isolation_level=None, uri=readonly)
         self._db.row_factory = sqlite3.Row
         self._db.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_S * 1000)}")
+        if readonly:
+            return
         with self.transaction() as db:
             for statement in _SCHEMA.split(";"):
                 if statement.strip():
@@ -182,5 +186,5 @@ class GridIndex:
         return next((c for c in self.cells() if c["id"] == cell_id), None)
 
 
-def open_index(grid_dir: str | Path) -> GridIndex:
-    return GridIndex(Path(grid_dir) / INDEX_NAME)
+def open_index(grid_dir: str | Path, *, readonly: bool = False) -> GridIndex:
+    return GridIndex(Path(grid_dir) / INDEX_NAME, readonly=readonly)

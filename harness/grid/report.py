@@ -352,7 +352,8 @@ def _adjust_text(adjustments: dict[str, Any]) -> str:
         return "-"
     parts = []
     for k, v in adjustments.items():
-        parts.append(f"{k} = {v:.4g}" if isinstance(v, float) else f"{k} = {v:,d}" if isinstance(v, int) else f"{k} = {v}")
+        value = f"{v:.4g}" if isinstance(v, float) else f"{v:,d}" if isinstance(v, int) else str(v)
+        parts.append(f"{k} = {value}")
     return "; ".join(parts)
 
 
@@ -477,7 +478,7 @@ def write_report(grid_dir: str | Path) -> Path:
     grid_dir = Path(grid_dir)
     if not (grid_dir / INDEX_NAME).exists():
         raise UserError(f"{grid_dir}: no grid here (no {INDEX_NAME}); pass the dir a grid was run in")
-    with open_index(grid_dir) as index:
+    with open_index(grid_dir, readonly=True) as index:
         rows = index.cells()
         meta = {k: index.get_meta(k) for k in ("name", "description", "reference", "match")}
     if not rows:

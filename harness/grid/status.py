@@ -113,11 +113,12 @@ def _running_progress(grid_dir: Path, row: dict[str, Any]) -> CellProgress:
     )
 
 
-def grid_progress(grid_dir: str | Path, rows: list[dict[str, Any]] | None = None, name: str | None = None) -> GridProgress:
+def grid_progress(grid_dir: str | Path, rows: list[dict[str, Any]] | None = None,
+                  name: str | None = None) -> GridProgress:
     """Counts and ETA from the index rows (read from ``grid_dir`` when not given)."""
     grid_dir = Path(grid_dir)
     if rows is None or name is None:
-        with open_index(grid_dir) as index:
+        with open_index(grid_dir, readonly=True) as index:
             rows = index.cells() if rows is None else rows
             name = name or index.get_meta("name") or grid_dir.name
     counts = {"done": 0, "diverged": 0, "running": 0, "failed": 0, "left": 0}

@@ -54,10 +54,10 @@ def extension_root() -> Path:
     return Path.home() / ".cache" / "harness" / "torch_ext"
 
 
-def extension_name(cflags: tuple[str, ...] = CFLAGS) -> str:
+def extension_name() -> str:
     """Module (and operator namespace) name: a hash of everything that changes the binary."""
     digest = hashlib.sha256()
-    for part in (SOURCE.read_bytes(), repr(cflags).encode(), repr(LDFLAGS).encode(), torch.__version__.encode(),
+    for part in (SOURCE.read_bytes(), repr(CFLAGS).encode(), repr(LDFLAGS).encode(), torch.__version__.encode(),
                  platform.machine().encode(), sys.version.encode()):
         digest.update(part)
         digest.update(b"\0")
@@ -132,6 +132,20 @@ def _compile(name: str, build_dir: Path) -> None:
         )
 
 
+def _registered_ops(name: str) -> Any:
+    """``torch.ops.<name>`` if this process already holds the kernel's operators, else None.
+
+    Loading a second library that registers the same namespace aborts the process, so a kernel
+    loaded once (e.g. before a test reset the build state) must be reused, never loaded again.
+    """
+    try:
+        namespace = getattr(torch.ops, name)
+        namespace.forward  # noqa: B018 (raises when the operator is not registered)
+    except (AttributeError, RuntimeError):
+        return None
+    return namespace
+
+
 class _BuildState:
     """What this process knows about the kernel: not tried yet, loaded, or failed (and why)."""
 
@@ -156,18 +170,24 @@ def load_scan_ops() -> Any:
             name = extension_name()
             state.build_dir = extension_root() / name
             try:
-                state.build_dir.mkdir(parents=True, exist_ok=True)
-                with _exclusive_lock(state.build_dir / "harness.flock", LOCK_TIMEOUT_S):
-                    # Under our lock nobody else is building here: a torch lock file is a leftover.
-                    (state.build_dir / "lock").unlink(missing_ok=True)
-                    _compile(name, state.build_dir)
-                state.ops = getattr(torch.ops, name)
+                if _registered_ops(name) is None:
+                    _build_and_load(name, state.build_dir)
+                state.ops = _registered_ops(name)
                 state.state = "built"
             except Exception as exc:  # any build failure means: fall back, and say why
                 state.state = "failed"
                 state.error = f"{type(exc).__name__}: {_first_lines(str(exc))}"
             state.seconds = round(time.perf_counter() - start, 3)
         return state.ops
+
+
+def _build_and_load(name: str, build_dir: Path) -> None:
+    """Compile under the OS lock (or find the build up to date) and load it."""
+    build_dir.mkdir(parents=True, exist_ok=True)
+    with _exclusive_lock(build_dir / "harness.flock", LOCK_TIMEOUT_S):
+        # Under our lock nobody else is building here: a torch lock file is a leftover.
+        (build_dir / "lock").unlink(missing_ok=True)
+        _compile(name, build_dir)
 
 
 def _first_lines(text: str, limit: int = 800) -> str:

@@ -1,0 +1,15 @@
+"""Ablation grids: a base config crossed with variants, axes and seeds; run, resumed, and reported.
+
+- ``spec``: the grid file format and its expansion into cells.
+- ``fairness``: params / FLOPs per cell, and matching variants on parameters or FLOPs.
+- ``run``: the grid dir, resume, the index updates; ``executors``: local processes or Ray tasks.
+- ``index``: the SQLite record of every cell; ``status``: the progress line.
+- ``stats`` and ``report``: intervals, paired differences, verdicts, plots, report.md / .html / .csv.
+"""
+
+from harness.grid.report import write_report
+from harness.grid.run import run_grid
+from harness.grid.spec import Cell, GridSpec, expand_cells, load_grid
+from harness.grid.status import status_text
+
+__all__ = ["Cell", "GridSpec", "expand_cells", "load_grid", "run_grid", "status_text", "write_report"]

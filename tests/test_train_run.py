@@ -1,0 +1,483 @@
+"""Training runs end to end: records, exact resume after kill -9 / SIGTERM / a corrupt checkpoint,
+divergence, finished and foreign run dirs, bad input, bf16 fallback.
+
+Runs use a small local text corpus written by the tests (a fixed pseudo-random word stream)
+and tiny models on one thread. "Identical" means every metrics.jsonl field except the timing
+ones (``records.TIMING_FIELDS``: tokens_per_s, wall_s), which measure the machine, not the run.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import math
+import os
+import random
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+import yaml
+
+from harness.cli import main
+from harness.config import config_hash, load_config
+from harness.train import run_training
+from harness.train import runtime as runtime_mod
+from harness.train.progress import Bar, LogLines, Progress, make_progress
+from harness.train.records import TIMING_FIELDS, read_metrics, without_timing
+
+REPO = Path(__file__).resolve().parents[1]
+WORDS = ("the of and to in is that for it as was with be by on not he this are or his from at which but have an "
+         "they you were her she there one all we their can has been if more when will would who so no").split()
+
+
+# ----------------------------------------------------------------------------- helpers
+
+
+def write_corpus(path: Path, n_words: int = 40_000) -> Path:
+    rng = random.Random(0)
+    lines = []
+    for _ in range(n_words // 12):
+        lines.append(" ".join(rng.choice(WORDS) for _ in range(12)) + ".")
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+@pytest.fixture(scope="module")
+def workdir(tmp_path_factory) -> Path:
+    root = tmp_path_factory.mktemp("train")
+    write_corpus(root / "corpus.txt")
+    return root
+
+
+def config_dict(root: Path, **sections) -> dict:
+    data = {
+        "model": {"width": 32, "depth": 1, "pattern": ["global_attention"]},
+        "data": {"corpus": str(root / "corpus.txt"), "tokenizer": "bytes", "seq_len": 32,
+                 "cache_dir": str(root / "cache")},
+        "train": {"steps": 40, "batch_size": 4, "warmup_steps": 5, "log_every": 5, "eval_every": 10,
+                  "checkpoint_every": 10, "eval_windows": 4, "keep_checkpoints": 2},
+        "runtime": {"threads": 1},
+    }
+    for section, values in sections.items():
+        data[section] = {**data.get(section, {}), **values}
+    return data
+
+
+def write_config(root: Path, name: str, **sections) -> Path:
+    path = root / f"{name}.yaml"
+    path.write_text(yaml.safe_dump(config_dict(root, **sections)))
+    return path
+
+
+def snapshot(folder: Path) -> dict[str, tuple[str, int]]:
+    """sha256 and mtime of every file under ``folder``: 'untouched' means this is unchanged."""
+    return {str(p.relative_to(folder)): (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns)
+            for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+def comparable(run_dir: Path) -> list[dict]:
+    return [without_timing(line) for line in read_metrics(run_dir / "metrics.jsonl")]
+
+
+def cli(args: list[str], **kw) -> subprocess.Popen:
+    env = {**os.environ, "OMP_NUM_THREADS": "1", "PYTHONPATH": str(REPO)}
+    return subprocess.Popen([sys.executable, "-m", "harness", "train", *args], env=env, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True, **kw)
+
+
+def wait_for_line_after(run_dir: Path, step: int, proc: subprocess.Popen, timeout: float = 120) -> None:
+    """Block until metrics.jsonl has a line past ``step`` and a checkpoint exists (so a kill is mid-run)."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        assert proc.poll() is None, proc.communicate()
+        ckpts = list((run_dir / "checkpoints").glob("step_*.pt"))
+        if ckpts and any(line["step"] > step for line in read_metrics(run_dir / "metrics.jsonl")):
+            return
+        time.sleep(0.01)
+    raise AssertionError("the run did not get past the first checkpoint in time")
+
+
+class SignalAt(Progress):
+    """Sends ``sig`` to this process when the train line of ``step`` is logged (a deterministic Ctrl-C)."""
+
+    def __init__(self, step: int, sig: int = signal.SIGTERM) -> None:
+        self.at, self.sig = step, sig
+
+    def step(self, line: dict) -> None:
+        if line["step"] == self.at:
+            os.kill(os.getpid(), self.sig)
+
+    def message(self, text: str) -> None:
+        print(text, file=sys.stderr)
+
+
+# ----------------------------------------------------------------------------- a long-ish run shared by resume tests
+
+LONG = {"model": {"width": 64, "depth": 2}, "data": {"seq_len": 64},
+        "train": {"steps": 200, "batch_size": 8, "log_every": 5, "eval_every": 25, "checkpoint_every": 50}}
+
+
+@pytest.fixture(scope="module")
+def long_reference(workdir) -> tuple[Path, list[dict]]:
+    """An uninterrupted run of the LONG config (in-process, one thread) and its comparable metrics."""
+    path = write_config(workdir, "long", **LONG)
+    out = workdir / "long_reference"
+    summary = run_training(load_config(path), out, progress="silent")
+    assert summary["status"] == "done"
+    return path, comparable(out)
+
+
+def test_kill9_then_rerun_matches_uninterrupted(workdir, long_reference):
+    path, reference = long_reference
+    out = workdir / "killed"
+    proc = cli([str(path), "--out", str(out)])
+    wait_for_line_after(out, 50, proc)
+    proc.send_signal(signal.SIGKILL)
+    proc.wait(timeout=30)
+    assert proc.returncode == -signal.SIGKILL
+    before = read_metrics(out / "metrics.jsonl")
+    assert json.loads((out / "summary.json").read_text())["status"] == "running"
+    assert max(line["step"] for line in before) > 50  # lines past the checkpoint exist and must not be duplicated
+    proc = cli([str(path), "--out", str(out)])
+    _, err = proc.communicate(timeout=300)
+    assert proc.returncode == 0, err
+    assert "resuming" in err
+    assert comparable(out) == reference
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["status"] == "done" and summary["steps"] == 200
+
+
+def test_sigterm_checkpoints_and_rerun_matches(workdir, long_reference):
+    path, reference = long_reference
+    out = workdir / "terminated"
+    proc = cli([str(path), "--out", str(out)])
+    wait_for_line_after(out, 50, proc)
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 143, err
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["status"] == "interrupted" and summary["interrupted_by"] == "SIGTERM"
+    last_step = max(line["step"] for line in read_metrics(out / "metrics.jsonl"))
+    stopped = summary["steps"]
+    assert stopped >= last_step and stopped < 200
+    assert (out / "checkpoints" / f"step_{stopped:07d}.pt").exists()  # the step it stopped at was checkpointed
+    proc = cli([str(path), "--out", str(out)])
+    _, err = proc.communicate(timeout=300)
+    assert proc.returncode == 0, err
+    assert comparable(out) == reference
+
+
+def test_corrupt_latest_checkpoint_falls_back(workdir, long_reference, capsys):
+    path, reference = long_reference
+    out = workdir / "corrupt"
+    cfg = load_config(path)
+    summary = run_training(cfg, out, progress=SignalAt(120))
+    assert summary["status"] == "interrupted" and summary["steps"] == 120
+    ckpts = sorted((out / "checkpoints").glob("step_*.pt"))
+    assert [p.name for p in ckpts] == ["step_0000100.pt", "step_0000120.pt"]  # keep_checkpoints = 2
+    data = ckpts[-1].read_bytes()
+    ckpts[-1].write_bytes(data[: len(data) // 2])  # a write cut short
+    capsys.readouterr()
+    summary = run_training(cfg, out, progress="silent")
+    err = capsys.readouterr().err
+    assert summary["status"] == "done"
+    warnings = [line for line in err.splitlines() if line.startswith("warning:")]
+    assert len(warnings) == 1 and "step_0000120.pt" in warnings[0], err
+    assert "from the checkpoint at step 100/" in err
+    assert (out / "checkpoints" / "step_0000120.pt.corrupt").exists()
+    assert comparable(out) == reference
+    # TensorBoard: the resumed segment purged the points the first one wrote after step 100.
+    from tensorboard.backend.event_processing.event_accumulator import EventAccumulator
+
+    acc = EventAccumulator(str(out / "tb"))
+    acc.Reload()
+    steps = [e.step for e in acc.Scalars("train/loss")]
+    assert steps == [line["step"] for line in reference if line["split"] == "train"]
+
+
+# ----------------------------------------------------------------------------- records
+
+
+def test_records_fields_and_tensorboard(workdir):
+    path = write_config(workdir, "records")
+    out = workdir / "records_run"
+    summary = run_training(load_config(path), out, progress="silent")
+    lines = read_metrics(out / "metrics.jsonl")
+    train = [x for x in lines if x["split"] == "train"]
+    val = [x for x in lines if x["split"] == "val"]
+    assert [x["step"] for x in train] == [1, 5, 10, 15, 20, 25, 30, 35, 40]
+    assert [x["step"] for x in val] == [10, 20, 30, 40]
+    tokens_per_step = 4 * 32
+    for x in train:
+        assert set(x) == {"step", "split", "loss", "lr", "grad_norm", "tokens", "tokens_per_s", "wall_s"}
+        assert isinstance(x["step"], int) and isinstance(x["tokens"], int)
+        assert x["tokens"] == x["step"] * tokens_per_step
+        assert all(isinstance(x[k], float) and math.isfinite(x[k]) for k in ("loss", "lr", "grad_norm"))
+        assert x["tokens_per_s"] > 0
+    # A fresh byte-level model starts near the uniform loss ln 256 (maximum entropy, Shannon 1948).
+    assert abs(train[0]["loss"] - math.log(256)) < 0.5
+    for x in val:
+        assert set(x) == {"step", "split", "loss", "bits_per_token", "wall_s"}  # no accuracy: not a task
+        assert x["bits_per_token"] == pytest.approx(x["loss"] / math.log(2))
+    assert train[-1]["loss"] < train[0]["loss"] - 0.5  # it learns something
+    s = json.loads((out / "summary.json").read_text())
+    assert s == json.loads(json.dumps(summary))
+    assert s["status"] == "done" and s["steps"] == 40 and s["tokens_seen"] == 40 * tokens_per_step
+    assert s["final_val_loss"] == val[-1]["loss"]
+    assert s["best_val_loss"] == min(x["loss"] for x in val)
+    assert s["params"]["total"] > s["params"]["non_embedding"] > 0
+    assert s["params"]["total"] - s["params"]["non_embedding"] == 256 * 32  # the (tied) embedding
+    speeds = sorted(x["tokens_per_s"] for x in train)
+    assert s["tokens_per_s"] == pytest.approx(speeds[len(speeds) // 2])  # median of 9 values
+    assert s["wall_s"] > 0 and s["peak_rss_bytes"] > 50 * 2**20
+    env = json.loads((out / "env.json").read_text())
+    for key in ("python", "torch", "threads", "cpu_model", "device", "precision", "precision_reason",
+                "scan_backend", "git_commit", "hostname", "start_time"):
+        assert key in env, key
+    assert env["threads"] == 1 and env["device"] == "cpu" and env["precision"] == "fp32"
+    assert env["python"] == ".".join(map(str, sys.version_info[:3]))
+    cfg_back = load_config(out / "config.yaml")
+    assert config_hash(cfg_back) == config_hash(load_config(path))
+    from tensorboard.backend.event_processing.event_accumulator import EventAccumulator
+
+    acc = EventAccumulator(str(out / "tb"))
+    acc.Reload()
+    tags = set(acc.Tags()["scalars"])
+    assert {"train/loss", "train/lr", "train/grad_norm", "train/tokens_per_s", "val/loss",
+            "val/bits_per_token"} <= tags
+    tb_loss = {e.step: e.value for e in acc.Scalars("train/loss")}
+    assert tb_loss == pytest.approx({x["step"]: x["loss"] for x in train}, rel=1e-6)  # float32 in events
+    assert [e.step for e in acc.Scalars("val/loss")] == [10, 20, 30, 40]
+
+
+def test_log_lines_when_not_a_tty(workdir, capsys):
+    path = write_config(workdir, "loglines", train={"steps": 10})
+    assert main(["train", str(path), "--out", str(workdir / "loglines_run")]) == 0
+    err = capsys.readouterr().err
+    step_lines = [line for line in err.splitlines() if line.startswith("step ") and "/10" in line]
+    assert [line.split()[1] for line in step_lines] == ["1/10", "5/10", "10/10"]
+    for line in step_lines:
+        for field in ("loss ", "lr ", "tok/s ", "eta "):
+            assert field in line, line
+
+
+def test_progress_is_a_bar_on_a_tty():
+    class FakeTTY(io.StringIO):
+        def isatty(self):
+            return True
+
+    assert isinstance(make_progress(None, FakeTTY()), Bar)
+    assert isinstance(make_progress(None, io.StringIO()), LogLines)
+
+
+def test_grad_accum_uses_consecutive_micro_batches(workdir, monkeypatch):
+    """Step s (1-based) reads micro-batches (s-1)*k .. (s-1)*k + k-1, so the data position is the step."""
+    import harness.data
+
+    calls = []
+    real = harness.data.load_data
+
+    def recording(cfg):
+        data = real(cfg)
+        inner = data.train_batch
+
+        def train_batch(step):
+            calls.append(step)
+            return inner(step)
+
+        data.train_batch = train_batch
+        return data
+
+    monkeypatch.setattr(harness.data, "load_data", recording)
+    cfg = load_config(write_config(workdir, "accum", train={"grad_accum": 3, "batch_size": 2, "steps": 4}))
+    out = workdir / "accum_run"
+    run_training(cfg, out, progress="silent")
+    assert calls[1:] == list(range(12))  # calls[0]: the up-front check that the split fits a window
+    lines = read_metrics(out / "metrics.jsonl")
+    assert lines[0]["tokens"] == 3 * 2 * 32
+
+
+# ----------------------------------------------------------------------------- divergence
+
+
+def test_divergence_stops_with_exit_3(workdir, capsys):
+    path = write_config(workdir, "diverge", train={"lr": 30.0, "warmup_steps": 0, "grad_clip": 0.0, "steps": 40})
+    out = workdir / "diverge_run"
+    assert main(["train", str(path), "--out", str(out)]) == 3
+    err = capsys.readouterr().err
+    lines = [line for line in err.splitlines() if "diverged" in line]
+    assert len(lines) == 1, err
+    assert "train.lr" in lines[0] and "step" in lines[0]
+    assert "threshold" in lines[0] or "not finite" in lines[0]
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["status"] == "diverged" and summary["steps"] < 40
+    last = read_metrics(out / "metrics.jsonl")[-1]
+    assert last["step"] == summary["steps"]  # the diverged step is on record
+    assert last["loss"] is None or last["loss"] > 2.0 * read_metrics(out / "metrics.jsonl")[0]["loss"]
+
+
+# ----------------------------------------------------------------------------- finished and foreign dirs
+
+
+def test_done_dir_is_not_retrained_and_other_config_refused(workdir, capsys):
+    path = write_config(workdir, "done")
+    out = workdir / "done_run"
+    assert main(["train", str(path), "--out", str(out)]) == 0
+    before = snapshot(out)
+    capsys.readouterr()
+    assert main(["train", str(path), "--out", str(out)]) == 0
+    captured = capsys.readouterr()
+    assert "already done" in captured.out + captured.err
+    assert snapshot(out) == before
+    # Another config into the same dir: refused, dir untouched.
+    assert main(["train", str(path), "--set", "train.lr=0.001", "--out", str(out)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("error: ") and str(out) in err[0] and "--force" in err[0]
+    assert snapshot(out) == before
+    # --force replaces it with the new config.
+    assert main(["train", str(path), "--set", "train.lr=0.001", "--out", str(out), "--force"]) == 0
+    assert yaml.safe_load((out / "config.yaml").read_text())["train"]["lr"] == 0.001
+    assert snapshot(out)["metrics.jsonl"][0] != before["metrics.jsonl"][0]
+    # --force on a finished dir of the same config retrains it.
+    mtime = (out / "metrics.jsonl").stat().st_mtime_ns
+    assert main(["train", str(path), "--set", "train.lr=0.001", "--out", str(out), "--force"]) == 0
+    assert (out / "metrics.jsonl").stat().st_mtime_ns != mtime
+
+
+def test_force_keeps_files_that_are_not_records(workdir):
+    out = workdir / "foreign"
+    out.mkdir()
+    (out / "notes.txt").write_text("mine")
+    path = write_config(workdir, "foreign", train={"steps": 5})
+    with pytest.raises(Exception, match="no config.yaml"):
+        run_training(load_config(path), out, progress="silent")
+    assert run_training(load_config(path), out, force=True, progress="silent")["status"] == "done"
+    assert (out / "notes.txt").read_text() == "mine"
+
+
+def test_default_out_dir_is_runs_name_hash(workdir, monkeypatch, tmp_path):
+    path = write_config(workdir, "defaultdir", train={"steps": 3})
+    monkeypatch.chdir(tmp_path)
+    assert main(["train", str(path)]) == 0
+    expected = tmp_path / "runs" / "defaultdir" / config_hash(load_config(path))
+    assert json.loads((expected / "summary.json").read_text())["status"] == "done"
+
+
+# ----------------------------------------------------------------------------- bad input
+
+
+BAD = [
+    # (extra CLI args, text the one-line error must contain)
+    (["--set", "train.nosuch=1"], "train.nosuch"),
+    (["--set", "train.steps=many"], "train.steps"),
+    (["--set", "model.depth=0"], "model.depth"),
+    (["--set", "model.mixers.loc.kind=local_attention", "--set", "model.mixers.loc.window=0",
+      "--set", "model.pattern=[loc]"], "model.mixers.loc.window"),
+    (["--set", "model.mixers.att.kind=global_attention", "--set", "model.mixers.att.heads=5",
+      "--set", "model.pattern=[att]"], "model.mixers.att.heads"),
+    (["--set", "model.pattern=[nosuch_mixer]"], "model.pattern[0]"),
+    (["--set", "data.tokenizer=words"], "data.tokenizer"),
+    (["--set", "data.corpus=/nonexistent/corpus.txt"], "/nonexistent/corpus.txt"),
+    (["--set", "train.steps"], "--set"),
+    (["--set", "runtime.device=tpu"], "runtime.device"),
+    (["--set", "runtime.precision=fp16"], "runtime.precision"),
+    (["--set", "data.seq_len=100000"], "seq_len"),
+    (["--set", "train.lr=-1"], "train.lr"),
+]
+
+
+@pytest.fixture(scope="module")
+def existing_run(workdir) -> Path:
+    path = write_config(workdir, "existing", train={"steps": 5})
+    out = workdir / "existing_run"
+    assert run_training(load_config(path), out, progress="silent")["status"] == "done"
+    return out
+
+
+@pytest.mark.parametrize("args,names", BAD, ids=[b[1] for b in BAD])
+def test_bad_input_exits_2_with_one_line_and_leaves_dir(workdir, existing_run, capsys, args, names):
+    before = snapshot(existing_run)
+    path = workdir / "existing.yaml"
+    # --force is the destructive path: even then the dir must survive a config that fails validation.
+    code = main(["train", str(path), *args, "--out", str(existing_run), "--force"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2
+    assert len(err) == 1 and err[0].startswith("error: ") and names in err[0], err
+    assert snapshot(existing_run) == before
+
+
+def test_cuda_device_absent_is_a_user_error(workdir, existing_run, capsys):
+    import torch
+
+    if torch.cuda.is_available():
+        pytest.skip("a CUDA device is present")
+    before = snapshot(existing_run)
+    code = main(["train", str(workdir / "existing.yaml"), "--set", "runtime.device=cuda", "--out",
+                 str(existing_run), "--force"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1 and "runtime.device" in err[0]
+    assert snapshot(existing_run) == before
+
+
+@pytest.mark.parametrize("content,names", [(None, "missing.yaml"), ("model: [unclosed", "bad.yaml"),
+                                           ("- a list", "list.yaml")])
+def test_bad_config_file(tmp_path, capsys, content, names):
+    path = tmp_path / names
+    if content is not None:
+        path.write_text(content)
+    assert main(["train", str(path), "--out", str(tmp_path / "out")]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("error: ") and names in err[0]
+    assert not (tmp_path / "out").exists()
+
+
+# ----------------------------------------------------------------------------- precision
+
+
+def test_bf16_unsupported_falls_back_to_fp32(workdir, monkeypatch, capsys):
+    monkeypatch.setattr(runtime_mod, "cpu_bf16_support", lambda: (False, "simulated CPU without bf16"))
+    path = write_config(workdir, "bf16_no", train={"steps": 3}, runtime={"precision": "bf16"})
+    out = workdir / "bf16_no_run"
+    assert run_training(load_config(path), out, progress="silent")["status"] == "done"
+    err = capsys.readouterr().err
+    assert any(line.startswith("warning: runtime.precision") and "fp32" in line for line in err.splitlines()), err
+    env = json.loads((out / "env.json").read_text())
+    assert env["precision"] == "fp32" and "simulated CPU without bf16" in env["precision_reason"]
+
+
+def test_bf16_supported_runs_in_bf16(workdir, monkeypatch):
+    import torch
+
+    monkeypatch.setattr(runtime_mod, "cpu_bf16_support", lambda: (True, "simulated bf16 CPU"))
+    seen = []
+    real = torch.autocast
+
+    def spy(*args, **kwargs):
+        seen.append(kwargs.get("dtype"))
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(torch, "autocast", spy)
+    path = write_config(workdir, "bf16_yes", train={"steps": 3}, runtime={"precision": "bf16"})
+    out = workdir / "bf16_yes_run"
+    summary = run_training(load_config(path), out, progress="silent")
+    env = json.loads((out / "env.json").read_text())
+    assert env["precision"] == "bf16"
+    assert seen and set(seen) == {torch.bfloat16}
+    # Loss is computed in fp32 from the bf16 logits: finite and near ln 256 this early.
+    assert summary["status"] == "done" and abs(summary["final_val_loss"] - math.log(256)) < 1.0
+
+
+def test_timing_fields_are_the_only_difference(workdir):
+    """Two identical runs agree on every non-timing field (what the resume tests rely on)."""
+    path = write_config(workdir, "twice", train={"steps": 10})
+    a, b = workdir / "twice_a", workdir / "twice_b"
+    run_training(load_config(path), a, progress="silent")
+    run_training(load_config(path), b, progress="silent")
+    assert comparable(a) == comparable(b)
+    raw_a = read_metrics(a / "metrics.jsonl")
+    assert set(TIMING_FIELDS) <= set(raw_a[0])
