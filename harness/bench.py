@@ -207,3 +207,485 @@ def plain_step_seconds(shape: PlainShape, batch: int, seq_len: int, steps: int, 
         if i >= warmup:
             times.append(time.perf_counter() - start)
     return times
+
+
+def plain_tokens_per_s(shape: PlainShape, batch: int, seq_len: int, steps: int, warmup: int,
+                       bf16: bool = False) -> float:
+    """Tokens per second of the reference loop over its timed steps."""
+    times = plain_step_seconds(shape, batch, seq_len, steps, warmup, bf16=bf16)
+    return batch * seq_len * len(times) / sum(times)
+
+
+# ----------------------------------------------------------------------------- harness side
+
+
+@dataclasses.dataclass(frozen=True)
+class BenchCase:
+    """One harness training config of the benchmark (all at width 256, depth 4 unless said)."""
+
+    name: str
+    kind: str  # a mixer kind: global_attention, recurrence, local_attention, ...
+    seq_len: int
+    batch: int
+    precision: str = "fp32"
+    width: int = 256
+    depth: int = 4
+
+    @property
+    def tokens_per_step(self) -> int:
+        return self.seq_len * self.batch
+
+
+def harness_config(case: BenchCase, steps: int, cache_dir: str | Path, **train: Any) -> Any:
+    """The harness ``Config`` of ``case``: pydoc bytes, evaluation and checkpoint only at the end."""
+    from harness.config import config_from_dict
+
+    mixer: dict[str, Any] = {"kind": case.kind}
+    if "attention" in case.kind:
+        mixer["heads"] = 4
+    return config_from_dict({
+        "name": f"bench-{case.name}",
+        "model": {"width": case.width, "depth": case.depth, "pattern": ["mix"], "mixers": {"mix": mixer}},
+        "data": {"corpus": "pydoc", "tokenizer": "bytes", "seq_len": case.seq_len, "cache_dir": str(cache_dir)},
+        "train": {"steps": steps, "batch_size": case.batch, "eval_every": steps, "checkpoint_every": steps,
+                  "eval_windows": 2, "log_every": 10, **train},
+        "runtime": {"precision": case.precision},
+    })
+
+
+def loop_tokens_per_s(metrics: list[dict[str, Any]], warmup: int) -> float:
+    """Tokens/s of the whole training loop between the first train line at step >= ``warmup`` and the last.
+
+    Uses the lines' ``wall_s`` (the loop's own clock) rather than the logged ``tokens_per_s``,
+    which times the step function alone: this way batching, logging and RSS probes count too.
+    """
+    lines = [m for m in metrics if m.get("split") == "train" and m["step"] >= warmup]
+    if len(lines) < 2:
+        raise ValueError(f"need two train lines at step >= {warmup}; raise --steps")
+    first, last = lines[0], lines[-1]
+    return (last["tokens"] - first["tokens"]) / (last["wall_s"] - first["wall_s"])
+
+
+def harness_run(case: BenchCase, steps: int, warmup: int, cache_dir: Path, **train: Any) -> dict[str, Any]:
+    """Train ``case`` with ``harness.train.run_training`` in a temp run dir; its loop tokens/s and summary."""
+    from harness.train import run_training
+    from harness.train.records import read_metrics
+
+    cfg = harness_config(case, steps, cache_dir, **train)
+    with tempfile.TemporaryDirectory(prefix="harness-bench-") as tmp:
+        summary = run_training(cfg, Path(tmp) / "run", progress="silent")
+        metrics = read_metrics(Path(tmp) / "run" / "metrics.jsonl")
+    return {"tokens_per_s": loop_tokens_per_s(metrics, warmup), "summary": summary, "config": cfg}
+
+
+def flops_per_token(cfg: Any, vocab_size: int) -> float:
+    """Training FLOPs per token actually computed: Kaplan et al. 2020's 6N + mixer terms, plus the head's 6 d V."""
+    from harness.cost import flops_breakdown
+
+    parts = flops_breakdown(cfg, vocab_size)
+    return parts["total"] + parts["head"]
+
+
+# ----------------------------------------------------------------------------- scan
+
+
+def _bench_scan_module() -> Any:
+    """The kernels' own measuring code, ``scripts/bench_scan.py`` (not a package module: loaded by path)."""
+    import importlib.util
+
+    path = Path(__file__).resolve().parents[1] / "scripts" / "bench_scan.py"
+    if not path.exists():
+        return None
+    spec = importlib.util.spec_from_file_location("harness_bench_scan", path)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def scan_figures(shape: tuple[int, int, int] = (16, 256, 256), repeats: int = 15) -> dict[str, Any]:
+    """The scan fwd+bwd against one multiply-add fwd+bwd, per backend, and forward bytes/s.
+
+    Bytes of a forward scan: a and b read, h written (3 fp32 tensors of ``shape``); of fwd+bwd
+    8 (the backward reads dL/dh, a, h and writes dL/da, dL/db).
+    """
+    from harness.kernels import scan_backend_info
+
+    bs = _bench_scan_module()
+    if bs is None:
+        return {"error": "scripts/bench_scan.py not found"}
+    info = scan_backend_info()
+    x = bs.make_inputs(shape)
+    floor_fb = bs.median_seconds(bs.floor_step(x), 3, repeats)
+    numel = math.prod(shape)
+    out: dict[str, Any] = {"shape": list(shape), "floor_fwd_bwd_ms": floor_fb * 1e3, "backends": {}}
+    backends = ["chunked"] + (["compiled"] if info["compiled"]["state"] == "built" else [])
+    for name in backends:
+        fwd = bs.median_seconds(bs.scan_forward(x, name), 1, repeats)
+        fwd_bwd = bs.median_seconds(bs.scan_step(x, name), 1, repeats)
+        out["backends"][name] = {
+            "fwd_ms": fwd * 1e3, "fwd_bwd_ms": fwd_bwd * 1e3, "ratio_to_floor": fwd_bwd / floor_fb,
+            "fwd_gbytes_per_s": 3 * numel * 4 / fwd / 1e9, "fwd_bwd_gbytes_per_s": 8 * numel * 4 / fwd_bwd / 1e9,
+        }
+    from harness.kernels import resolve_backend
+
+    out["auto"] = resolve_backend(x["a"], "auto")
+    return out
+
+
+# ----------------------------------------------------------------------------- profile
+
+
+_LABEL = "bench::"
+
+
+@contextlib.contextmanager
+def labelled_forward(model: nn.Module) -> Iterator[None]:
+    """Open a profiler range around the forward of each part of the model, named by its block kind.
+
+    Ranges nest: the innermost one names an op (mixer:<kind>, mlp, embedding); ops of a block
+    outside both (norms, residual adds) are ``norms/residual``; ops of the model outside every
+    block (final norm, tied head) are ``head/loss``.
+    """
+    parts: list[tuple[nn.Module, str]] = [(model, "head/loss"), (model.embed, "embedding")]
+    for block in model.blocks:
+        parts.append((block, "norms/residual"))
+        parts.append((block.mixer, f"mixer:{block.mixer.kind}"))
+        if block.mlp is not None:
+            parts.append((block.mlp, "mlp"))
+    handles = []
+    for module, label in parts:
+        stack: list[Any] = []
+
+        def enter(_m: nn.Module, _args: Any, label: str = label, stack: list[Any] = stack) -> None:
+            rf = torch.profiler.record_function(_LABEL + label)
+            rf.__enter__()
+            stack.append(rf)
+
+        def leave(_m: nn.Module, _args: Any, _out: Any, stack: list[Any] = stack) -> None:
+            stack.pop().__exit__(None, None, None)
+
+        handles += [module.register_forward_pre_hook(enter), module.register_forward_hook(leave)]
+    try:
+        yield
+    finally:
+        for h in handles:
+            h.remove()
+
+
+def _forward_bucket(event: Any) -> str | None:
+    """The innermost label range around a forward op, or None."""
+    e = event
+    while e is not None:
+        if e.name.startswith(_LABEL):
+            return e.name[len(_LABEL):]
+        e = e.cpu_parent
+    return None
+
+
+def step_time_shares(events: list[Any]) -> dict[str, float]:
+    """Self CPU time of one profiled step per bucket, in ms: block kinds (forward + their backward),
+    ``optimizer`` (AdamW step and zero_grad), ``other`` (clipping, schedule, loss bookkeeping).
+
+    A backward op is charged to the forward op it differentiates: the autograd engine's
+    ``evaluate_function`` range carries that op's sequence number.
+    """
+    by_seq: dict[int, str] = {}
+    for e in events:
+        if e.sequence_nr >= 0 and not e.name.startswith("autograd::engine"):
+            by_seq.setdefault(e.sequence_nr, _forward_bucket(e) or "head/loss")
+    totals: dict[str, float] = {}
+    for e in events:
+        bucket, a = None, e
+        while a is not None and bucket is None:
+            if a.name.startswith("autograd::engine::evaluate_function"):
+                bucket = by_seq.get(a.sequence_nr, "backward:other")
+            elif a.name.startswith("Optimizer."):
+                bucket = "optimizer"
+            elif a.name.startswith(_LABEL):
+                bucket = a.name[len(_LABEL):]
+            a = a.cpu_parent
+        if bucket is None:
+            bucket = "head/loss" if e.sequence_nr >= 0 else "other"
+        totals[bucket] = totals.get(bucket, 0.0) + e.self_cpu_time_total / 1e3
+    return totals
+
+
+def profile_step(case: BenchCase, cache_dir: Path, warmup: int = 3) -> dict[str, Any]:
+    """One ``harness.train.train_step`` of ``case`` under torch.profiler: ms and share per bucket."""
+    from torch.profiler import ProfilerActivity, profile
+
+    from harness.data import load_data
+    from harness.model import build_model
+    from harness.train import train_step
+    from harness.train.optim import build_optimizer, build_scheduler
+    from harness.train.runtime import resolve_runtime
+
+    cfg = harness_config(case, 100, cache_dir)
+    runtime, _ = resolve_runtime(cfg.runtime)
+    data = load_data(cfg)
+    torch.manual_seed(0)
+    model = build_model(cfg.model, data.vocab_size)
+    optimizer = build_optimizer(model, cfg.train)
+    scheduler = build_scheduler(optimizer, cfg.train, cfg.train.steps)
+    for i in range(warmup):
+        train_step(model, optimizer, scheduler, [data.train_batch(i)], runtime, cfg.train.grad_clip)
+    batch = [data.train_batch(warmup)]
+    with labelled_forward(model), profile(activities=[ProfilerActivity.CPU]) as prof:
+        start = time.perf_counter()
+        train_step(model, optimizer, scheduler, batch, runtime, cfg.train.grad_clip)
+        wall_ms = (time.perf_counter() - start) * 1e3
+    ms = step_time_shares(list(prof.events()))
+    total = sum(ms.values())
+    return {"wall_ms": wall_ms, "ms": ms, "share": {k: v / total for k, v in ms.items()}}
+
+
+# ----------------------------------------------------------------------------- the benchmark
+
+
+@dataclasses.dataclass(frozen=True)
+class Target:
+    """A speed target: ``value`` compared with ``bound`` (">=" or "<=" or ">")."""
+
+    name: str
+    value: float | None
+    op: str
+    bound: float
+
+    @property
+    def met(self) -> bool | None:
+        if self.value is None:
+            return None
+        return {">=": self.value >= self.bound, "<=": self.value <= self.bound, ">": self.value > self.bound}[self.op]
+
+
+# The harness configs timed against each other. Batches at seq 2048 keep the tokens per step.
+CASES = (
+    BenchCase("attention-fp32", "global_attention", 256, 16),
+    BenchCase("attention-bf16", "global_attention", 256, 16, "bf16"),
+    BenchCase("recurrence-fp32", "recurrence", 256, 16),
+    BenchCase("recurrence-bf16", "recurrence", 256, 16, "bf16"),
+    BenchCase("attention-fp32-s2048", "global_attention", 2048, 2),
+    BenchCase("recurrence-fp32-s2048", "recurrence", 2048, 2),
+)
+# Plain-loop twins of the harness cases (same shapes, same precision).
+PLAIN_TWINS = {"attention-fp32": "plain-fp32", "attention-bf16": "plain-bf16"}
+
+
+def _round(cases: tuple[BenchCase, ...], steps: int, warmup: int, cache_dir: Path,
+           log: Callable[[str], None]) -> tuple[dict[str, float], dict[str, Any]]:
+    """One pass over the plain loop and every case: tokens/s by name, and the harness summaries."""
+    speeds: dict[str, float] = {}
+    summaries: dict[str, Any] = {}
+    shape = PlainShape()
+    for case in cases:
+        twin = PLAIN_TWINS.get(case.name)
+        if twin:
+            speeds[twin] = plain_tokens_per_s(shape, case.batch, case.seq_len, steps - warmup, warmup,
+                                              bf16=case.precision == "bf16")
+            log(f"  {twin:<24} {speeds[twin]:>9.0f} tokens/s")
+        run = harness_run(case, steps, warmup, cache_dir)
+        speeds[case.name] = run["tokens_per_s"]
+        summaries[case.name] = run
+        log(f"  {case.name:<24} {speeds[case.name]:>9.0f} tokens/s")
+    return speeds, summaries
+
+
+def _ratio(rounds: list[dict[str, float]], num: str, den: str) -> float | None:
+    """Median over rounds of num/den measured in the same round (drifting load cancels)."""
+    values = [r[num] / r[den] for r in rounds if num in r and den in r]
+    return statistics.median(values) if values else None
+
+
+def machine_facts() -> dict[str, Any]:
+    """CPU model, threads, torch version and capability, bf16 support, load average."""
+    import os
+
+    from harness.train.records import cpu_model
+    from harness.train.runtime import cpu_bf16_support
+
+    bf16, why = cpu_bf16_support()
+    return {"cpu": cpu_model(), "threads": torch.get_num_threads(), "torch": torch.__version__,
+            "capability": torch.backends.cpu.get_cpu_capability(), "bf16": bf16, "bf16_reason": why,
+            "python": platform.python_version(), "load_average": list(os.getloadavg())}
+
+
+def run_bench(steps: int = 30, warmup: int = 10, rounds: int = 2, profile: bool = True,
+              cases: tuple[BenchCase, ...] = CASES, log: Callable[[str], None] = print) -> dict[str, Any]:
+    """Measure peaks, every case (``rounds`` times, interleaved with the plain loop), the scan and a profile."""
+    from harness.data import load_data
+
+    result: dict[str, Any] = {"machine": machine_facts(), "steps": steps, "warmup": warmup, "rounds": rounds}
+    log(f"peaks ({result['machine']['threads']} threads) ...")
+    result["peaks"] = {"gemm_fp32_gflops": gemm_gflops(torch.float32), "gemm_bf16_gflops": gemm_gflops(torch.bfloat16),
+                       "copy_gbytes_per_s": copy_gbytes_per_s()}
+    with tempfile.TemporaryDirectory(prefix="harness-bench-cache-") as cache:
+        cache_dir = Path(cache)
+        per_round, runs = [], {}
+        for i in range(rounds):
+            log(f"round {i + 1}/{rounds}:")
+            speeds, runs = _round(cases, steps, warmup, cache_dir, log)
+            per_round.append(speeds)
+        vocab = load_data(runs[cases[0].name]["config"]).vocab_size
+        result["configs"] = _config_rows(cases, per_round, runs, result["peaks"], vocab)
+        result["per_round"] = per_round
+        log("scan ...")
+        result["scan"] = scan_figures()
+        if profile:
+            result["profile"] = {}
+            for case in cases:
+                if case.seq_len == 256 and case.precision == "fp32":
+                    log(f"profile {case.name} ...")
+                    result["profile"][case.name] = profile_step(case, cache_dir)
+    result["ratios"] = {
+        "harness_over_plain_fp32": _ratio(per_round, "attention-fp32", "plain-fp32"),
+        "harness_over_plain_bf16": _ratio(per_round, "attention-bf16", "plain-bf16"),
+        "bf16_over_fp32_attention": _ratio(per_round, "attention-bf16", "attention-fp32"),
+        "bf16_over_fp32_recurrence": _ratio(per_round, "recurrence-bf16", "recurrence-fp32"),
+        "bf16_over_fp32_plain": _ratio(per_round, "plain-bf16", "plain-fp32"),
+        "recurrence_over_attention_s256": _ratio(per_round, "recurrence-fp32", "attention-fp32"),
+        "recurrence_over_attention_s2048": _ratio(per_round, "recurrence-fp32-s2048", "attention-fp32-s2048"),
+    }
+    result["targets"] = [dataclasses.asdict(t) | {"met": t.met} for t in speed_targets(result)]
+    return result
+
+
+def _config_rows(cases: tuple[BenchCase, ...], per_round: list[dict[str, float]], runs: dict[str, Any],
+                 peaks: dict[str, float], vocab: int) -> list[dict[str, Any]]:
+    """One row per measured config: best tokens/s over rounds, achieved GFLOP/s and MFU against its GEMM peak."""
+    rows = []
+    plain = {twin: case for case in cases if (twin := PLAIN_TWINS.get(case.name))}
+    for name in per_round[0]:
+        case = plain.get(name) or next(c for c in cases if c.name == name)
+        tokens_per_s = max(r[name] for r in per_round if name in r)
+        flops = flops_per_token(runs[case.name]["config"], vocab)
+        peak = peaks["gemm_bf16_gflops" if case.precision == "bf16" else "gemm_fp32_gflops"]
+        gflops = tokens_per_s * flops / 1e9
+        row = {"name": name, "loop": "plain" if name in plain else "harness", "kind": case.kind,
+               "precision": case.precision, "seq_len": case.seq_len, "batch": case.batch,
+               "tokens_per_s": tokens_per_s, "flops_per_token": flops, "gflops": gflops, "mfu": gflops / peak}
+        if name not in plain:
+            summary = runs[name]["summary"]
+            row["peak_rss_bytes"] = summary.get("peak_rss_bytes")
+            row["scan_backend"] = runs[name]["summary"].get("scan_backend")
+        rows.append(row)
+    return rows
+
+
+def speed_targets(result: dict[str, Any]) -> list[Target]:
+    """The issue's speed targets, evaluated on the figures of this run."""
+    r = result["ratios"]
+    scan = result.get("scan", {})
+    auto = scan.get("backends", {}).get(scan.get("auto", ""), {})
+    return [
+        Target("harness / plain loop tokens/s, global attention fp32", r["harness_over_plain_fp32"], ">=", 0.95),
+        Target("scan fwd+bwd / multiply-add fwd+bwd, (16, 256, 256)", auto.get("ratio_to_floor"), "<=", 3.0),
+        Target("recurrence / global attention tokens/s, seq 256", r["recurrence_over_attention_s256"], ">=", 0.9),
+        Target("recurrence / global attention tokens/s, seq 2048", r["recurrence_over_attention_s2048"], ">", 1.0),
+        Target("bf16 / fp32 tokens/s, global attention", r["bf16_over_fp32_attention"], ">=", 1.8),
+    ]
+
+
+# ----------------------------------------------------------------------------- bf16 quality
+
+
+def run_quality(steps: int = 300, log: Callable[[str], None] = print) -> dict[str, Any]:
+    """Final validation loss of the global-attention case after ``steps`` steps in fp32 and in bf16.
+
+    Same seed, same batches, 32 validation windows; target: |bf16 - fp32| <= 1% of fp32.
+    """
+    out: dict[str, Any] = {"steps": steps}
+    with tempfile.TemporaryDirectory(prefix="harness-bench-cache-") as cache:
+        for precision in ("fp32", "bf16"):
+            case = BenchCase(f"quality-{precision}", "global_attention", 256, 16, precision)
+            run = harness_run(case, steps, 10, Path(cache), eval_windows=32, eval_every=steps)
+            out[precision] = {"final_val_loss": run["summary"]["final_val_loss"], "tokens_per_s": run["tokens_per_s"]}
+            log(f"  {precision}: val loss {out[precision]['final_val_loss']:.4f}, {run['tokens_per_s']:.0f} tokens/s")
+    fp32, bf16 = out["fp32"]["final_val_loss"], out["bf16"]["final_val_loss"]
+    out["relative_difference"] = abs(bf16 - fp32) / fp32
+    target = Target("|bf16 - fp32| / fp32 final val loss", out["relative_difference"], "<=", 0.01)
+    out["targets"] = [dataclasses.asdict(target) | {"met": target.met}]
+    return out
+
+
+# ----------------------------------------------------------------------------- report
+
+
+def _pct(x: float) -> str:
+    return f"{100 * x:.0f}%"
+
+
+def format_report(result: dict[str, Any]) -> str:
+    """The benchmark as text: machine, peaks, per-config table, scan, profile shares, targets."""
+    lines = []
+    m = result.get("machine", {})
+    if m:
+        lines.append(f"machine: {m['cpu']}, {m['threads']} threads, torch {m['torch']} ({m['capability']}), "
+                     f"bf16 {'native' if m['bf16'] else 'no'}; load average {m['load_average'][0]:.2f}")
+    if "peaks" in result:
+        p = result["peaks"]
+        lines.append(f"peaks: fp32 GEMM {p['gemm_fp32_gflops']:.0f} GFLOP/s, bf16 GEMM {p['gemm_bf16_gflops']:.0f} "
+                     f"GFLOP/s, copy {p['copy_gbytes_per_s']:.1f} GB/s")
+    if "configs" in result:
+        lines.append("")
+        header = f"{'config':<24} {'loop':<8} {'seq':>5} {'batch':>5} {'tokens/s':>9} {'GFLOP/s':>8} {'MFU':>5}"
+        lines.append(header)
+        for row in result["configs"]:
+            lines.append(f"{row['name']:<24} {row['loop']:<8} {row['seq_len']:>5} {row['batch']:>5} "
+                         f"{row['tokens_per_s']:>9.0f} {row['gflops']:>8.1f} {_pct(row['mfu']):>5}")
+        lines.append("(MFU: training FLOPs per token (6N + attention/scan terms + head) x tokens/s / GEMM peak "
+                     "of the same precision)")
+    if "ratios" in result:
+        lines.append("")
+        for key, value in result["ratios"].items():
+            lines.append(f"{key:<36} {'n/a' if value is None else f'{value:.2f}x'}")
+    scan = result.get("scan")
+    if scan and "backends" in scan:
+        lines.append("")
+        lines.append(f"scan {tuple(scan['shape'])} fp32: multiply-add floor fwd+bwd {scan['floor_fwd_bwd_ms']:.2f} ms; "
+                     f"auto backend = {scan['auto']}")
+        copy = result.get("peaks", {}).get("copy_gbytes_per_s")
+        for name, s in scan["backends"].items():
+            bw = f" ({_pct(s['fwd_gbytes_per_s'] / copy)} of copy)" if copy else ""
+            lines.append(f"  {name:<9} fwd {s['fwd_ms']:.2f} ms, fwd+bwd {s['fwd_bwd_ms']:.2f} ms = "
+                         f"{s['ratio_to_floor']:.2f}x floor; fwd {s['fwd_gbytes_per_s']:.1f} GB/s{bw}")
+    elif scan:
+        lines.append(f"scan: {scan.get('error')}")
+    for name, prof in result.get("profile", {}).items():
+        lines.append("")
+        lines.append(f"profile of one step, {name} ({prof['wall_ms']:.0f} ms wall):")
+        for bucket, ms in sorted(prof["ms"].items(), key=lambda kv: -kv[1]):
+            lines.append(f"  {bucket:<26} {ms:>8.1f} ms {_pct(prof['share'][bucket]):>5}")
+    if result.get("quality"):
+        q = result["quality"]
+        lines.append("")
+        lines.append(f"bf16 quality after {q['steps']} steps: fp32 val loss {q['fp32']['final_val_loss']:.4f}, "
+                     f"bf16 {q['bf16']['final_val_loss']:.4f} ({100 * q['relative_difference']:.2f}% apart)")
+    targets = result.get("targets", []) + result.get("quality", {}).get("targets", [])
+    if targets:
+        lines.append("")
+        lines.append("targets:")
+        for t in targets:
+            mark = {True: "met   ", False: "MISSED", None: "n/a   "}[t["met"]]
+            value = "n/a" if t["value"] is None else f"{t['value']:.3g}"
+            lines.append(f"  [{mark}] {t['name']}: {value} (target {t['op']} {t['bound']:g})")
+    return "\n".join(lines)
+
+
+def bench_command(*, steps: int = 30, warmup: int = 10, rounds: int = 2, profile: bool = True,
+                  quality: bool = False, quality_steps: int = 300, json_path: str | None = None) -> str:
+    """``harness bench``: run the benchmark (and the bf16 quality check), write JSON, return the report."""
+    from harness.errors import UserError
+
+    if warmup < 1 or steps < warmup + 10:
+        raise UserError(f"--steps {steps} / --warmup {warmup}: need warmup >= 1 and steps >= warmup + 10 "
+                        "(tokens/s is read between log lines, every 10 steps)")
+    if json_path is not None and Path(json_path).is_dir():
+        raise UserError(f"--json {json_path}: is a directory; give a file path")
+    result = run_bench(steps=steps, warmup=warmup, rounds=rounds, profile=profile,
+                       log=lambda s: print(s, flush=True))
+    if quality:
+        print("bf16 quality ...", flush=True)
+        result["quality"] = run_quality(quality_steps)
+    if json_path is not None:
+        Path(json_path).write_text(json.dumps(result, indent=2, default=str) + "\n")
+    return format_report(result)

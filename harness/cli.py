@@ -121,10 +121,113 @@ def _cmd_report(args: argparse.Namespace) -> int:
     return 0
 
 
+# ----------------------------------------------------------------------------- corpus
+
+
+def _add_corpus(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("corpus", help="list the corpus sources, or fetch one into the cache")
+    p.add_argument("action", choices=("list", "fetch"), help="list: sources, licenses, sizes; fetch: cache NAME")
+    p.add_argument("name", nargs="?", default=None, help="fetch: plays, pydoc or hub:NAME[:CONFIG]")
+    p.add_argument("--cache-dir", default="", help="cache folder (default: $HARNESS_CACHE or ~/.cache/harness)")
+    p.set_defaults(func=_cmd_corpus)
+
+
+def _cmd_corpus(args: argparse.Namespace) -> int:
+    from harness.data.sources import cache_root, fetch_corpus, list_corpora
+
+    root = cache_root(args.cache_dir)
+    if args.action == "list":
+        if args.name is not None:
+            raise UserError("corpus list: takes no NAME")
+        print(list_corpora(root))
+        return 0
+    if args.name is None:
+        raise UserError("corpus fetch: give a NAME (plays, pydoc or hub:NAME[:CONFIG])")
+    print(fetch_corpus(args.name, root))
+    return 0
+
+
+# ----------------------------------------------------------------------------- bench
+
+
+def _add_bench(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("bench", help="time the trainer against a plain PyTorch loop and this machine's peaks",
+                       description=("Speed benchmark: tokens/s of harness configs beside a hand-written PyTorch "
+                                    "loop, GEMM and copy peaks, the scan, and a profile of one step; prints "
+                                    "ratios. Memory: scripts/bench_memory.py."))
+    p.add_argument("--steps", type=int, default=30, help="training steps per timed run (default 30)")
+    p.add_argument("--warmup", type=int, default=10, help="untimed steps at the start of each run (default 10)")
+    p.add_argument("--rounds", type=int, default=2, help="interleaved repetitions; ratios are their median")
+    p.add_argument("--no-profile", dest="profile", action="store_false", help="skip the torch.profiler step")
+    p.add_argument("--quality", action="store_true",
+                   help="also train fp32 and bf16 for --quality-steps and compare the val loss")
+    p.add_argument("--quality-steps", type=int, default=300, help="steps of the --quality runs (default 300)")
+    p.add_argument("--json", default=None, metavar="PATH", help="also write every figure as JSON here")
+    p.set_defaults(func=_cmd_bench)
+
+
+def _cmd_bench(args: argparse.Namespace) -> int:
+    from harness.bench import bench_command
+
+    print(bench_command(steps=args.steps, warmup=args.warmup, rounds=args.rounds, profile=args.profile,
+                        quality=args.quality, quality_steps=args.quality_steps, json_path=args.json))
+    return 0
+
+
+# ----------------------------------------------------------------------------- sample
+
+
+def _add_sample(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("sample", help="generate text from a trained run through the mixers' step path",
+                       description=("Load RUN_DIR's config and newest checkpoint, step the prompt through the "
+                                    "model token by token and sample a continuation; prints prompt + continuation."))
+    p.add_argument("run_dir", help="a run dir written by `harness train`")
+    p.add_argument("--prompt", required=True, help="text to continue (encoded by the run's tokenizer)")
+    p.add_argument("--tokens", type=int, default=200, help="tokens to generate (default 200)")
+    p.add_argument("--temperature", type=float, default=1.0, help="softmax temperature; 0 = argmax (default 1)")
+    p.add_argument("--top-k", type=int, default=0, help="sample among the k most likely tokens (0 = all)")
+    p.add_argument("--seed", type=int, default=0, help="sampling seed (default 0): same seed, same text")
+    p.set_defaults(func=_cmd_sample)
+
+
+def _cmd_sample(args: argparse.Namespace) -> int:
+    from harness.generate import sample_command
+
+    print(sample_command(args.run_dir, args.prompt, args.tokens, temperature=args.temperature, top_k=args.top_k,
+                         seed=args.seed))
+    return 0
+
+
+# ----------------------------------------------------------------------------- eval
+
+
+def _add_eval(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("eval", help="length extrapolation and probes of a trained run (writes RUN_DIR/eval.json)",
+                       description=("Validation loss at multiples of the training context, per position bucket, "
+                                    "and/or the probe suite, for RUN_DIR's newest checkpoint."))
+    p.add_argument("run_dir", help="a run dir written by `harness train`")
+    p.add_argument("--lengths", default="1x,2x,4x,8x",
+                   help="multiples of the training seq_len (2x) or token counts (512), comma separated; "
+                        "'' = none (default 1x,2x,4x,8x)")
+    p.add_argument("--buckets", type=int, default=8, help="position buckets per window (default 8)")
+    p.add_argument("--probes", default="", help="probes to run, comma separated: mqar, passkey (default none)")
+    p.set_defaults(func=_cmd_eval)
+
+
+def _cmd_eval(args: argparse.Namespace) -> int:
+    from harness.evaluate import eval_command
+
+    print(eval_command(args.run_dir, args.lengths, buckets=args.buckets, probes=args.probes))
+    return 0
+
+
 # ----------------------------------------------------------------------------- registry
 
 _SUBCOMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [_add_train, _add_blocks]
 _SUBCOMMANDS += [_add_grid, _add_report]
+_SUBCOMMANDS += [_add_corpus]
+_SUBCOMMANDS += [_add_bench]
+_SUBCOMMANDS += [_add_sample, _add_eval]
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -152,7 +152,19 @@ class TrainConfig:
 
 @dataclasses.dataclass(frozen=True)
 class EvalConfig:
-    probes: tuple[str, ...] = opt((), "probe tasks run at each evaluation (e.g. mqar, passkey)")
+    probes: tuple[str, ...] = opt((), "probe tasks run at each evaluation: mqar, passkey (see harness/probes.py)")
+    probe_pairs: tuple[int, ...] = opt((4, 8, 16, 32), "mqar probe: numbers of key-value pairs", min=1)
+    probe_distances: tuple[int, ...] = opt(
+        (16, 64, 256), "passkey probe: filler characters between the key and the question", min=0)
+    probe_sequences: int = opt(16, "sequences per probe size", min=1)
+
+    def validate(self, path: str) -> None:
+        from harness.probes import PROBES
+
+        p = f"{path}." if path else ""
+        for i, name in enumerate(self.probes):
+            if name not in PROBES:
+                raise ConfigError(f"{p}probes[{i}]", f"{name!r} is not a probe (known: {', '.join(PROBES)})")
 
 
 @dataclasses.dataclass(frozen=True)

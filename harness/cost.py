@@ -85,14 +85,15 @@ def param_breakdown(cfg: Config, vocab_size: int | None = None) -> dict[str, int
     """
     model = cfg.model
     vocab = _vocab_size(cfg, vocab_size)
+    rows = layer_costs(model, cfg.data.seq_len)
     counts: dict[str, int] = {}
-    for row in layer_costs(model, cfg.data.seq_len):
+    for row in rows:  # mixer kinds first, in order of appearance over depth
         key = f"mixer:{row.kind}"
         counts[key] = counts.get(key, 0) + row.mixer_params
-        if row.mlp_params:
-            counts["mlp"] = counts.get("mlp", 0) + row.mlp_params
-        counts["norms"] = counts.get("norms", 0) + row.norm_params
-    counts["norms"] += _rmsnorm_params(model.width)  # final norm
+    mlp = sum(r.mlp_params for r in rows)
+    if mlp:
+        counts["mlp"] = mlp
+    counts["norms"] = sum(r.norm_params for r in rows) + _rmsnorm_params(model.width)  # + the final norm
     counts["embedding"] = vocab * model.width
     if not model.tie_embeddings:
         counts["head"] = vocab * model.width

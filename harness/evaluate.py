@@ -12,11 +12,17 @@ expected to hold.
 from __future__ import annotations
 
 import dataclasses
+import math
+from pathlib import Path
+from typing import Any
 
 import torch
 import torch.nn.functional as F
 
+from harness.errors import UserError
+
 IGNORE_INDEX = -100  # y == -100 marks positions without loss (DEVELOPERS.md, data interface)
+Batches = list[tuple[torch.Tensor, torch.Tensor]]
 
 
 @dataclasses.dataclass(frozen=True)
@@ -58,3 +64,152 @@ def position_bucket_loss(logits: torch.Tensor, y: torch.Tensor, n_buckets: int) 
         sums.append(token_loss[:, lo:hi].double().sum())
         counts.append(scored[:, lo:hi].sum())
     return BucketLoss(torch.stack(sums), torch.stack(counts).long())
+
+
+# ----------------------------------------------------------------------------- windows and lengths
+
+
+def parse_lengths(text: str, seq_len: int) -> list[tuple[str, int]]:
+    """``"1x,2x,4x"`` (multiples of the training seq_len) or token counts ``"256,1024"`` -> [(label, tokens)]."""
+    out = []
+    for item in (part.strip() for part in text.split(",")):
+        try:
+            if item.endswith("x"):
+                tokens = round(float(item[:-1]) * seq_len)
+            else:
+                tokens = int(item)
+        except ValueError:
+            tokens = 0
+        if tokens < 1:
+            raise UserError(f"--lengths {text}: {item!r} is neither a multiple like 2x nor a token count like 512")
+        out.append((item, tokens))
+    if not out:
+        raise UserError("--lengths: give at least one length, e.g. 1x,2x,4x")
+    return out
+
+
+def validation_windows(data: Any, cfg: Any, length: int) -> Batches:
+    """The run's validation windows, cut at ``length`` tokens instead of ``data.seq_len``.
+
+    Same seed, number of windows and placement rule as the trainer's (``val_window_starts``), so
+    at ``length == seq_len`` these are exactly the windows its val loss was measured on. For a
+    synthetic task, the task's validation sequences generated at that length.
+    """
+    from harness.data.batches import chunked, gather_windows, val_window_starts
+    from harness.data.tasks import VAL_STREAM
+
+    seed, n, batch = cfg.train.effective_data_seed, cfg.train.eval_windows, cfg.train.batch_size
+    if data.is_task:
+        try:
+            data.task.validate(data.params, length)
+        except UserError as e:
+            raise UserError(f"--lengths: {length} tokens: {e}") from None
+        x, y = data.task.sequences(data.params, seed, VAL_STREAM, range(n), length)
+        return chunked(x, y, batch)
+    tokens = data.val_tokens
+    if len(tokens) < length + 1:
+        raise UserError(f"--lengths: {length} tokens do not fit the validation split "
+                        f"({len(tokens)} tokens); use shorter lengths or raise data.val_fraction")
+    starts = val_window_starts(seed, n, len(tokens), length)
+    x, y = gather_windows(tokens, starts, length)
+    return chunked(x, y, batch)
+
+
+@torch.no_grad()
+def windows_loss(model: torch.nn.Module, batches: Batches, n_buckets: int) -> BucketLoss:
+    """Summed position-bucket losses of the full forward pass over ``batches``."""
+    model.eval()
+    total = None
+    for x, y in batches:
+        part = position_bucket_loss(model(x), y, n_buckets)
+        total = part if total is None else total + part
+    return total
+
+
+def length_result(label: str, length: int, loss: BucketLoss, seq_len: int) -> dict[str, Any]:
+    """One row of eval.json: total loss, bits per token and the per-bucket losses with their edges."""
+    mean = loss.mean
+    return {
+        "label": label,
+        "length": length,
+        "multiple": length / seq_len,
+        "loss": mean,
+        "bits_per_token": mean / math.log(2),
+        "tokens": int(loss.count.sum()),
+        "bucket_edges": bucket_edges(length, len(loss.count)),
+        "bucket_loss": loss.bucket_means,
+        "bucket_tokens": [int(c) for c in loss.count],
+    }
+
+
+def length_extrapolation(run: Any, lengths: list[tuple[str, int]], n_buckets: int) -> list[dict[str, Any]]:
+    """Loss per position bucket of ``run`` (a ``harness.generate.LoadedRun``) at each length."""
+    seq_len = run.cfg.data.seq_len
+    rows = []
+    for label, length in lengths:
+        batches = validation_windows(run.data, run.cfg, length)
+        rows.append(length_result(label, length, windows_loss(run.model, batches, n_buckets), seq_len))
+    return rows
+
+
+# ----------------------------------------------------------------------------- eval.json, table, command
+
+
+EVAL_FILE = "eval.json"
+
+
+def format_table(rows: list[dict[str, Any]]) -> str:
+    """Lengths down, position buckets across (nats per token)."""
+    n = max(len(r["bucket_loss"]) for r in rows)
+    header = ["length", "tokens", "loss", "bits/tok"] + [f"b{i + 1}" for i in range(n)]
+    lines = [header]
+    for r in rows:
+        buckets = [f"{v:.3f}" for v in r["bucket_loss"]] + [""] * (n - len(r["bucket_loss"]))
+        lines.append([r["label"], str(r["length"]), f"{r['loss']:.4f}", f"{r['bits_per_token']:.3f}", *buckets])
+    widths = [max(len(line[i]) for line in lines) for i in range(len(header))]
+    return "\n".join("  ".join(c.rjust(w) for c, w in zip(line, widths, strict=True)) for line in lines)
+
+
+def merge_eval(old: dict[str, Any] | None, new: dict[str, Any]) -> dict[str, Any]:
+    """eval.json after an evaluation: rows of other lengths (and probes) survive if they were
+    measured on the same checkpoint of the same config; otherwise the file starts over."""
+    same = old is not None and old.get("step") == new["step"] and old.get("config_hash") == new["config_hash"]
+    if not same:
+        return new
+    by_length = {r["length"]: r for r in old.get("lengths", [])}
+    by_length.update({r["length"]: r for r in new.get("lengths", [])})
+    merged = {**old, **new, "lengths": sorted(by_length.values(), key=lambda r: r["length"])}
+    merged["probes"] = {**old.get("probes", {}), **new.get("probes", {})}
+    return merged
+
+
+def eval_command(run_dir: str | Path, lengths: str, *, buckets: int = 8, probes: str = "") -> str:
+    """``harness eval``: length extrapolation (and probes) of a trained run; writes RUN_DIR/eval.json."""
+    from harness.config import config_hash
+    from harness.generate import load_run
+    from harness.train.records import read_json, write_json
+
+    if buckets < 1:
+        raise UserError(f"--buckets {buckets}: must be >= 1")
+    run = load_run(run_dir)
+    rows = length_extrapolation(run, parse_lengths(lengths, run.cfg.data.seq_len), buckets) if lengths else []
+    probe_names = tuple(p.strip() for p in probes.split(",") if p.strip())
+    probe_results = {}
+    if probe_names:
+        from harness.probes import run_probes
+
+        probe_results = run_probes(run.model, run.cfg, run.data.tokenizer, names=probe_names)
+    if not rows and not probe_results:
+        raise UserError("give --lengths and/or --probes")
+    result = {"run": str(run.path), "config_hash": config_hash(run.cfg), "step": run.step,
+              "seq_len": run.cfg.data.seq_len, "eval_windows": run.cfg.train.eval_windows,
+              "lengths": rows, "probes": probe_results}
+    path = Path(run_dir) / EVAL_FILE
+    write_json(path, merge_eval(read_json(path), result))
+    parts = [f"{run.path} at step {run.step} (trained at seq_len {run.cfg.data.seq_len}); loss in nats/token"]
+    if rows:
+        parts.append(format_table(rows))
+    if probe_results:
+        parts.append("\n".join(f"{k} {v:.3f}" for k, v in probe_results.items()))
+    parts.append(f"wrote {path}")
+    return "\n\n".join(parts)

@@ -9,6 +9,8 @@ step logits against a full-forward recomputation of the same tokens.
 from __future__ import annotations
 
 import dataclasses
+import sys
+from pathlib import Path
 from typing import Any
 
 import torch
@@ -86,3 +88,89 @@ def generate(
         last, states = model.step(nxt, states)
         all_logits.append(last[:, None])
     return Generation(tokens=torch.cat(tokens, dim=1), logits=torch.cat(all_logits, dim=1), states=states)
+
+
+# ----------------------------------------------------------------------------- trained runs
+
+
+@dataclasses.dataclass
+class LoadedRun:
+    """A trained run ready for inference: its config, data (tokenizer, windows) and model at ``step``."""
+
+    path: Path
+    cfg: Any  # harness.config.Config
+    data: Any  # harness.data.TokenData
+    model: torch.nn.Module
+    step: int
+
+
+def read_run_config(run_dir: Path) -> Any:
+    """The resolved config a run dir was trained with (its ``config.yaml``)."""
+    from harness.config import config_from_dict, read_yaml
+
+    if not run_dir.is_dir():
+        raise UserError(f"{run_dir}: no such run dir")
+    path = run_dir / "config.yaml"
+    if not path.is_file():
+        raise UserError(f"{run_dir}: not a run dir (no config.yaml)")
+    return config_from_dict(read_yaml(path))
+
+
+def newest_checkpoint(run_dir: Path, cfg_hash: str) -> Any:
+    """The newest readable checkpoint of the run (through the trainer's reader); read-only.
+
+    Unlike resuming, inference never renames a broken checkpoint: it skips it with a warning.
+    """
+    from harness.train.checkpoint import list_checkpoints, read_checkpoint
+
+    found = list_checkpoints(run_dir / "checkpoints")
+    for _step, path in reversed(found):
+        try:
+            return read_checkpoint(path, cfg_hash)
+        except ValueError as e:
+            print(f"warning: checkpoint {path} is {e}; trying the previous one", file=sys.stderr)
+    raise UserError(f"{run_dir}: no readable checkpoint in {run_dir / 'checkpoints'}"
+                    + ("" if found else " (has it trained past its first checkpoint?)"))
+
+
+def load_run(run_dir: str | Path) -> LoadedRun:
+    """Config, data and model of ``run_dir`` with the weights of its newest checkpoint, on the CPU, in eval mode."""
+    from harness.config import config_hash
+    from harness.data import load_data
+    from harness.model import build_model
+
+    run_dir = Path(run_dir)
+    cfg = read_run_config(run_dir)
+    ckpt = newest_checkpoint(run_dir, config_hash(cfg))
+    data = load_data(cfg)
+    model = build_model(cfg.model, data.vocab_size)
+    model.load_state_dict(ckpt.state["model"])
+    model.eval()
+    return LoadedRun(path=run_dir, cfg=cfg, data=data, model=model, step=ckpt.step)
+
+
+def encode_prompt(tokenizer: Any, prompt: str) -> torch.Tensor:
+    """``prompt`` as a (1, T) id tensor; an empty or unencodable prompt is a UserError."""
+    try:
+        ids = tokenizer.encode(prompt)
+    except ValueError as e:
+        raise UserError(f"--prompt: cannot be encoded by this run's tokenizer ({e})") from None
+    if len(ids) == 0:
+        raise UserError("--prompt: must encode to at least one token")
+    return torch.as_tensor(ids, dtype=torch.long).reshape(1, -1)
+
+
+def sample_command(
+    run_dir: str | Path, prompt: str, tokens: int, *, temperature: float, top_k: int, seed: int
+) -> str:
+    """``harness sample``: the prompt and its continuation as text."""
+    if tokens < 0:
+        raise UserError(f"--tokens {tokens}: must be >= 0")
+    if top_k < 0:
+        raise UserError(f"--top-k {top_k}: must be >= 0 (0 = no filter)")
+    if temperature < 0:
+        raise UserError(f"--temperature {temperature}: must be >= 0 (0 = argmax)")
+    run = load_run(run_dir)
+    ids = encode_prompt(run.data.tokenizer, prompt)
+    out = generate(run.model, ids, tokens, temperature=temperature, top_k=top_k, seed=seed)
+    return run.data.tokenizer.decode(out.tokens[0].tolist())

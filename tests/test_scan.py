@@ -72,7 +72,8 @@ def values_and_grads(a, b, h0, backend, seed=1):
 
 
 def assert_all_close(got, want, **tol):
-    for name, x, y in zip(("h", "dL/da", "dL/db", "dL/dh0"), got, want):
+    assert len(got) == len(want)
+    for name, x, y in zip(("h", "dL/da", "dL/db", "dL/dh0")[: len(got)], got, want, strict=True):
         torch.testing.assert_close(x, y, msg=lambda m, name=name: f"{name}: {m}", **tol)
 
 
@@ -169,6 +170,15 @@ def test_no_grad_and_empty_time(backend):
     assert linear_scan(empty, empty, backend=backend).shape == (2, 0, 3)
 
 
+@pytest.mark.skipif(not torch.cuda.is_available(), reason="needs a CUDA device")
+def test_chunked_on_cuda_matches_cpu_reference():
+    # auto sends CUDA tensors to the chunked backend; it must give the loop's values and gradients there too.
+    a, b, h0 = random_inputs((2, 100, 8))
+    assert scan_mod.resolve_backend(a.cuda()) == "chunked"
+    got = [t.cpu() for t in values_and_grads(a.cuda(), b.cuda(), h0.cuda(), "auto")]
+    assert_all_close(got, values_and_grads(a, b, h0, "reference"), rtol=1e-5, atol=1e-5)
+
+
 # ----------------------------------------------------------------------------- numerical stability
 
 
@@ -252,8 +262,9 @@ def test_auto_rules_by_device_and_dtype(compiled_ops):
     assert scan_mod.resolve_backend(cpu.to(torch.bfloat16)) == "chunked"
     assert scan_mod.resolve_backend(torch.empty(0, device="meta")) == "chunked"
     with pytest.raises(TypeError, match="supports"):
-        linear_scan(torch.ones(1, 2, 1, dtype=torch.bfloat16), torch.ones(1, 2, 1, dtype=torch.bfloat16),
-                    backend="compiled")
+        linear_scan(
+            torch.ones(1, 2, 1, dtype=torch.bfloat16), torch.ones(1, 2, 1, dtype=torch.bfloat16), backend="compiled"
+        )
 
 
 def test_backend_info_reports_the_build(compiled_ops):
@@ -265,8 +276,10 @@ def test_backend_info_reports_the_build(compiled_ops):
 
 @pytest.fixture
 def fresh_build_state(monkeypatch, tmp_path):
-    """A process that has not tried the build yet, building into an empty folder."""
+    """A process that has not tried the build yet, building into an empty folder (under a name of
+    its own: the real kernel may already be loaded in this process and would be reused)."""
     monkeypatch.setattr(build, "_STATE", build._BuildState())
+    monkeypatch.setattr(build, "extension_name", lambda: "harness_scan_fallback_test")
     monkeypatch.setenv("TORCH_EXTENSIONS_DIR", str(tmp_path))
 
 
@@ -297,6 +310,15 @@ def test_auto_falls_back_with_a_missing_compiler(fresh_build_state, monkeypatch)
     # The real loader with a compiler that does not exist: its error must be caught and recorded.
     monkeypatch.setenv("CXX", "/nonexistent/c++")
     _check_fallback("Error")
+
+
+def test_ninja_beside_python_is_found_without_path(monkeypatch):
+    # CI runs .venv/bin/python without activating the venv: pip's ninja (a project dependency)
+    # is then not on PATH, and torch's loader would not find it on its own.
+    monkeypatch.setattr(build.shutil, "which", lambda name: None)
+    found = build.find_ninja()
+    assert found is not None and os.access(found, os.X_OK)
+    assert subprocess.run([found, "--version"], capture_output=True, check=True).stdout.strip()
 
 
 _CHILD = textwrap.dedent(

@@ -170,3 +170,10 @@ def test_grad_clip_reports_norm_before_clipping():
     step_norm = torch.linalg.vector_norm(torch.stack([(b - p).norm() for b, p in zip(before, model.parameters(),
                                                                                       strict=True)])).item()
     assert step_norm == pytest.approx(clip, rel=1e-4)
+
+
+def test_optimizer_reads_betas_lr_and_decay():
+    cfg = _cfg(lr=0.004, beta1=0.8, beta2=0.99, weight_decay=0.05)
+    opt = build_optimizer(build_model(cfg.model, 30), cfg.train)
+    assert opt.defaults["betas"] == (0.8, 0.99) and opt.defaults["lr"] == 0.004
+    assert {g["group"]: g["weight_decay"] for g in opt.param_groups} == {"decay": 0.05, "no_decay": 0.0}

@@ -33,8 +33,14 @@ from typing import Any
 import numpy as np
 
 from harness.data.sources import Corpus
-from harness.data.tokenizers import Tokenizer, build_tokenizer, load_tokenizer, save_tokenizer, storage_dtype, \
-    text_pieces
+from harness.data.tokenizers import (
+    Tokenizer,
+    build_tokenizer,
+    load_tokenizer,
+    save_tokenizer,
+    storage_dtype,
+    text_pieces,
+)
 from harness.errors import ConfigError, UserError
 
 FORMAT_VERSION = 1

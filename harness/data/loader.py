@@ -9,13 +9,12 @@ from __future__ import annotations
 
 import hashlib
 import json
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 import torch
 
-from harness.data.batches import chunked, gather_windows, train_window_starts, val_window_starts
+from harness.data.batches import chunked, gather_windows, stream_rng, train_window_starts, val_window_starts
 from harness.data.cache import SPLITS, CacheSpec, PreparedCorpus, prepare
 from harness.data.sources import cache_root, resolve_corpus
 from harness.data.tasks import PICK_STREAM, POOL_STREAM, VAL_STREAM, Task, get_task
@@ -105,8 +104,6 @@ class TaskData(TokenData):
         pool = self.params.num_sequences
         if pool == 0:
             return self.task.make_batch(self.params, self.seed, step, self.batch_size, self.seq_len)
-        from harness.data.batches import stream_rng
-
         picks = stream_rng(self.seed, PICK_STREAM, step).integers(0, pool, size=self.batch_size)
         return self.task.sequences(self.params, self.seed, POOL_STREAM, picks, self.seq_len)
 
@@ -178,7 +175,3 @@ def vocab_size_for(cfg: Any) -> int:
     if d.tokenizer == "bpe":
         return d.bpe_vocab
     return int(prepare_corpus(d).manifest["tokenizer"]["vocab_size"])
-
-
-def default_cache_root(cache_dir: str = "") -> Path:
-    return cache_root(cache_dir)

@@ -19,7 +19,6 @@ documents in their fixed order (called several times while preparing; holds one 
 
 from __future__ import annotations
 
-import codecs
 import dataclasses
 import fnmatch
 import glob

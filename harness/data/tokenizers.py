@@ -4,12 +4,13 @@ characters plus an unknown id) and ``bpe`` (byte-level BPE trained with the ``to
 Every tokenizer round-trips the text it was built from: bytes and byte-level BPE round-trip any
 string, chars any string made of its characters. ``encode`` returns an ``np.ndarray`` of int64.
 Long texts are encoded in pieces (:func:`text_pieces`) cut where no tokenizer here merges across
-the cut, so piecewise encoding equals encoding the whole text.
+the cut, so piecewise encoding equals encoding the whole text (bar a hard cut, see there).
 """
 
 from __future__ import annotations
 
 import json
+import re
 from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import Protocol
@@ -29,27 +30,31 @@ class Tokenizer(Protocol):
     def decode(self, ids: Iterable[int]) -> str: ...
 
 
-def text_pieces(text: str, max_chars: int = PIECE_CHARS) -> Iterator[str]:
-    """Consecutive slices of ``text`` (joined they give ``text``), each at most ``max_chars`` long
-    where possible, cut just after a newline that sits between two non-space characters.
+# A cut c (pieces ...text[:c] | text[c:]...) where no byte-level BPE merge can span: just after a
+# newline between two non-space characters, or just before a single space between two of them.
+_CLEAN_CUT = re.compile(r"(?<=\S\n)(?=\S)|(?<=\S)(?= \S)")
 
-    Byte-level BPE pre-tokenizes with the GPT-2 pattern (Radford et al. 2019), under which such a
-    newline is a pre-token of its own, so no merge spans the cut; bytes and chars are per symbol.
+
+def text_pieces(text: str, max_chars: int = PIECE_CHARS) -> Iterator[str]:
+    """Consecutive slices of ``text`` (joined they give ``text``) of at most ``max_chars``
+    characters, cut at clean places so that encoding the pieces equals encoding the whole.
+
+    Byte-level BPE pre-tokenizes with the GPT-2 pattern (Radford et al. 2019), under which a
+    newline between non-space characters is a pre-token of its own and a single space before a
+    non-space character opens a pre-token, so no merge spans such a cut (bytes and chars are per
+    symbol anyway). A window with no clean place (no space or newline at all) is cut hard.
     """
     start, n = 0, len(text)
     while n - start > max_chars:
-        cut = -1
         hi = start + max_chars
-        while True:
-            nl = text.rfind("\n", start + 1, hi)
-            if nl < 0:
+        cut = -1
+        for lo in (max(start + 1, hi - 4096), start + 1):  # look near the end first: usually enough
+            found = [m.start() for m in _CLEAN_CUT.finditer(text, lo, hi + 2) if start < m.start() <= hi]
+            if found:
+                cut = found[-1]
                 break
-            if not text[nl - 1].isspace() and nl + 1 < n and not text[nl + 1].isspace():
-                cut = nl + 1
-                break
-            hi = nl
         if cut < 0:
-            cut = start + max_chars  # no clean cut in range: rare (a megabyte without such a newline)
+            cut = hi
         yield text[start:cut]
         start = cut
     if start < n or n == 0:

@@ -35,6 +35,7 @@ from harness.grid.fairness import CellCost, apply_matching, cell_cost, planned_s
 from harness.grid.index import FINISHED, INDEX_NAME, GridIndex, open_index
 from harness.grid.spec import Cell, GridSpec, expand_cells, load_grid
 from harness.grid.status import LOCK_NAME, cell_dir, format_duration, grid_progress, lock_holder, read_summary
+from harness.schema import to_dict
 
 DEFAULT_ROOT = Path("runs") / "grids"
 STATUS_EVERY_S = 30.0
@@ -88,13 +89,16 @@ def dry_run_text(plan: list[PlannedCell], workers: int, threads: int, measure: b
     """The cells with params, FLOPs/token, tokens and (measured-speed) estimated time."""
     from harness.grid.estimate import measure_tokens_per_s
 
-    speeds: dict[tuple, float] = {}
+    speeds: dict[str, float] = {}
     header = ["cell", "adjustment", "params (non-emb)", "FLOPs/token", "steps", "tokens", "tokens/s", "est. time"]
     rows = []
     total_s = 0.0
     longest = 0.0
     for p in plan:
-        key = (p.cell.variant, p.cell.point)
+        cfg = p.cell.cfg
+        # Speed depends on the model and the batch shape only (not on lr, seed or budget).
+        key = json.dumps([to_dict(cfg.model), cfg.data.seq_len, cfg.train.batch_size, cfg.train.grad_accum,
+                          cfg.runtime.threads], sort_keys=True, default=str)
         if measure and key not in speeds:
             speeds[key] = measure_tokens_per_s(p.cell.cfg, threads)
         speed = speeds.get(key)
@@ -226,6 +230,25 @@ def _write_if_changed(path: Path, text: str) -> None:
         tmp = path.with_name(f".{path.name}.tmp")
         tmp.write_text(text)
         tmp.replace(path)
+
+
+def prepare_data(plan: list[PlannedCell], echo: Callable[[str], None]) -> None:
+    """Load each distinct data config once here, before any cell starts.
+
+    A corpus that cannot be read fails the grid at once (instead of in every cell), and the token
+    cache is built once rather than by several cells at the same time.
+    """
+    from harness.data import load_data
+
+    seen: set[str] = set()
+    for p in plan:
+        cfg = p.cell.cfg
+        key = json.dumps(to_dict(cfg.data), sort_keys=True, default=str)
+        if key in seen:
+            continue
+        seen.add(key)
+        echo(f"preparing data: {cfg.data.corpus} ({cfg.data.tokenizer} tokens)")
+        load_data(cfg)
 
 
 # ----------------------------------------------------------------------------- outcomes
@@ -367,6 +390,9 @@ def run_grid(
     # Checked before anything is written (a refused command leaves the dir as it was), and again
     # under the lock in case another process changed the grid in between.
     _refuse_changed_spec(grid_dir, grid_file, old_hashes, new, force)
+    unfinished = [p for p in plan
+                  if (read_summary(cell_dir(grid_dir, p.id) / "summary.json") or {}).get("status") not in FINISHED]
+    prepare_data(unfinished, echo)
     grid_dir.mkdir(parents=True, exist_ok=True)
     with grid_lock(grid_dir), open_index(grid_dir) as index:
         old = {r["id"]: r["config_hash"] for r in index.cells()}

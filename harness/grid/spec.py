@@ -226,7 +226,26 @@ def _parse_seeds(raw: Any) -> tuple[int, ...]:
 def config_with(base: dict[str, Any], overrides: dict[str, Any]) -> Config:
     """The base dict with dotted-key overrides applied, validated (``harness.config.replace`` on a dict)."""
     items = [f"{k}={json.dumps(v)}" for k, v in overrides.items()]
-    return config_from_dict(apply_overrides(base, items))
+    data = apply_overrides(base, items)
+    _default_mixer_kinds(data)
+    return config_from_dict(data)
+
+
+def _default_mixer_kinds(data: dict[str, Any]) -> None:
+    """``model.mixers.<kind>.<option>`` set without a ``kind``: the entry named after a mixer kind is that kind.
+
+    This mirrors the config rule that a bare kind in ``model.pattern`` is that kind with default
+    options, so a variant can set ``model.mixers.recurrence.gate`` whether or not the base spelled
+    the entry out.
+    """
+    from harness.mixers import MIXERS
+
+    mixers = (data.get("model") or {}).get("mixers") if isinstance(data.get("model"), dict) else None
+    if not isinstance(mixers, dict):
+        return
+    for name, entry in mixers.items():
+        if isinstance(entry, dict) and "kind" not in entry and name in MIXERS:
+            entry["kind"] = name
 
 
 def _validate_pieces(spec: GridSpec) -> None:

@@ -57,8 +57,14 @@ def extension_root() -> Path:
 def extension_name() -> str:
     """Module (and operator namespace) name: a hash of everything that changes the binary."""
     digest = hashlib.sha256()
-    for part in (SOURCE.read_bytes(), repr(CFLAGS).encode(), repr(LDFLAGS).encode(), torch.__version__.encode(),
-                 platform.machine().encode(), sys.version.encode()):
+    for part in (
+        SOURCE.read_bytes(),
+        repr(CFLAGS).encode(),
+        repr(LDFLAGS).encode(),
+        torch.__version__.encode(),
+        platform.machine().encode(),
+        sys.version.encode(),
+    ):
         digest.update(part)
         digest.update(b"\0")
     return f"harness_scan_{digest.hexdigest()[:12]}"
@@ -173,6 +179,8 @@ def load_scan_ops() -> Any:
                 if _registered_ops(name) is None:
                     _build_and_load(name, state.build_dir)
                 state.ops = _registered_ops(name)
+                if state.ops is None:
+                    raise RuntimeError(f"the kernel library loaded but torch.ops.{name}.forward is missing")
                 state.state = "built"
             except Exception as exc:  # any build failure means: fall back, and say why
                 state.state = "failed"

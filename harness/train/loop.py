@@ -113,26 +113,28 @@ def evaluate(
     """
     was_training = model.training
     model.eval()
-    loss_sum, count, correct = 0.0, 0, 0
-    for x, y in batches:
-        x, y = x.to(runtime.device), y.to(runtime.device)
-        with runtime.autocast():
-            logits = model(x)
-        loss, n = token_loss_sum(logits, y)
-        loss_sum += loss.item()
-        count += n
+    try:
+        loss_sum, count, correct = 0.0, 0, 0
+        for x, y in batches:
+            x, y = x.to(runtime.device), y.to(runtime.device)
+            with runtime.autocast():
+                logits = model(x)
+            loss, n = token_loss_sum(logits, y)
+            loss_sum += loss.item()
+            count += n
+            if is_task:
+                correct += int(((logits.argmax(-1) == y) & (y != IGNORE_INDEX)).sum())
+        if count == 0:
+            raise ValueError("the validation windows hold no scored target tokens")
+        mean = loss_sum / count
+        out = {"loss": mean, "bits_per_token": mean / math.log(2)}
         if is_task:
-            correct += int(((logits.argmax(-1) == y) & (y != IGNORE_INDEX)).sum())
-    model.train(was_training)
-    if count == 0:
-        raise ValueError("the validation windows hold no scored target tokens")
-    mean = loss_sum / count
-    out = {"loss": mean, "bits_per_token": mean / math.log(2)}
-    if is_task:
-        out["accuracy"] = correct / count
-    for hook in hooks:
-        out.update(hook(model, runtime))
-    return out
+            out["accuracy"] = correct / count
+        for hook in hooks:
+            out.update(hook(model, runtime))
+        return out
+    finally:
+        model.train(was_training)
 
 
 def divergence(loss: float, first_loss: float, factor: float) -> str | None:
@@ -268,7 +270,10 @@ def run_training(
     torch.set_num_threads(runtime.threads)
     try:
         s = _build(cfg, cfg_hash, runtime)
-        return _train(s, out, action, show, eval_hooks)
+        from harness.probes import make_eval_hook  # eval.probes; builds (and checks) the probes before training
+
+        probes = make_eval_hook(cfg, s.data)
+        return _train(s, out, action, show, (*eval_hooks, probes) if probes else tuple(eval_hooks))
     finally:
         torch.set_num_threads(threads_before)
 
@@ -297,7 +302,7 @@ def _train(s: Setup, out: Path, action: str, show: Progress, eval_hooks: Sequenc
     cfg = s.cfg.train
     step, loop, metrics, tb = _start(s, out, action, show)
     write_json(out / "env.json", environment(**s.runtime.facts(), start_time=_now(),
-                                              resumed_from_step=step if step else None))
+                                              resumed_from_step=step if step else None, data=s.data.describe()))
     params = _param_counts(s.model)
     if step == 0:
         show.message(f"training {s.cfg.name or 'run'} ({s.cfg_hash}) into {out}: {params['total']:,} params "

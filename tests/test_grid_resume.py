@@ -1,0 +1,131 @@
+"""Kill a running grid (the grid process alone, then its whole process group) and rerun it.
+
+No finished cell may be trained again, and the final numbers must equal those of a grid that was
+never interrupted (the trainer's resume is exact; the grid must skip and resume the right cells).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import textwrap
+import time
+from collections.abc import Callable
+from pathlib import Path
+
+import psutil
+import pytest
+
+from harness.grid.index import open_index
+from harness.grid.run import run_grid
+
+SPEC = """
+name: resume
+description: a team checking that an overnight grid survives a crash
+base:
+  model: {width: 32, depth: 1, pattern: [global_attention], mlp_expansion: 2.0}
+  data: {corpus: pydoc, seq_len: 32}
+  train: {steps: 400, batch_size: 4, eval_every: 100, eval_windows: 4, log_every: 20, warmup_steps: 10,
+          checkpoint_every: 20}
+variants:
+  attention: {}
+  recurrence: {model.pattern: [recurrence]}
+reference: attention
+seeds: [0, 1]
+"""
+
+
+def _summary_status(cell: Path) -> str | None:
+    try:
+        return json.loads((cell / "summary.json").read_text()).get("status")
+    except (OSError, ValueError):
+        return None
+
+
+def _wait(predicate: Callable[[], object], timeout: float, what: str) -> object:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        value = predicate()
+        if value:
+            return value
+        time.sleep(0.02)
+    raise AssertionError(f"timed out waiting for {what}")
+
+
+def _cell_mid_way(grid_dir: Path, after: set[str]) -> str | None:
+    """A cell (not in ``after``) that has a checkpoint and has not finished, while another has finished."""
+    cells = sorted((grid_dir / "cells").glob("*")) if (grid_dir / "cells").exists() else []
+    done = {c.name for c in cells if _summary_status(c) == "done"}
+    if not done - after:
+        return None
+    for c in cells:
+        if c.name not in done and any((c / "checkpoints").glob("step_*.pt")):
+            return c.name
+    return None
+
+
+def _start(spec: Path, grid_dir: Path) -> subprocess.Popen:
+    return subprocess.Popen([sys.executable, "-m", "harness", "grid", str(spec), "--out", str(grid_dir),
+                             "--workers", "1", "--threads", "1"], stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL, start_new_session=True)
+
+
+def _records(grid_dir: Path, cell: str) -> dict[str, tuple[int, bytes]]:
+    files = {name: grid_dir / "cells" / cell / name for name in ("summary.json", "metrics.jsonl")}
+    return {name: (path.stat().st_mtime_ns, path.read_bytes()) for name, path in files.items()}
+
+
+def _finals(grid_dir: Path) -> dict[str, float]:
+    with open_index(grid_dir, readonly=True) as index:
+        return {c["id"]: c["final_val_loss"] for c in index.cells() if c["status"] == "done"}
+
+
+def _verdicts(grid_dir: Path) -> str:
+    return (grid_dir / "report.md").read_text().split("## Verdicts")[1].split("## Variants")[0]
+
+
+@pytest.mark.slow
+def test_killed_grid_resumes_without_retraining_finished_cells(tmp_path):
+    spec = tmp_path / "resume.yaml"
+    spec.write_text(textwrap.dedent(SPEC))
+    reference_dir = tmp_path / "uninterrupted"
+    assert run_grid(spec, out=reference_dir, workers=1, threads=1, echo=lambda _: None) == 0
+
+    grid_dir = tmp_path / "interrupted"
+    # 1. SIGKILL the grid process alone: its running cell must stop by itself (it asked the kernel
+    #    for SIGTERM on the grid's death), after writing a checkpoint.
+    proc = _start(spec, grid_dir)
+    victim = _wait(lambda: _cell_mid_way(grid_dir, set()), 240, "a finished cell and one mid-way")
+    children = psutil.Process(proc.pid).children(recursive=True)
+    finished_first = {c.name for c in (grid_dir / "cells").glob("*") if _summary_status(c) == "done"}
+    kept = {cell: _records(grid_dir, cell) for cell in finished_first}
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.wait(30)
+    assert children, "the grid had no running cell process"
+    gone, alive = psutil.wait_procs(children, timeout=60)
+    assert not alive, f"cell processes outlived the grid: {alive}"
+    assert _summary_status(grid_dir / "cells" / victim) == "interrupted"
+
+    # 2. Rerun, then SIGKILL the whole process group (grid and cell at once: no clean stop).
+    proc = _start(spec, grid_dir)
+    _wait(lambda: _cell_mid_way(grid_dir, finished_first | {victim}), 240, "the next cell mid-way")
+    finished_second = {c.name for c in (grid_dir / "cells").glob("*") if _summary_status(c) == "done"}
+    os.killpg(proc.pid, signal.SIGKILL)
+    proc.wait(30)
+
+    # 3. Rerun to the end.
+    lines: list[str] = []
+    assert run_grid(spec, out=grid_dir, workers=1, threads=1, echo=lines.append) == 0
+    assert f"({len(finished_second)} already finished, {4 - len(finished_second)} to run;" in lines[0]
+    for cell, records in kept.items():
+        assert _records(grid_dir, cell) == records, f"{cell} was trained again"
+    assert "from the checkpoint at step" in (grid_dir / "logs" / f"{victim}.log").read_text()
+
+    # Same numbers as the uninterrupted grid, cell by cell and in the report's verdicts.
+    finals = _finals(grid_dir)
+    assert len(finals) == 4
+    assert finals == _finals(reference_dir)
+    assert _verdicts(grid_dir) == _verdicts(reference_dir)

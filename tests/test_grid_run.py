@@ -1,0 +1,84 @@
+"""End to end with the real trainer: a tiny grid with identical variants and a diverging one."""
+
+from __future__ import annotations
+
+import csv
+import textwrap
+from pathlib import Path
+
+import pytest
+
+from harness.grid.index import open_index
+from harness.grid.run import run_grid
+from harness.grid.status import status_text
+
+# Tiny cells: the pydoc corpus (ships with Python), width 32, one block, 32-token windows.
+TINY_BASE = """
+  model: {width: 32, depth: 1, pattern: [global_attention], mlp_expansion: 2.0}
+  data: {corpus: pydoc, seq_len: 32}
+  train: {steps: 12, batch_size: 4, eval_every: 6, eval_windows: 4, log_every: 3, warmup_steps: 2,
+          checkpoint_every: 6}
+"""
+
+
+@pytest.fixture(scope="module")
+def finished_grid(tmp_path_factory) -> tuple[Path, int, list[str]]:
+    tmp = tmp_path_factory.mktemp("grid")
+    spec = tmp / "twins.yaml"
+    spec.write_text(textwrap.dedent("""
+        name: twins
+        description: a team checking that the harness finds no difference where there is none
+        base:
+    """) + TINY_BASE + textwrap.dedent("""
+        variants:
+          first: {}
+          twin: {}
+          hot: {train.lr: 50.0, train.diverge_factor: 1.01}
+        reference: first
+        seeds: [0, 1]
+    """))
+    lines: list[str] = []
+    code = run_grid(spec, out=tmp / "out", workers=2, threads=1, echo=lines.append)
+    return tmp / "out", code, lines
+
+
+def test_identical_variants_report_no_detectable_difference(finished_grid):
+    grid_dir, code, lines = finished_grid
+    assert code == 0, lines
+    with open_index(grid_dir, readonly=True) as index:
+        cells = {c["id"]: c for c in index.cells()}
+    # Same config and seed: the same batches and windows and (1 thread, CPU) the same numbers.
+    for seed in (0, 1):
+        assert cells[f"twin-seed{seed}"]["final_val_loss"] == cells[f"first-seed{seed}"]["final_val_loss"]
+    assert cells["first-seed0"]["final_val_loss"] != cells["first-seed1"]["final_val_loss"]
+    report = (grid_dir / "report.md").read_text()
+    twin = next(ln for ln in report.splitlines() if ln.startswith("| twin |"))
+    assert "| +0.0000 | [+0.0000, +0.0000] | **no detectable difference at this budget** |" in twin
+    assert lines[-1] == f"report: {grid_dir / 'report.md'}"
+    assert any(ln.startswith("grid twins: 6/6 done (2 diverged)") for ln in lines)
+
+
+def test_diverging_cells_are_recorded_and_the_grid_finishes(finished_grid):
+    grid_dir, code, _lines = finished_grid
+    assert code == 0
+    with open(grid_dir / "results.csv") as f:
+        rows = {r["id"]: r for r in csv.DictReader(f)}
+    assert [rows[f"hot-seed{s}"]["status"] for s in (0, 1)] == ["diverged", "diverged"]
+    assert rows["hot-seed0"]["message"].startswith("diverged at step")
+    assert all(rows[f"{v}-seed{s}"]["status"] == "done" for v in ("first", "twin") for s in (0, 1))
+    report = (grid_dir / "report.md").read_text()
+    excluded = report.split("## Cells left out of the statistics")[1].split("##")[0]
+    assert "| hot-seed0 | diverged | 3 |" in excluded and "| hot-seed1 | diverged | 3 |" in excluded
+    assert status_text(grid_dir) == "grid twins: 6/6 done (2 diverged), 0 running, 0 failed, 0 left | finished"
+
+
+def test_rerun_of_a_finished_grid_trains_nothing(finished_grid):
+    grid_dir, _code, _lines = finished_grid
+    spec = grid_dir / "grid.yaml"
+    summaries = {p: p.stat().st_mtime_ns for p in grid_dir.glob("cells/*/summary.json")}
+    lines: list[str] = []
+    # From the copied spec: its base is inline, so it is the same grid.
+    assert run_grid(spec, out=grid_dir, echo=lines.append) == 0
+    assert "(6 already finished, 0 to run;" in lines[0]
+    assert not any(ln.startswith("start ") for ln in lines)
+    assert {p: p.stat().st_mtime_ns for p in grid_dir.glob("cells/*/summary.json")} == summaries

@@ -1,0 +1,269 @@
+"""Grid specs: expansion into cells, one-line errors that name the key, fairness matching."""
+
+from __future__ import annotations
+
+import hashlib
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+import pytest
+import torch
+
+from harness.cli import main
+from harness.config import to_dict
+from harness.errors import UserError
+from harness.grid.fairness import PARAMS_TOLERANCE, apply_matching, count_params, flops_per_token, planned_tokens
+from harness.grid.index import open_index
+from harness.grid.run import _plan_rows, plan_cells
+from harness.grid.spec import expand_cells, load_grid
+from harness.model import build_model
+
+BASE = {
+    "model": {"width": 32, "depth": 2, "pattern": ["global_attention"], "mlp_expansion": 2.0},
+    "data": {"corpus": "pydoc", "seq_len": 32},
+    "train": {"steps": 10, "batch_size": 4, "eval_every": 5, "eval_windows": 4},
+}
+
+
+def write_grid(tmp_path: Path, text: str, name: str = "grid.yaml") -> Path:
+    path = tmp_path / name
+    path.write_text(textwrap.dedent(text))
+    return path
+
+
+def test_cells_cross_variants_axes_and_seeds(tmp_path):
+    (tmp_path / "base.yaml").write_text(
+        "model: {width: 32, depth: 2, pattern: [global_attention]}\ndata: {corpus: pydoc, seq_len: 32}\n")
+    path = write_grid(tmp_path, """
+        description: a team choosing the mixer of an on-device keyboard model
+        base: base.yaml
+        variants:
+          attn: {}
+          rec: {model.pattern: [recurrence], model.mixers.recurrence.gate: false}
+        reference: attn
+        axes:
+          model.width: [32, 64]
+          train.lr: [0.001, 0.003]
+        seeds: [0, 5]
+    """)
+    spec = load_grid(path)
+    assert spec.name == "grid" and spec.reference == "attn" and spec.match == "none"
+    cells = expand_cells(spec)
+    assert len(cells) == 2 * 2 * 2 * 2
+    ids = [c.id for c in cells]
+    assert len(set(ids)) == len(ids)
+    assert ids[0] == "attn-width32-lr0.001-seed0"
+    by_id = {c.id: c for c in cells}
+    rec = by_id["rec-width64-lr0.003-seed5"]
+    assert rec.cfg.model.width == 64 and rec.cfg.train.lr == 0.003
+    assert rec.cfg.train.seed == 5 and rec.cfg.train.effective_data_seed == 5
+    assert rec.cfg.model.pattern == ("recurrence",)
+    # The variant set an option of a mixer the base never spelled out: the entry named after the kind.
+    assert rec.cfg.model.mixers["recurrence"].kind == "recurrence"
+    assert rec.cfg.model.mixers["recurrence"].options.gate is False
+    assert rec.cfg.name == rec.id
+    assert by_id["attn-width32-lr0.001-seed0"].cfg.model.pattern == ("global_attention",)
+
+
+def test_grid_without_variants_has_one_base_variant(tmp_path):
+    path = write_grid(tmp_path, """
+        base: {model: {width: 32, depth: 1}}
+        seeds: [0, 1, 2]
+    """)
+    cells = expand_cells(load_grid(path))
+    assert [c.id for c in cells] == ["base-seed0", "base-seed1", "base-seed2"]
+
+
+BAD_SPECS = [
+    ("axes: {model.width: 64}", "axes.model.width: expected a list of values"),
+    ("axes: {model.widht: [32]}", "axes.model.widht: value 32: unknown key"),
+    ("variants: {a: {}, b: {model.mlp: wide}}\nreference: a", "variants.b: model.mlp: 'wide' is not allowed"),
+    ("variants: {a: {}, b: {}}\nreference: c", "reference: 'c' is not a variant"),
+    ("variants: {a: {}, b: {}}", "reference: required with variants"),
+    ("variants: {a: {train.seed: 3}}\nreference: a", "variants.a.train.seed: cannot be overridden"),
+    ("match: params", "match: match: params needs variants and a reference"),
+    ("match: tokens\nvariants: {a: {}}\nreference: a", "match: 'tokens' is not allowed"),
+    ("variants: {a: {model.width: 64}}\nreference: a\naxes: {model.width: [32]}", "axes.model.width: also set by"),
+    ("colour: blue", "colour: unknown grid key"),
+    ("variants: {a: {}, b: {model.mixers.global_attention.heads: 5}}\nreference: a",
+     "variants.b: model.mixers.global_attention.heads: 5 does not divide"),
+]
+
+
+def _tree_snapshot(folder: Path) -> dict[str, tuple[float, str]]:
+    return {str(p.relative_to(folder)): (p.stat().st_mtime_ns, hashlib.sha256(p.read_bytes()).hexdigest())
+            for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+@pytest.fixture
+def existing_grid_dir(tmp_path) -> Path:
+    """A grid dir holding an index of another grid's cells and a finished-looking cell dir."""
+    path = write_grid(tmp_path, """
+        name: earlier
+        base: {model: {width: 32, depth: 1}, data: {seq_len: 32}}
+        seeds: [0]
+    """, "earlier.yaml")
+    grid_dir = tmp_path / "grid_dir"
+    grid_dir.mkdir()
+    with open_index(grid_dir) as index:
+        index.plan(_plan_rows(plan_cells(load_grid(path), threads=1)))
+        index.mark_finished("base-seed0", "done", summary={"final_val_loss": 1.5})
+    (grid_dir / "cells" / "base-seed0").mkdir(parents=True)
+    (grid_dir / "cells" / "base-seed0" / "summary.json").write_text('{"status": "done"}')
+    return grid_dir
+
+
+@pytest.mark.parametrize("body, message", BAD_SPECS)
+def test_bad_specs_fail_with_one_line_naming_the_key(tmp_path, existing_grid_dir, capsys, body, message):
+    path = tmp_path / "bad.yaml"
+    path.write_text("base: {model: {width: 32, depth: 1}, data: {seq_len: 32}}\nseeds: [0]\n" + body + "\n")
+    with pytest.raises(UserError) as err:
+        load_grid(path)
+    assert str(err.value).startswith(message), str(err.value)
+    assert "\n" not in str(err.value)
+    before = _tree_snapshot(existing_grid_dir)
+    capsys.readouterr()
+    assert main(["grid", str(path), "--out", str(existing_grid_dir)]) == 2
+    out, errors = capsys.readouterr()
+    assert errors == f"error: {err.value}\n" and out == ""
+    assert _tree_snapshot(existing_grid_dir) == before
+
+
+def test_bad_spec_exit_code_of_the_real_command(tmp_path, existing_grid_dir):
+    path = tmp_path / "bad.yaml"
+    path.write_text("base: {model: {width: 32}}\nseeds: [0]\naxes: {model.width: 64}\n")
+    before = _tree_snapshot(existing_grid_dir)
+    proc = subprocess.run([sys.executable, "-m", "harness", "grid", str(path), "--out", str(existing_grid_dir)],
+                          capture_output=True, text=True, timeout=120)
+    expected = "error: axes.model.width: expected a list of values\n"
+    assert (proc.returncode, proc.stdout, proc.stderr) == (2, "", expected)
+    assert _tree_snapshot(existing_grid_dir) == before
+
+
+def test_bad_seeds_and_base(tmp_path):
+    for text, message in (
+        ("base: {model: {width: 32}}\nseeds: [0, 0]", "seeds: lists a seed twice"),
+        ("base: {model: {width: 32}}\nseeds: 3", "seeds: expected a list"),
+        ("base: {model: {width: 32}}\nseeds: [-1]", "seeds: -1:"),
+        ("seeds: [0]", "base: required"),
+        ("base: missing.yaml\nseeds: [0]", "base: "),
+        ("base: {model: {width: 0}}\nseeds: [0]", "base: model.width: 0 is too small"),
+    ):
+        (tmp_path / "g.yaml").write_text(text)
+        with pytest.raises(UserError, match="^" + message.replace("[", r"\[")):
+            load_grid(tmp_path / "g.yaml")
+
+
+def test_changed_spec_in_existing_dir_is_refused_and_dir_untouched(tmp_path, existing_grid_dir, capsys):
+    path = write_grid(tmp_path, """
+        name: earlier
+        base: {model: {width: 48, depth: 1}, data: {seq_len: 32}}
+        seeds: [0]
+    """, "changed.yaml")
+    before = _tree_snapshot(existing_grid_dir)
+    assert main(["grid", str(path), "--out", str(existing_grid_dir)]) == 2
+    errors = capsys.readouterr().err
+    assert errors.startswith(f"error: {existing_grid_dir}: holds a grid whose cells differ")
+    assert "--force" in errors and errors.count("\n") == 1
+    assert _tree_snapshot(existing_grid_dir) == before
+
+
+def test_non_grid_dir_is_refused(tmp_path):
+    path = write_grid(tmp_path, "base: {model: {width: 32, depth: 1}}\nseeds: [0]\n")
+    other = tmp_path / "other"
+    other.mkdir()
+    (other / "notes.txt").write_text("mine")
+    from harness.grid.run import run_grid
+
+    with pytest.raises(UserError, match="is not empty and holds no grid"):
+        run_grid(path, out=other, echo=lambda _: None)
+    assert [p.name for p in other.iterdir()] == ["notes.txt"]
+
+
+# ----------------------------------------------------------------------------- fairness
+
+
+def _real_non_embedding(cfg) -> int:
+    """Count on a real (CPU) model, independently of the meta-device count used for matching."""
+    torch.manual_seed(0)
+    model = build_model(cfg.model, 256)
+    embed = model.embed.weight.numel() + (model.head.weight.numel() if model.head is not None else 0)
+    return sum(p.numel() for p in model.parameters()) - embed
+
+
+def test_match_params_lands_within_two_percent_for_recurrence_vs_attention(tmp_path):
+    path = write_grid(tmp_path, """
+        base:
+          model: {width: 64, depth: 3, pattern: [global_attention], mlp_expansion: 2.0}
+          data: {corpus: pydoc, seq_len: 32}
+        variants:
+          attention: {}
+          recurrence: {model.pattern: [recurrence], model.mixers.recurrence.width_mult: 2.0}
+          hybrid: {model.pattern: [recurrence, recurrence, local_attention]}
+          lstm: {model.pattern: [lstm]}
+        reference: attention
+        seeds: [0, 1]
+        match: params
+    """)
+    spec = load_grid(path)
+    raw = expand_cells(spec)
+    cells = apply_matching(spec, raw)
+    ref = _real_non_embedding(cells[0].cfg)
+    for before, after in zip(raw, cells, strict=True):
+        if after.variant == "attention":
+            assert after.adjustments == {} and after.cfg == before.cfg
+            continue
+        got = _real_non_embedding(after.cfg)
+        assert abs(got - ref) <= PARAMS_TOLERANCE * ref, (after.id, got, ref)
+        # Only the MLP expansion moved.
+        assert set(after.adjustments) == {"model.mlp_expansion"}
+        a, b = to_dict(before.cfg), to_dict(after.cfg)
+        a["model"].pop("mlp_expansion")
+        b["model"].pop("mlp_expansion")
+        assert a == b
+        # Unmatched, these variants are more than 2% off (else the test would prove nothing).
+        assert abs(_real_non_embedding(before.cfg) - ref) > PARAMS_TOLERANCE * ref, after.id
+    assert count_params(cells[0].cfg)["non_embedding"] == ref
+
+
+def test_match_params_reports_impossible_matches(tmp_path):
+    path = write_grid(tmp_path, """
+        base: {model: {width: 32, depth: 2, pattern: [recurrence], mlp_expansion: 0.25}, data: {seq_len: 32}}
+        variants:
+          small: {}
+          lstm: {model.pattern: [lstm]}
+        reference: small
+        seeds: [0]
+        match: params
+    """)
+    spec = load_grid(path)
+    with pytest.raises(UserError, match="^match: params: variant lstm has .* cannot be matched"):
+        apply_matching(spec, expand_cells(spec))
+
+
+def test_match_flops_equalises_training_flops(tmp_path):
+    path = write_grid(tmp_path, """
+        base:
+          model: {width: 32, depth: 2, pattern: [global_attention], mlp_expansion: 2.0}
+          data: {corpus: pydoc, seq_len: 64}
+          train: {steps: 40, batch_size: 4}
+        variants:
+          attention: {}
+          wide_recurrence: {model.pattern: [recurrence], model.mixers.recurrence.width_mult: 3.0}
+        reference: attention
+        seeds: [0]
+        match: flops
+    """)
+    spec = load_grid(path)
+    ref, var = apply_matching(spec, expand_cells(spec))
+    ref_flops = flops_per_token(ref.cfg) * planned_tokens(ref.cfg)
+    assert set(var.adjustments) == {"train.tokens"}
+    assert var.cfg.train.tokens == var.adjustments["train.tokens"]
+    assert var.cfg.train.tokens * flops_per_token(var.cfg) == pytest.approx(ref_flops, rel=1e-4)
+    # What the trainer runs is whole steps: within one step of the matched budget.
+    step_tokens = 4 * 64
+    assert abs(planned_tokens(var.cfg) * flops_per_token(var.cfg) - ref_flops) <= step_tokens * flops_per_token(
+        var.cfg)
+    assert flops_per_token(var.cfg) != flops_per_token(ref.cfg)
