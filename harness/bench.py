@@ -476,10 +476,10 @@ def _round(cases: tuple[BenchCase, ...], steps: int, warmup: int, cache_dir: Pat
     """One pass over the plain loop and every case: tokens/s by name, and the harness summaries."""
     speeds: dict[str, float] = {}
     summaries: dict[str, Any] = {}
-    shape = PlainShape()
     for case in cases:
         twin = PLAIN_TWINS.get(case.name)
         if twin:
+            shape = PlainShape(width=case.width, depth=case.depth, mlp_hidden=3 * case.width)
             speeds[twin] = plain_tokens_per_s(shape, case.batch, case.seq_len, steps - warmup, warmup,
                                               bf16=case.precision == "bf16")
             log(f"  {twin:<24} {speeds[twin]:>9.0f} tokens/s")
@@ -510,14 +510,21 @@ def machine_facts() -> dict[str, Any]:
 
 
 def run_bench(steps: int = 30, warmup: int = 10, rounds: int = 2, profile: bool = True,
-              cases: tuple[BenchCase, ...] = CASES, log: Callable[[str], None] = print) -> dict[str, Any]:
-    """Measure peaks, every case (``rounds`` times, interleaved with the plain loop), the scan and a profile."""
+              cases: tuple[BenchCase, ...] = CASES, log: Callable[[str], None] = print,
+              gemm_n: int = 1024, copy_bytes: int = 256 * 2**20,
+              scan_shape: tuple[int, int, int] = (16, 256, 256)) -> dict[str, Any]:
+    """Measure peaks, every case (``rounds`` times, interleaved with the plain loop), the scan and a profile.
+
+    ``gemm_n``, ``copy_bytes`` and ``scan_shape`` size the peak and scan measurements (the tests
+    shrink them).
+    """
     from harness.data import load_data
 
     result: dict[str, Any] = {"machine": machine_facts(), "steps": steps, "warmup": warmup, "rounds": rounds}
     log(f"peaks ({result['machine']['threads']} threads) ...")
-    result["peaks"] = {"gemm_fp32_gflops": gemm_gflops(torch.float32), "gemm_bf16_gflops": gemm_gflops(torch.bfloat16),
-                       "copy_gbytes_per_s": copy_gbytes_per_s()}
+    result["peaks"] = {"gemm_fp32_gflops": gemm_gflops(torch.float32, gemm_n),
+                       "gemm_bf16_gflops": gemm_gflops(torch.bfloat16, gemm_n),
+                       "copy_gbytes_per_s": copy_gbytes_per_s(copy_bytes)}
     with tempfile.TemporaryDirectory(prefix="harness-bench-cache-") as cache:
         cache_dir = Path(cache)
         per_round, runs = [], {}
@@ -529,11 +536,12 @@ def run_bench(steps: int = 30, warmup: int = 10, rounds: int = 2, profile: bool 
         result["configs"] = _config_rows(cases, per_round, runs, result["peaks"], vocab)
         result["per_round"] = per_round
         log("scan ...")
-        result["scan"] = scan_figures()
+        result["scan"] = scan_figures(scan_shape)
         if profile:
             result["profile"] = {}
+            shortest = min(c.seq_len for c in cases)
             for case in cases:
-                if case.seq_len == 256 and case.precision == "fp32":
+                if case.seq_len == shortest and case.precision == "fp32":
                     log(f"profile {case.name} ...")
                     result["profile"][case.name] = profile_step(case, cache_dir)
     result["ratios"] = {

@@ -213,3 +213,69 @@ def eval_command(run_dir: str | Path, lengths: str, *, buckets: int = 8, probes:
         parts.append("\n".join(f"{k} {v:.3f}" for k, v in probe_results.items()))
     parts.append(f"wrote {path}")
     return "\n\n".join(parts)
+
+
+# ----------------------------------------------------------------------------- plots (for the grid report)
+
+
+def read_eval(run_dir: str | Path) -> dict[str, Any] | None:
+    """A run dir's eval.json if it holds length rows, else None (never evaluated, or unreadable)."""
+    from harness.train.records import read_json
+
+    data = read_json(Path(run_dir) / EVAL_FILE)
+    return data if data and data.get("lengths") else None
+
+
+def mean_by_length(evals: list[dict[str, Any]]) -> tuple[list[int], list[float]]:
+    """Lengths present in every eval (e.g. the seeds of one variant) and their mean loss."""
+    per = [{r["length"]: r["loss"] for r in e["lengths"]} for e in evals]
+    common = sorted(set.intersection(*(set(p) for p in per))) if per else []
+    return common, [sum(p[L] for p in per) / len(per) for L in common]
+
+
+def mean_buckets(evals: list[dict[str, Any]], length: int) -> tuple[list[float], list[float]]:
+    """Bucket centres (token positions) and the bucket losses at ``length``, averaged over ``evals``."""
+    rows = [r for e in evals for r in e["lengths"] if r["length"] == length]
+    edges = rows[0]["bucket_edges"]
+    centres = [(a + b) / 2 for a, b in zip(edges[:-1], edges[1:], strict=True)]
+    means = [sum(r["bucket_loss"][i] for r in rows) / len(rows) for i in range(len(centres))]
+    return centres, means
+
+
+def plot_length_extrapolation(evals: dict[str, list[dict[str, Any]]], path: str | Path) -> Path:
+    """PNG for a grid report: per variant (key), loss vs evaluation length, and loss per position
+    at the longest length all its runs share; the training seq_len is marked. ``evals`` maps a
+    variant label to the eval.json dicts of its runs (seeds)."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, (ax_len, ax_pos) = plt.subplots(1, 2, figsize=(11, 4))
+    seq_lens = set()
+    for label, runs in evals.items():
+        runs = [e for e in runs if e and e.get("lengths")]
+        lengths, losses = mean_by_length(runs)
+        if not lengths:
+            continue
+        seq_lens.update(e["seq_len"] for e in runs)
+        (line,) = ax_len.plot(lengths, losses, marker="o", ms=3, label=f"{label} (n={len(runs)})")
+        centres, means = mean_buckets(runs, lengths[-1])
+        ax_pos.plot(centres, means, marker=".", color=line.get_color(), label=f"{label} @ {lengths[-1]}")
+    for ax in (ax_len, ax_pos):
+        for s in sorted(seq_lens):
+            ax.axvline(s, color="grey", ls=":", lw=1)
+        ax.set_xscale("log", base=2)
+        ax.grid(True, which="both", alpha=0.3)
+        ax.set_ylabel("validation loss (nats/token)")
+        ax.legend(fontsize=7)
+    ax_len.set_xlabel("evaluation length (tokens); dotted: training seq_len")
+    ax_pos.set_xlabel("position in the window (bucket centre)")
+    ax_len.set_title("length extrapolation")
+    ax_pos.set_title("loss by position at the longest length")
+    fig.tight_layout()
+    out = Path(path)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(out, dpi=120)
+    plt.close(fig)
+    return out

@@ -253,3 +253,26 @@ def test_probe_params_leave_the_task_config_alone():
     cfg = probe_cfg()
     probes.build_probe_sets(cfg, None, 100, names=["mqar"])
     assert cfg.data.task.num_pairs == 8 and dataclasses.is_dataclass(cfg.data.task)
+
+
+# ----------------------------------------------------------------------------- plots for the grid report
+
+
+def test_length_plot_and_seed_means(run_dir, tmp_path):
+    evaluate.eval_command(run_dir, "1x,2x")
+    e = evaluate.read_eval(run_dir)
+    other = {**e, "lengths": [{**r, "loss": r["loss"] + 1.0} for r in e["lengths"] if r["label"] == "2x"]}
+    lengths, losses = evaluate.mean_by_length([e, other])
+    two = next(r for r in e["lengths"] if r["label"] == "2x")
+    assert lengths == [64] and losses == [pytest.approx(two["loss"] + 0.5)]  # only lengths both runs have
+    out = evaluate.plot_length_extrapolation({"a": [e], "b": [e, other]}, tmp_path / "len.png")
+    assert out.read_bytes()[:4] == b"\x89PNG"
+    assert evaluate.read_eval(tmp_path) is None
+
+
+def test_probe_plot_reads_the_val_line_keys(tmp_path):
+    line = {"loss": 1.0, "probe_mqar_p16_acc": 0.5, "probe_mqar_p4_acc": 1.0, "probe_mqar_acc": 0.75,
+            "probe_passkey_d0_acc": 0.2}
+    assert probes.probe_curves(line) == {"mqar": [(4, 1.0), (16, 0.5)], "passkey": [(0, 0.2)]}
+    assert probes.plot_probe_accuracy({"v": [line, line]}, tmp_path / "p.png").read_bytes()[:4] == b"\x89PNG"
+    assert probes.plot_probe_accuracy({"v": [{"loss": 1.0}]}, tmp_path / "none.png") is None

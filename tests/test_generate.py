@@ -158,3 +158,36 @@ def test_sample_bad_run_dirs(tmp_path):
     (tmp_path / "config.yaml").write_text(yaml.safe_dump({"model": {"width": 16}}))
     with pytest.raises(UserError, match="no readable checkpoint"):
         sample_command(tmp_path, "a", 1, temperature=0, top_k=0, seed=0)
+
+
+# ----------------------------------------------------------------------------- decode benchmark pieces
+
+
+def test_tiled_state_steps_like_a_batch_of_identical_sequences():
+    from harness.bench_decode import states_at, tile_state
+    from harness.mixers import state_nbytes
+
+    model = tiny_model(["rec", "local", "global", "lstm"])
+    one = states_at(model, [6])[6]
+    four = tile_state(one, 4)
+    assert state_nbytes(four) == 4 * state_nbytes(one)
+    token = torch.tensor([7])
+    with torch.no_grad():
+        logits_one, _ = model.step(token, one)
+        logits_four, _ = model.step(token.expand(4), four)
+    torch.testing.assert_close(logits_four, logits_one.expand(4, -1), atol=1e-6, rtol=0)
+
+
+def test_decode_bench_measures_the_predicted_state_and_skips_over_budget():
+    from harness.bench_decode import decode_bench
+
+    rows = decode_bench(models=["global", "recurrence"], contexts=[4, 8], batches=[1, 3], reps=1,
+                        max_state_mib=0.2, overrides=["model.depth=1", "model.width=32"])
+    done = [r for r in rows if "skipped" not in r]
+    assert len(rows) == 8 and done
+    assert all(r["state_bytes"] == r["predicted_state_bytes"] and r["tokens_per_s"] > 0 for r in done)
+    # depth 1, width 32 global attention at 8 tokens x batch 3: 2 x 8 x 32 x 4 B x 3 = 6 KiB, in budget.
+    assert not any(r["model"] == "global" and "skipped" in r for r in rows)
+    tight = decode_bench(models=["global"], contexts=[8], batches=[3], reps=1, max_state_mib=4e-3,
+                         overrides=["model.depth=1", "model.width=32"])
+    assert "skipped" in tight[0]

@@ -159,3 +159,12 @@ def test_status_line_counts_and_eta(tmp_path):
     assert text.splitlines()[0] == "grid synthetic: 3/6 done (1 diverged), 2 running, 0 failed, 1 left | ETA 12s"
     assert "running run-a: step 1, 40% of 10,000 tokens, 500 tok/s" in text
     assert "no grid process holds this dir" in text
+
+
+def test_eta_counts_a_cell_without_speed_at_the_finished_cells_speed(tmp_path):
+    make_grid(tmp_path, {"ref": {0: 2.0}})  # one finished cell at 1000 tokens/s
+    with open_index(tmp_path) as index:
+        index.plan([{"id": "new", "variant": "c", "seed": 0, "point": [], "config_hash": "x", "adjustments": {},
+                     "planned_tokens": 5000, "flops_per_token": None, "params_total": 1, "params_non_embedding": 1}])
+        index.mark_running("new")
+    assert grid_progress(tmp_path).eta_s == pytest.approx(5000 / 1000.0)

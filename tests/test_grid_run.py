@@ -8,6 +8,7 @@ from pathlib import Path
 
 import pytest
 
+from harness.errors import UserError
 from harness.grid.index import open_index
 from harness.grid.run import run_grid
 from harness.grid.status import status_text
@@ -82,3 +83,28 @@ def test_rerun_of_a_finished_grid_trains_nothing(finished_grid):
     assert "(6 already finished, 0 to run;" in lines[0]
     assert not any(ln.startswith("start ") for ln in lines)
     assert {p: p.stat().st_mtime_ns for p in grid_dir.glob("cells/*/summary.json")} == summaries
+
+
+def test_force_on_a_changed_spec_keeps_the_old_cells_aside(tmp_path):
+    def spec(lr: float) -> Path:
+        path = tmp_path / "one.yaml"
+        path.write_text("name: one\nbase:\n" + TINY_BASE + f"seeds: [0]\nvariants: {{a: {{train.lr: {lr}}}}}\n"
+                        "reference: a\n")
+        return path
+
+    out = tmp_path / "out"
+    assert run_grid(spec(0.003), out=out, threads=1, echo=lambda _: None) == 0
+    old_summary = (out / "cells" / "a-seed0" / "summary.json").read_text()
+    with pytest.raises(UserError, match="holds a grid whose cells differ .* 1 changed"):
+        run_grid(spec(0.001), out=out, threads=1, echo=lambda _: None)
+    assert (out / "cells" / "a-seed0" / "summary.json").read_text() == old_summary
+    lines: list[str] = []
+    assert run_grid(spec(0.001), out=out, threads=1, force=True, echo=lines.append) == 0
+    (kept,) = (out / "superseded").iterdir()
+    assert kept.name.startswith("a-seed0.")
+    assert (kept / "run" / "summary.json").read_text() == old_summary
+    assert "lr: 0.003" in (kept / "config.yaml").read_text()
+    assert "lr: 0.001" in (out / "cells" / "a-seed0" / "config.yaml").read_text()
+    assert (out / "grid.1.yaml").read_text() != (out / "grid.yaml").read_text()
+    with open_index(out, readonly=True) as index:
+        assert [c["status"] for c in index.cells()] == ["done"]

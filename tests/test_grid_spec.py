@@ -87,6 +87,7 @@ BAD_SPECS = [
     ("match: tokens\nvariants: {a: {}}\nreference: a", "match: 'tokens' is not allowed"),
     ("variants: {a: {model.width: 64}}\nreference: a\naxes: {model.width: [32]}", "axes.model.width: also set by"),
     ("colour: blue", "colour: unknown grid key"),
+    ("variants: {a: {model.width.x: 1}}\nreference: a", "variants.a: model.width.x: model.width is a value, not"),
     ("variants: {a: {}, b: {model.mixers.global_attention.heads: 5}}\nreference: a",
      "variants.b: model.mixers.global_attention.heads: 5 does not divide"),
 ]
@@ -267,3 +268,32 @@ def test_match_flops_equalises_training_flops(tmp_path):
     assert abs(planned_tokens(var.cfg) * flops_per_token(var.cfg) - ref_flops) <= step_tokens * flops_per_token(
         var.cfg)
     assert flops_per_token(var.cfg) != flops_per_token(ref.cfg)
+
+
+def test_dry_run_lists_costs_and_trains_nothing(tmp_path, capsys):
+    path = write_grid(tmp_path, """
+        name: tiny
+        base:
+          model: {width: 32, depth: 2, pattern: [global_attention], mlp_expansion: 2.0}
+          data: {corpus: pydoc, seq_len: 32}
+          train: {steps: 10, batch_size: 4}
+        variants:
+          attention: {}
+          recurrence: {model.pattern: [recurrence]}
+        reference: attention
+        seeds: [0, 1]
+        match: params
+    """)
+    out_dir = tmp_path / "never"
+    assert main(["grid", str(path), "--dry-run", "--out", str(out_dir), "--workers", "1"]) == 0
+    out = capsys.readouterr().out
+    assert not out_dir.exists()
+    spec = load_grid(path)
+    cells = apply_matching(spec, expand_cells(spec))
+    for cell in cells:
+        line = next(ln for ln in out.splitlines() if ln.startswith(cell.id + " "))
+        assert f" {_real_non_embedding(cell.cfg):,d} " in line
+        assert f" {flops_per_token(cell.cfg):,.0f} " in line
+        assert " 10 " in line and " 1,280 " in line  # steps, tokens = 10 x 4 x 32
+    assert "model.mlp_expansion=" in out
+    assert "from a measured micro-benchmark" in out and "Estimated time:" in out

@@ -123,7 +123,8 @@ class CharTokenizer:
 
 
 def bpe_trainer_settings(vocab_size: int) -> dict:
-    """The BpeTrainer arguments: the full byte alphabet first, no special tokens."""
+    """The BpeTrainer arguments: the full byte alphabet first, no special tokens; min_frequency 2 as in
+    the tokenizers library's own ByteLevelBPETokenizer (a pair seen once is not worth a merge)."""
     from tokenizers import pre_tokenizers
 
     return {"vocab_size": vocab_size, "min_frequency": 2, "special_tokens": [],

@@ -380,6 +380,8 @@ def run_grid(
     if workers is None and executor == "local":
         workers = max(1, cores // threads)
     plan = plan_cells(spec, threads)
+    if executor == "local" and workers is not None and workers * threads > cores:
+        echo(f"note: {workers} worker(s) x {threads} thread(s) exceed the {cores} core(s) here; cells will share them")
 
     if dry_run:
         echo(f"grid {spec.name}: {len(plan)} cells -> {grid_dir}" + (" (exists)" if exists else ""))

@@ -28,7 +28,7 @@ import re
 from pathlib import Path
 from typing import Any
 
-from harness.config import Config, apply_overrides, config_from_dict, read_yaml, resolve_extends
+from harness.config import Config, config_from_dict, read_yaml, resolve_extends
 from harness.errors import ConfigError, UserError
 
 MATCH_MODES = ("none", "params", "flops")
@@ -225,10 +225,25 @@ def _parse_seeds(raw: Any) -> tuple[int, ...]:
 
 def config_with(base: dict[str, Any], overrides: dict[str, Any]) -> Config:
     """The base dict with dotted-key overrides applied, validated (``harness.config.replace`` on a dict)."""
-    items = [f"{k}={json.dumps(v)}" for k, v in overrides.items()]
-    data = apply_overrides(base, items)
+    data = copy.deepcopy(base)
+    for key, value in overrides.items():
+        set_dotted(data, key, value)
     _default_mixer_kinds(data)
     return config_from_dict(data)
+
+
+def set_dotted(data: dict[str, Any], key: str, value: Any) -> None:
+    """``data[a][b][c] = value`` for ``key = 'a.b.c'``, creating sections on the way (values as given)."""
+    parts = key.split(".")
+    node = data
+    for i, part in enumerate(parts[:-1]):
+        nxt = node.get(part)
+        if nxt is None:
+            nxt = node[part] = {}
+        if not isinstance(nxt, dict):
+            raise ConfigError(key, f"{'.'.join(parts[: i + 1])} is a value, not a section")
+        node = nxt
+    node[parts[-1]] = copy.deepcopy(value)
 
 
 def _default_mixer_kinds(data: dict[str, Any]) -> None:

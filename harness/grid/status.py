@@ -4,8 +4,9 @@ It reads only the index and the cells' ``metrics.jsonl``, so ``harness grid --st
 works from another terminal (or machine, on a shared filesystem) while the grid runs.
 
 ETA = tokens still to train (what running cells have left plus the budgets of cells not yet
-started) / the summed tokens/s of the running cells, i.e. it assumes the grid keeps running as
-many cells at once at the speed measured now.
+started) / the summed tokens/s of the running cells (a cell too new to have a speed counts at the
+mean speed of the finished cells), i.e. it assumes the grid keeps running as many cells at once
+at the speed measured now.
 """
 
 from __future__ import annotations
@@ -135,8 +136,11 @@ def grid_progress(grid_dir: str | Path, rows: list[dict[str, Any]] | None = None
             cp = _running_progress(grid_dir, row)
             running.append(cp)
             tokens_left += max(0, cp.tokens_planned - cp.tokens_done)
-    rates = [c.tokens_per_s for c in running if c.tokens_per_s]
-    eta = tokens_left / sum(rates) if rates else None
+    # A cell that has just started has no speed yet: count it at the mean speed of finished cells.
+    finished_rates = [r["tokens_per_s"] for r in rows if r["status"] == "done" and r.get("tokens_per_s")]
+    fallback = sum(finished_rates) / len(finished_rates) if finished_rates else None
+    rates = [c.tokens_per_s or fallback for c in running]
+    eta = tokens_left / sum(rates) if rates and all(rates) else None
     return GridProgress(name=name, eta_s=eta, cells=running, **counts)
 
 

@@ -1,0 +1,253 @@
+"""Correctness of the benchmarks and the memory estimator (no timing assertions: speed lives in scripts/).
+
+* the plain reference loop of ``harness.bench`` computes the same function as the harness model;
+* the benchmark's JSON has every field a comparison between commits reads;
+* the profile's per-block split charges backward time to the right block;
+* the activation-memory estimate equals what torch's autograd actually saves, and warns on huge configs;
+* activation checkpointing changes memory, not losses;
+* the memory probe of scripts/bench_memory.py returns plausible numbers.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import json
+from pathlib import Path
+
+import pytest
+import torch
+
+from harness import bench
+from harness.config import config_from_dict
+from harness.memory_estimate import (
+    estimate_activation_memory,
+    memory_warning,
+    saved_bytes_by_part,
+    warn_if_too_large,
+)
+from harness.model import build_model
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def tiny_cfg(kind: str = "global_attention", **model):
+    mixer = {"kind": kind}
+    if "attention" in kind:
+        mixer["heads"] = 4
+    if kind == "local_attention":
+        mixer["window"] = 8
+    return config_from_dict({"model": {"width": 32, "depth": 2, "pattern": ["mix"], "mixers": {"mix": mixer},
+                                       **model}})
+
+
+# ----------------------------------------------------------------------------- plain reference
+
+
+def test_plain_reference_matches_harness_model_loss_and_gradients():
+    # The plain loop is a hand-written transformer on torch primitives (SDPA, nn.RMSNorm, F.gelu);
+    # with the harness model's weights it must give the same loss and the same gradients, else the
+    # speed ratio would compare two different computations.
+    torch.manual_seed(0)
+    model = build_model(tiny_cfg().model, 256)
+    plain = bench.PlainTransformer(bench.plain_shape_of(model), max_len=24)
+    bench.load_harness_weights(plain, model)
+    x, y = bench.random_batches(256, 3, 24, 1)[0]
+    losses = []
+    for m in (model, plain):
+        loss = torch.nn.functional.cross_entropy(m(x).flatten(0, 1), y.flatten())
+        loss.backward()
+        losses.append(loss)
+    torch.testing.assert_close(losses[0], losses[1], rtol=1e-6, atol=1e-6)
+    torch.testing.assert_close(model.embed.weight.grad, plain.embed.weight.grad, rtol=1e-5, atol=1e-7)
+    torch.testing.assert_close(model.blocks[1].mixer.qkv.weight.grad, plain.blocks[1].qkv.weight.grad,
+                               rtol=1e-5, atol=1e-7)
+    torch.testing.assert_close(model.blocks[0].mlp.proj_in.weight.grad, plain.blocks[0].up.weight.grad,
+                               rtol=1e-5, atol=1e-7)
+
+
+def test_plain_train_step_decreases_the_loss_on_a_repeated_batch():
+    torch.manual_seed(0)
+    plain = bench.PlainTransformer(bench.PlainShape(vocab=64, width=32, depth=1, heads=2, mlp_hidden=64), 16)
+    opt = bench.plain_optimizer(plain, lr=1e-2)
+    x, y = bench.random_batches(64, 4, 16, 1)[0]
+    first = bench.plain_train_step(plain, opt, x, y)
+    for _ in range(20):
+        last = bench.plain_train_step(plain, opt, x, y)
+    assert last < 0.5 * first  # memorising one batch: a broken backward or optimizer would not
+
+
+def test_loop_tokens_per_s_reads_wall_clock_between_log_lines():
+    lines = [{"split": "train", "step": 1, "tokens": 100, "wall_s": 1.0},
+             {"split": "train", "step": 10, "tokens": 1000, "wall_s": 5.0},
+             {"split": "val", "step": 10, "wall_s": 6.0},
+             {"split": "train", "step": 20, "tokens": 2000, "wall_s": 7.0}]
+    assert bench.loop_tokens_per_s(lines, warmup=10) == pytest.approx(1000 / 2.0)
+    with pytest.raises(ValueError, match="raise --steps"):
+        bench.loop_tokens_per_s(lines, warmup=15)
+
+
+# ----------------------------------------------------------------------------- benchmark output
+
+
+def test_bench_json_has_the_fields_a_comparison_reads(tmp_path, monkeypatch):
+    monkeypatch.setenv("HARNESS_CACHE", str(tmp_path / "cache"))
+    cases = (bench.BenchCase("attention-fp32", "global_attention", 32, 2, width=32, depth=1),
+             bench.BenchCase("recurrence-fp32", "recurrence", 32, 2, width=32, depth=1))
+    result = bench.run_bench(steps=11, warmup=1, rounds=1, cases=cases, log=lambda s: None,
+                             gemm_n=128, copy_bytes=2**20, scan_shape=(2, 32, 16))
+    text = json.dumps(result, default=str)
+    result = json.loads(text)
+    assert {"machine", "peaks", "configs", "ratios", "scan", "profile", "targets", "per_round"} <= set(result)
+    assert all(v > 0 for v in result["peaks"].values())
+    names = {row["name"] for row in result["configs"]}
+    assert names == {"plain-fp32", "attention-fp32", "recurrence-fp32"}
+    for row in result["configs"]:
+        assert row["tokens_per_s"] > 0 and row["flops_per_token"] > 0 and 0 < row["mfu"]
+    assert result["ratios"]["harness_over_plain_fp32"] > 0
+    assert result["ratios"]["recurrence_over_attention_s256"] > 0
+    assert result["ratios"]["bf16_over_fp32_attention"] is None  # not measured in this run
+    assert {t["name"] for t in result["targets"]} >= {"harness / plain loop tokens/s, global attention fp32"}
+    assert "chunked" in result["scan"]["backends"]
+    shares = result["profile"]["attention-fp32"]["share"]
+    assert sum(shares.values()) == pytest.approx(1.0)
+    assert {"mixer:global_attention", "mlp", "optimizer", "head/loss"} <= set(shares)
+    report = bench.format_report(result)
+    assert "tokens/s" in report and "targets:" in report and "mixer:recurrence" in report
+
+
+def test_profile_charges_backward_time_to_the_block_that_ran_forward():
+    # A model whose MLP is 64x wider than its attention: whatever the split, most of the step
+    # (forward and the backward charged through sequence numbers) must land on "mlp".
+    from torch.profiler import ProfilerActivity, profile
+
+    torch.manual_seed(0)
+    model = build_model(tiny_cfg(mlp_expansion=64.0).model, 64)
+    x, y = bench.random_batches(64, 4, 32, 1)[0]
+    with bench.labelled_forward(model), profile(activities=[ProfilerActivity.CPU]) as prof:
+        loss = torch.nn.functional.cross_entropy(model(x).flatten(0, 1), y.flatten())
+        loss.backward()
+    ms = bench.step_time_shares(list(prof.events()))
+    assert ms["mlp"] > 2 * ms["mixer:global_attention"]
+    # The hooks are removed afterwards: a later forward opens no profiler ranges.
+    assert all(not m._forward_pre_hooks for m in model.modules())
+
+
+def test_bench_command_rejects_bad_arguments(tmp_path):
+    from harness.errors import UserError
+
+    with pytest.raises(UserError, match="--steps"):
+        bench.bench_command(steps=5, warmup=3)
+    with pytest.raises(UserError, match="--json"):
+        bench.bench_command(json_path=str(tmp_path))
+
+
+# ----------------------------------------------------------------------------- memory estimate
+
+
+@pytest.mark.parametrize("kind", ["global_attention", "local_attention", "recurrence"])
+def test_estimate_equals_what_autograd_saves_on_real_tensors(kind):
+    # Ground truth: the tensors torch's autograd really saves in a CPU forward + loss. The estimate
+    # runs the same model under FakeTensorMode (no storage) and must count exactly the same bytes.
+    cfg = tiny_cfg(kind)
+    torch.manual_seed(0)
+    model = build_model(cfg.model, 256)
+    real_parts, _, _ = saved_bytes_by_part(model, torch.zeros(3, 40, dtype=torch.long))
+    est = estimate_activation_memory(cfg.model, 256, 3, 40)
+    assert est.parts == real_parts
+    assert est.saved_bytes == sum(real_parts.values()) > 0
+
+
+def test_estimate_is_linear_in_batch_and_checkpointing_keeps_less():
+    cfg = config_from_dict({"model": {"width": 64, "depth": 8}})
+    one = estimate_activation_memory(cfg.model, 256, 1, 64)
+    four = estimate_activation_memory(cfg.model, 256, 4, 64)
+    assert four.saved_bytes == pytest.approx(4 * one.saved_bytes, rel=0.02)
+    ckpt = estimate_activation_memory(cfg.model, 256, 4, 64, activation_checkpointing=True)
+    # Chen et al. 2016: keeping block inputs only, plus one block recomputed at a time.
+    block = max(v for k, v in four.parts.items() if k.startswith("block:"))
+    outside = four.parts["embedding"] + four.parts["head/loss"]
+    assert ckpt.saved_bytes == outside + 8 * four.block_input_bytes + block
+    assert ckpt.saved_bytes < 0.5 * four.saved_bytes
+    assert four.block_input_bytes == 4 * 64 * 64 * 4  # (B, T, D) float32
+
+
+def test_huge_config_warns_with_estimate_and_suggestions():
+    cfg = config_from_dict({"model": {"width": 2048, "depth": 48}, "data": {"seq_len": 8192},
+                            "train": {"batch_size": 64}})
+    seen = []
+    message = warn_if_too_large(cfg, 256, seen.append, available_bytes=16 * 2**30)
+    assert seen == [message]
+    assert "GiB" in message and "16.00 GiB" in message
+    assert "runtime.activation_checkpointing: true" in message
+    assert "train.batch_size" in message
+    # The same config with memory to spare: no warning.
+    assert memory_warning(cfg, 256, available_bytes=2**60) is None
+
+
+def test_warning_suggests_a_batch_that_fits():
+    cfg = config_from_dict({"model": {"width": 64, "depth": 2}, "data": {"seq_len": 128},
+                            "train": {"batch_size": 32}})
+    per_seq = estimate_activation_memory(cfg.model, 256, 1, 128).total_bytes
+    message = memory_warning(cfg, 256, available_bytes=int(per_seq * 5.5))
+    batch = int(message.split("train.batch_size <= ")[1].split()[0])
+    assert 4 <= batch <= 6
+
+
+# ----------------------------------------------------------------------------- checkpointing, memory probe
+
+
+def test_activation_checkpointing_gives_identical_losses_and_gradients():
+    # Recomputing a block in backward replays the same ops on the same inputs: bitwise equal results.
+    from harness.train import train_step
+    from harness.train.optim import build_optimizer, build_scheduler
+    from harness.train.runtime import resolve_runtime
+
+    cfg = config_from_dict({"model": {"width": 32, "depth": 3, "pattern": ["global_attention", "recurrence"]},
+                            "train": {"steps": 3}})
+    runtime, _ = resolve_runtime(cfg.runtime)
+    x, y = bench.random_batches(256, 2, 16, 1)[0]
+    results = []
+    for on in (False, True):
+        torch.manual_seed(0)
+        model = build_model(cfg.model, 256, activation_checkpointing=on)
+        opt = build_optimizer(model, cfg.train)
+        sched = build_scheduler(opt, cfg.train, 3)
+        losses = [train_step(model, opt, sched, [(x, y)], runtime, 1.0).loss for _ in range(3)]
+        results.append((losses, [p.detach().clone() for p in model.parameters()]))
+    assert results[0][0] == results[1][0]
+    for a, b in zip(results[0][1], results[1][1], strict=True):
+        assert torch.equal(a, b)
+
+
+def _bench_memory():
+    spec = importlib.util.spec_from_file_location("bench_memory", ROOT / "scripts" / "bench_memory.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def test_memory_probe_returns_plausible_numbers(tmp_path):
+    bm = _bench_memory()
+    cfg = bm.base_config(str(tmp_path / "cache"), width=128, depth=2, seq_len=128, batch=16, steps=2)
+    out = bm.run_child({"job": "steps", "config": cfg}, timeout_s=300)
+    # A Python process with torch imported holds well over 50 MB and far less than 4 GB here.
+    assert 50 * 2**20 < out["baseline_rss_bytes"] < 4 * 2**30
+    assert out["peak_rss_bytes"] >= out["baseline_rss_bytes"]
+    # The measured activation part and the autograd-saved estimate agree within a factor 3
+    # (allocator slack and transient buffers separate them).
+    assert out["estimate_bytes"] / 3 < out["activation_bytes"] < 3 * out["estimate_bytes"]
+    assert len(out["losses"]) == 2
+
+
+def test_tree_rss_counts_children():
+    import sys
+
+    bm = _bench_memory()
+    # A child that holds 300 MB of touched memory: the tree's peak must include it.
+    code = "import numpy as np, time; a = np.ones(300 * 2**20 // 8); time.sleep(1.5)"
+    parent = f"import subprocess, sys; subprocess.run([sys.executable, '-c', {code!r}])"
+    out = bm.sampled_peak([sys.executable, "-c", parent], every_s=0.05)
+    assert out["max_processes"] >= 2
+    assert out["peak_tree_rss_bytes"] > 300 * 2**20
+    with pytest.raises(RuntimeError, match="failed"):
+        bm.sampled_peak([sys.executable, "-c", "raise SystemExit(3)"])
