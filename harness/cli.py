@@ -28,7 +28,9 @@ class _Parser(argparse.ArgumentParser):
 def _add_train(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser("train", help="train one model from a config file", description=(
         "Train one model. Rerunning the same command on an interrupted run dir resumes it; "
-        "a finished run dir is left alone unless --force."))
+        "a finished run dir is left alone unless --force. Ctrl-C or SIGTERM finishes the current "
+        "step and writes a checkpoint. Exit codes: 0 done (or already done), 2 bad config or input, "
+        "3 diverged, 130 / 143 stopped by SIGINT / SIGTERM."))
     p.add_argument("config", help="YAML config file")
     p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
                    help="override a config key (dotted path, value parsed as YAML); repeatable")

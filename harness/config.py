@@ -140,7 +140,7 @@ class TrainConfig:
     data_seed: int = opt(-1, "seed of the batch stream and validation windows (-1 = train.seed)", min=-1)
     eval_every: int = opt(50, "evaluate on the validation windows every N steps (and at the end)", min=1)
     eval_windows: int = opt(32, "number of fixed validation windows", min=1)
-    log_every: int = opt(10, "write a train line every N steps", min=1)
+    log_every: int = opt(10, "write a train line every N steps (and at step 1 and the last step)", min=1)
     checkpoint_every: int = opt(100, "checkpoint every N steps (and at the end)", min=1)
     keep_checkpoints: int = opt(2, "keep the last K checkpoints", min=1)
     diverge_factor: float = opt(2.0, "stop as diverged when the loss exceeds this multiple of the first loss", min=1.0)

@@ -279,3 +279,33 @@ def plot_length_extrapolation(evals: dict[str, list[dict[str, Any]]], path: str 
     fig.savefig(out, dpi=120)
     plt.close(fig)
     return out
+
+
+def report_figures(out_dir: str | Path, run_dirs: dict[str, list[Path]]) -> list[tuple[str, str]]:
+    """The extra PNGs of a grid report, for the runs of each variant label: length extrapolation (from
+    the cells' eval.json, where ``harness eval`` was run) and probe accuracy (from the final val line of
+    their metrics.jsonl, where ``eval.probes`` was set). Returns (file name, caption) of those written."""
+    from harness.probes import plot_probe_accuracy
+    from harness.train.records import read_metrics
+
+    out_dir = Path(out_dir)
+    written = []
+    evals = {label: [e for e in (read_eval(d) for d in dirs) if e] for label, dirs in run_dirs.items()}
+    evals = {label: e for label, e in evals.items() if e}
+    if evals:
+        name = "length_extrapolation.png"
+        plot_length_extrapolation(evals, out_dir / name)
+        written.append((name, "Validation loss at multiples of the training context (`harness eval`; mean over the "
+                              "cells evaluated), and per position bucket at the longest length; dotted: training "
+                              "seq_len."))
+    finals: dict[str, list[dict[str, Any]]] = {}
+    for label, dirs in run_dirs.items():
+        for d in dirs:
+            val = [line for line in read_metrics(Path(d) / "metrics.jsonl") if line.get("split") == "val"]
+            if val:
+                finals.setdefault(label, []).append(val[-1])
+    name = "probe_accuracy.png"
+    if finals and plot_probe_accuracy(finals, out_dir / name) is not None:
+        written.append((name, "Probe accuracy (`eval.probes`) at the final evaluation vs probe size, mean over "
+                              "seeds: MQAR by key-value pairs, passkey by distance."))
+    return written

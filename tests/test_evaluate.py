@@ -276,3 +276,12 @@ def test_probe_plot_reads_the_val_line_keys(tmp_path):
     assert probes.probe_curves(line) == {"mqar": [(4, 1.0), (16, 0.5)], "passkey": [(0, 0.2)]}
     assert probes.plot_probe_accuracy({"v": [line, line]}, tmp_path / "p.png").read_bytes()[:4] == b"\x89PNG"
     assert probes.plot_probe_accuracy({"v": [{"loss": 1.0}]}, tmp_path / "none.png") is None
+
+
+def test_report_figures_from_cell_dirs(run_dir, root, tmp_path):
+    evaluate.eval_command(run_dir, "1x,2x")
+    plain = train(root, "plain", train={"steps": 15, "eval_every": 15, "checkpoint_every": 15})  # no probes, no eval
+    written = evaluate.report_figures(tmp_path, {"probed": [run_dir], "plain": [plain]})
+    assert [name for name, _ in written] == ["length_extrapolation.png", "probe_accuracy.png"]
+    assert all((tmp_path / name).read_bytes()[:4] == b"\x89PNG" for name, _ in written)
+    assert evaluate.report_figures(tmp_path / "empty", {"plain": [plain]}) == []

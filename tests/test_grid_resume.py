@@ -1,4 +1,4 @@
-"""Kill a running grid (the grid process alone, then its whole process group) and rerun it.
+"""Stop a running grid (SIGTERM), kill it (the grid process alone, then its process group), rerun it.
 
 No finished cell may be trained again, and the final numbers must equal those of a grid that was
 never interrupted (the trainer's resume is exact; the grid must skip and resume the right cells).
@@ -36,6 +36,7 @@ variants:
 reference: attention
 seeds: [0, 1]
 """
+CELLS = 4
 
 
 def _summary_status(cell: Path) -> str | None:
@@ -55,14 +56,14 @@ def _wait(predicate: Callable[[], object], timeout: float, what: str) -> object:
     raise AssertionError(f"timed out waiting for {what}")
 
 
-def _cell_mid_way(grid_dir: Path, after: set[str]) -> str | None:
-    """A cell (not in ``after``) that has a checkpoint and has not finished, while another has finished."""
+def _cell_mid_way(grid_dir: Path, not_these: set[str]) -> str | None:
+    """A cell (not in ``not_these``) with a checkpoint and no summary yet, once some cell has finished."""
     cells = sorted((grid_dir / "cells").glob("*")) if (grid_dir / "cells").exists() else []
-    done = {c.name for c in cells if _summary_status(c) == "done"}
-    if not done - after:
+    if not any(_summary_status(c) == "done" for c in cells):
         return None
     for c in cells:
-        if c.name not in done and any((c / "checkpoints").glob("step_*.pt")):
+        training = _summary_status(c) in (None, "running")
+        if c.name not in not_these and training and any((c / "checkpoints").glob("step_*.pt")):
             return c.name
     return None
 
@@ -95,37 +96,48 @@ def test_killed_grid_resumes_without_retraining_finished_cells(tmp_path):
     assert run_grid(spec, out=reference_dir, workers=1, threads=1, echo=lambda _: None) == 0
 
     grid_dir = tmp_path / "interrupted"
-    # 1. SIGKILL the grid process alone: its running cell must stop by itself (it asked the kernel
-    #    for SIGTERM on the grid's death), after writing a checkpoint.
+    # 1. SIGTERM the grid: it stops its running cell cleanly (checkpoint) and exits 130.
     proc = _start(spec, grid_dir)
-    victim = _wait(lambda: _cell_mid_way(grid_dir, set()), 240, "a finished cell and one mid-way")
-    children = psutil.Process(proc.pid).children(recursive=True)
+    first = _wait(lambda: _cell_mid_way(grid_dir, set()), 240, "a finished cell and one mid-way")
     finished_first = {c.name for c in (grid_dir / "cells").glob("*") if _summary_status(c) == "done"}
     kept = {cell: _records(grid_dir, cell) for cell in finished_first}
+    os.kill(proc.pid, signal.SIGTERM)
+    assert proc.wait(120) == 130
+    assert _summary_status(grid_dir / "cells" / first) == "interrupted"
+    with open_index(grid_dir, readonly=True) as index:
+        assert index.cell(first)["status"] == "interrupted"
+
+    # 2. SIGKILL the grid process alone: its running cell must stop by itself (it asked the kernel
+    #    for SIGTERM on the grid's death), after writing a checkpoint.
+    proc = _start(spec, grid_dir)
+    second = _wait(lambda: _cell_mid_way(grid_dir, {first}), 240, "a second cell mid-way")
+    children = psutil.Process(proc.pid).children(recursive=True)
     os.kill(proc.pid, signal.SIGKILL)
     proc.wait(30)
     assert children, "the grid had no running cell process"
-    gone, alive = psutil.wait_procs(children, timeout=60)
+    _gone, alive = psutil.wait_procs(children, timeout=60)
     assert not alive, f"cell processes outlived the grid: {alive}"
-    assert _summary_status(grid_dir / "cells" / victim) == "interrupted"
+    assert _summary_status(grid_dir / "cells" / second) == "interrupted"
 
-    # 2. Rerun, then SIGKILL the whole process group (grid and cell at once: no clean stop).
+    # 3. Rerun, then SIGKILL the whole process group (grid and cell at once: no clean stop).
     proc = _start(spec, grid_dir)
-    _wait(lambda: _cell_mid_way(grid_dir, finished_first | {victim}), 240, "the next cell mid-way")
-    finished_second = {c.name for c in (grid_dir / "cells").glob("*") if _summary_status(c) == "done"}
+    _wait(lambda: _cell_mid_way(grid_dir, {first, second}), 240, "a third cell mid-way")
+    finished_before_last = {c.name for c in (grid_dir / "cells").glob("*") if _summary_status(c) == "done"}
     os.killpg(proc.pid, signal.SIGKILL)
     proc.wait(30)
 
-    # 3. Rerun to the end.
+    # 4. Rerun to the end.
     lines: list[str] = []
     assert run_grid(spec, out=grid_dir, workers=1, threads=1, echo=lines.append) == 0
-    assert f"({len(finished_second)} already finished, {4 - len(finished_second)} to run;" in lines[0]
+    n_done = len(finished_before_last)
+    assert f"({n_done} already finished, {CELLS - n_done} to run;" in lines[0]
     for cell, records in kept.items():
         assert _records(grid_dir, cell) == records, f"{cell} was trained again"
-    assert "from the checkpoint at step" in (grid_dir / "logs" / f"{victim}.log").read_text()
+    for cell in (first, second):
+        assert "from the checkpoint at step" in (grid_dir / "logs" / f"{cell}.log").read_text()
 
     # Same numbers as the uninterrupted grid, cell by cell and in the report's verdicts.
     finals = _finals(grid_dir)
-    assert len(finals) == 4
+    assert len(finals) == CELLS
     assert finals == _finals(reference_dir)
     assert _verdicts(grid_dir) == _verdicts(reference_dir)

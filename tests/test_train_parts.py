@@ -15,7 +15,7 @@ from torch import nn
 from harness.errors import ConfigError
 from harness.train import checkpoint as ckpt
 from harness.train.loop import divergence, evaluate
-from harness.train.memory import PeakRSS, current_rss_bytes, peak_rss_bytes
+from harness.train.memory import PeakRSS, current_rss_bytes
 from harness.train.records import parse_metrics
 from harness.train.runtime import Runtime, resolve_device, resolve_threads
 
@@ -43,7 +43,8 @@ def test_evaluate_mean_loss_over_scored_tokens_and_accuracy():
     ys[0][:, :3] = -100
     ys[1][0] = -100
     model = FixedLogits(logits)
-    result = evaluate(model, [(torch.zeros(3, 5, dtype=torch.long), y) for y in ys], CPU, is_task=True)
+    x = torch.zeros(3, 5, dtype=torch.long)
+    result = evaluate(model, [(x, y) for y in ys], CPU, is_task=True)
     # Reference: torch's mean cross-entropy over all scored positions of both batches at once.
     all_logits = logits.flatten(0, 2)
     all_y = torch.cat([y.flatten() for y in ys])
@@ -53,7 +54,8 @@ def test_evaluate_mean_loss_over_scored_tokens_and_accuracy():
     mask = all_y != -100
     hand = (all_logits.argmax(-1)[mask] == all_y[mask]).float().mean().item()
     assert result["accuracy"] == pytest.approx(hand)
-    assert "accuracy" not in evaluate(FixedLogits(logits), [(torch.zeros(3, 5, dtype=torch.long), ys[0])], CPU, is_task=False)
+    x = torch.zeros(3, 5, dtype=torch.long)
+    assert "accuracy" not in evaluate(FixedLogits(logits), [(x, ys[0])], CPU, is_task=False)
 
 
 def test_evaluate_hooks_add_metrics_and_mode_is_restored():

@@ -206,7 +206,9 @@ def test_corrupt_latest_checkpoint_falls_back(workdir, long_reference, capsys):
 def test_records_fields_and_tensorboard(workdir):
     path = write_config(workdir, "records")
     out = workdir / "records_run"
+    handlers = signal.getsignal(signal.SIGINT), signal.getsignal(signal.SIGTERM)
     summary = run_training(load_config(path), out, progress="silent")
+    assert (signal.getsignal(signal.SIGINT), signal.getsignal(signal.SIGTERM)) == handlers  # restored
     lines = read_metrics(out / "metrics.jsonl")
     train = [x for x in lines if x["split"] == "train"]
     val = [x for x in lines if x["split"] == "val"]
@@ -319,6 +321,11 @@ def test_divergence_stops_with_exit_3(workdir, capsys):
     last = read_metrics(out / "metrics.jsonl")[-1]
     assert last["step"] == summary["steps"]  # the diverged step is on record
     assert last["loss"] is None or last["loss"] > 2.0 * read_metrics(out / "metrics.jsonl")[0]["loss"]
+    # Rerunning would diverge again (deterministic): it is reported, not retrained.
+    before = snapshot(out)
+    assert main(["train", str(path), "--out", str(out)]) == 3
+    assert "diverged earlier" in capsys.readouterr().err
+    assert snapshot(out) == before
 
 
 # ----------------------------------------------------------------------------- finished and foreign dirs
@@ -526,17 +533,33 @@ def test_seeds_change_init_and_data(workdir):
     assert first_lines("dseed5", data_seed=5)[0]["loss"] != base[0]["loss"]
 
 
-def test_scan_backend_and_threads_recorded(workdir):
-    cfg = load_config(write_config(workdir, "scan", train={"steps": 2}, runtime={"scan": "reference"},
-                                   model={"pattern": ["recurrence"]}))
-    out = workdir / "scan_run"
+def test_scan_backend_and_threads_applied(workdir):
     import torch
 
+    cfg = load_config(write_config(workdir, "scan", train={"steps": 2}, runtime={"scan": "reference", "threads": 3},
+                                   model={"pattern": ["recurrence"]}))
+    out = workdir / "scan_run"
     threads = torch.get_num_threads()
-    assert run_training(cfg, out, progress="silent")["status"] == "done"
+    assert threads != 3
+    seen = []
+
+    def threads_hook(model, runtime):
+        seen.append(torch.get_num_threads())
+        return {"probe_threads": float(seen[-1])}
+
+    summary = run_training(cfg, out, progress="silent", eval_hooks=[threads_hook])
+    assert summary["status"] == "done" and seen == [3]  # applied while training
+    assert read_metrics(out / "metrics.jsonl")[-1]["probe_threads"] == 3.0  # hook metrics reach the val line
     env = json.loads((out / "env.json").read_text())
-    assert env["scan_backend"]["default"] == "reference"
-    assert torch.get_num_threads() == threads  # the run's thread setting does not leak
+    assert env["scan_backend"]["default"] == "reference" and env["threads"] == 3
+    assert torch.get_num_threads() == threads  # and restored after
     from harness.kernels import set_scan_backend
 
     set_scan_backend("auto")
+
+
+def test_token_budget_sets_the_number_of_steps(workdir):
+    cfg = load_config(write_config(workdir, "budget", train={"tokens": 1000, "steps": 99}))
+    summary = run_training(cfg, workdir / "budget_run", progress="silent")
+    # ceil(1000 / (batch 4 x accum 1 x seq 32)) = ceil(7.8) = 8 steps
+    assert summary["steps"] == summary["total_steps"] == 8 and summary["tokens_seen"] == 8 * 128

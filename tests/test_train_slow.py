@@ -21,7 +21,7 @@ def unigram_entropy_nats(tokens: np.ndarray, vocab: int) -> float:
 
 @pytest.mark.slow
 def test_300_steps_on_plays_beat_unigram_entropy(tmp_path):
-    # Measured: ~110 s on 2 shared cores (fp32, 2 threads).
+    # Measured: 40 s on 2 idle cores (fp32, 2 threads); up to 7 min when others load them.
     cfg = config_from_dict({
         "name": "plays-slow",
         "model": {"width": 128, "depth": 2, "pattern": ["global_attention"]},
@@ -41,4 +41,4 @@ def test_300_steps_on_plays_beat_unigram_entropy(tmp_path):
     assert 2.8 < entropy < 3.6
     summary = run_training(cfg, tmp_path / "run", progress="silent")
     assert summary["status"] == "done"
-    assert summary["final_val_loss"] < entropy, (summary["final_val_loss"], entropy)
+    assert summary["final_val_loss"] < entropy, (summary["final_val_loss"], entropy)  # measured: 2.54 vs 3.33

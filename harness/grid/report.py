@@ -235,6 +235,10 @@ def write_plots(grid_dir: Path, groups: list[Group]) -> list[tuple[str, str]]:
         written.append(("final_loss_vs_params.png",
                         "Final validation loss vs non-embedding parameters (mean over seeds; bars: 95% t interval)."))
     plt.close(fig)
+
+    from harness.evaluate import report_figures  # length extrapolation (eval.json) and eval.probes, where present
+
+    written += report_figures(grid_dir, {g.label: [cell_dir(grid_dir, r["id"]) for r in g.done] for g in groups})
     return written
 
 

@@ -94,9 +94,12 @@ class GridProgress:
         if self.diverged:
             parts[0] += f" ({self.diverged} diverged)"
         parts += [f"{self.running} running", f"{self.failed} failed", f"{self.left} left"]
-        eta = "ETA " + (format_duration(self.eta_s) if self.eta_s is not None else "unknown (no speed measured yet)")
-        if self.running == 0 and self.left == 0:
-            eta = "finished"
+        if self.running == 0:
+            eta = "finished" if self.left == 0 else "not running"
+        elif self.eta_s is None:
+            eta = "ETA unknown (no speed measured yet)"
+        else:
+            eta = f"ETA {format_duration(self.eta_s)}"
         return f"grid {self.name}: " + ", ".join(parts) + f" | {eta}"
 
 

@@ -257,11 +257,15 @@ def run_training(
     runtime, warnings = resolve_runtime(cfg.runtime)
     state = inspect_run_dir(out, cfg_hash)
     action = plan_run_dir(state, out, cfg_hash, force)
-    if action == "done":
+    if action == "finished":
         summary = state.summary or {}
-        loss = summary.get("final_val_loss")
-        show.message(f"{out}: already done ({summary.get('steps')} steps, val loss "
-                     f"{'?' if loss is None else f'{loss:.4f}'}); not retraining (use --force to retrain)")
+        if summary.get("status") == "diverged":
+            show.message(f"{out}: diverged earlier, at step {summary.get('steps')}; not retraining "
+                         "(lower train.lr, or use --force to retrain)")
+        else:
+            loss = summary.get("final_val_loss")
+            show.message(f"{out}: already done ({summary.get('steps')} steps, val loss "
+                         f"{'?' if loss is None else f'{loss:.4f}'}); not retraining (use --force to retrain)")
         return summary
     for warning in warnings:
         show.message(f"warning: {warning}")
@@ -345,6 +349,7 @@ def _train(s: Setup, out: Path, action: str, show: Progress, eval_hooks: Sequenc
                 window_time += time.perf_counter() - t0
                 window_tokens += s.tokens_per_step
                 rss.sample()
+                show.advance(step)
                 if loop.first_loss is None:
                     loop.first_loss = stats.loss
                 why = divergence(stats.loss, loop.first_loss, cfg.diverge_factor)

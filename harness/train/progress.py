@@ -23,9 +23,12 @@ def format_duration(seconds: float) -> str:
 
 
 class Progress:
-    """Interface: the trainer calls ``start``, ``step`` per train log line, ``val``, ``message``, ``close``."""
+    """Interface: the trainer calls ``start``, ``advance`` after every step, ``step`` per train log
+    line, ``val`` per val line, ``message`` for anything else, and ``close``."""
 
     def start(self, total: int, initial: int) -> None: ...
+
+    def advance(self, step: int) -> None: ...
 
     def step(self, line: dict[str, Any]) -> None: ...
 
@@ -84,9 +87,12 @@ class Bar(Progress):
         self.bar = tqdm(total=total, initial=initial, file=self.stream, unit="step", dynamic_ncols=True)
         self.last = initial
 
+    def advance(self, step: int) -> None:
+        self.bar.update(step - self.last)
+        self.last = step
+
     def step(self, line: dict[str, Any]) -> None:
-        self.bar.update(line["step"] - self.last)
-        self.last = line["step"]
+        self.advance(line["step"])
         self.bar.set_postfix_str(f"loss {_number(line['loss'])}  tok/s {line['tokens_per_s']:,.0f}")
 
     def val(self, line: dict[str, Any]) -> None:

@@ -52,14 +52,18 @@ def inspect_run_dir(out: Path, cfg_hash: str) -> DirState:
 
 
 def plan_run_dir(state: DirState, out: Path, cfg_hash: str, force: bool) -> str:
-    """``fresh``, ``resume`` or ``done`` for this dir; raises UserError when it must be left alone."""
+    """``fresh``, ``resume`` or ``finished`` for this dir; raises UserError when it must be left alone.
+
+    Finished means done or diverged: rerunning a diverged config would only diverge again
+    (the run is deterministic), so both need ``force`` to retrain.
+    """
     if state.kind == "new":
         return "fresh"
     if force:
         return "fresh"
     if state.kind == "same":
-        done = state.summary is not None and state.summary.get("status") == "done"
-        return "done" if done else "resume"
+        finished = state.summary is not None and state.summary.get("status") in ("done", "diverged")
+        return "finished" if finished else "resume"
     if state.kind == "other":
         held = f"config {state.stored_hash}" if state.stored_hash else "an unreadable config.yaml"
         raise UserError(f"{out}: holds a run of {held}, not of this config ({cfg_hash}); "
