@@ -275,6 +275,8 @@ def harness_run(case: BenchCase, steps: int, warmup: int, cache_dir: Path, **tra
     with tempfile.TemporaryDirectory(prefix="harness-bench-") as tmp:
         summary = run_training(cfg, Path(tmp) / "run", progress="silent")
         metrics = read_metrics(Path(tmp) / "run" / "metrics.jsonl")
+    if summary.get("status") != "done":  # e.g. stopped by SIGTERM: its speed is no measurement
+        raise RuntimeError(f"bench run {case.name} ended {summary.get('status')!r}, not 'done'")
     return {"tokens_per_s": loop_tokens_per_s(metrics, warmup), "summary": summary, "config": cfg}
 
 
@@ -387,8 +389,15 @@ def _forward_bucket(event: Any) -> str | None:
     return None
 
 
+def _is_scan(name: str) -> bool:
+    """The range of a scan autograd Function (``_CompiledScan``, ``_ChunkedScan``) or of its backward."""
+    name = name.removeprefix("autograd::engine::evaluate_function: ")
+    return name.startswith("_") and "Scan" in name
+
+
 def step_time_shares(events: list[Any]) -> dict[str, float]:
     """Self CPU time of one profiled step per bucket, in ms: block kinds (forward + their backward),
+    ``scan`` (the linear scan inside recurrences, forward + backward, apart from its mixer),
     ``optimizer`` (AdamW step and zero_grad), ``other`` (clipping, schedule, loss bookkeeping).
 
     A backward op is charged to the forward op it differentiates: the autograd engine's
@@ -402,7 +411,9 @@ def step_time_shares(events: list[Any]) -> dict[str, float]:
     for e in events:
         bucket, a = None, e
         while a is not None and bucket is None:
-            if a.name.startswith("autograd::engine::evaluate_function"):
+            if _is_scan(a.name):
+                bucket = "scan"
+            elif a.name.startswith("autograd::engine::evaluate_function"):
                 bucket = by_seq.get(a.sequence_nr, "backward:other")
             elif a.name.startswith("Optimizer."):
                 bucket = "optimizer"

@@ -74,7 +74,8 @@ def _add_grid(sub: argparse._SubParsersAction) -> None:
                        description=(
         "Train every cell of a grid file as an ordinary run dir under GRID_DIR/cells/, recording them in "
         "GRID_DIR/index.sqlite, then write GRID_DIR/report.md. Rerunning resumes: finished cells are skipped, "
-        "interrupted ones resume from their checkpoints."))
+        "interrupted ones resume from their checkpoints. Exit code 0: every cell finished (done or diverged); "
+        "1: some cells failed; 2: bad input; 130: stopped by a signal."))
     p.add_argument("grid", nargs="?", help="grid YAML file")
     p.add_argument("--out", default=None, help="grid dir (default: runs/grids/<grid name>)")
     p.add_argument("--workers", type=int, default=None, help="cells trained at once (default: cores / threads)")

@@ -132,6 +132,20 @@ def test_profile_charges_backward_time_to_the_block_that_ran_forward():
     assert all(not m._forward_pre_hooks for m in model.modules())
 
 
+def test_profile_splits_the_scan_out_of_the_recurrence():
+    from torch.profiler import ProfilerActivity, profile
+
+    torch.manual_seed(0)
+    model = build_model(tiny_cfg("recurrence").model, 64)
+    x, _ = bench.random_batches(64, 2, 64, 1)[0]
+    with bench.labelled_forward(model), profile(activities=[ProfilerActivity.CPU]) as prof:
+        model(x).sum().backward()
+    ms = bench.step_time_shares(list(prof.events()))
+    assert ms["scan"] > 0 and ms["mixer:recurrence"] > 0
+    assert bench._is_scan("autograd::engine::evaluate_function: _ChunkedScanBackward")
+    assert not bench._is_scan("aten::mm")
+
+
 def test_bench_command_rejects_bad_arguments(tmp_path):
     from harness.errors import UserError
 
@@ -169,6 +183,18 @@ def test_estimate_is_linear_in_batch_and_checkpointing_keeps_less():
     assert ckpt.saved_bytes == outside + 8 * four.block_input_bytes + block
     assert ckpt.saved_bytes < 0.5 * four.saved_bytes
     assert four.block_input_bytes == 4 * 64 * 64 * 4  # (B, T, D) float32
+
+
+@pytest.mark.parametrize("kind", ["global_attention", "local_attention", "recurrence", "lstm"])
+def test_coarse_bound_is_above_the_precise_estimate(kind):
+    # The pre-check may only skip configs that surely fit: its bound must exceed the counted bytes.
+    from harness.memory_estimate import coarse_bound_bytes
+
+    for width, expansion in ((64, 3.0), (64, 0.5), (128, 8.0)):
+        cfg = config_from_dict({"model": {"width": width, "depth": 2, "pattern": [kind], "mlp_expansion": expansion},
+                                "data": {"seq_len": 96}, "train": {"batch_size": 2}})
+        est = estimate_activation_memory(cfg.model, 256, 2, 96)
+        assert coarse_bound_bytes(cfg, 256) > est.total_bytes
 
 
 def test_huge_config_warns_with_estimate_and_suggestions():

@@ -168,3 +168,11 @@ def test_eta_counts_a_cell_without_speed_at_the_finished_cells_speed(tmp_path):
                      "planned_tokens": 5000, "flops_per_token": None, "params_total": 1, "params_non_embedding": 1}])
         index.mark_running("new")
     assert grid_progress(tmp_path).eta_s == pytest.approx(5000 / 1000.0)
+
+
+def test_status_command_prints_the_grid_line(tmp_path, capsys):
+    make_grid(tmp_path, {"ref": {0: 2.0, 1: 2.1}})
+    assert main(["grid", "--status", str(tmp_path)]) == 0
+    assert capsys.readouterr().out == "grid synthetic: 2/2 done, 0 running, 0 failed, 0 left | finished\n"
+    assert main(["grid", "--status", str(tmp_path / "nothing")]) == 2
+    assert "no grid here" in capsys.readouterr().err

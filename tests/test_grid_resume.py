@@ -122,15 +122,16 @@ def test_killed_grid_resumes_without_retraining_finished_cells(tmp_path):
     # 3. Rerun, then SIGKILL the whole process group (grid and cell at once: no clean stop).
     proc = _start(spec, grid_dir)
     _wait(lambda: _cell_mid_way(grid_dir, {first, second}), 240, "a third cell mid-way")
-    finished_before_last = {c.name for c in (grid_dir / "cells").glob("*") if _summary_status(c) == "done"}
     os.killpg(proc.pid, signal.SIGKILL)
     proc.wait(30)
+    finished_before_last = {c.name for c in (grid_dir / "cells").glob("*") if _summary_status(c) == "done"}
 
     # 4. Rerun to the end.
     lines: list[str] = []
     assert run_grid(spec, out=grid_dir, workers=1, threads=1, echo=lines.append) == 0
     n_done = len(finished_before_last)
-    assert f"({n_done} already finished, {CELLS - n_done} to run;" in lines[0]
+    start_line = next(ln for ln in lines if ln.startswith("grid resume:"))
+    assert f"({n_done} already finished, {CELLS - n_done} to run;" in start_line
     for cell, records in kept.items():
         assert _records(grid_dir, cell) == records, f"{cell} was trained again"
     for cell in (first, second):

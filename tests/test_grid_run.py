@@ -7,6 +7,7 @@ import textwrap
 from pathlib import Path
 
 import pytest
+import torch
 
 from harness.errors import UserError
 from harness.grid.index import open_index
@@ -95,7 +96,7 @@ def test_force_on_a_changed_spec_keeps_the_old_cells_aside(tmp_path):
     out = tmp_path / "out"
     assert run_grid(spec(0.003), out=out, threads=1, echo=lambda _: None) == 0
     old_summary = (out / "cells" / "a-seed0" / "summary.json").read_text()
-    with pytest.raises(UserError, match="holds a grid whose cells differ .* 1 changed"):
+    with pytest.raises(UserError, match=r"holds a grid whose cells differ .*\(1 changed; e.g. a-seed0\)"):
         run_grid(spec(0.001), out=out, threads=1, echo=lambda _: None)
     assert (out / "cells" / "a-seed0" / "summary.json").read_text() == old_summary
     lines: list[str] = []
@@ -108,3 +109,20 @@ def test_force_on_a_changed_spec_keeps_the_old_cells_aside(tmp_path):
     assert (out / "grid.1.yaml").read_text() != (out / "grid.yaml").read_text()
     with open_index(out, readonly=True) as index:
         assert [c["status"] for c in index.cells()] == ["done"]
+
+
+@pytest.mark.skipif(torch.cuda.is_available(), reason="needs a machine without CUDA for the failing cell")
+def test_a_failing_cell_is_recorded_and_the_others_go_on(tmp_path):
+    path = tmp_path / "broken.yaml"
+    path.write_text("name: broken\nbase:\n" + TINY_BASE + "seeds: [0]\n"
+                    "variants: {fine: {}, broken: {runtime.device: cuda}}\nreference: fine\n")
+    lines: list[str] = []
+    assert run_grid(path, out=tmp_path / "out", workers=2, threads=1, echo=lines.append) == 1
+    with open_index(tmp_path / "out", readonly=True) as index:
+        cells = {c["id"]: c for c in index.cells()}
+    assert cells["fine-seed0"]["status"] == "done"
+    broken = cells["broken-seed0"]
+    assert (broken["status"], broken["exit_code"]) == ("failed", 2)
+    assert broken["message"].startswith("error: runtime.device:")
+    assert "| broken-seed0 | failed | 2 | error: runtime.device:" in (tmp_path / "out" / "report.md").read_text()
+    assert lines[-1].startswith("1 cell(s) failed: broken-seed0")

@@ -72,17 +72,30 @@ def child_env(threads: int) -> dict[str, str]:
     return env
 
 
-def _die_with_parent(parent_pid: int) -> Callable[[], None]:
+def _load_libc() -> Any:
+    """libc, loaded here in the parent: the forked child must not import or load anything."""
+    if not sys.platform.startswith("linux"):
+        return None
+    try:
+        import ctypes
+
+        return ctypes.CDLL("libc.so.6", use_errno=True)
+    except OSError:
+        return None
+
+
+_LIBC = _load_libc()
+_PR_SET_PDEATHSIG = 1  # from <linux/prctl.h>
+
+
+def _die_with_parent(parent_pid: int) -> Callable[[], None] | None:
     """preexec_fn: SIGTERM this child when the process that started it dies (Linux prctl)."""
+    if _LIBC is None:
+        return None
+    prctl = _LIBC.prctl
 
     def setup() -> None:
-        try:
-            import ctypes
-
-            pr_set_pdeathsig = 1
-            ctypes.CDLL("libc.so.6", use_errno=True).prctl(pr_set_pdeathsig, int(signal.SIGTERM))
-        except (OSError, AttributeError):
-            return
+        prctl(_PR_SET_PDEATHSIG, int(signal.SIGTERM))
         if os.getppid() != parent_pid:  # the parent died before prctl took effect
             os.kill(os.getpid(), signal.SIGTERM)
 
@@ -95,9 +108,8 @@ def start_cell_process(job: CellJob) -> subprocess.Popen:
     try:
         log.write(f"\n=== {time.strftime('%Y-%m-%d %H:%M:%S')} {' '.join(job.command())}\n".encode())
         log.flush()
-        preexec = _die_with_parent(os.getpid()) if sys.platform.startswith("linux") else None
         return subprocess.Popen(job.command(), stdout=log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
-                                env=child_env(job.threads), preexec_fn=preexec)
+                                env=child_env(job.threads), preexec_fn=_die_with_parent(os.getpid()))
     finally:
         log.close()
 
@@ -178,9 +190,8 @@ def run_cell_command(command: list[str], log_path: str, threads: int) -> int:
     with open(job_log, "ab") as log:
         log.write(f"\n=== {time.strftime('%Y-%m-%d %H:%M:%S')} (ray) {' '.join(command)}\n".encode())
         log.flush()
-        preexec = _die_with_parent(os.getpid()) if sys.platform.startswith("linux") else None
         proc = subprocess.Popen(command, stdout=log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
-                                env=child_env(threads), preexec_fn=preexec)
+                                env=child_env(threads), preexec_fn=_die_with_parent(os.getpid()))
         try:
             return proc.wait()
         except BaseException:

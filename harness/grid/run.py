@@ -144,7 +144,10 @@ def grid_lock(grid_dir: Path) -> Iterator[None]:
                             f"grid; watch it with: harness grid --status {grid_dir}") from None
         os.ftruncate(fd, 0)
         os.write(fd, f"{os.getpid()}\n".encode())
-        yield
+        try:
+            yield
+        finally:
+            os.ftruncate(fd, 0)
     finally:
         os.close(fd)
 
@@ -168,14 +171,14 @@ def _changes(old: dict[str, str], new: dict[str, str]) -> tuple[list[str], list[
 
 
 def _refuse_changed_spec(grid_dir: Path, grid_file: str | Path, old: dict[str, str], new: dict[str, str],
-                         force: bool) -> None:
+                         force: bool, hint: str = "") -> None:
     changed, added, removed = _changes(old, new)
     if not old or force or not (changed or added or removed):
         return
     what = ", ".join(f"{len(v)} {k}" for k, v in (("changed", changed), ("new", added), ("removed", removed)) if v)
     example = (changed or added or removed)[0]
     raise UserError(
-        f"{grid_dir}: holds a grid whose cells differ from {grid_file} ({what}; e.g. {example}); pass --out "
+        f"{grid_dir}: holds a grid whose cells differ from {grid_file} ({what}; e.g. {example}){hint}; pass --out "
         "for a new grid dir, or --force to run the new cells here (changed and removed cells are moved to "
         "superseded/, nothing is deleted)")
 
@@ -391,7 +394,10 @@ def run_grid(
     new = {p.id: p.config_hash for p in plan}
     # Checked before anything is written (a refused command leaves the dir as it was), and again
     # under the lock in case another process changed the grid in between.
-    _refuse_changed_spec(grid_dir, grid_file, old_hashes, new, force)
+    hint = ""
+    if recorded_threads is not None and threads != recorded_threads:
+        hint = f" (it was started with --threads {recorded_threads}, this run asks for {threads})"
+    _refuse_changed_spec(grid_dir, grid_file, old_hashes, new, force, hint)
     unfinished = [p for p in plan
                   if (read_summary(cell_dir(grid_dir, p.id) / "summary.json") or {}).get("status") not in FINISHED]
     prepare_data(unfinished, echo)
@@ -400,7 +406,7 @@ def run_grid(
         old = {r["id"]: r["config_hash"] for r in index.cells()}
         changed, added, removed = _changes(old, new)
         if old and (changed or added or removed):
-            _refuse_changed_spec(grid_dir, grid_file, old, new, force)
+            _refuse_changed_spec(grid_dir, grid_file, old, new, force, hint)
             moved = _supersede(grid_dir, changed + removed, old)
             if moved:
                 echo(f"moved {len(moved)} superseded cell(s) to {grid_dir / 'superseded'}")
@@ -433,7 +439,8 @@ def run_grid(
             recorder.status()
             echo(f"grid stopped ({stop}); rerun the same command to resume")
             return 130
-        recorder.status()
+        if not jobs:
+            recorder.status()
         rows = index.cells()
 
     from harness.grid.report import write_report

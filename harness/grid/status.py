@@ -148,18 +148,27 @@ def grid_progress(grid_dir: str | Path, rows: list[dict[str, Any]] | None = None
 
 
 def lock_holder(grid_dir: Path) -> int | None:
-    """The pid recorded by the grid process that holds ``grid_dir`` (if it is alive here)."""
+    """The pid of the grid process that holds ``grid_dir`` now (None when no process holds its lock)."""
+    import fcntl
+
+    path = Path(grid_dir) / LOCK_NAME
     try:
-        pid = int((Path(grid_dir) / LOCK_NAME).read_text().split()[0])
-    except (OSError, ValueError, IndexError):
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
         return None
     try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
+        try:
+            # A shared lock is granted only when no grid process holds the exclusive one.
+            fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
+        except BlockingIOError:
+            try:
+                return int(os.read(fd, 64).split()[0])
+            except (ValueError, IndexError):
+                return -1
+        fcntl.flock(fd, fcntl.LOCK_UN)
         return None
-    except PermissionError:
-        return pid
-    return pid
+    finally:
+        os.close(fd)
 
 
 def status_text(grid_dir: str | Path) -> str:
@@ -177,5 +186,6 @@ def status_text(grid_dir: str | Path) -> str:
     if holder is None and (progress.running or progress.left):
         lines.append("  (no grid process holds this dir now: rerun the grid command to resume)")
     elif holder is not None:
-        lines.append(f"  (grid process {holder}, checked {time.strftime('%H:%M:%S')})")
+        who = f"grid process {holder}" if holder > 0 else "a grid process"
+        lines.append(f"  ({who} is running it; checked {time.strftime('%H:%M:%S')})")
     return "\n".join(lines)
