@@ -176,3 +176,28 @@ def test_status_command_prints_the_grid_line(tmp_path, capsys):
     assert capsys.readouterr().out == "grid synthetic: 2/2 done, 0 running, 0 failed, 0 left | finished\n"
     assert main(["grid", "--status", str(tmp_path / "nothing")]) == 2
     assert "no grid here" in capsys.readouterr().err
+
+
+def test_comparisons_pair_cells_at_the_same_axis_point(tmp_path):
+    # Two axis points; the variant is better at width 64 only. Pairing across points would mix them up.
+    with open_index(tmp_path) as index:
+        rows, finals = [], {}
+        for variant, by_width in {"ref": {32: (2.0, 2.1, 2.2), 64: (1.8, 1.9, 2.0)},
+                                  "var": {32: (2.01, 2.09, 2.21), 64: (1.7, 1.81, 1.9)}}.items():
+            for width, values in by_width.items():
+                for seed, value in enumerate(values):
+                    cid = f"{variant}-width{width}-seed{seed}"
+                    finals[cid] = value
+                    rows.append({"id": cid, "variant": variant, "seed": seed, "point": [["model.width", width]],
+                                 "config_hash": cid, "adjustments": {}, "planned_tokens": 100,
+                                 "flops_per_token": 1.0, "params_total": 10, "params_non_embedding": 5})
+        index.plan(rows)
+        index.set_meta({"name": "axes", "reference": "ref", "match": "none"})
+        for cid, value in finals.items():
+            index.mark_finished(cid, "done", summary={"final_val_loss": value, "tokens_per_s": 1.0, "wall_s": 1.0})
+    report = write_report(tmp_path).read_text()
+    section = report.split("## Verdicts")[1].split("## Variants")[0]
+    lines = [ln for ln in section.splitlines() if ln.startswith("| var |")]
+    assert len(lines) == 2
+    assert "| model.width=32 | 3 | +0.0033 |" in lines[0] and "no detectable difference" in lines[0]
+    assert "| model.width=64 | 3 | -0.0967 |" in lines[1] and "**better**" in lines[1]

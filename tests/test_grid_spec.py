@@ -297,3 +297,29 @@ def test_dry_run_lists_costs_and_trains_nothing(tmp_path, capsys):
         assert " 10 " in line and " 1,280 " in line  # steps, tokens = 10 x 4 x 32
     assert "model.mlp_expansion=" in out
     assert "from a measured micro-benchmark" in out and "Estimated time:" in out
+
+
+CONFIGS = Path(__file__).resolve().parent.parent / "configs" / "grids"
+
+
+@pytest.mark.parametrize("name, variants, seeds", [
+    ("default", ["global-attention", "recurrence-only", "hybrid-2r1l"], 2),
+    ("gate-ablation", ["gated", "no-gate"], 3),
+])
+def test_demo_grids_expand_and_match_parameters(name, variants, seeds):
+    spec = load_grid(CONFIGS / f"{name}.yaml")
+    assert spec.name == name and list(spec.variants) == variants and len(spec.seeds) == seeds
+    assert spec.match == "params" and spec.reference == variants[0]
+    plan = plan_cells(spec, threads=1)
+    assert len(plan) == len(variants) * seeds
+    ref = plan[0].cost.params_non_embedding
+    for p in plan:
+        assert abs(p.cost.params_non_embedding - ref) <= PARAMS_TOLERANCE * ref
+        assert p.cell.cfg.data.corpus == "plays" and p.cell.cfg.runtime.threads == 1
+    patterns = {p.cell.variant: p.cell.cfg.model.pattern for p in plan}
+    if name == "default":
+        assert patterns == {"global-attention": ("global_attention",), "recurrence-only": ("recurrence",),
+                            "hybrid-2r1l": ("recurrence", "recurrence", "local_attention")}
+    else:
+        gates = {p.cell.variant: p.cell.cfg.model.mixers["recurrence"].options.gate for p in plan}
+        assert gates == {"gated": True, "no-gate": False}

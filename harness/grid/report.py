@@ -16,6 +16,7 @@ import dataclasses
 import html
 import io
 import math
+import re
 from pathlib import Path
 from typing import Any
 
@@ -313,8 +314,6 @@ class Doc:
 
 def _inline_html(text: str) -> str:
     """Escape, then turn Markdown's **bold** and `code` into tags (the only inline marks we write)."""
-    import re
-
     s = html.escape(text)
     s = re.sub(r"\*\*(.+?)\*\*", r"<b>\1</b>", s)
     return re.sub(r"`(.+?)`", r"<code>\1</code>", s)

@@ -46,7 +46,6 @@ class GridSpec:
 
     name: str
     description: str
-    source: Path | None  # the grid file, when read from one
     text: str  # the grid file's text (copied into the grid dir)
     base: dict[str, Any]  # the base config as a plain dict, ``extends:`` resolved
     variants: dict[str, dict[str, Any]]  # name -> {dotted key: value}; {BASE_VARIANT: {}} if none
@@ -85,7 +84,7 @@ def load_grid(path: str | Path) -> GridSpec:
         raise UserError(f"{path}: is a folder; expected a grid YAML file")
     data = read_yaml(path)
     text = path.read_text()
-    return parse_grid(data, base_dir=path.resolve().parent, default_name=path.stem, text=text, source=path)
+    return parse_grid(data, base_dir=path.resolve().parent, default_name=path.stem, text=text)
 
 
 def parse_grid(
@@ -94,7 +93,6 @@ def parse_grid(
     base_dir: Path,
     default_name: str = "grid",
     text: str | None = None,
-    source: Path | None = None,
 ) -> GridSpec:
     """Validate a grid mapping (the parsed YAML); relative paths resolve against ``base_dir``."""
     unknown = sorted(set(data) - set(GRID_KEYS))
@@ -123,7 +121,6 @@ def parse_grid(
     spec = GridSpec(
         name=name,
         description=description.strip(),
-        source=source,
         text=text if text is not None else json.dumps(data, indent=2, default=str),
         base=base,
         variants=variants,
