@@ -166,10 +166,21 @@ def _add_bench(sub: argparse._SubParsersAction) -> None:
                    help="also train fp32 and bf16 for --quality-steps and compare the val loss")
     p.add_argument("--quality-steps", type=int, default=300, help="steps of the --quality runs (default 300)")
     p.add_argument("--json", default=None, metavar="PATH", help="also write every figure as JSON here")
+    p.add_argument("--decode", action="store_true",
+                   help="instead: decode tokens/s and state bytes of the step path vs context, batch 1 and 64 "
+                        "(harness/bench_decode.py; with --json, also a PNG beside it)")
     p.set_defaults(func=_cmd_bench)
 
 
 def _cmd_bench(args: argparse.Namespace) -> int:
+    if args.decode:
+        from pathlib import Path
+
+        from harness.bench_decode import bench_decode_command
+
+        plot = None if args.json is None else str(Path(args.json).with_suffix(".png"))
+        print(bench_decode_command(json_path=args.json, plot_path=plot))
+        return 0
     from harness.bench import bench_command
 
     print(bench_command(steps=args.steps, warmup=args.warmup, rounds=args.rounds, profile=args.profile,
