@@ -236,7 +236,7 @@ class BenchCase:
         return self.seq_len * self.batch
 
 
-def harness_config(case: BenchCase, steps: int, cache_dir: str | Path, **train: Any) -> Any:
+def harness_config(case: BenchCase, steps: int, cache_dir: str | Path, threads: int = 0, **train: Any) -> Any:
     """The harness ``Config`` of ``case``: pydoc bytes, evaluation and checkpoint only at the end."""
     from harness.config import config_from_dict
 
@@ -249,7 +249,7 @@ def harness_config(case: BenchCase, steps: int, cache_dir: str | Path, **train: 
         "data": {"corpus": "pydoc", "tokenizer": "bytes", "seq_len": case.seq_len, "cache_dir": str(cache_dir)},
         "train": {"steps": steps, "batch_size": case.batch, "eval_every": steps, "checkpoint_every": steps,
                   "eval_windows": 2, "log_every": 10, **train},
-        "runtime": {"precision": case.precision},
+        "runtime": {"precision": case.precision, "threads": threads},
     })
 
 
@@ -266,12 +266,13 @@ def loop_tokens_per_s(metrics: list[dict[str, Any]], warmup: int) -> float:
     return (last["tokens"] - first["tokens"]) / (last["wall_s"] - first["wall_s"])
 
 
-def harness_run(case: BenchCase, steps: int, warmup: int, cache_dir: Path, **train: Any) -> dict[str, Any]:
+def harness_run(case: BenchCase, steps: int, warmup: int, cache_dir: Path, threads: int = 0,
+                **train: Any) -> dict[str, Any]:
     """Train ``case`` with ``harness.train.run_training`` in a temp run dir; its loop tokens/s and summary."""
     from harness.train import run_training
     from harness.train.records import read_metrics
 
-    cfg = harness_config(case, steps, cache_dir, **train)
+    cfg = harness_config(case, steps, cache_dir, threads, **train)
     with tempfile.TemporaryDirectory(prefix="harness-bench-") as tmp:
         summary = run_training(cfg, Path(tmp) / "run", progress="silent")
         metrics = read_metrics(Path(tmp) / "run" / "metrics.jsonl")
@@ -426,7 +427,7 @@ def step_time_shares(events: list[Any]) -> dict[str, float]:
     return totals
 
 
-def profile_step(case: BenchCase, cache_dir: Path, warmup: int = 3) -> dict[str, Any]:
+def profile_step(case: BenchCase, cache_dir: Path, warmup: int = 3, threads: int = 0) -> dict[str, Any]:
     """One ``harness.train.train_step`` of ``case`` under torch.profiler: ms and share per bucket."""
     from torch.profiler import ProfilerActivity, profile
 
@@ -436,7 +437,7 @@ def profile_step(case: BenchCase, cache_dir: Path, warmup: int = 3) -> dict[str,
     from harness.train.optim import build_optimizer, build_scheduler
     from harness.train.runtime import resolve_runtime
 
-    cfg = harness_config(case, 100, cache_dir)
+    cfg = harness_config(case, 100, cache_dir, threads)
     runtime, _ = resolve_runtime(cfg.runtime)
     data = load_data(cfg)
     torch.manual_seed(0)
@@ -487,7 +488,7 @@ CASES = (
 PLAIN_TWINS = {"attention-fp32": "plain-fp32", "attention-bf16": "plain-bf16"}
 
 
-def _round(cases: tuple[BenchCase, ...], steps: int, warmup: int, cache_dir: Path,
+def _round(cases: tuple[BenchCase, ...], steps: int, warmup: int, cache_dir: Path, threads: int,
            log: Callable[[str], None]) -> tuple[dict[str, float], dict[str, Any]]:
     """One pass over the plain loop and every case: tokens/s by name, and the harness summaries."""
     speeds: dict[str, float] = {}
@@ -499,7 +500,7 @@ def _round(cases: tuple[BenchCase, ...], steps: int, warmup: int, cache_dir: Pat
             speeds[twin] = plain_tokens_per_s(shape, case.batch, case.seq_len, steps - warmup, warmup,
                                               bf16=case.precision == "bf16")
             log(f"  {twin:<24} {speeds[twin]:>9.0f} tokens/s")
-        run = harness_run(case, steps, warmup, cache_dir)
+        run = harness_run(case, steps, warmup, cache_dir, threads)
         speeds[case.name] = run["tokens_per_s"]
         summaries[case.name] = run
         log(f"  {case.name:<24} {speeds[case.name]:>9.0f} tokens/s")
@@ -528,12 +529,25 @@ def machine_facts() -> dict[str, Any]:
 def run_bench(steps: int = 30, warmup: int = 10, rounds: int = 2, profile: bool = True,
               cases: tuple[BenchCase, ...] = CASES, log: Callable[[str], None] = print,
               gemm_n: int = 1024, copy_bytes: int = 256 * 2**20,
-              scan_shape: tuple[int, int, int] = (16, 256, 256)) -> dict[str, Any]:
+              scan_shape: tuple[int, int, int] = (16, 256, 256), threads: int = 0) -> dict[str, Any]:
     """Measure peaks, every case (``rounds`` times, interleaved with the plain loop), the scan and a profile.
 
     ``gemm_n``, ``copy_bytes`` and ``scan_shape`` size the peak and scan measurements (the tests
-    shrink them).
+    shrink them). ``threads`` (0 = every core) applies to everything measured, both loops alike.
     """
+    import os
+
+    threads_before = torch.get_num_threads()
+    torch.set_num_threads(threads or os.cpu_count() or 1)
+    try:
+        return _run_bench(steps, warmup, rounds, profile, cases, log, gemm_n, copy_bytes, scan_shape, threads)
+    finally:
+        torch.set_num_threads(threads_before)
+
+
+def _run_bench(steps: int, warmup: int, rounds: int, profile: bool, cases: tuple[BenchCase, ...],
+               log: Callable[[str], None], gemm_n: int, copy_bytes: int, scan_shape: tuple[int, int, int],
+               threads: int) -> dict[str, Any]:
     from harness.data import load_data
 
     result: dict[str, Any] = {"machine": machine_facts(), "steps": steps, "warmup": warmup, "rounds": rounds}
@@ -546,7 +560,7 @@ def run_bench(steps: int = 30, warmup: int = 10, rounds: int = 2, profile: bool 
         per_round, runs = [], {}
         for i in range(rounds):
             log(f"round {i + 1}/{rounds}:")
-            speeds, runs = _round(cases, steps, warmup, cache_dir, log)
+            speeds, runs = _round(cases, steps, warmup, cache_dir, threads, log)
             per_round.append(speeds)
         vocab = load_data(runs[cases[0].name]["config"]).vocab_size
         result["configs"] = _config_rows(cases, per_round, runs, result["peaks"], vocab)
@@ -559,7 +573,7 @@ def run_bench(steps: int = 30, warmup: int = 10, rounds: int = 2, profile: bool 
             for case in cases:
                 if case.seq_len == shortest and case.precision == "fp32":
                     log(f"profile {case.name} ...")
-                    result["profile"][case.name] = profile_step(case, cache_dir)
+                    result["profile"][case.name] = profile_step(case, cache_dir, threads=threads)
     result["ratios"] = {
         "harness_over_plain_fp32": _ratio(per_round, "attention-fp32", "plain-fp32"),
         "harness_over_plain_bf16": _ratio(per_round, "attention-bf16", "plain-bf16"),
@@ -589,6 +603,8 @@ def _config_rows(cases: tuple[BenchCase, ...], per_round: list[dict[str, float]]
                "tokens_per_s": tokens_per_s, "flops_per_token": flops, "gflops": gflops, "mfu": gflops / peak}
         if name not in plain:
             summary = runs[name]["summary"]
+            # The trainer's own figure times train_step alone: the gap to tokens_per_s is loop overhead.
+            row["step_tokens_per_s"] = summary.get("tokens_per_s")
             row["peak_rss_bytes"] = summary.get("peak_rss_bytes")
             row["scan_backend"] = runs[name]["summary"].get("scan_backend")
         rows.append(row)
@@ -612,7 +628,7 @@ def speed_targets(result: dict[str, Any]) -> list[Target]:
 # ----------------------------------------------------------------------------- bf16 quality
 
 
-def run_quality(steps: int = 300, log: Callable[[str], None] = print) -> dict[str, Any]:
+def run_quality(steps: int = 300, log: Callable[[str], None] = print, threads: int = 0) -> dict[str, Any]:
     """Final validation loss of the global-attention case after ``steps`` steps in fp32 and in bf16.
 
     Same seed, same batches, 32 validation windows; target: |bf16 - fp32| <= 1% of fp32.
@@ -621,7 +637,7 @@ def run_quality(steps: int = 300, log: Callable[[str], None] = print) -> dict[st
     with tempfile.TemporaryDirectory(prefix="harness-bench-cache-") as cache:
         for precision in ("fp32", "bf16"):
             case = BenchCase(f"quality-{precision}", "global_attention", 256, 16, precision)
-            run = harness_run(case, steps, 10, Path(cache), eval_windows=32, eval_every=steps)
+            run = harness_run(case, steps, 10, Path(cache), threads, eval_windows=32, eval_every=steps)
             out[precision] = {"final_val_loss": run["summary"]["final_val_loss"], "tokens_per_s": run["tokens_per_s"]}
             log(f"  {precision}: val loss {out[precision]['final_val_loss']:.4f}, {run['tokens_per_s']:.0f} tokens/s")
     fp32, bf16 = out["fp32"]["final_val_loss"], out["bf16"]["final_val_loss"]
@@ -696,7 +712,8 @@ def format_report(result: dict[str, Any]) -> str:
 
 
 def bench_command(*, steps: int = 30, warmup: int = 10, rounds: int = 2, profile: bool = True,
-                  quality: bool = False, quality_steps: int = 300, json_path: str | None = None) -> str:
+                  quality: bool = False, quality_steps: int = 300, json_path: str | None = None,
+                  threads: int = 0) -> str:
     """``harness bench``: run the benchmark (and the bf16 quality check), write JSON, return the report."""
     from harness.errors import UserError
 
@@ -705,11 +722,13 @@ def bench_command(*, steps: int = 30, warmup: int = 10, rounds: int = 2, profile
                         "(tokens/s is read between log lines, every 10 steps)")
     if json_path is not None and Path(json_path).is_dir():
         raise UserError(f"--json {json_path}: is a directory; give a file path")
-    result = run_bench(steps=steps, warmup=warmup, rounds=rounds, profile=profile,
+    if threads < 0:
+        raise UserError(f"--threads {threads}: must be >= 0 (0 = every core)")
+    result = run_bench(steps=steps, warmup=warmup, rounds=rounds, profile=profile, threads=threads,
                        log=lambda s: print(s, flush=True))
     if quality:
         print("bf16 quality ...", flush=True)
-        result["quality"] = run_quality(quality_steps)
+        result["quality"] = run_quality(quality_steps, threads=threads)
     if json_path is not None:
         Path(json_path).write_text(json.dumps(result, indent=2, default=str) + "\n")
     return format_report(result)

@@ -161,6 +161,8 @@ def _add_bench(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--steps", type=int, default=30, help="training steps per timed run (default 30)")
     p.add_argument("--warmup", type=int, default=10, help="untimed steps at the start of each run (default 10)")
     p.add_argument("--rounds", type=int, default=2, help="interleaved repetitions; ratios are their median")
+    p.add_argument("--threads", type=int, default=0,
+                   help="torch threads for every measurement, both loops alike (default 0 = every core)")
     p.add_argument("--no-profile", dest="profile", action="store_false", help="skip the torch.profiler step")
     p.add_argument("--quality", action="store_true",
                    help="also train fp32 and bf16 for --quality-steps and compare the val loss")
@@ -184,7 +186,8 @@ def _cmd_bench(args: argparse.Namespace) -> int:
     from harness.bench import bench_command
 
     print(bench_command(steps=args.steps, warmup=args.warmup, rounds=args.rounds, profile=args.profile,
-                        quality=args.quality, quality_steps=args.quality_steps, json_path=args.json))
+                        quality=args.quality, quality_steps=args.quality_steps, json_path=args.json,
+                        threads=args.threads))
     return 0
 
 

@@ -8,8 +8,10 @@ tokenizer (and BPE vocab size), the split fractions, text field, error mode and 
 Preparation is safe under concurrency: an exclusive ``fcntl.flock`` on ``<key>.lock``, the build
 in a temporary sibling folder, the manifest written last, then one atomic ``rename``. A folder
 that exists under its final name is therefore complete; a crashed build leaves only a temporary
-folder, removed by the next preparer. Memory stays bounded: documents are read one at a time,
-encoded in pieces and appended to the split files; training then reads the files as memmaps.
+folder, removed by the next preparer. Memory stays bounded: documents are read one at a time (a
+large ``.txt`` file one chunk at a time, see ``sources.TextFile``), then measured, split and encoded
+in pieces without ever being joined into one string, and appended to the split files; training
+then reads the files as memmaps.
 """
 
 from __future__ import annotations
@@ -19,7 +21,9 @@ import contextlib
 import dataclasses
 import fcntl
 import hashlib
+import itertools
 import json
+import operator
 import os
 import shutil
 import socket
@@ -32,14 +36,14 @@ from typing import Any
 
 import numpy as np
 
-from harness.data.sources import Corpus
+from harness.data.sources import Corpus, Document, document_chunks
 from harness.data.tokenizers import (
     Tokenizer,
     build_tokenizer,
     load_tokenizer,
     save_tokenizer,
     storage_dtype,
-    text_pieces,
+    stream_pieces,
 )
 from harness.errors import ConfigError, UserError
 
@@ -132,24 +136,38 @@ def plan_split(lengths: np.ndarray, val_fraction: float, test_fraction: float) -
     return SplitPlan("text", np.full(n, -1, dtype=np.int8), (c1, c2))
 
 
-def split_texts(documents: Iterator[str], plan: SplitPlan) -> Iterator[tuple[int, str]]:
-    """(split id, text) in corpus order: whole documents, or the pieces of each that fall in
-    each character range (text mode)."""
-    offset = 0
+def split_texts(documents: Iterator[Document], plan: SplitPlan) -> Iterator[tuple[int, Iterator[str]]]:
+    """(split id, the text's chunks) in corpus order: whole documents, or the part of each that falls
+    in each character range (text mode), cut across chunks without joining them.
+
+    As with ``itertools.groupby``, a part's chunks are read lazily from the document: consume (or
+    skip) each part before asking for the next.
+    """
     bounds = (0, plan.cuts[0], plan.cuts[1], None)
+    passed = [0]  # characters of the corpus before the current chunk (text mode)
     for i, doc in enumerate(documents):
         if i >= len(plan.doc_split):
             raise UserError("data.corpus: the corpus changed while it was being prepared (more documents)")
         if plan.mode == "documents":
-            yield int(plan.doc_split[i]), doc
+            yield int(plan.doc_split[i]), document_chunks(doc)
             continue
+        ranges = _chunks_by_range(document_chunks(doc), bounds, passed)
+        for split_id, group in itertools.groupby(ranges, key=operator.itemgetter(0)):
+            yield split_id, (text for _, text in group)
+
+
+def _chunks_by_range(chunks: Iterator[str], bounds: tuple, passed: list[int]) -> Iterator[tuple[int, str]]:
+    """(split id, the part of a chunk in that split's range [bounds[id], bounds[id + 1])) for each
+    chunk; advances ``passed[0]`` by every chunk's length."""
+    for chunk in chunks:
+        offset = passed[0]
         for split_id in range(3):
             lo, hi = bounds[split_id], bounds[split_id + 1]
             a = max(lo - offset, 0)
-            b = len(doc) if hi is None else min(hi - offset, len(doc))
+            b = len(chunk) if hi is None else min(hi - offset, len(chunk))
             if b > a:
-                yield split_id, doc[a:b]
-        offset += len(doc)
+                yield split_id, chunk[a:b]
+        passed[0] = offset + len(chunk)
 
 
 # ----------------------------------------------------------------------------- prepared cache
@@ -212,7 +230,7 @@ def prepare(corpus: Corpus, spec: CacheSpec, root: Path) -> PreparedCorpus:
 def document_lengths(corpus: Corpus) -> np.ndarray:
     lengths = array.array("q")
     for doc in corpus.documents():
-        lengths.append(len(doc))
+        lengths.append(sum(len(chunk) for chunk in document_chunks(doc)))
     return np.frombuffer(lengths, dtype=np.int64) if len(lengths) else np.zeros(0, dtype=np.int64)
 
 
@@ -226,17 +244,19 @@ def build(corpus: Corpus, spec: CacheSpec, folder: Path) -> None:
     if len(lengths) == 0 or lengths.sum() == 0:
         raise UserError(f"data.corpus: {corpus.name}: the corpus is empty ({len(lengths)} documents, no text)")
     plan = plan_split(lengths, spec.val_fraction, spec.test_fraction)
-    train_texts = (text for split_id, text in split_texts(corpus.documents(), plan) if split_id == 0)
-    tok = build_tokenizer(spec.tokenizer, train_texts, spec.bpe_vocab)
+    # The training text as the very pieces the encoder sees below: bpe is trained on exactly those.
+    train_pieces = (piece for split_id, part in split_texts(corpus.documents(), plan) if split_id == 0
+                    for piece in stream_pieces(part))
+    tok = build_tokenizer(spec.tokenizer, train_pieces, spec.bpe_vocab)
     dtype = storage_dtype(tok.vocab_size)
     counts = dict.fromkeys(SPLITS, 0)
     docs = dict.fromkeys(SPLITS, 0)
     files = {name: open(folder / f"{name}.bin", "wb") for name in SPLITS}  # noqa: SIM115 - closed below
     try:
-        for split_id, text in split_texts(corpus.documents(), plan):
+        for split_id, part in split_texts(corpus.documents(), plan):
             name = SPLITS[split_id]
             docs[name] += 1
-            for piece in text_pieces(text):
+            for piece in stream_pieces(part):
                 ids = tok.encode(piece)
                 if ids.size and int(ids.max()) >= tok.vocab_size:
                     raise RuntimeError(f"tokenizer produced id {int(ids.max())} >= vocab {tok.vocab_size}")

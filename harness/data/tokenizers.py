@@ -4,7 +4,8 @@ characters plus an unknown id) and ``bpe`` (byte-level BPE trained with the ``to
 Every tokenizer round-trips the text it was built from: bytes and byte-level BPE round-trip any
 string, chars any string made of its characters. ``encode`` returns an ``np.ndarray`` of int64.
 Long texts are encoded in pieces (:func:`text_pieces`) cut where no tokenizer here merges across
-the cut, so piecewise encoding equals encoding the whole text (bar a hard cut, see there).
+the cut, so piecewise encoding equals encoding the whole text (bar a hard cut, see there). A text
+that arrives in chunks is cut into the very same pieces by :func:`stream_pieces`.
 """
 
 from __future__ import annotations
@@ -46,19 +47,52 @@ def text_pieces(text: str, max_chars: int = PIECE_CHARS) -> Iterator[str]:
     """
     start, n = 0, len(text)
     while n - start > max_chars:
-        hi = start + max_chars
-        cut = -1
-        for lo in (max(start + 1, hi - 4096), start + 1):  # look near the end first: usually enough
-            found = [m.start() for m in _CLEAN_CUT.finditer(text, lo, hi + 2) if start < m.start() <= hi]
-            if found:
-                cut = found[-1]
-                break
-        if cut < 0:
-            cut = hi
+        cut = _next_cut(text, start, max_chars)
         yield text[start:cut]
         start = cut
     if start < n or n == 0:
         yield text[start:]
+
+
+def _next_cut(text: str, start: int, max_chars: int) -> int:
+    """The last clean cut in ``(start, start + max_chars]``, else the hard cut ``start + max_chars``.
+
+    It reads only ``text[start - 1 : start + max_chars + 2]`` (the cut pattern looks at most two
+    characters behind and one ahead), which is what lets :func:`stream_pieces` cut a chunked text alike.
+    """
+    hi = start + max_chars
+    for lo in (max(start + 1, hi - 4096), start + 1):  # look near the end first: usually enough
+        found = [m.start() for m in _CLEAN_CUT.finditer(text, lo, hi + 2) if start < m.start() <= hi]
+        if found:
+            return found[-1]
+    return hi
+
+
+def stream_pieces(chunks: Iterable[str], max_chars: int = PIECE_CHARS) -> Iterator[str]:
+    """``text_pieces("".join(chunks), max_chars)`` without joining: the same pieces, holding about one
+    chunk plus one piece.
+
+    Where a chunk ends is never a cut by itself: the text after the last cut is carried over to the
+    next chunk, and a cut is only decided once the buffer holds all that :func:`_next_cut` reads (one
+    character before the piece, two past ``max_chars``), so the chunking cannot change a single id.
+    """
+    buf, start = "", 0  # buf[start:] is not yet yielded; buf[start - 1] is kept as look-behind context
+    for chunk in chunks:
+        if not chunk:
+            continue
+        keep = max(start - 1, 0)
+        tail, buf = buf[keep:], ""  # drop the old buffer before the new one is built: one chunk less held
+        buf, start = tail + chunk, start - keep
+        while len(buf) - start >= max_chars + 2:
+            cut = _next_cut(buf, start, max_chars)
+            yield buf[start:cut]
+            start = cut
+    while len(buf) - start > max_chars:  # the end of the text is known now: the rule of text_pieces
+        cut = _next_cut(buf, start, max_chars)
+        yield buf[start:cut]
+        start = cut
+    if start < len(buf) or not buf:
+        yield buf[start:]
 
 
 def _as_ids(ids: Iterable[int]) -> np.ndarray:
