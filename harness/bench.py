@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import itertools
 import json
 import math
 import platform
@@ -210,10 +211,15 @@ def plain_step_seconds(shape: PlainShape, batch: int, seq_len: int, steps: int, 
 
 
 def plain_tokens_per_s(shape: PlainShape, batch: int, seq_len: int, steps: int, warmup: int,
-                       bf16: bool = False) -> float:
-    """Tokens per second of the reference loop over its timed steps."""
+                       bf16: bool = False, window: int = 10) -> float:
+    """Tokens per second of the reference loop: the best window of ``window`` timed steps.
+
+    Windows of 10 steps match the harness side, whose loop clock is read at every 10th step.
+    """
     times = plain_step_seconds(shape, batch, seq_len, steps, warmup, bf16=bf16)
-    return batch * seq_len * len(times) / sum(times)
+    sums = [sum(times[i:i + window]) for i in range(0, len(times) - window + 1, window)] or [sum(times)]
+    used = min(window, len(times))
+    return batch * seq_len * used / min(sums)
 
 
 # ----------------------------------------------------------------------------- harness side
@@ -254,16 +260,16 @@ def harness_config(case: BenchCase, steps: int, cache_dir: str | Path, threads: 
 
 
 def loop_tokens_per_s(metrics: list[dict[str, Any]], warmup: int) -> float:
-    """Tokens/s of the whole training loop between the first train line at step >= ``warmup`` and the last.
+    """Tokens/s of the whole training loop: the best window between consecutive train lines at step >= ``warmup``.
 
     Uses the lines' ``wall_s`` (the loop's own clock) rather than the logged ``tokens_per_s``,
     which times the step function alone: this way batching, logging and RSS probes count too.
+    The best window (the least disturbed by other processes) is taken, as for the plain loop.
     """
     lines = [m for m in metrics if m.get("split") == "train" and m["step"] >= warmup]
     if len(lines) < 2:
         raise ValueError(f"need two train lines at step >= {warmup}; raise --steps")
-    first, last = lines[0], lines[-1]
-    return (last["tokens"] - first["tokens"]) / (last["wall_s"] - first["wall_s"])
+    return max((b["tokens"] - a["tokens"]) / (b["wall_s"] - a["wall_s"]) for a, b in itertools.pairwise(lines))
 
 
 def harness_run(case: BenchCase, steps: int, warmup: int, cache_dir: Path, threads: int = 0,
@@ -551,17 +557,19 @@ def _run_bench(steps: int, warmup: int, rounds: int, profile: bool, cases: tuple
     from harness.data import load_data
 
     result: dict[str, Any] = {"machine": machine_facts(), "steps": steps, "warmup": warmup, "rounds": rounds}
-    log(f"peaks ({result['machine']['threads']} threads) ...")
-    result["peaks"] = {"gemm_fp32_gflops": gemm_gflops(torch.float32, gemm_n),
-                       "gemm_bf16_gflops": gemm_gflops(torch.bfloat16, gemm_n),
-                       "copy_gbytes_per_s": copy_gbytes_per_s(copy_bytes)}
     with tempfile.TemporaryDirectory(prefix="harness-bench-cache-") as cache:
         cache_dir = Path(cache)
-        per_round, runs = [], {}
+        per_round, peaks, runs = [], [], {}
         for i in range(rounds):
-            log(f"round {i + 1}/{rounds}:")
+            log(f"round {i + 1}/{rounds}: peaks ({result['machine']['threads']} threads) ...")
+            peaks.append({"gemm_fp32_gflops": gemm_gflops(torch.float32, gemm_n),
+                          "gemm_bf16_gflops": gemm_gflops(torch.bfloat16, gemm_n),
+                          "copy_gbytes_per_s": copy_gbytes_per_s(copy_bytes)})
             speeds, runs = _round(cases, steps, warmup, cache_dir, threads, log)
             per_round.append(speeds)
+        # A peak is a ceiling: the best round's measurement is the least disturbed one.
+        result["peaks"] = {key: max(p[key] for p in peaks) for key in peaks[0]}
+        result["peaks_per_round"] = peaks
         vocab = load_data(runs[cases[0].name]["config"]).vocab_size
         result["configs"] = _config_rows(cases, per_round, runs, result["peaks"], vocab)
         result["per_round"] = per_round

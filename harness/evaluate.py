@@ -5,8 +5,14 @@ A model trained on windows of ``seq_len`` tokens is evaluated on validation wind
 the table shows *where* a model breaks: a model that extrapolates keeps the late buckets at or
 below the early ones (more context can only help an ideal predictor); one that does not sees its
 loss rise past position ``seq_len``. RoPE attention without a window is the classic failure
-(Press et al. 2022, "Train Short, Test Long", fig. 1); recurrences and local attention are
-expected to hold.
+(Press et al. 2022, "Train Short, Test Long", fig. 1, from memory); recurrences and local
+attention are expected to hold.
+
+Each length uses the trainer's rule for placing validation windows (same seed and count), so at
+1x the windows are exactly those of the run's val loss; at other lengths they are other slices
+of the validation split, so totals across lengths differ by sampling as well. The buckets within
+one length compare positions on the same text. ``harness eval`` writes the rows to
+``RUN_DIR/eval.json`` (kept per length while the checkpoint and config stay the same).
 """
 
 from __future__ import annotations

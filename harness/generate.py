@@ -74,7 +74,6 @@ def generate(
     if seed is not None:
         generator = torch.Generator(device=prompt.device)
         generator.manual_seed(seed)
-    model.eval()
     states = model.init_state(prompt.shape[0], device=prompt.device)
     logits, states = prefill(model, prompt, states)
     all_logits = [logits]

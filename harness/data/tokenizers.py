@@ -69,30 +69,46 @@ def _next_cut(text: str, start: int, max_chars: int) -> int:
 
 
 def stream_pieces(chunks: Iterable[str], max_chars: int = PIECE_CHARS) -> Iterator[str]:
-    """``text_pieces("".join(chunks), max_chars)`` without joining: the same pieces, holding about one
-    chunk plus one piece.
+    """``text_pieces("".join(chunks), max_chars)`` without joining the whole: the same pieces, holding
+    about one chunk plus one piece.
 
     Where a chunk ends is never a cut by itself: the text after the last cut is carried over to the
-    next chunk, and a cut is only decided once the buffer holds all that :func:`_next_cut` reads (one
-    character before the piece, two past ``max_chars``), so the chunking cannot change a single id.
+    next chunks, and a cut is only decided once the buffer holds all that :func:`_next_cut` reads
+    (one character before the piece, two past ``max_chars``), so the chunking cannot change an id.
+    Small chunks are gathered until they add a piece's worth, so each character is copied O(1) times.
     """
     buf, start = "", 0  # buf[start:] is not yet yielded; buf[start - 1] is kept as look-behind context
+    pending: list[str] = []
+    pending_chars = 0
     for chunk in chunks:
-        if not chunk:
+        pending.append(chunk)
+        pending_chars += len(chunk)
+        if pending_chars < max_chars + 2:
             continue
-        keep = max(start - 1, 0)
-        tail, buf = buf[keep:], ""  # drop the old buffer before the new one is built: one chunk less held
-        buf, start = tail + chunk, start - keep
+        carried, start = _carry(buf, start)
+        buf = ""  # drop the old buffer before the new one is built: one chunk less held at a time
+        buf, pending, pending_chars = "".join(carried + pending), [], 0
         while len(buf) - start >= max_chars + 2:
             cut = _next_cut(buf, start, max_chars)
             yield buf[start:cut]
             start = cut
+    carried, start = _carry(buf, start)
+    buf = "".join(carried + pending)
     while len(buf) - start > max_chars:  # the end of the text is known now: the rule of text_pieces
         cut = _next_cut(buf, start, max_chars)
         yield buf[start:cut]
         start = cut
     if start < len(buf) or not buf:
         yield buf[start:]
+
+
+def _carry(buf: str, start: int) -> tuple[list[str], int]:
+    """What of ``buf`` to keep (from ``start - 1`` on; [] if nothing) and where ``start`` lies in it.
+
+    A list, so that ``"".join`` of a single string returns it as is: a one-string document is never copied.
+    """
+    keep = max(start - 1, 0)
+    return ([buf[keep:]] if len(buf) > keep else []), start - keep
 
 
 def _as_ids(ids: Iterable[int]) -> np.ndarray:
