@@ -50,9 +50,9 @@ class ProbeSet:
     batches: list[Batch]
 
 
-def _check_vocab(need: int, vocab_size: int, key: str, what: str) -> None:
+def _check_vocab(need: int, vocab_size: int, key: str, what: str, hint: str = "") -> None:
     if need > vocab_size:
-        raise ConfigError(key, f"{what} needs {need} token ids but the model has a vocabulary of {vocab_size}")
+        raise ConfigError(key, f"{what} needs {need} token ids but the model has a vocabulary of {vocab_size}{hint}")
 
 
 def mqar_probe_sets(cfg: Any, vocab_size: int) -> list[ProbeSet]:
@@ -62,7 +62,8 @@ def mqar_probe_sets(cfg: Any, vocab_size: int) -> list[ProbeSet]:
     task = TASKS["mqar"]
     base = cfg.data.task
     _check_vocab(task.vocab_size(base), vocab_size, "eval.probes",
-                 f"mqar with data.task.num_keys {base.num_keys} and num_values {base.num_values}")
+                 f"mqar with data.task.num_keys {base.num_keys} and num_values {base.num_values}",
+                 "; lower data.task.num_keys / num_values")
     sets = []
     for i, pairs in enumerate(cfg.eval.probe_pairs):
         if pairs > base.num_keys:

@@ -212,6 +212,22 @@ def test_huge_config_warns_with_estimate_and_suggestions():
     assert memory_warning(cfg, 256, available_bytes=2**60) is None
 
 
+def test_trainer_warns_before_training_when_activations_will_not_fit(tmp_path, monkeypatch, capsys):
+    # The machine is made to look tiny (64 KiB available) instead of building a huge config.
+    import harness.memory_estimate as me
+    from harness.train import run_training
+
+    monkeypatch.setattr(me, "available_memory_bytes", lambda: 2**16)
+    cfg = config_from_dict({"model": {"width": 32, "depth": 1}, "data": {"seq_len": 32, "cache_dir": str(tmp_path)},
+                            "train": {"steps": 1, "batch_size": 4, "eval_windows": 2}})
+    run_training(cfg, tmp_path / "run", progress="silent")
+    err = capsys.readouterr().err
+    warning = next(line for line in err.splitlines() if "estimated activation memory" in line)
+    assert warning.startswith("warning: ") and "0.00 GiB of memory available" in warning
+    assert err.index("estimated activation memory") < err.index("training ")  # before the first step
+    assert me.memory_warning(cfg, 256, available_bytes=2**40) is None
+
+
 def test_warning_suggests_a_batch_that_fits():
     cfg = config_from_dict({"model": {"width": 64, "depth": 2}, "data": {"seq_len": 128},
                             "train": {"batch_size": 32}})

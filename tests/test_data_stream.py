@@ -152,9 +152,10 @@ def cache_contents(data) -> dict:
 @pytest.fixture(scope="module")
 def big_text() -> str:
     """About 3 MB: words of 1- to 4-byte characters, and one stretch of 1.1 M characters without a
-    space or newline, so that the 1 M-character pieces need a hard cut."""
+    space or newline, so that the 1 M-character pieces need a hard cut. The stretch mixes letters and
+    digits: short pre-tokens keep BPE fast, and a hard cut elsewhere would split some of them."""
     rng = np.random.default_rng(7)
-    run = "".join(np.array(list("abcdefgé漢"))[rng.integers(9, size=1_100_000)].tolist())
+    run = "".join(np.array(list("abcdefgé漢123"))[rng.integers(12, size=1_100_000)].tolist())
     text = generated_text(250_000, seed=4) + run + generated_text(150_000, seed=5)
     assert PIECE_CHARS in {len(p) for p in text_pieces(text)}  # a hard cut, inside the run
     return text

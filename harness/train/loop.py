@@ -274,6 +274,9 @@ def run_training(
     torch.set_num_threads(runtime.threads)
     try:
         s = _build(cfg, cfg_hash, runtime)
+        from harness.memory_estimate import warn_if_too_large  # activations that will not fit: say so first
+
+        warn_if_too_large(cfg, s.data.vocab_size, lambda m: show.message(f"warning: {m}"))
         from harness.probes import make_eval_hook  # eval.probes; builds (and checks) the probes before training
 
         probes = make_eval_hook(cfg, s.data)
