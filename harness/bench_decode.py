@@ -19,6 +19,7 @@ import dataclasses
 import json
 import statistics
 import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -156,8 +157,8 @@ def plot_rows(rows: list[dict[str, Any]], path: Path) -> None:
 
 def decode_bench(*, models: list[str] | None = None, contexts: list[int] | None = None,
                  batches: list[int] | None = None, reps: int = 8, max_state_mib: float = 512.0,
-                 overrides: list[str] | None = None) -> list[dict[str, Any]]:
-    """Rows of the decode benchmark (see the module docstring)."""
+                 overrides: list[str] | None = None, echo: Callable[[str], None] | None = None) -> list[dict[str, Any]]:
+    """Rows of the decode benchmark (see the module docstring); ``echo`` gets a line per model."""
     names = models or list(MODELS)
     for name in names:
         if name not in MODELS:
@@ -169,6 +170,8 @@ def decode_bench(*, models: list[str] | None = None, contexts: list[int] | None 
     for name in names:
         preset, extra = MODELS[name]
         cfg = load_config(REPO / "configs" / preset, [*extra, *(overrides or [])])
+        if echo:
+            echo(f"{name}: prefilling {max(contexts)} tokens by stepping, then timing")
         rows += bench_model(name, cfg, contexts, batches or [1, 64], reps, int(max_state_mib * 2**20))
     return rows
 
@@ -176,16 +179,24 @@ def decode_bench(*, models: list[str] | None = None, contexts: list[int] | None 
 def bench_decode_command(*, models: list[str] | None = None, contexts: list[int] | None = None,
                          batches: list[int] | None = None, reps: int = 8, max_state_mib: float = 512.0,
                          json_path: str | None = None, plot_path: str | None = None,
-                         overrides: list[str] | None = None) -> str:
-    """Run the decode benchmark; the table as text (and JSON / PNG files when paths are given)."""
-    rows = decode_bench(models=models, contexts=contexts, batches=batches, reps=reps, max_state_mib=max_state_mib,
-                        overrides=overrides)
-    text = (f"decode: median of {reps} steps from the same state, {torch.get_num_threads()} threads\n"
-            + format_rows(rows))
+                         overrides: list[str] | None = None, echo: Callable[[str], None] | None = None,
+                         threads: int = 1) -> str:
+    """Run the decode benchmark on ``threads`` torch threads (0: torch's default); the table as text
+    (and JSON / PNG files when paths are given). One thread by default: a decode step is too small
+    to share, and on a busy machine more threads mostly wait on each other."""
+    before = torch.get_num_threads()
+    if threads:
+        torch.set_num_threads(threads)
+    try:
+        rows = decode_bench(models=models, contexts=contexts, batches=batches, reps=reps,
+                            max_state_mib=max_state_mib, overrides=overrides, echo=echo)
+    finally:
+        used = torch.get_num_threads()
+        torch.set_num_threads(before)
+    text = f"decode: median of {reps} steps from the same state, {used} thread(s)\n" + format_rows(rows)
     if json_path:
         Path(json_path).parent.mkdir(parents=True, exist_ok=True)
-        Path(json_path).write_text(json.dumps({"threads": torch.get_num_threads(), "reps": reps, "rows": rows},
-                                              indent=2) + "\n")
+        Path(json_path).write_text(json.dumps({"threads": used, "reps": reps, "rows": rows}, indent=2) + "\n")
         text += f"\nwrote {json_path}"
     if plot_path:
         plot_rows(rows, Path(plot_path))

@@ -204,6 +204,7 @@ def _add_sample(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--temperature", type=float, default=1.0, help="softmax temperature; 0 = argmax (default 1)")
     p.add_argument("--top-k", type=int, default=0, help="sample among the k most likely tokens (0 = all)")
     p.add_argument("--seed", type=int, default=0, help="sampling seed (default 0): same seed, same text")
+    p.add_argument("--threads", type=int, default=1, help="torch threads (default 1; 0 = torch's default)")
     p.set_defaults(func=_cmd_sample)
 
 
@@ -211,7 +212,7 @@ def _cmd_sample(args: argparse.Namespace) -> int:
     from harness.generate import sample_command
 
     print(sample_command(args.run_dir, args.prompt, args.tokens, temperature=args.temperature, top_k=args.top_k,
-                         seed=args.seed))
+                         seed=args.seed, threads=args.threads))
     return 0
 
 

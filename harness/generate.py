@@ -160,9 +160,12 @@ def encode_prompt(tokenizer: Any, prompt: str) -> torch.Tensor:
 
 
 def sample_command(
-    run_dir: str | Path, prompt: str, tokens: int, *, temperature: float, top_k: int, seed: int
+    run_dir: str | Path, prompt: str, tokens: int, *, temperature: float, top_k: int, seed: int, threads: int = 1
 ) -> str:
-    """``harness sample``: the prompt and its continuation as text."""
+    """``harness sample``: the prompt and its continuation as text, on ``threads`` torch threads
+    (0 = torch's default; one by default: a batch-1 decode step is too small to share)."""
+    if threads < 0:
+        raise UserError(f"--threads {threads}: must be >= 0 (0 = torch's default)")
     if tokens < 0:
         raise UserError(f"--tokens {tokens}: must be >= 0")
     if top_k < 0:
@@ -171,5 +174,11 @@ def sample_command(
         raise UserError(f"--temperature {temperature}: must be >= 0 (0 = argmax)")
     run = load_run(run_dir)
     ids = encode_prompt(run.data.tokenizer, prompt)
-    out = generate(run.model, ids, tokens, temperature=temperature, top_k=top_k, seed=seed)
+    before = torch.get_num_threads()
+    if threads:
+        torch.set_num_threads(threads)
+    try:
+        out = generate(run.model, ids, tokens, temperature=temperature, top_k=top_k, seed=seed)
+    finally:
+        torch.set_num_threads(before)
     return run.data.tokenizer.decode(out.tokens[0].tolist())

@@ -5,15 +5,13 @@ Models: the presets' global attention, local attention (window 128), recurrence 
 
     .venv/bin/python scripts/bench_decode.py [--contexts 128,512,1024,2048,4096] [--batches 1,64]
         [--models global,local,recurrence,hybrid] [--reps 8] [--max-state-mib 512]
-        [--json runs/bench/decode.json] [--plot runs/bench/decode.png] [--threads N]
+        [--json runs/bench/decode.json] [--plot runs/bench/decode.png] [--threads 1]
 """
 
 from __future__ import annotations
 
 import argparse
 import sys
-
-import torch
 
 from harness.bench_decode import MODELS, bench_decode_command
 from harness.errors import UserError
@@ -33,18 +31,19 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--batches", type=int_list, default=[1, 64], help="batch sizes")
     p.add_argument("--reps", type=int, default=8, help="timed steps per point (median)")
     p.add_argument("--max-state-mib", type=float, default=512.0, help="skip points whose state exceeds this")
-    p.add_argument("--threads", type=int, default=0, help="torch threads (0 = torch's default)")
+    p.add_argument("--threads", type=int, default=1,
+                   help="torch threads (default 1: one decode step is too small to share, and on a busy machine "
+                        "more threads wait on each other; 0 = torch's default)")
     p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
                    help="config override applied to every model (e.g. model.depth=2)")
     p.add_argument("--json", default=None, help="write the rows as JSON here")
     p.add_argument("--plot", default=None, help="write a PNG of tokens/s and state bytes vs context here")
     args = p.parse_args(argv)
-    if args.threads:
-        torch.set_num_threads(args.threads)
     try:
         print(bench_decode_command(models=[m for m in args.models.split(",") if m], contexts=args.contexts,
                                    batches=args.batches, reps=args.reps, max_state_mib=args.max_state_mib,
-                                   json_path=args.json, plot_path=args.plot, overrides=args.overrides))
+                                   json_path=args.json, plot_path=args.plot, overrides=args.overrides,
+                                   echo=lambda line: print(line, file=sys.stderr, flush=True), threads=args.threads))
     except UserError as e:
         print(f"error: {e}", file=sys.stderr)
         return e.exit_code

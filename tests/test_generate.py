@@ -143,6 +143,7 @@ def test_sample_skips_a_corrupt_newest_checkpoint_without_renaming_it(run_dir, t
     (["--prompt", "a", "--temperature", "-1"], "--temperature"),
     (["--prompt", "a", "--tokens", "-2"], "--tokens"),
     (["--prompt", "a", "--top-k", "-2"], "--top-k"),
+    (["--prompt", "a", "--threads", "-1"], "--threads"),
 ])
 def test_sample_bad_arguments_exit_2(run_dir, capsys, argv, message):
     assert main(["sample", str(run_dir), *argv]) == 2

