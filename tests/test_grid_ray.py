@@ -48,6 +48,12 @@ def _port_open(port: int) -> bool:
         return s.connect_ex(("127.0.0.1", port)) == 0
 
 
+def _ray_env() -> dict[str, str]:
+    # Token auth off for this loopback-only test cluster: with it on, Ray reads ~/.ray/auth_token,
+    # and a token left there by an earlier cluster on the same machine makes every client fail.
+    return {**os.environ, "RAY_USAGE_STATS_ENABLED": "0", "RAY_AUTH_MODE": "disabled"}
+
+
 @pytest.fixture
 def ray_head():
     """``ray start --head --block`` on loopback with 2 CPUs; every process it started is ended after."""
@@ -56,7 +62,7 @@ def ray_head():
         pytest.skip("the ray command is not installed (pip install '.[ray]')")
     port = _free_port()
     temp_dir = tempfile.mkdtemp(prefix="rayg", dir="/tmp")  # short: Ray's socket paths have a length limit
-    env = {**os.environ, "RAY_USAGE_STATS_ENABLED": "0"}
+    env = _ray_env()
     head = subprocess.Popen(
         [str(ray_bin), "start", "--head", f"--port={port}", "--node-ip-address=127.0.0.1", "--num-cpus=2",
          "--include-dashboard=false", "--disable-usage-stats", f"--temp-dir={temp_dir}", "--block"],
@@ -90,7 +96,7 @@ def test_ray_executor_matches_local_processes(tmp_path, ray_head):
     assert run_grid(spec, out=tmp_path / "local", workers=2, threads=1, echo=lambda _: None) == 0
     proc = subprocess.run([sys.executable, "-m", "harness", "grid", str(spec), "--out", str(tmp_path / "ray"),
                            "--executor", "ray", "--address", ray_head, "--threads", "1"],
-                          capture_output=True, text=True, timeout=400)
+                          capture_output=True, text=True, timeout=400, env=_ray_env())
     assert proc.returncode == 0, proc.stdout + proc.stderr
     assert "ray executor" in proc.stdout
     local, ray = _finals(tmp_path / "local"), _finals(tmp_path / "ray")
