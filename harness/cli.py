@@ -167,6 +167,8 @@ def _add_bench(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--quality", action="store_true",
                    help="also train fp32 and bf16 for --quality-steps and compare the val loss")
     p.add_argument("--quality-steps", type=int, default=300, help="steps of the --quality runs (default 300)")
+    p.add_argument("--quality-seeds", type=int, default=3,
+                   help="seeds of the --quality runs; the target is on the mean paired difference (default 3)")
     p.add_argument("--json", default=None, metavar="PATH", help="also write every figure as JSON here")
     p.add_argument("--decode", action="store_true",
                    help="instead: decode tokens/s and state bytes of the step path vs context, batch 1 and 64 "
@@ -186,7 +188,8 @@ def _cmd_bench(args: argparse.Namespace) -> int:
     from harness.bench import bench_command
 
     print(bench_command(steps=args.steps, warmup=args.warmup, rounds=args.rounds, profile=args.profile,
-                        quality=args.quality, quality_steps=args.quality_steps, json_path=args.json,
+                        quality=args.quality, quality_steps=args.quality_steps,
+                        quality_seeds=args.quality_seeds, json_path=args.json,
                         threads=args.threads))
     return 0
 

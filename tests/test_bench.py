@@ -117,6 +117,28 @@ def test_bench_json_has_the_fields_a_comparison_reads(tmp_path, monkeypatch):
     assert "tokens/s" in report and "targets:" in report and "mixer:recurrence" in report
 
 
+def test_quality_check_pairs_seeds_and_bounds_the_mean_difference(monkeypatch):
+    # Fake runs: bf16 is 2% / 0% / 1% above fp32 for seeds 0 / 1 / 2. Mean +1%; the 95% interval
+    # is mean +- t(0.975, 2) * sd / sqrt(3) with sd = 1% (t = 4.303, Student's t table).
+    seen = []
+
+    def fake_run(case, steps, warmup, cache, threads, **train):
+        seen.append((case.precision, train["seed"], steps))
+        base = 2.0 + train["seed"]
+        factor = {0: 1.02, 1: 1.0, 2: 1.01}[train["seed"]] if case.precision == "bf16" else 1.0
+        return {"tokens_per_s": 1.0, "summary": {"final_val_loss": base * factor}}
+
+    monkeypatch.setattr(bench, "harness_run", fake_run)
+    q = bench.run_quality(steps=40, seeds=3, log=lambda s: None)
+    assert sorted(seen) == sorted((p, s, 40) for p in ("fp32", "bf16") for s in range(3))
+    assert q["mean_relative_difference"] == pytest.approx(0.01)
+    half = 4.303 * 0.01 / 3**0.5
+    assert q["ci95"] == pytest.approx([0.01 - half, 0.01 + half], abs=1e-4)
+    assert q["targets"][0]["value"] == pytest.approx(0.01) and q["targets"][0]["bound"] == 0.01
+    text = bench.format_report({"quality": q})
+    assert "seed 0: fp32 2.0000, bf16 2.0400 (+2.00%)" in text and "mean bf16 - fp32: +1.00%" in text
+
+
 def test_profile_charges_backward_time_to_the_block_that_ran_forward():
     # A model whose MLP is 64x wider than its attention: whatever the split, most of the step
     # (forward and the backward charged through sequence numbers) must land on "mlp".

@@ -45,16 +45,39 @@ def test_mqar_lookup_table_solves_it_and_key_blind_guess_is_at_chance():
     assert abs(best - 1 / p.num_values) < 0.015
 
 
-def test_mqar_keys_distinct_and_queries_cover_each_pair():
-    p = TaskConfig(num_pairs=5, num_queries=0, num_keys=8, num_values=4)  # 0: one query per pair
-    x, y = mqar_batch(p, seed=3, step=2, batch=50, seq_len=30)
+def test_mqar_keys_distinct_and_queries_drawn_uniformly_with_replacement():
+    p = TaskConfig(num_pairs=5, num_queries=0, num_keys=8, num_values=4)  # 0: as many queries as pairs
+    x, y = mqar_batch(p, seed=3, step=2, batch=4000, seq_len=30)
+    slots, repeated = Counter(), 0
     for xs, ys in zip(x.tolist(), y.tolist(), strict=True):
         keys = xs[0:10:2]
         assert len(set(keys)) == 5
         queried = [xs[t] for t, v in enumerate(ys) if v != -100]
-        assert sorted(queried) == sorted(keys)
+        assert len(queried) == 5 and set(queried) <= set(keys)
+        slots.update(keys.index(k) for k in queried)
+        repeated += len(set(queried)) < 5
+    # Each query picks one of the 5 pairs uniformly: P(some key asked twice) = 1 - 5!/5^5 = 0.9616
+    # (birthday problem); a permutation would give 0. Sd over 4000 sequences about 0.003.
+    assert abs(repeated / 4000 - (1 - 120 / 5**5)) < 0.015
+    assert max(slots.values()) / min(slots.values()) < 1.1  # 20000 draws, 5 slots: sd about 1.4% each
     with pytest.raises(ConfigError, match=r"^data\.task\.num_pairs: 9 pairs need as many distinct keys"):
         load_data(task_cfg("mqar", 64, {"num_pairs": 9, "num_keys": 8}))
+
+
+def test_mqar_last_query_cannot_be_answered_by_elimination():
+    # A key-blind rule that answers "a context value not yet given as an answer" (the shortcut a
+    # permutation of queries allows: 100% on the last query) must do no better than a random context
+    # value on the last query. With replacement: P(right) = 1/4 for 4 pairs, values mostly distinct.
+    p = TaskConfig(num_pairs=4, num_queries=0, num_keys=16, num_values=64)
+    x, y = mqar_batch(p, seed=1, step=0, batch=3000, seq_len=16)
+    hits = 0
+    for xs, ys in zip(x.tolist(), y.tolist(), strict=True):
+        values = xs[1:8:2]
+        positions = [t for t, v in enumerate(ys) if v != -100]
+        given = [ys[t] for t in positions[:-1]]
+        left = [v for v in values if v not in given] or values
+        hits += left[0] == ys[positions[-1]]
+    assert hits / 3000 < 0.4  # a permutation of the keys would give 1.0 here
 
 
 def test_selective_copy_answers_are_the_scattered_tokens_in_order():

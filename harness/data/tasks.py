@@ -1,8 +1,9 @@
 """Synthetic probe tasks, generated from the seed (no files); loss and accuracy on answers only.
 
 - ``mqar``: multi-query associative recall (Arora et al. 2023, "Zoology", arXiv:2312.04927):
-  ``num_pairs`` key-value pairs (distinct keys), a separator, then queries ``key value`` for keys of
-  the pairs; each queried value is an answer. The rest of the window is padding.
+  ``num_pairs`` key-value pairs (distinct keys), a separator, then queries ``key value``, each key
+  drawn uniformly with replacement from the pairs; each queried value is an answer. The rest of
+  the window is padding.
 - ``selective_copy``: selective copying (Gu & Dao 2023, "Mamba", Sec. 3.1): ``copy_tokens`` data
   tokens scattered in order among blank tokens, a separator, then the data tokens again, in order;
   those are the answers.
@@ -89,12 +90,13 @@ def mqar_symbols(p: TaskConfig) -> list[str]:
 
 
 def mqar_sequence(p: TaskConfig, rng: np.random.Generator, seq_len: int) -> Sequence:
-    """``k v k v ... <sep> k v k v ... <pad>...``: values uniform, keys distinct; queries cycle
-    through random permutations of the pairs, so no key is asked twice before all were asked."""
+    """``k v k v ... <sep> k v k v ... <pad>...``: values uniform, keys distinct, queried keys drawn
+    with replacement. (Asking the keys as a permutation would let a model answer the last query by
+    elimination, "the context value not yet asked for", without binding any key to its value.)"""
     n_pairs, n_queries = p.num_pairs, mqar_queries(p)
     key_ids = 2 + rng.choice(p.num_keys, size=n_pairs, replace=False)
     value_ids = 2 + p.num_keys + rng.integers(0, p.num_values, size=n_pairs)
-    order = np.concatenate([rng.permutation(n_pairs) for _ in range(-(-n_queries // n_pairs))])[:n_queries]
+    order = rng.integers(0, n_pairs, size=n_queries)
     context = np.stack([key_ids, value_ids], axis=1).reshape(-1)
     queries = np.stack([key_ids[order], value_ids[order]], axis=1).reshape(-1)
     body = np.concatenate([context, [SEP], queries])
