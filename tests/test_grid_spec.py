@@ -323,3 +323,28 @@ def test_demo_grids_expand_and_match_parameters(name, variants, seeds):
     else:
         gates = {p.cell.variant: p.cell.cfg.model.mixers["recurrence"].options.gate for p in plan}
         assert gates == {"gated": True, "no-gate": False}
+
+
+def test_planning_a_grid_builds_no_model_and_loads_no_report_libraries():
+    # The grid parent stays resident while its workers train; issue #8 bounds a grid at N x one
+    # cell + 300 MB. Planning counts parameters analytically (harness.cost) and the report's scipy
+    # loads only when the report is written. A fresh interpreter, so earlier imports do not count.
+    import subprocess
+    import sys
+
+    code = (
+        "import sys, torch.nn as nn\n"
+        "built = []\n"
+        "orig = nn.Module.__init__\n"
+        "def spy(self, *a, **k):\n"
+        "    built.append(type(self).__name__); orig(self, *a, **k)\n"
+        "nn.Module.__init__ = spy\n"
+        "from harness.grid.run import plan_cells\n"
+        "from harness.grid.spec import load_grid\n"
+        f"plan = plan_cells(load_grid({str(CONFIGS / 'default.yaml')!r}), 1)\n"
+        "assert len(plan) == 6 and plan[0].cost.params_total > 0, plan\n"
+        "assert not built, built[:5]\n"
+        "assert 'scipy' not in sys.modules and 'matplotlib' not in sys.modules\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    assert out.returncode == 0, out.stderr[-2000:]

@@ -7,9 +7,19 @@
 - ``stats`` and ``report``: intervals, paired differences, verdicts, plots, report.md / .html / .csv.
 """
 
-from harness.grid.report import write_report
+from typing import Any
+
 from harness.grid.run import run_grid
 from harness.grid.spec import Cell, GridSpec, expand_cells, load_grid
 from harness.grid.status import status_text
 
 __all__ = ["Cell", "GridSpec", "expand_cells", "load_grid", "run_grid", "status_text", "write_report"]
+
+
+def __getattr__(name: str) -> Any:
+    # The report pulls in scipy (~60 MB resident): loaded on first use, not in every grid parent.
+    if name == "write_report":
+        from harness.grid.report import write_report
+
+        return write_report
+    raise AttributeError(f"module 'harness.grid' has no attribute {name!r}")

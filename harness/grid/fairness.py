@@ -34,19 +34,22 @@ def vocab_size(cfg: Config) -> int:
 
 
 def count_params(cfg: Config) -> dict[str, int]:
-    """``{total, non_embedding}`` counted on the model the config builds (meta device: no memory)."""
-    import torch
+    """``{total, non_embedding}`` from the cost model's analytic counts (``harness.cost``).
 
-    from harness.model import build_model
+    No model is built: the grid's parent process stays small while its workers train (building
+    one, even on the meta device, kept ~70-135 MB resident here). ``tests/test_cost.py`` checks
+    the analytic counts against built models; a mixer without the ``param_count`` hook is built
+    for real instead.
+    """
+    from harness.cost import param_breakdown
 
     vocab = vocab_size(cfg)
     try:
-        with torch.device("meta"):
-            model = build_model(cfg.model, vocab)
-    except (RuntimeError, NotImplementedError):
-        # A mixer whose special init cannot run on meta tensors: build it for real (tiny models).
-        model = build_model(cfg.model, vocab)
-    groups = model.param_groups()
+        groups = param_breakdown(cfg, vocab)
+    except NotImplementedError:
+        from harness.model import build_model
+
+        groups = build_model(cfg.model, vocab).param_groups()
     return {"total": int(groups["total"]), "non_embedding": int(groups["non_embedding"])}
 
 
