@@ -135,8 +135,10 @@ def test_quality_check_pairs_seeds_and_bounds_the_mean_difference(monkeypatch):
     half = 4.303 * 0.01 / 3**0.5
     assert q["ci95"] == pytest.approx([0.01 - half, 0.01 + half], abs=1e-4)
     assert q["targets"][0]["value"] == pytest.approx(0.01) and q["targets"][0]["bound"] == 0.01
+    assert q["targets"][0]["met"] is None  # the interval [-1.5%, +3.5%] straddles the 1% bound
     text = bench.format_report({"quality": q})
     assert "seed 0: fp32 2.0000, bf16 2.0400 (+2.00%)" in text and "mean bf16 - fp32: +1.00%" in text
+    assert "[unsure]" in text
 
 
 def test_profile_charges_backward_time_to_the_block_that_ran_forward():
@@ -325,3 +327,13 @@ def test_tree_rss_counts_children():
     assert out["peak_tree_rss_bytes"] > 300 * 2**20
     with pytest.raises(RuntimeError, match="failed"):
         bm.sampled_peak([sys.executable, "-c", "raise SystemExit(3)"])
+
+
+@pytest.mark.parametrize(("factors", "met"), [((1.001, 1.002, 1.0015), True), ((1.05, 1.06, 1.055), False)])
+def test_quality_check_decides_only_when_the_interval_is_on_one_side(monkeypatch, factors, met):
+    def fake_run(case, steps, warmup, cache, threads, **train):
+        factor = factors[train["seed"]] if case.precision == "bf16" else 1.0
+        return {"tokens_per_s": 1.0, "summary": {"final_val_loss": 3.0 * factor}}
+
+    monkeypatch.setattr(bench, "harness_run", fake_run)
+    assert bench.run_quality(steps=40, seeds=3, log=lambda s: None)["targets"][0]["met"] is met
