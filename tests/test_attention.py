@@ -189,11 +189,16 @@ def test_rope_matches_complex_rotation():
 
 def test_rope_in_bf16_keeps_the_angle_of_far_positions():
     # bf16 spacing near 1000 is 4 (8-bit mantissa, IEEE-style): angles must not be formed in bf16.
-    x = torch.randn(1, 2, 64, 16)
+    x = torch.randn(1, 2, 64, 16, generator=torch.Generator().manual_seed(0))
     pos = torch.arange(1000, 1064)
     want = apply_rope(x, pos, 10000.0)
-    got = apply_rope(x.bfloat16(), pos, 10000.0).float()
-    torch.testing.assert_close(got, want, atol=0.05, rtol=0.02)
+    got = apply_rope(x.bfloat16(), pos, 10000.0)
+    assert got.dtype == torch.bfloat16  # rotated in fp32, handed back in the input's dtype
+    torch.testing.assert_close(got.float(), want, atol=0.05, rtol=0.02)
+    # Rotating in fp32 leaves only the final rounding: within half a bf16 ulp of the exact result
+    # (2^-9 relative, 8-bit mantissa), not the several roundings of a bf16 multiply-add chain.
+    exact = apply_rope(x.bfloat16().double(), pos, 10000.0)
+    assert ((got.double() - exact).abs() <= exact.abs() * 2**-8 + 1e-6).all()  # + fp32 rounding near 0
 
 
 def test_rope_scores_depend_only_on_relative_position():

@@ -25,8 +25,10 @@ def apply_rope(x: torch.Tensor, positions: torch.Tensor, base: float) -> torch.T
     angle_dtype = torch.promote_types(x.dtype, torch.float32)
     inv_freq = rope_inv_freq(head_dim, base, dtype=angle_dtype, device=x.device)
     angles = positions.to(device=x.device, dtype=angle_dtype)[:, None] * inv_freq[None, :]  # (T, d/2)
-    cos, sin = angles.cos().to(x.dtype), angles.sin().to(x.dtype)
+    cos, sin = angles.cos(), angles.sin()
     pairs = x.unflatten(-1, (head_dim // 2, 2))
     x1, x2 = pairs[..., 0], pairs[..., 1]
+    # The rotation runs in the angles' dtype (fp32 under bf16 autocast): more exact, and on CPU
+    # faster than bf16 multiplies over these strided halves (measured: torch.profiler, aten::mul).
     rotated = torch.stack((x1 * cos - x2 * sin, x1 * sin + x2 * cos), dim=-1)
-    return rotated.flatten(-2)
+    return rotated.flatten(-2).to(x.dtype)
