@@ -167,13 +167,21 @@ def _add_bench(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--quality", action="store_true",
                    help="also train fp32 and bf16 for --quality-steps and compare the val loss")
     p.add_argument("--quality-steps", type=int, default=300, help="steps of the --quality runs (default 300)")
-    p.add_argument("--quality-seeds", type=int, default=3,
-                   help="seeds of the --quality runs; the target is on the mean paired difference (default 3)")
+    p.add_argument("--quality-seeds", type=int, default=None,
+                   help="seeds of the --quality runs; the target is on the mean paired difference (default 6)")
+    p.add_argument("--quality-lr", type=float, default=None, metavar="LR",
+                   help="peak learning rate of the --quality runs (default 1e-3: at 3e-3 rounding alone moves "
+                        "the 300-step loss by several %%, see harness/bench.py)")
     p.add_argument("--json", default=None, metavar="PATH", help="also write every figure as JSON here")
     p.add_argument("--decode", action="store_true",
                    help="instead: decode tokens/s and state bytes of the step path vs context, batch 1 and 64 "
                         "(harness/bench_decode.py; with --json, also a PNG beside it)")
     p.set_defaults(func=_cmd_bench)
+
+
+def _given(**options: object) -> dict[str, object]:
+    """The options the user set (not None): the rest keep the defaults of the function they go to."""
+    return {key: value for key, value in options.items() if value is not None}
 
 
 def _cmd_bench(args: argparse.Namespace) -> int:
@@ -189,7 +197,7 @@ def _cmd_bench(args: argparse.Namespace) -> int:
 
     print(bench_command(steps=args.steps, warmup=args.warmup, rounds=args.rounds, profile=args.profile,
                         quality=args.quality, quality_steps=args.quality_steps,
-                        quality_seeds=args.quality_seeds, json_path=args.json,
+                        json_path=args.json, **_given(quality_seeds=args.quality_seeds, quality_lr=args.quality_lr),
                         threads=args.threads))
     return 0
 

@@ -16,6 +16,7 @@ from pathlib import Path
 
 import pytest
 import torch
+import torch.nn.functional as F
 
 from harness import bench
 from harness.config import config_from_dict
@@ -26,6 +27,7 @@ from harness.memory_estimate import (
     warn_if_too_large,
 )
 from harness.model import build_model
+from harness.train import runtime as runtime_mod
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -124,11 +126,13 @@ def test_quality_check_pairs_seeds_and_bounds_the_mean_difference(monkeypatch):
 
     def fake_run(case, steps, warmup, cache, threads, **train):
         seen.append((case.precision, train["seed"], steps))
+        assert train["lr"] == bench.QUALITY_LR
         base = 2.0 + train["seed"]
         factor = {0: 1.02, 1: 1.0, 2: 1.01}[train["seed"]] if case.precision == "bf16" else 1.0
         return {"tokens_per_s": 1.0, "summary": {"final_val_loss": base * factor}}
 
     monkeypatch.setattr(bench, "harness_run", fake_run)
+    monkeypatch.setattr(runtime_mod, "cpu_bf16_support", lambda: (True, "simulated bf16 CPU"))
     q = bench.run_quality(steps=40, seeds=3, log=lambda s: None)
     assert sorted(seen) == sorted((p, s, 40) for p in ("fp32", "bf16") for s in range(3))
     assert q["mean_relative_difference"] == pytest.approx(0.01)
@@ -137,6 +141,7 @@ def test_quality_check_pairs_seeds_and_bounds_the_mean_difference(monkeypatch):
     assert q["targets"][0]["value"] == pytest.approx(0.01) and q["targets"][0]["bound"] == 0.01
     assert q["targets"][0]["met"] is None  # the interval [-1.5%, +3.5%] straddles the 1% bound
     text = bench.format_report({"quality": q})
+    assert "after 40 steps, peak lr 0.001" in text
     assert "seed 0: fp32 2.0000, bf16 2.0400 (+2.00%)" in text and "mean bf16 - fp32: +1.00%" in text
     assert "[unsure]" in text
 
@@ -180,6 +185,16 @@ def test_bench_command_rejects_bad_arguments(tmp_path):
         bench.bench_command(steps=5, warmup=3)
     with pytest.raises(UserError, match="--json"):
         bench.bench_command(json_path=str(tmp_path))
+    with pytest.raises(UserError, match="--quality-lr"):
+        bench.bench_command(quality=True, quality_lr=0.0)
+
+
+def test_bench_cli_bad_quality_lr_is_a_one_line_error(capsys):
+    from harness.cli import main
+
+    assert main(["bench", "--quality", "--quality-lr", "-1"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert "--quality-lr -1.0" in err and "\n" not in err and "Traceback" not in err
 
 
 # ----------------------------------------------------------------------------- memory estimate
@@ -336,4 +351,80 @@ def test_quality_check_decides_only_when_the_interval_is_on_one_side(monkeypatch
         return {"tokens_per_s": 1.0, "summary": {"final_val_loss": 3.0 * factor}}
 
     monkeypatch.setattr(bench, "harness_run", fake_run)
+    monkeypatch.setattr(runtime_mod, "cpu_bf16_support", lambda: (True, "simulated bf16 CPU"))
     assert bench.run_quality(steps=40, seeds=3, log=lambda s: None)["targets"][0]["met"] is met
+
+
+def test_without_bf16_units_the_quality_check_runs_nothing_and_decides_nothing(monkeypatch):
+    # Its bf16 runs would fall back to fp32 and match fp32 exactly: a 0% difference that proves nothing.
+    def fake_run(*args, **kwargs):
+        raise AssertionError("no training run may start")
+
+    monkeypatch.setattr(bench, "harness_run", fake_run)
+    monkeypatch.setattr(runtime_mod, "cpu_bf16_support", lambda: (False, "simulated AVX2 CPU"))
+    q = bench.run_quality(steps=40, seeds=3, log=lambda s: None)
+    assert q["skipped"] == "simulated AVX2 CPU" and q["seeds"] == []
+    assert q["targets"][0]["met"] is None and "simulated AVX2 CPU" in q["targets"][0]["note"]
+    text = bench.format_report({"quality": q})
+    assert "bf16 quality: skipped (simulated AVX2 CPU)" in text
+    assert "[n/a   ]" in text and "not measurable here: simulated AVX2 CPU" in text
+
+
+def test_without_bf16_units_the_speed_benchmark_skips_bf16_cases(tmp_path, monkeypatch):
+    # torch emulates bf16 on such CPUs at ~1% of fp32 speed: the plain bf16 twin would run for hours.
+    monkeypatch.setenv("HARNESS_CACHE", str(tmp_path / "cache"))
+    monkeypatch.setattr(runtime_mod, "cpu_bf16_support", lambda: (False, "simulated AVX2 CPU"))
+    plain_calls = []
+    real_plain = bench.plain_tokens_per_s
+
+    def plain(*args, bf16=False, **kwargs):
+        plain_calls.append(bf16)
+        return real_plain(*args, bf16=bf16, **kwargs)
+
+    monkeypatch.setattr(bench, "plain_tokens_per_s", plain)
+    cases = (bench.BenchCase("attention-fp32", "global_attention", 32, 2, width=32, depth=1),
+             bench.BenchCase("attention-bf16", "global_attention", 32, 2, "bf16", width=32, depth=1))
+    result = bench.run_bench(steps=11, warmup=1, rounds=1, profile=False, cases=cases, log=lambda s: None,
+                             gemm_n=64, copy_bytes=2**20, scan_shape=(2, 32, 16))
+    assert plain_calls == [False]
+    assert {row["name"] for row in result["configs"]} == {"plain-fp32", "attention-fp32"}
+    assert "gemm_bf16_gflops" not in result["peaks"]
+    assert result["skipped"] == {"cases": ["attention-bf16"], "reason": "simulated AVX2 CPU"}
+    target = next(t for t in result["targets"] if t["name"].startswith("bf16 / fp32"))
+    assert target["met"] is None and target["note"] == "not measurable here: simulated AVX2 CPU"
+    text = bench.format_report(json.loads(json.dumps(result, default=str)))
+    assert "bf16 GEMM not measured" in text and "skipped: attention-bf16 (simulated AVX2 CPU)" in text
+
+
+# ----------------------------------------------------------------------------- bf16 rounding study
+
+
+def _rounding_study():
+    path = ROOT / "scripts" / "bf16_rounding_study.py"
+    spec = importlib.util.spec_from_file_location("bf16_rounding_study", path)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def test_rounded_matmuls_match_torch_bf16_autocast_and_round_gradients():
+    # Reference: torch's own CPU bf16 autocast (bf16 inputs, fp32 accumulation, bf16 output),
+    # real or emulated by torch alike. The study's fp32 rounding must land on the same values to
+    # within one bf16 rounding (2^-8 relative; Kalamkar et al. 2019) and differ from plain fp32.
+    study = _rounding_study()
+    g = torch.Generator().manual_seed(0)
+    x = torch.randn(8, 64, generator=g)
+    w = torch.randn(32, 64, generator=g, requires_grad=True)
+    with torch.autocast("cpu", dtype=torch.bfloat16):
+        ref = F.linear(x, w).float()
+    with study.RoundedMatmuls():
+        got = F.linear(x, w)
+    assert got.dtype == torch.float32
+    assert torch.allclose(got, ref, rtol=2**-8, atol=1e-6)
+    assert not torch.equal(got, F.linear(x, w))  # the rounding really happened
+    assert torch.equal(got, got.bfloat16().float())  # the output lies on the bf16 grid
+    got.square().sum().backward()
+    assert torch.equal(w.grad, w.grad.bfloat16().float())  # so does the gradient reaching fp32 weights
+    plain = x * 1.001
+    with study.RoundedMatmuls():
+        assert torch.equal(x * 1.001, plain)  # elementwise ops are not rounded
