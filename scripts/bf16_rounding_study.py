@@ -17,9 +17,10 @@ from __future__ import annotations
 import argparse
 import contextlib
 import json
+import sys
 import tempfile
 from pathlib import Path
-from typing import Any
+from typing import Any, NoReturn
 
 import torch
 import torch.nn.functional as F
@@ -58,6 +59,12 @@ def final_val_loss(seed: int, lr: float, steps: int, threads: int, rounded: bool
     return run["summary"]["final_val_loss"]
 
 
+def fail(message: str) -> NoReturn:
+    """A one-line error on stderr, exit code 2 (bad input)."""
+    print(f"error: {message}", file=sys.stderr)
+    raise SystemExit(2)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--lr", type=float, default=1e-3, help="peak learning rate (default 1e-3)")
@@ -68,7 +75,9 @@ def main() -> None:
     try:
         seeds = [int(s) for s in args.seeds.split(",")]
     except ValueError:
-        parser.error(f"--seeds {args.seeds!r}: give integers separated by commas, e.g. 0,1,2")
+        fail(f"--seeds {args.seeds!r}: give integers separated by commas, e.g. 0,1,2")
+    if not 0 < args.lr <= 1 or args.steps < 20:
+        fail(f"--lr {args.lr} / --steps {args.steps}: need 0 < lr <= 1 and steps >= 20")
     with tempfile.TemporaryDirectory(prefix="harness-study-") as cache:
         for seed in seeds:
             fp32 = final_val_loss(seed, args.lr, args.steps, args.threads, False, Path(cache))
