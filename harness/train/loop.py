@@ -84,7 +84,8 @@ def train_step(
         with runtime.autocast():
             logits = model(x)
         loss, _ = token_loss_sum(logits, y)
-        (loss / denom).backward()
+        with runtime.numerics():  # autocast covers the forward only; an emulation must see backward too
+            (loss / denom).backward()
         loss_sum += loss.item()
     params = [p for p in model.parameters() if p.grad is not None]
     if grad_clip > 0:

@@ -23,14 +23,25 @@ from harness.errors import ConfigError
 class Runtime:
     device: torch.device
     threads: int
-    precision: str  # effective: fp32 or bf16
+    precision: str  # effective: fp32, bf16 or bf16_emulated
     precision_reason: str
     scan: dict[str, Any]
 
     def autocast(self) -> contextlib.AbstractContextManager:
-        """bf16 autocast around the forward pass, or nothing for fp32."""
-        if self.precision == "bf16":
-            return torch.autocast(device_type=self.device.type, dtype=torch.bfloat16)
+        """bf16 autocast around the forward pass (with :meth:`numerics` for bf16_emulated), or nothing for fp32."""
+        if self.precision == "fp32":
+            return contextlib.nullcontext()
+        stack = contextlib.ExitStack()
+        stack.enter_context(self.numerics())
+        stack.enter_context(torch.autocast(device_type=self.device.type, dtype=torch.bfloat16))
+        return stack
+
+    def numerics(self) -> contextlib.AbstractContextManager:
+        """For bf16_emulated the bf16 GEMM emulation, which must also cover ``backward()``; else nothing."""
+        if self.precision == "bf16_emulated":
+            from harness.train.bf16_emulation import emulated_bf16_gemms
+
+            return emulated_bf16_gemms()
         return contextlib.nullcontext()
 
     def facts(self) -> dict[str, Any]:
@@ -108,17 +119,24 @@ def cpu_bf16_support() -> tuple[bool, str]:
     return True, f"CPU capability {capability} (instruction flags unknown), bf16 matmul test passed"
 
 
+EMULATION_REASON = ("requested: bf16 autocast with its matmuls and convolutions computed in fp32 on bf16 values "
+                    "and rounded once (harness.train.bf16_emulation): bf16 numerics, not bf16 speed")
+
+
 def resolve_precision(requested: str, device: torch.device) -> tuple[str, str, str | None]:
     """(effective precision, reason, warning or None) for ``runtime.precision`` on ``device``."""
     if requested == "fp32":
         return "fp32", "requested", None
+    if requested == "bf16_emulated":
+        return "bf16_emulated", EMULATION_REASON, None
     if device.type == "cuda":
         ok, why = torch.cuda.is_bf16_supported(), f"CUDA device {torch.cuda.get_device_name(device)}"
     else:
         ok, why = cpu_bf16_support()
     if ok:
         return "bf16", why, None
-    warning = f"runtime.precision: bf16 unsupported here ({why}); using fp32"
+    warning = (f"runtime.precision: bf16 unsupported here ({why}); using fp32 "
+               "(bf16_emulated gives bf16 numerics at about fp32 speed)")
     return "fp32", f"bf16 requested but unsupported: {why}", warning
 
 
