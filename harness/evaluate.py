@@ -26,6 +26,7 @@ import torch
 import torch.nn.functional as F
 
 from harness.errors import UserError
+from harness.train.records import EVAL_FILE
 
 IGNORE_INDEX = -100  # y == -100 marks positions without loss (DEVELOPERS.md, data interface)
 Batches = list[tuple[torch.Tensor, torch.Tensor]]
@@ -161,7 +162,6 @@ def length_extrapolation(run: Any, lengths: list[tuple[str, int]], n_buckets: in
 # ----------------------------------------------------------------------------- eval.json, table, command
 
 
-EVAL_FILE = "eval.json"
 
 
 def format_table(rows: list[dict[str, Any]]) -> str:

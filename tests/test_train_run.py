@@ -350,10 +350,13 @@ def test_done_dir_is_not_retrained_and_other_config_refused(workdir, capsys):
     assert main(["train", str(path), "--set", "train.lr=0.001", "--out", str(out), "--force"]) == 0
     assert yaml.safe_load((out / "config.yaml").read_text())["train"]["lr"] == 0.001
     assert snapshot(out)["metrics.jsonl"][0] != before["metrics.jsonl"][0]
-    # --force on a finished dir of the same config retrains it.
+    # --force on a finished dir of the same config retrains it, and drops `harness eval` results
+    # of the checkpoint it replaces (a grid report would otherwise plot them for the new model).
     mtime = (out / "metrics.jsonl").stat().st_mtime_ns
+    assert main(["eval", str(out), "--lengths", "1x"]) == 0 and (out / "eval.json").exists()
     assert main(["train", str(path), "--set", "train.lr=0.001", "--out", str(out), "--force"]) == 0
     assert (out / "metrics.jsonl").stat().st_mtime_ns != mtime
+    assert not (out / "eval.json").exists()
 
 
 def test_force_keeps_files_that_are_not_records(workdir):

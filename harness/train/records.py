@@ -28,8 +28,11 @@ from typing import Any
 
 import torch
 
+#: ``harness eval``'s results inside a run dir (they describe one checkpoint of one config).
+EVAL_FILE = "eval.json"
+
 #: Files and folders a run owns inside its dir; ``--force`` removes these and nothing else.
-RECORD_NAMES = ("config.yaml", "metrics.jsonl", "summary.json", "env.json", "checkpoints", "tb")
+RECORD_NAMES = ("config.yaml", "metrics.jsonl", "summary.json", "env.json", "checkpoints", "tb", EVAL_FILE)
 
 #: Fields that measure time and so differ between otherwise identical runs.
 TIMING_FIELDS = ("tokens_per_s", "wall_s")
