@@ -170,6 +170,16 @@ def test_eta_counts_a_cell_without_speed_at_the_finished_cells_speed(tmp_path):
     assert grid_progress(tmp_path).eta_s == pytest.approx(5000 / 1000.0)
 
 
+def test_status_line_between_cells_says_no_cell_is_running(tmp_path):
+    make_grid(tmp_path, {"ref": {0: 2.0}})
+    with open_index(tmp_path) as index:
+        index.plan([{"id": "next", "variant": "c", "seed": 0, "point": [], "config_hash": "x", "adjustments": {},
+                     "planned_tokens": 5000, "flops_per_token": None, "params_total": 1, "params_non_embedding": 1}])
+    progress = grid_progress(tmp_path)
+    assert (progress.running, progress.left, progress.eta_s) == (0, 1, None)
+    assert progress.line().endswith("1 left | no cell running")
+
+
 def test_status_command_prints_the_grid_line(tmp_path, capsys):
     make_grid(tmp_path, {"ref": {0: 2.0, 1: 2.1}})
     assert main(["grid", "--status", str(tmp_path)]) == 0

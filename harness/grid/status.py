@@ -95,7 +95,8 @@ class GridProgress:
             parts[0] += f" ({self.diverged} diverged)"
         parts += [f"{self.running} running", f"{self.failed} failed", f"{self.left} left"]
         if self.running == 0:
-            eta = "finished" if self.left == 0 else "not running"
+            # Said between two cells of a running grid too, and of a stopped one (status_text adds which).
+            eta = "finished" if self.left == 0 else "no cell running"
         elif self.eta_s is None:
             eta = "ETA unknown (no speed measured yet)"
         else:
