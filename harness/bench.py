@@ -281,7 +281,7 @@ def harness_run(case: BenchCase, steps: int, warmup: int, cache_dir: Path, threa
 
     cfg = harness_config(case, steps, cache_dir, threads, **train)
     with tempfile.TemporaryDirectory(prefix="harness-bench-") as tmp:
-        summary = run_training(cfg, Path(tmp) / "run", progress="silent")
+        summary = run_training(cfg, Path(tmp) / "run", progress="warnings")
         metrics = read_metrics(Path(tmp) / "run" / "metrics.jsonl")
     if summary.get("status") != "done":  # e.g. stopped by SIGTERM: its speed is no measurement
         raise RuntimeError(f"bench run {case.name} ended {summary.get('status')!r}, not 'done'")

@@ -92,6 +92,16 @@ def test_loop_tokens_per_s_reads_wall_clock_between_log_lines():
 # ----------------------------------------------------------------------------- benchmark output
 
 
+def test_bench_runs_print_their_warnings_but_not_their_start_and_end_lines(tmp_path, monkeypatch, capsys):
+    # The benchmark prints its own progress; each timed run's "training ... / done ..." is noise there.
+    monkeypatch.setattr(runtime_mod, "cpu_bf16_support", lambda: (False, "simulated AVX2 CPU"))
+    case = bench.BenchCase("tiny", "global_attention", 16, 2, "bf16", width=16, depth=1)
+    run = bench.harness_run(case, 11, 1, tmp_path / "cache", threads=1)
+    assert run["summary"]["status"] == "done"
+    err = capsys.readouterr().err.splitlines()
+    assert err and all(line.startswith("warning: runtime.precision: bf16 unsupported") for line in err), err
+
+
 def test_bench_json_has_the_fields_a_comparison_reads(tmp_path, monkeypatch):
     monkeypatch.setenv("HARNESS_CACHE", str(tmp_path / "cache"))
     cases = (bench.BenchCase("attention-fp32", "global_attention", 32, 2, width=32, depth=1),

@@ -250,7 +250,7 @@ def run_training(
     """Train ``cfg`` into ``out_dir`` (fresh, resumed, or not at all when done); the summary.
 
     ``progress``: None/"auto" (tqdm bar on a TTY, log lines otherwise), "log", "bar",
-    "silent", or a :class:`Progress`. Raises UserError for bad input (the dir untouched).
+    "silent", "warnings", or a :class:`Progress`. Raises UserError for bad input (the dir untouched).
     """
     out = Path(out_dir)
     cfg_hash = config_hash(cfg)

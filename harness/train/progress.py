@@ -49,6 +49,14 @@ class Silent(Progress):
         print(text, file=self.stream or sys.stderr, flush=True)
 
 
+class WarningsOnly(Silent):
+    """Warnings only: for callers that run many short trainings and print their own lines (the benchmark)."""
+
+    def message(self, text: str) -> None:
+        if text.startswith("warning"):
+            super().message(text)
+
+
 class LogLines(Silent):
     """One plain line per train log line, with an ETA from this segment's mean step time."""
 
@@ -122,7 +130,7 @@ def _val_text(line: dict[str, Any]) -> str:
 
 
 def make_progress(kind: str | Progress | None = None, stream: TextIO | None = None) -> Progress:
-    """``None``/``"auto"``: a bar on a TTY, log lines otherwise; ``"bar"``, ``"log"``, ``"silent"``."""
+    """``None``/``"auto"``: a bar on a TTY, log lines otherwise; ``"bar"``, ``"log"``, ``"silent"``, ``"warnings"``."""
     if isinstance(kind, Progress):
         return kind
     stream = stream or sys.stderr
@@ -134,4 +142,6 @@ def make_progress(kind: str | Progress | None = None, stream: TextIO | None = No
         return LogLines(stream)
     if kind == "silent":
         return Silent(stream)
+    if kind == "warnings":
+        return WarningsOnly(stream)
     raise ValueError(f"unknown progress kind {kind!r}")
