@@ -270,6 +270,29 @@ def test_match_flops_equalises_training_flops(tmp_path):
     assert flops_per_token(var.cfg) != flops_per_token(ref.cfg)
 
 
+def test_dry_run_times_the_trainers_step_with_each_cells_runtime(tmp_path, monkeypatch):
+    # A cell's precision, activation checkpointing and accumulation change its speed: the estimate
+    # must time the trainer's own step under the cell's runtime, not a bare forward/backward.
+    from harness.config import config_from_dict
+    from harness.grid.estimate import measure_tokens_per_s
+    from harness.train import loop
+
+    seen = []
+    real_step = loop.train_step
+
+    def spy(model, optimizer, scheduler, micro_batches, runtime, grad_clip):
+        seen.append((runtime.precision, model.activation_checkpointing, len(micro_batches), grad_clip))
+        return real_step(model, optimizer, scheduler, micro_batches, runtime, grad_clip)
+
+    monkeypatch.setattr(loop, "train_step", spy)
+    cfg = config_from_dict({"model": {"width": 16, "depth": 1, "pattern": ["global_attention"]},
+                            "data": {"corpus": "pydoc", "seq_len": 16},
+                            "train": {"batch_size": 2, "grad_accum": 2, "grad_clip": 0.5},
+                            "runtime": {"precision": "bf16_emulated", "activation_checkpointing": True}})
+    assert measure_tokens_per_s(cfg, threads=1, steps=2) > 0
+    assert seen == [("bf16_emulated", True, 2, 0.5)] * 3  # one warm-up step, two timed
+
+
 def test_dry_run_lists_costs_and_trains_nothing(tmp_path, capsys):
     path = write_grid(tmp_path, """
         name: tiny

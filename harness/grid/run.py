@@ -96,9 +96,9 @@ def dry_run_text(plan: list[PlannedCell], workers: int, threads: int, measure: b
     longest = 0.0
     for p in plan:
         cfg = p.cell.cfg
-        # Speed depends on the model and the batch shape only (not on lr, seed or budget).
+        # Speed depends on the model, the batch shape and the runtime only (not on lr, seed or budget).
         key = json.dumps([to_dict(cfg.model), cfg.data.seq_len, cfg.train.batch_size, cfg.train.grad_accum,
-                          cfg.runtime.threads], sort_keys=True, default=str)
+                          to_dict(cfg.runtime)], sort_keys=True, default=str)
         if measure and key not in speeds:
             speeds[key] = measure_tokens_per_s(p.cell.cfg, threads)
         speed = speeds.get(key)
