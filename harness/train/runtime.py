@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import contextlib
 import os
+from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -27,14 +28,14 @@ class Runtime:
     precision_reason: str
     scan: dict[str, Any]
 
-    def autocast(self) -> contextlib.AbstractContextManager:
+    @contextlib.contextmanager
+    def autocast(self) -> Iterator[None]:
         """bf16 autocast around the forward pass (with :meth:`numerics` for bf16_emulated), or nothing for fp32."""
         if self.precision == "fp32":
-            return contextlib.nullcontext()
-        stack = contextlib.ExitStack()
-        stack.enter_context(self.numerics())
-        stack.enter_context(torch.autocast(device_type=self.device.type, dtype=torch.bfloat16))
-        return stack
+            yield
+            return
+        with self.numerics(), torch.autocast(device_type=self.device.type, dtype=torch.bfloat16):
+            yield
 
     def numerics(self) -> contextlib.AbstractContextManager:
         """For bf16_emulated the bf16 GEMM emulation, which must also cover ``backward()``; else nothing."""
