@@ -684,7 +684,7 @@ def run_quality(steps: int = 300, seeds: int = QUALITY_SEEDS, log: Callable[[str
     (``met: None``) where it straddles the bound.
 
     On a CPU without bf16 units the bf16 side runs as ``bf16_emulated`` (the same numerics at
-    about fp32 speed, :mod:`harness.train.bf16_emulation`); ``bf16`` says which, and the target's
+    about 0.6x fp32 speed, :mod:`harness.train.bf16_emulation`); ``bf16`` says which, and the target's
     note says so.
     """
     from scipy import stats

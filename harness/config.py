@@ -172,7 +172,7 @@ class RuntimeConfig:
     device: str = opt("cpu", "torch device: cpu, or cuda where present")
     threads: int = opt(0, "torch intra-op threads (0 = all cores)", min=0)
     precision: str = opt("fp32", "fp32; bf16 autocast (CPU: where supported); bf16_emulated: bf16 numerics on any "
-                         "CPU at about fp32 speed, to check what bf16 does to a result",
+                         "CPU at about 0.6x fp32 speed, to check what bf16 does to a result",
                          choices=("fp32", "bf16", "bf16_emulated"))
     activation_checkpointing: bool = opt(False, "recompute each residual block in backward to save memory")
     scan: str = opt("auto", "recurrence scan backend", choices=("auto", "reference", "chunked", "compiled"))

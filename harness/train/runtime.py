@@ -137,7 +137,7 @@ def resolve_precision(requested: str, device: torch.device) -> tuple[str, str, s
     if ok:
         return "bf16", why, None
     warning = (f"runtime.precision: bf16 unsupported here ({why}); using fp32 "
-               "(bf16_emulated gives bf16 numerics at about fp32 speed)")
+               "(bf16_emulated gives bf16 numerics at about 0.6x fp32 speed)")
     return "fp32", f"bf16 requested but unsupported: {why}", warning
 
 
