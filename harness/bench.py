@@ -665,9 +665,9 @@ def speed_targets(result: dict[str, Any]) -> list[Target]:
 # The quality check's peak learning rate and seeds. At the trainer's default lr (3e-3) 300 steps
 # end in the steep part of the curve, where a bf16-sized perturbation moves the final loss by
 # several % either way: same-seed pairs, real bf16 on an AMX host, +0.3, -1.5, +0.7, -7.6%. At 1e-3
-# the pairs stay within about 1% of each other (bf16 matmul rounding simulated on an AVX2 host:
-# -0.75, +0.46, +0.17%, sd 0.6%): with 6 seeds the 95% interval is about +-0.7% wide, narrow enough
-# to decide +-1%; at 3e-3 that would take some 60 seeds.
+# the pairs stay close: bf16_emulated on an AVX2 host, seeds 0-4, -0.58, +0.01, +0.11, -0.04,
+# +0.41% (sd 0.36%; mean -0.02%, 95% interval -0.47% to +0.43%: met). With 6 seeds the interval is
+# about +-0.4% wide, narrow enough to decide +-1%; at 3e-3 that would take some 60 seeds.
 QUALITY_LR = 1e-3
 QUALITY_SEEDS = 6
 
