@@ -165,7 +165,8 @@ def _add_bench(sub: argparse._SubParsersAction) -> None:
                    help="torch threads for every measurement, both loops alike (default 0 = every core)")
     p.add_argument("--no-profile", dest="profile", action="store_false", help="skip the torch.profiler step")
     p.add_argument("--quality", action="store_true",
-                   help="also train fp32 and bf16 for --quality-steps and compare the val loss")
+                   help="also train fp32 and bf16 (bf16_emulated where the CPU has no bf16 units) for "
+                        "--quality-steps and compare the val loss")
     p.add_argument("--quality-steps", type=int, default=300, help="steps of the --quality runs (default 300)")
     p.add_argument("--quality-seeds", type=int, default=None,
                    help="seeds of the --quality runs; the target is on the mean paired difference (default 6)")
