@@ -39,7 +39,8 @@ def within_one_rounding(got: torch.Tensor, exact: torch.Tensor, magnitude: torch
 
     Bound: one bf16 ulp (at most 2^-7 relative, 8 significant bits) plus the fp32 summation error
     of ``terms`` products, terms x 2^-24 x sum |a_i b_i| (Higham 2002, "Accuracy and Stability of
-    Numerical Algorithms", the gamma_n bound for dot products), which matters under cancellation.
+    Numerical Algorithms", the gamma_n bound for dot products; cited from memory), which matters
+    under cancellation.
     """
     assert got.dtype == torch.bfloat16
     assert (got == exact.bfloat16()).float().mean() >= 0.999
