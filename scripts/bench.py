@@ -1,6 +1,6 @@
-"""Speed benchmark: harness configs beside a hand-written PyTorch loop and this machine's peaks.
+"""Speed benchmark: blockyard configs beside a hand-written PyTorch loop and this machine's peaks.
 
-The same as ``harness bench`` (see ``harness/bench.py``); prints ratios measured side by side.
+The same as ``blockyard bench`` (see ``blockyard/bench.py``); prints ratios measured side by side.
 
     .venv/bin/python scripts/bench.py [--steps 30] [--rounds 2] [--quality] [--json out.json]
 """
@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import sys
 
-from harness.cli import main
+from blockyard.cli import main
 
 if __name__ == "__main__":
     raise SystemExit(main(["bench", *sys.argv[1:]]))

@@ -1,7 +1,7 @@
 """Decode benchmark: tokens/s and state bytes of the step path vs context length, batch 1 and 64.
 
 Models: the presets' global attention, local attention (window 128), recurrence and 2:1 hybrid
-(see ``harness/bench_decode.py``). Prints a table; ``--json`` and ``--plot`` write the figures.
+(see ``blockyard/bench_decode.py``). Prints a table; ``--json`` and ``--plot`` write the figures.
 
     .venv/bin/python scripts/bench_decode.py [--contexts 128,512,1024,2048,4096] [--batches 1,64]
         [--models global,local,recurrence,hybrid] [--reps 8] [--max-state-mib 512]
@@ -13,8 +13,8 @@ from __future__ import annotations
 import argparse
 import sys
 
-from harness.bench_decode import MODELS, bench_decode_command
-from harness.errors import UserError
+from blockyard.bench_decode import MODELS, bench_decode_command
+from blockyard.errors import UserError
 
 
 def int_list(text: str) -> list[int]:

@@ -1,10 +1,10 @@
 """Memory benchmark: peak resident memory of training runs, corpora and grids, measured side by side.
 
 Each measurement runs in a fresh subprocess (this script with ``--child JSON``), so the kernel's
-high-water mark of resident memory (getrusage ``ru_maxrss``, via ``harness.train.memory``) is
+high-water mark of resident memory (getrusage ``ru_maxrss``, via ``blockyard.train.memory``) is
 that configuration's own peak. Sections (``--only`` picks some):
 
-* ``peak``: a harness training run vs the hand-written loop of ``harness.bench`` (width 256,
+* ``peak``: a blockyard training run vs the hand-written loop of ``blockyard.bench`` (width 256,
   depth 4, seq 256, batch 16); target <= 1.3x; summary.json's ``peak_rss_bytes`` is checked too.
 * ``corpus``: a generated 1 GB text file (temp dir, deleted after) prepared into the token cache
   (target: peak RSS < 1 GB), then trained on (the token memmap must not be read into memory).
@@ -63,22 +63,22 @@ def base_config(cache_dir: str, *, kind: str = "global_attention", width: int = 
 
 
 def job_plain(spec: dict[str, Any]) -> dict[str, Any]:
-    """The hand-written reference loop of harness.bench for a few steps."""
-    from harness.bench import PlainShape, plain_step_seconds
-    from harness.train.memory import peak_rss_bytes
+    """The hand-written reference loop of blockyard.bench for a few steps."""
+    from blockyard.bench import PlainShape, plain_step_seconds
+    from blockyard.train.memory import peak_rss_bytes
 
     plain_step_seconds(PlainShape(), spec["batch"], spec["seq_len"], spec["steps"], 0)
     return {"peak_rss_bytes": peak_rss_bytes()}
 
 
 def job_train(spec: dict[str, Any]) -> dict[str, Any]:
-    """``harness.train.run_training`` into a temp dir: this process's peak and summary.json's."""
-    from harness.config import config_from_dict
-    from harness.train import run_training
-    from harness.train.memory import peak_rss_bytes
+    """``blockyard.train.run_training`` into a temp dir: this process's peak and summary.json's."""
+    from blockyard.config import config_from_dict
+    from blockyard.train import run_training
+    from blockyard.train.memory import peak_rss_bytes
 
     cfg = config_from_dict(spec["config"])
-    with tempfile.TemporaryDirectory(prefix="harness-mem-") as tmp:
+    with tempfile.TemporaryDirectory(prefix="blockyard-mem-") as tmp:
         summary = run_training(cfg, Path(tmp) / "run", progress="silent")
         on_disk = json.loads((Path(tmp) / "run" / "summary.json").read_text())
     return {"peak_rss_bytes": peak_rss_bytes(), "summary_peak_rss_bytes": on_disk.get("peak_rss_bytes"),
@@ -109,14 +109,14 @@ def job_steps(spec: dict[str, Any]) -> dict[str, Any]:
     """The trainer's own pieces and ``train_step``, with the RSS taken once model + optimizer are allocated."""
     import torch
 
-    from harness.config import config_from_dict
-    from harness.data import load_data
-    from harness.memory_estimate import estimate_activation_memory
-    from harness.model import build_model
-    from harness.train import train_step
-    from harness.train.memory import current_rss_bytes, peak_rss_bytes
-    from harness.train.optim import build_optimizer, build_scheduler
-    from harness.train.runtime import resolve_runtime
+    from blockyard.config import config_from_dict
+    from blockyard.data import load_data
+    from blockyard.memory_estimate import estimate_activation_memory
+    from blockyard.model import build_model
+    from blockyard.train import train_step
+    from blockyard.train.memory import current_rss_bytes, peak_rss_bytes
+    from blockyard.train.optim import build_optimizer, build_scheduler
+    from blockyard.train.runtime import resolve_runtime
 
     cfg = config_from_dict(spec["config"])
     runtime, _ = resolve_runtime(cfg.runtime)
@@ -141,9 +141,9 @@ def job_steps(spec: dict[str, Any]) -> dict[str, Any]:
 
 def job_prepare(spec: dict[str, Any]) -> dict[str, Any]:
     """``load_data`` on a corpus not yet in the cache: tokenizes it; peak RSS, time, array sizes."""
-    from harness.config import config_from_dict
-    from harness.data import load_data
-    from harness.train.memory import peak_rss_bytes
+    from blockyard.config import config_from_dict
+    from blockyard.data import load_data
+    from blockyard.train.memory import peak_rss_bytes
 
     start = time.perf_counter()
     data = load_data(config_from_dict(spec["config"]))
@@ -170,8 +170,8 @@ def job_read_windows(spec: dict[str, Any]) -> dict[str, Any]:
     only RssFile (clean page-cache pages the kernel can drop; how many it maps per fault depends on
     its folio size, not on the program).
     """
-    from harness.config import config_from_dict
-    from harness.data import load_data
+    from blockyard.config import config_from_dict
+    from blockyard.data import load_data
 
     keys = ("RssAnon", "RssFile")
     data = load_data(config_from_dict(spec["config"]))
@@ -254,17 +254,17 @@ def target(name: str, value: float | None, op: str, bound: float) -> dict[str, A
 
 
 def section_peak(cache_dir: str, log: Any) -> dict[str, Any]:
-    """Harness run vs plain loop at width 256, depth 4, seq 256, batch 16."""
+    """Blockyard run vs plain loop at width 256, depth 4, seq 256, batch 16."""
     plain = run_child({"job": "plain", "batch": 16, "seq_len": 256, "steps": 6})
     log(f"  plain loop        peak {plain['peak_rss_bytes'] / MB:7.0f} MiB")
-    harness = run_child({"job": "train", "config": base_config(cache_dir)})
-    log(f"  harness run       peak {harness['peak_rss_bytes'] / MB:7.0f} MiB "
-        f"(summary.json: {harness['summary_peak_rss_bytes'] / MB:.0f} MiB)")
-    ratio = harness["peak_rss_bytes"] / plain["peak_rss_bytes"]
-    recorded = harness["summary_peak_rss_bytes"] or 0
-    return {"plain": plain, "harness": harness, "ratio": ratio, "targets": [
-        target("harness / plain peak RSS, w256 d4 s256 b16", ratio, "<=", 1.3),
-        target("summary.json peak_rss_bytes / process peak", recorded / harness["peak_rss_bytes"], ">=", 0.9),
+    blockyard = run_child({"job": "train", "config": base_config(cache_dir)})
+    log(f"  blockyard run       peak {blockyard['peak_rss_bytes'] / MB:7.0f} MiB "
+        f"(summary.json: {blockyard['summary_peak_rss_bytes'] / MB:.0f} MiB)")
+    ratio = blockyard["peak_rss_bytes"] / plain["peak_rss_bytes"]
+    recorded = blockyard["summary_peak_rss_bytes"] or 0
+    return {"plain": plain, "blockyard": blockyard, "ratio": ratio, "targets": [
+        target("blockyard / plain peak RSS, w256 d4 s256 b16", ratio, "<=", 1.3),
+        target("summary.json peak_rss_bytes / process peak", recorded / blockyard["peak_rss_bytes"], ">=", 0.9),
     ]}
 
 
@@ -297,7 +297,7 @@ def write_text_corpus(path: Path, nbytes: int, seed: int = 0, slabs: int = 16) -
 
 def section_corpus(cache_dir: str, log: Any) -> dict[str, Any]:
     """Prepare a 1 GB text file into the token cache, then train on it (both in fresh processes)."""
-    work = Path(tempfile.mkdtemp(prefix="harness-mem-corpus-"))
+    work = Path(tempfile.mkdtemp(prefix="blockyard-mem-corpus-"))
     try:
         text = work / "big.txt"
         t0 = time.perf_counter()
@@ -362,21 +362,21 @@ def section_checkpointing(cache_dir: str, log: Any) -> dict[str, Any]:
 
 
 def section_grid(cache_dir: str, log: Any, workers: int = 2) -> dict[str, Any]:
-    """One cell via ``harness train`` vs a grid of ``workers`` cells on ``workers`` local workers."""
+    """One cell via ``blockyard train`` vs a grid of ``workers`` cells on ``workers`` local workers."""
     import yaml
 
-    harness = str(Path(sys.executable).with_name("harness"))
-    work = Path(tempfile.mkdtemp(prefix="harness-mem-grid-"))
+    blockyard = str(Path(sys.executable).with_name("blockyard"))
+    work = Path(tempfile.mkdtemp(prefix="blockyard-mem-grid-"))
     env = dict(os.environ, OMP_NUM_THREADS="1")
     try:
         base = base_config(cache_dir, steps=20, threads=1)
         base.pop("name")
         (work / "cell.yaml").write_text(yaml.safe_dump(base))
-        single = sampled_peak([harness, "train", str(work / "cell.yaml"), "--out", str(work / "single")], env=env)
+        single = sampled_peak([blockyard, "train", str(work / "cell.yaml"), "--out", str(work / "single")], env=env)
         log(f"  one cell          tree peak {single['peak_tree_rss_bytes'] / MB:6.0f} MiB")
         grid = {"name": "mem-grid", "base": base, "seeds": list(range(workers))}
         (work / "grid.yaml").write_text(yaml.safe_dump(grid))
-        many = sampled_peak([harness, "grid", str(work / "grid.yaml"), "--out", str(work / "grid"),
+        many = sampled_peak([blockyard, "grid", str(work / "grid.yaml"), "--out", str(work / "grid"),
                              "--workers", str(workers), "--threads", "1"], env=env)
         bound = workers * single["peak_tree_rss_bytes"] + 300 * MB
         log(f"  grid of {workers} workers  tree peak {many['peak_tree_rss_bytes'] / MB:6.0f} MiB "
@@ -422,7 +422,7 @@ def main(argv: list[str] | None = None) -> int:
     if unknown:
         parser.error(f"--only: unknown section(s) {', '.join(unknown)} (allowed: {', '.join(SECTIONS)})")
     result: dict[str, Any] = {"load_average": list(os.getloadavg())}
-    with tempfile.TemporaryDirectory(prefix="harness-mem-cache-") as cache_dir:
+    with tempfile.TemporaryDirectory(prefix="blockyard-mem-cache-") as cache_dir:
         warm_cache(cache_dir)
         for name in sections:
             print(f"{name}:", flush=True)

@@ -19,7 +19,7 @@ from pathlib import Path
 
 import torch
 
-from harness.kernels import linear_scan, scan_backend_info
+from blockyard.kernels import linear_scan, scan_backend_info
 
 TARGET_RATIO = 3.0
 

@@ -4,4 +4,4 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 bash scripts/setup.sh
-exec .venv/bin/harness grid configs/grids/default.yaml "$@"
+exec .venv/bin/blockyard grid configs/grids/default.yaml "$@"

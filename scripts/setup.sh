@@ -9,7 +9,7 @@ if [ ! -x .venv/bin/python ]; then
     echo "setup: creating .venv" >&2
     "$PY" -m venv .venv
 fi
-stamp=.venv/.harness-installed
+stamp=.venv/.blockyard-installed
 log=.venv/setup.log
 pip_install() {
     if ! .venv/bin/python -m pip install -q "$@" >>"$log" 2>&1; then
@@ -24,6 +24,6 @@ if [ ! -f "$stamp" ] || [ pyproject.toml -nt "$stamp" ]; then
     pip_install --upgrade pip
     pip_install "torch==2.13.0"
     pip_install -e ".[dev,ray]"
-    .venv/bin/python -c "import torch, harness; assert torch.__version__.startswith('2.13.0'), torch.__version__"
+    .venv/bin/python -c "import torch, blockyard; assert torch.__version__.startswith('2.13.0'), torch.__version__"
     touch "$stamp"
 fi

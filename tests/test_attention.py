@@ -9,10 +9,10 @@ import torch
 import torch.nn.functional as F
 from torch.profiler import ProfilerActivity, profile
 
-from harness.config import config_from_dict
-from harness.mixers import MIXERS
-from harness.mixers.attention import sliding_window_attention
-from harness.mixers.rope import apply_rope
+from blockyard.config import config_from_dict
+from blockyard.mixers import MIXERS
+from blockyard.mixers.attention import sliding_window_attention
+from blockyard.mixers.rope import apply_rope
 
 WIDTH = 32
 

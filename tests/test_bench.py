@@ -1,6 +1,6 @@
 """Correctness of the benchmarks and the memory estimator (no timing assertions: speed lives in scripts/).
 
-* the plain reference loop of ``harness.bench`` computes the same function as the harness model;
+* the plain reference loop of ``blockyard.bench`` computes the same function as blockyard's model;
 * the benchmark's JSON has every field a comparison between commits reads;
 * the profile's per-block split charges backward time to the right block;
 * the activation-memory estimate equals what torch's autograd actually saves, and warns on huge configs;
@@ -17,16 +17,16 @@ from pathlib import Path
 import pytest
 import torch
 
-from harness import bench
-from harness.config import config_from_dict
-from harness.memory_estimate import (
+from blockyard import bench
+from blockyard.config import config_from_dict
+from blockyard.memory_estimate import (
     estimate_activation_memory,
     memory_warning,
     saved_bytes_by_part,
     warn_if_too_large,
 )
-from harness.model import build_model
-from harness.train import runtime as runtime_mod
+from blockyard.model import build_model
+from blockyard.train import runtime as runtime_mod
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -44,14 +44,14 @@ def tiny_cfg(kind: str = "global_attention", **model):
 # ----------------------------------------------------------------------------- plain reference
 
 
-def test_plain_reference_matches_harness_model_loss_and_gradients():
+def test_plain_reference_matches_blockyard_model_loss_and_gradients():
     # The plain loop is a hand-written transformer on torch primitives (SDPA, nn.RMSNorm, F.gelu);
-    # with the harness model's weights it must give the same loss and the same gradients, else the
+    # with blockyard's model weights it must give the same loss and the same gradients, else the
     # speed ratio would compare two different computations.
     torch.manual_seed(0)
     model = build_model(tiny_cfg().model, 256)
     plain = bench.PlainTransformer(bench.plain_shape_of(model), max_len=24)
-    bench.load_harness_weights(plain, model)
+    bench.load_blockyard_weights(plain, model)
     x, y = bench.random_batches(256, 3, 24, 1)[0]
     losses = []
     for m in (model, plain):
@@ -96,14 +96,14 @@ def test_bench_runs_print_their_warnings_but_not_their_start_and_end_lines(tmp_p
     # The benchmark prints its own progress; each timed run's "training ... / done ..." is noise there.
     monkeypatch.setattr(runtime_mod, "cpu_bf16_support", lambda: (False, "simulated AVX2 CPU"))
     case = bench.BenchCase("tiny", "global_attention", 16, 2, "bf16", width=16, depth=1)
-    run = bench.harness_run(case, 11, 1, tmp_path / "cache", threads=1)
+    run = bench.blockyard_run(case, 11, 1, tmp_path / "cache", threads=1)
     assert run["summary"]["status"] == "done"
     err = capsys.readouterr().err.splitlines()
     assert err and all(line.startswith("warning: runtime.precision: bf16 unsupported") for line in err), err
 
 
 def test_bench_json_has_the_fields_a_comparison_reads(tmp_path, monkeypatch):
-    monkeypatch.setenv("HARNESS_CACHE", str(tmp_path / "cache"))
+    monkeypatch.setenv("BLOCKYARD_CACHE", str(tmp_path / "cache"))
     cases = (bench.BenchCase("attention-fp32", "global_attention", 32, 2, width=32, depth=1),
              bench.BenchCase("recurrence-fp32", "recurrence", 32, 2, width=32, depth=1))
     result = bench.run_bench(steps=11, warmup=1, rounds=1, cases=cases, log=lambda s: None,
@@ -116,10 +116,10 @@ def test_bench_json_has_the_fields_a_comparison_reads(tmp_path, monkeypatch):
     assert names == {"plain-fp32", "attention-fp32", "recurrence-fp32"}
     for row in result["configs"]:
         assert row["tokens_per_s"] > 0 and row["flops_per_token"] > 0 and 0 < row["mfu"]
-    assert result["ratios"]["harness_over_plain_fp32"] > 0
+    assert result["ratios"]["blockyard_over_plain_fp32"] > 0
     assert result["ratios"]["recurrence_over_attention_s256"] > 0
     assert result["ratios"]["bf16_over_fp32_attention"] is None  # not measured in this run
-    assert {t["name"] for t in result["targets"]} >= {"harness / plain loop tokens/s, global attention fp32"}
+    assert {t["name"] for t in result["targets"]} >= {"blockyard / plain loop tokens/s, global attention fp32"}
     assert "chunked" in result["scan"]["backends"]
     shares = result["profile"]["attention-fp32"]["share"]
     assert sum(shares.values()) == pytest.approx(1.0)
@@ -140,7 +140,7 @@ def test_quality_check_pairs_seeds_and_bounds_the_mean_difference(monkeypatch):
         factor = {0: 1.02, 1: 1.0, 2: 1.01}[train["seed"]] if case.precision == "bf16" else 1.0
         return {"tokens_per_s": 1.0, "summary": {"final_val_loss": base * factor}}
 
-    monkeypatch.setattr(bench, "harness_run", fake_run)
+    monkeypatch.setattr(bench, "blockyard_run", fake_run)
     monkeypatch.setattr(runtime_mod, "cpu_bf16_support", lambda: (True, "simulated bf16 CPU"))
     q = bench.run_quality(steps=40, seeds=3, log=lambda s: None)
     assert sorted(seen) == sorted((p, s, 40) for p in ("fp32", "bf16") for s in range(3))
@@ -188,7 +188,7 @@ def test_profile_splits_the_scan_out_of_the_recurrence():
 
 
 def test_bench_command_rejects_bad_arguments(tmp_path):
-    from harness.errors import UserError
+    from blockyard.errors import UserError
 
     with pytest.raises(UserError, match="--steps"):
         bench.bench_command(steps=5, warmup=3)
@@ -199,7 +199,7 @@ def test_bench_command_rejects_bad_arguments(tmp_path):
 
 
 def test_bench_cli_bad_quality_lr_is_a_one_line_error(capsys):
-    from harness.cli import main
+    from blockyard.cli import main
 
     assert main(["bench", "--quality", "--quality-lr", "-1"]) == 2
     err = capsys.readouterr().err.strip()
@@ -239,7 +239,7 @@ def test_estimate_is_linear_in_batch_and_checkpointing_keeps_less():
 @pytest.mark.parametrize("kind", ["global_attention", "local_attention", "recurrence", "lstm"])
 def test_coarse_bound_is_above_the_precise_estimate(kind):
     # The pre-check may only skip configs that surely fit: its bound must exceed the counted bytes.
-    from harness.memory_estimate import coarse_bound_bytes
+    from blockyard.memory_estimate import coarse_bound_bytes
 
     for width, expansion in ((64, 3.0), (64, 0.5), (128, 8.0)):
         cfg = config_from_dict({"model": {"width": width, "depth": 2, "pattern": [kind], "mlp_expansion": expansion},
@@ -263,8 +263,8 @@ def test_huge_config_warns_with_estimate_and_suggestions():
 
 def test_trainer_warns_before_training_when_activations_will_not_fit(tmp_path, monkeypatch, capsys):
     # The machine is made to look tiny (64 KiB available) instead of building a huge config.
-    import harness.memory_estimate as me
-    from harness.train import run_training
+    import blockyard.memory_estimate as me
+    from blockyard.train import run_training
 
     monkeypatch.setattr(me, "available_memory_bytes", lambda: 2**16)
     cfg = config_from_dict({"model": {"width": 32, "depth": 1}, "data": {"seq_len": 32, "cache_dir": str(tmp_path)},
@@ -291,9 +291,9 @@ def test_warning_suggests_a_batch_that_fits():
 
 def test_activation_checkpointing_gives_identical_losses_and_gradients():
     # Recomputing a block in backward replays the same ops on the same inputs: bitwise equal results.
-    from harness.train import train_step
-    from harness.train.optim import build_optimizer, build_scheduler
-    from harness.train.runtime import resolve_runtime
+    from blockyard.train import train_step
+    from blockyard.train.optim import build_optimizer, build_scheduler
+    from blockyard.train.runtime import resolve_runtime
 
     cfg = config_from_dict({"model": {"width": 32, "depth": 3, "pattern": ["global_attention", "recurrence"]},
                             "train": {"steps": 3}})
@@ -320,7 +320,7 @@ def _bench_memory():
 
 
 def test_memory_probe_returns_plausible_numbers(tmp_path):
-    from harness.kernels import scan_backend_info
+    from blockyard.kernels import scan_backend_info
 
     # Build (or find) the scan kernel first: a first build inside the child would import the
     # compiler tooling after its baseline and be counted as activation memory.
@@ -359,7 +359,7 @@ def test_quality_check_decides_only_when_the_interval_is_on_one_side(monkeypatch
         factor = factors[train["seed"]] if case.precision == "bf16" else 1.0
         return {"tokens_per_s": 1.0, "summary": {"final_val_loss": 3.0 * factor}}
 
-    monkeypatch.setattr(bench, "harness_run", fake_run)
+    monkeypatch.setattr(bench, "blockyard_run", fake_run)
     monkeypatch.setattr(runtime_mod, "cpu_bf16_support", lambda: (True, "simulated bf16 CPU"))
     assert bench.run_quality(steps=40, seeds=3, log=lambda s: None)["targets"][0]["met"] is met
 
@@ -374,7 +374,7 @@ def test_without_bf16_units_the_quality_check_emulates_bf16_and_says_so(monkeypa
         factor = 1.002 if case.precision != "fp32" else 1.0
         return {"tokens_per_s": 1.0, "summary": {"final_val_loss": (3.0 + 0.01 * train["seed"]) * factor}}
 
-    monkeypatch.setattr(bench, "harness_run", fake_run)
+    monkeypatch.setattr(bench, "blockyard_run", fake_run)
     monkeypatch.setattr(runtime_mod, "cpu_bf16_support", lambda: (False, "simulated AVX2 CPU"))
     q = bench.run_quality(steps=40, seeds=3, log=lambda s: None)
     assert sorted(seen) == ["bf16_emulated"] * 3 + ["fp32"] * 3
@@ -387,7 +387,7 @@ def test_without_bf16_units_the_quality_check_emulates_bf16_and_says_so(monkeypa
 
 def test_without_bf16_units_the_speed_benchmark_skips_bf16_cases(tmp_path, monkeypatch):
     # torch emulates bf16 on such CPUs at ~1% of fp32 speed: the plain bf16 twin would run for hours.
-    monkeypatch.setenv("HARNESS_CACHE", str(tmp_path / "cache"))
+    monkeypatch.setenv("BLOCKYARD_CACHE", str(tmp_path / "cache"))
     monkeypatch.setattr(runtime_mod, "cpu_bf16_support", lambda: (False, "simulated AVX2 CPU"))
     plain_calls = []
     real_plain = bench.plain_tokens_per_s

@@ -19,13 +19,13 @@ import pytest
 import torch
 import torch.nn.functional as F
 
-from harness.config import config_from_dict
-from harness.model import build_model
-from harness.train import run_training
-from harness.train.bf16_emulation import emulated_bf16_gemms
-from harness.train.loop import train_step
-from harness.train.optim import build_optimizer, build_scheduler
-from harness.train.runtime import cpu_bf16_support, resolve_precision, resolve_runtime
+from blockyard.config import config_from_dict
+from blockyard.model import build_model
+from blockyard.train import run_training
+from blockyard.train.bf16_emulation import emulated_bf16_gemms
+from blockyard.train.loop import train_step
+from blockyard.train.optim import build_optimizer, build_scheduler
+from blockyard.train.runtime import cpu_bf16_support, resolve_precision, resolve_runtime
 
 NATIVE, _ = cpu_bf16_support()
 
@@ -171,7 +171,7 @@ def test_train_step_follows_fp32_and_emulates_its_backward(monkeypatch):
 
 
 def test_a_bf16_emulated_run_says_so_in_env_json(tmp_path, monkeypatch):
-    monkeypatch.setenv("HARNESS_CACHE", str(tmp_path / "cache"))
+    monkeypatch.setenv("BLOCKYARD_CACHE", str(tmp_path / "cache"))
     cfg = config_from_dict({
         "name": "emu", "model": {"width": 32, "depth": 1, "pattern": ["global_attention"]},
         "data": {"corpus": "pydoc", "tokenizer": "bytes", "seq_len": 32},

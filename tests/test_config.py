@@ -1,4 +1,4 @@
-"""The config system (harness/config.py, harness/schema.py): defaults, inheritance, overrides, rejections."""
+"""The config system (blockyard/config.py, blockyard/schema.py): defaults, inheritance, overrides, rejections."""
 
 from __future__ import annotations
 
@@ -9,9 +9,9 @@ from pathlib import Path
 import pytest
 import yaml
 
-from harness.config import config_from_dict, config_hash, dump_config, load_config, replace
-from harness.errors import ConfigError, UserError
-from harness.mixers.attention import GlobalAttentionOptions
+from blockyard.config import config_from_dict, config_hash, dump_config, load_config, replace
+from blockyard.errors import ConfigError, UserError
+from blockyard.mixers.attention import GlobalAttentionOptions
 
 REPO = Path(__file__).resolve().parent.parent
 
@@ -208,7 +208,7 @@ def test_odd_head_dim_is_fine_without_rope():
 
 def run_cli(*args: str, cwd: Path) -> subprocess.CompletedProcess:
     return subprocess.run(
-        [sys.executable, "-m", "harness", *args], cwd=cwd, capture_output=True, text=True, timeout=120
+        [sys.executable, "-m", "blockyard", *args], cwd=cwd, capture_output=True, text=True, timeout=120
     )
 
 
@@ -243,7 +243,7 @@ def test_train_with_a_missing_config_file_exits_2(tmp_path):
 
 def test_exponent_floats_without_a_dot_parse_as_numbers(tmp_path):
     # YAML 1.2 core schema reads 1e-3 as a float; PyYAML's YAML 1.1 rules would make it a string.
-    from harness.config import load_config
+    from blockyard.config import load_config
 
     path = tmp_path / "c.yaml"
     path.write_text("train:\n  lr: 3e-4\n")

@@ -1,4 +1,4 @@
-"""The cost model (harness/cost.py) against counted parameters, Kaplan et al.'s FLOPs and measured states."""
+"""The cost model (blockyard/cost.py) against counted parameters, Kaplan et al.'s FLOPs and measured states."""
 
 from __future__ import annotations
 
@@ -8,12 +8,12 @@ from pathlib import Path
 import pytest
 import torch
 
-from harness import cost
-from harness.cli import main
-from harness.config import config_from_dict, load_config
-from harness.errors import UserError
-from harness.mixers import MIXERS, state_nbytes
-from harness.model import build_model
+from blockyard import cost
+from blockyard.cli import main
+from blockyard.config import config_from_dict, load_config
+from blockyard.errors import UserError
+from blockyard.mixers import MIXERS, state_nbytes
+from blockyard.model import build_model
 
 ROOT = Path(__file__).resolve().parents[1]
 PRESETS = sorted(glob.glob(str(ROOT / "configs" / "*.yaml")))

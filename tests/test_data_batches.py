@@ -13,9 +13,9 @@ import pytest
 import torch
 from scipy import stats
 
-from harness.config import config_from_dict
-from harness.data import load_data
-from harness.data.batches import train_window_starts, val_window_starts
+from blockyard.config import config_from_dict
+from blockyard.data import load_data
+from blockyard.data.batches import train_window_starts, val_window_starts
 
 
 def cfg_for(cache: Path, seed: int = 0, **over):
@@ -58,7 +58,7 @@ def test_batch_stream_identical_in_another_process(cache):
         "from pathlib import Path\n"
         "sys.path.insert(0, sys.argv[2])\n"
         "from test_data_batches import cfg_for, digest\n"
-        "from harness.data import load_data\n"
+        "from blockyard.data import load_data\n"
         "d = load_data(cfg_for(Path(sys.argv[1])))\n"
         "print(digest(d.train_batch(s) for s in range(5)))\n"
     )

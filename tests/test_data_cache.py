@@ -12,11 +12,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from harness.config import config_from_dict
-from harness.data import load_data, vocab_size_for
-from harness.data import sources as src
-from harness.data.cache import MANIFEST, CacheSpec, cache_key, plan_split, prepare
-from harness.errors import ConfigError, UserError
+from blockyard.config import config_from_dict
+from blockyard.data import load_data, vocab_size_for
+from blockyard.data import sources as src
+from blockyard.data.cache import MANIFEST, CacheSpec, cache_key, plan_split, prepare
+from blockyard.errors import ConfigError, UserError
 
 WORDS = "river stone lamp copper wheat orchard lantern meadow harbour thistle candle".split()
 
@@ -97,7 +97,7 @@ def test_cache_is_reused_without_reading_the_source(tmp_path, monkeypatch):
 
 
 def _prepare_in_child(corpus: str, cache: str, queue) -> None:
-    import harness.data.cache as cache_mod
+    import blockyard.data.cache as cache_mod
 
     original = cache_mod.build
 

@@ -15,11 +15,11 @@ from pathlib import Path
 
 import pytest
 
-from harness.cli import main as cli_main
-from harness.config import config_from_dict
-from harness.data import load_data
-from harness.data import sources as src
-from harness.errors import ConfigError, UserError
+from blockyard.cli import main as cli_main
+from blockyard.config import config_from_dict
+from blockyard.data import load_data
+from blockyard.data import sources as src
+from blockyard.errors import ConfigError, UserError
 
 PY = sys.executable
 
@@ -145,11 +145,11 @@ def test_pydoc_is_the_topics_dict_sorted_by_key():
 
 
 def test_cache_root_precedence(tmp_path, monkeypatch):
-    monkeypatch.setenv("HARNESS_CACHE", str(tmp_path / "env"))
+    monkeypatch.setenv("BLOCKYARD_CACHE", str(tmp_path / "env"))
     assert src.cache_root(str(tmp_path / "cfg")) == (tmp_path / "cfg").resolve()
     assert src.cache_root("") == (tmp_path / "env").resolve()
-    monkeypatch.delenv("HARNESS_CACHE")
-    assert src.cache_root("") == Path("~/.cache/harness").expanduser().resolve()
+    monkeypatch.delenv("BLOCKYARD_CACHE")
+    assert src.cache_root("") == Path("~/.cache/blockyard").expanduser().resolve()
 
 
 # ----------------------------------------------------------------------------- plays
@@ -266,14 +266,14 @@ def test_plays_extraction_takes_only_gut_texts(tmp_path):
 def test_hub_offline_mode_fails_fast_with_one_line(tmp_path):
     # A subprocess: datasets reads the offline switches when it is imported.
     env = {**os.environ, "HF_DATASETS_OFFLINE": "1", "HF_HUB_OFFLINE": "1", "HF_HOME": str(tmp_path / "hf")}
-    code = ("from pathlib import Path\nfrom harness.data.sources import resolve_corpus\n"
+    code = ("from pathlib import Path\nfrom blockyard.data.sources import resolve_corpus\n"
             "resolve_corpus('hub:nobody/no-such-dataset', Path('.'))")
     started = time.time()
     proc = subprocess.run([PY, "-c", code], env=env, capture_output=True, text=True, timeout=120)
     assert time.time() - started < 60
     last = proc.stderr.strip().splitlines()[-1]
     assert "UserError: data.corpus: hub:nobody/no-such-dataset: cannot load" in last
-    assert "harness corpus fetch hub:nobody/no-such-dataset" in last
+    assert "blockyard corpus fetch hub:nobody/no-such-dataset" in last
 
 
 def test_hub_unreachable_fails_fast_before_datasets(monkeypatch):

@@ -15,11 +15,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from harness.config import config_from_dict
-from harness.data import load_data
-from harness.data import sources as src
-from harness.data.tokenizers import PIECE_CHARS, BpeTokenizer, stream_pieces, text_pieces
-from harness.errors import UserError
+from blockyard.config import config_from_dict
+from blockyard.data import load_data
+from blockyard.data import sources as src
+from blockyard.data.tokenizers import PIECE_CHARS, BpeTokenizer, stream_pieces, text_pieces
+from blockyard.errors import UserError
 
 TINY_CHUNK = 97  # bytes: cuts 2-, 3- and 4-byte characters and \r\n pairs all over
 WORDS = ("river stone λόγος café naïve 漢字 lantern 🙂 meadow harbour thistle candle the of and to in a "
@@ -213,8 +213,8 @@ def test_errors_strict_and_replace_on_a_streamed_file(tmp_path, monkeypatch):
 _MEMORY_CHILD = r"""
 import json, resource, sys
 import datasets, tokenizers  # imported before the baseline: the reading path may use either
-from harness.config import config_from_dict
-from harness.data import load_data
+from blockyard.config import config_from_dict
+from blockyard.data import load_data
 
 baseline = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
 data = load_data(config_from_dict({"data": {"corpus": sys.argv[1], "cache_dir": sys.argv[2], "tokenizer": "bytes"}}))

@@ -10,10 +10,10 @@ import numpy as np
 import pytest
 import torch
 
-from harness.config import TaskConfig, config_from_dict
-from harness.data import answer_accuracy, load_data, mqar_batch, passkey_batch, selective_copy_batch, task_batches
-from harness.data.tasks import SEP, TASKS, mqar_queries
-from harness.errors import ConfigError
+from blockyard.config import TaskConfig, config_from_dict
+from blockyard.data import answer_accuracy, load_data, mqar_batch, passkey_batch, selective_copy_batch, task_batches
+from blockyard.data.tasks import SEP, TASKS, mqar_queries
+from blockyard.errors import ConfigError
 
 
 def task_cfg(name: str, seq_len: int, task: dict | None = None, **train):

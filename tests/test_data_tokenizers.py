@@ -6,8 +6,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from harness.config import config_from_dict
-from harness.data.tokenizers import (
+from blockyard.config import config_from_dict
+from blockyard.data.tokenizers import (
     BpeTokenizer,
     ByteTokenizer,
     CharTokenizer,
@@ -15,7 +15,7 @@ from harness.data.tokenizers import (
     storage_dtype,
     text_pieces,
 )
-from harness.errors import ConfigError
+from blockyard.errors import ConfigError
 
 MIXED = "Plain ASCII, accents: café naïve, Greek: λόγος, CJK: 漢字, emoji: 🙂, tab\tand\nnewline."
 

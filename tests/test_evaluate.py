@@ -1,4 +1,4 @@
-"""Length extrapolation (harness/evaluate.py, ``harness eval``) and the probe suite (harness/probes.py)."""
+"""Length extrapolation (blockyard/evaluate.py, ``blockyard eval``) and the probe suite (blockyard/probes.py)."""
 
 from __future__ import annotations
 
@@ -12,14 +12,14 @@ import torch
 import torch.nn.functional as F
 import yaml
 
-from harness import evaluate, probes
-from harness.cli import main
-from harness.config import config_from_dict, load_config
-from harness.data.tasks import KEY_SENTENCE, QUESTION, TASKS, SymbolTokenizer, passkey_symbols
-from harness.errors import ConfigError, UserError
-from harness.generate import load_run
-from harness.train import run_training
-from harness.train.records import read_metrics
+from blockyard import evaluate, probes
+from blockyard.cli import main
+from blockyard.config import config_from_dict, load_config
+from blockyard.data.tasks import KEY_SENTENCE, QUESTION, TASKS, SymbolTokenizer, passkey_symbols
+from blockyard.errors import ConfigError, UserError
+from blockyard.generate import load_run
+from blockyard.train import run_training
+from blockyard.train.records import read_metrics
 
 # ----------------------------------------------------------------------------- position buckets
 

@@ -1,4 +1,4 @@
-"""Generation through the step path (harness/generate.py) and ``harness sample``."""
+"""Generation through the step path (blockyard/generate.py) and ``blockyard sample``."""
 
 from __future__ import annotations
 
@@ -10,12 +10,12 @@ import torch
 import yaml
 from scipy import stats
 
-from harness.cli import main
-from harness.config import config_from_dict, load_config
-from harness.errors import UserError
-from harness.generate import filter_top_k, generate, load_run, sample_command, sample_next
-from harness.model import build_model
-from harness.train import run_training
+from blockyard.cli import main
+from blockyard.config import config_from_dict, load_config
+from blockyard.errors import UserError
+from blockyard.generate import filter_top_k, generate, load_run, sample_command, sample_next
+from blockyard.model import build_model
+from blockyard.train import run_training
 
 VOCAB = 50
 MIXERS = {
@@ -96,7 +96,7 @@ def test_negative_temperature_is_a_user_error():
         sample_next(torch.zeros(1, 4), temperature=-1.0)
 
 
-# ----------------------------------------------------------------------------- harness sample on a run
+# ----------------------------------------------------------------------------- blockyard sample on a run
 
 
 @pytest.fixture(scope="module")
@@ -165,8 +165,8 @@ def test_sample_bad_run_dirs(tmp_path):
 
 
 def test_tiled_state_steps_like_a_batch_of_identical_sequences():
-    from harness.bench_decode import states_at, tile_state
-    from harness.mixers import state_nbytes
+    from blockyard.bench_decode import states_at, tile_state
+    from blockyard.mixers import state_nbytes
 
     model = tiny_model(["rec", "local", "global", "lstm"])
     one = states_at(model, [6])[6]
@@ -180,7 +180,7 @@ def test_tiled_state_steps_like_a_batch_of_identical_sequences():
 
 
 def test_decode_bench_measures_the_predicted_state_and_skips_over_budget():
-    from harness.bench_decode import decode_bench
+    from blockyard.bench_decode import decode_bench
 
     rows = decode_bench(models=["global", "recurrence"], contexts=[4, 8], batches=[1, 3], reps=1,
                         max_state_mib=0.2, overrides=["model.depth=1", "model.width=32"])

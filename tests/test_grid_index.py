@@ -5,7 +5,7 @@ from __future__ import annotations
 import multiprocessing as mp
 from pathlib import Path
 
-from harness.grid.index import GridIndex
+from blockyard.grid.index import GridIndex
 
 WRITERS = 4
 ROUNDS = 30

@@ -16,10 +16,10 @@ from pathlib import Path
 import psutil
 import pytest
 
-from harness.errors import UserError
-from harness.grid.executors import import_ray
-from harness.grid.index import open_index
-from harness.grid.run import run_grid
+from blockyard.errors import UserError
+from blockyard.grid.executors import import_ray
+from blockyard.grid.index import open_index
+from blockyard.grid.run import run_grid
 
 SPEC = """
 name: two-cells
@@ -94,7 +94,7 @@ def test_ray_executor_matches_local_processes(tmp_path, ray_head):
     spec = tmp_path / "two.yaml"
     spec.write_text(textwrap.dedent(SPEC))
     assert run_grid(spec, out=tmp_path / "local", workers=2, threads=1, echo=lambda _: None) == 0
-    proc = subprocess.run([sys.executable, "-m", "harness", "grid", str(spec), "--out", str(tmp_path / "ray"),
+    proc = subprocess.run([sys.executable, "-m", "blockyard", "grid", str(spec), "--out", str(tmp_path / "ray"),
                            "--executor", "ray", "--address", ray_head, "--threads", "1"],
                           capture_output=True, text=True, timeout=400, env=_ray_env())
     assert proc.returncode == 0, proc.stdout + proc.stderr

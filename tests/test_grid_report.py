@@ -10,11 +10,11 @@ from pathlib import Path
 import pytest
 from scipy import stats as sps
 
-from harness.cli import main
-from harness.errors import UserError
-from harness.grid.index import open_index
-from harness.grid.report import CAUTION, write_report
-from harness.grid.status import grid_progress, status_text
+from blockyard.cli import main
+from blockyard.errors import UserError
+from blockyard.grid.index import open_index
+from blockyard.grid.report import CAUTION, write_report
+from blockyard.grid.status import grid_progress, status_text
 
 TOKENS_PER_STEP = 128
 

@@ -19,8 +19,8 @@ from pathlib import Path
 import psutil
 import pytest
 
-from harness.grid.index import open_index
-from harness.grid.run import run_grid
+from blockyard.grid.index import open_index
+from blockyard.grid.run import run_grid
 
 SPEC = """
 name: resume
@@ -69,7 +69,7 @@ def _cell_mid_way(grid_dir: Path, not_these: set[str]) -> str | None:
 
 
 def _start(spec: Path, grid_dir: Path) -> subprocess.Popen:
-    return subprocess.Popen([sys.executable, "-m", "harness", "grid", str(spec), "--out", str(grid_dir),
+    return subprocess.Popen([sys.executable, "-m", "blockyard", "grid", str(spec), "--out", str(grid_dir),
                              "--workers", "1", "--threads", "1"], stdout=subprocess.DEVNULL,
                             stderr=subprocess.DEVNULL, start_new_session=True)
 

@@ -9,10 +9,10 @@ from pathlib import Path
 import pytest
 import torch
 
-from harness.errors import UserError
-from harness.grid.index import open_index
-from harness.grid.run import run_grid
-from harness.grid.status import status_text
+from blockyard.errors import UserError
+from blockyard.grid.index import open_index
+from blockyard.grid.run import run_grid
+from blockyard.grid.status import status_text
 
 # Tiny cells: the pydoc corpus (ships with Python), width 32, one block, 32-token windows.
 TINY_BASE = """
@@ -29,7 +29,7 @@ def finished_grid(tmp_path_factory) -> tuple[Path, int, list[str]]:
     spec = tmp / "twins.yaml"
     spec.write_text(textwrap.dedent("""
         name: twins
-        description: a team checking that the harness finds no difference where there is none
+        description: a team checking that blockyard finds no difference where there is none
         base:
     """) + TINY_BASE + textwrap.dedent("""
         variants:

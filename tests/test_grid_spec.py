@@ -11,14 +11,14 @@ from pathlib import Path
 import pytest
 import torch
 
-from harness.cli import main
-from harness.config import to_dict
-from harness.errors import UserError
-from harness.grid.fairness import PARAMS_TOLERANCE, apply_matching, count_params, flops_per_token, planned_tokens
-from harness.grid.index import open_index
-from harness.grid.run import _plan_rows, plan_cells
-from harness.grid.spec import expand_cells, load_grid
-from harness.model import build_model
+from blockyard.cli import main
+from blockyard.config import to_dict
+from blockyard.errors import UserError
+from blockyard.grid.fairness import PARAMS_TOLERANCE, apply_matching, count_params, flops_per_token, planned_tokens
+from blockyard.grid.index import open_index
+from blockyard.grid.run import _plan_rows, plan_cells
+from blockyard.grid.spec import expand_cells, load_grid
+from blockyard.model import build_model
 
 BASE = {
     "model": {"width": 32, "depth": 2, "pattern": ["global_attention"], "mlp_expansion": 2.0},
@@ -136,7 +136,7 @@ def test_bad_spec_exit_code_of_the_real_command(tmp_path, existing_grid_dir):
     path = tmp_path / "bad.yaml"
     path.write_text("base: {model: {width: 32}}\nseeds: [0]\naxes: {model.width: 64}\n")
     before = _tree_snapshot(existing_grid_dir)
-    proc = subprocess.run([sys.executable, "-m", "harness", "grid", str(path), "--out", str(existing_grid_dir)],
+    proc = subprocess.run([sys.executable, "-m", "blockyard", "grid", str(path), "--out", str(existing_grid_dir)],
                           capture_output=True, text=True, timeout=120)
     expected = "error: axes.model.width: expected a list of values\n"
     assert (proc.returncode, proc.stdout, proc.stderr) == (2, "", expected)
@@ -176,7 +176,7 @@ def test_non_grid_dir_is_refused(tmp_path):
     other = tmp_path / "other"
     other.mkdir()
     (other / "notes.txt").write_text("mine")
-    from harness.grid.run import run_grid
+    from blockyard.grid.run import run_grid
 
     with pytest.raises(UserError, match="is not empty and holds no grid"):
         run_grid(path, out=other, echo=lambda _: None)
@@ -273,9 +273,9 @@ def test_match_flops_equalises_training_flops(tmp_path):
 def test_dry_run_times_the_trainers_step_with_each_cells_runtime(tmp_path, monkeypatch):
     # A cell's precision, activation checkpointing and accumulation change its speed: the estimate
     # must time the trainer's own step under the cell's runtime, not a bare forward/backward.
-    from harness.config import config_from_dict
-    from harness.grid.estimate import measure_tokens_per_s
-    from harness.train import loop
+    from blockyard.config import config_from_dict
+    from blockyard.grid.estimate import measure_tokens_per_s
+    from blockyard.train import loop
 
     seen = []
     real_step = loop.train_step
@@ -350,7 +350,7 @@ def test_demo_grids_expand_and_match_parameters(name, variants, seeds):
 
 def test_planning_a_grid_builds_no_model_and_loads_no_report_libraries():
     # The grid parent stays resident while its workers train; issue #8 bounds a grid at N x one
-    # cell + 300 MB. Planning counts parameters analytically (harness.cost) and the report's scipy
+    # cell + 300 MB. Planning counts parameters analytically (blockyard.cost) and the report's scipy
     # loads only when the report is written. A fresh interpreter, so earlier imports do not count.
     import subprocess
     import sys
@@ -362,8 +362,8 @@ def test_planning_a_grid_builds_no_model_and_loads_no_report_libraries():
         "def spy(self, *a, **k):\n"
         "    built.append(type(self).__name__); orig(self, *a, **k)\n"
         "nn.Module.__init__ = spy\n"
-        "from harness.grid.run import plan_cells\n"
-        "from harness.grid.spec import load_grid\n"
+        "from blockyard.grid.run import plan_cells\n"
+        "from blockyard.grid.spec import load_grid\n"
         f"plan = plan_cells(load_grid({str(CONFIGS / 'default.yaml')!r}), 1)\n"
         "assert len(plan) == 6 and plan[0].cost.params_total > 0, plan\n"
         "assert not built, built[:5]\n"

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy import stats as sps
 
-from harness.grid import stats
+from blockyard.grid import stats
 
 
 def test_t_critical_matches_the_t_table_and_scipy():

@@ -12,13 +12,13 @@ from pathlib import Path
 
 import pytest
 
-from harness import cost
-from harness.grid.spec import expand_cells, load_grid
+from blockyard import cost
+from blockyard.grid.spec import expand_cells, load_grid
 
 LESSONS = Path(__file__).resolve().parents[1] / "configs" / "lessons"
 GRIDS = sorted(glob.glob(str(LESSONS / "*.yaml")))
 
-# Training FLOPs of a whole lesson (sum over cells of FLOPs/token x tokens, harness.cost). The
+# Training FLOPs of a whole lesson (sum over cells of FLOPs/token x tokens, blockyard.cost). The
 # slowest lesson measured here (the first lesson-mqar: 8.2e12 FLOPs in 674 s, 2 workers x 1 thread
 # on 2 heavily shared cores; the current one: 1.02e13 in 333 s) ran at 1.2e10 FLOP/s for the grid; 20 minutes at that
 # rate is 1.44e13 FLOPs, so this budget keeps an edited lesson under ~17 minutes at the worst
@@ -65,8 +65,8 @@ def test_selective_copying_needs_the_input_dependent_gate(tmp_path):
     # cannot skip the blanks), a selective (input-gated) one can. The lesson-gate grid, seed 0,
     # shortened to 700 steps: the LTI model stays at chance (ln copy_vocab nats per answer)
     # while the gated one is clearly below it.
-    from harness.config import replace
-    from harness.train import run_training
+    from blockyard.config import replace
+    from blockyard.train import run_training
 
     cells = {c.variant: c for c in expand_cells(load_grid(LESSONS / "gate.yaml")) if c.seed == 0}
     losses = {}
@@ -86,9 +86,9 @@ def test_global_attention_solves_mqar_with_few_pairs_at_small_width(tmp_path):
     # attention, seed 0, shortened to 1000 steps: answer accuracy on the 4-pair task near 1, far
     # above the ~0.3 of the plateau where a model copies some value of the context without
     # binding it to its key (about 1/4 for 4 pairs, plus repeated values).
-    from harness.config import replace
-    from harness.train import run_training
-    from harness.train.records import read_metrics
+    from blockyard.config import replace
+    from blockyard.train import run_training
+    from blockyard.train.records import read_metrics
 
     cell = next(c for c in expand_cells(load_grid(LESSONS / "mqar.yaml"))
                 if c.seed == 0 and c.variant == "global-attention")

@@ -6,10 +6,10 @@ from __future__ import annotations
 import pytest
 import torch
 
-from harness.config import config_from_dict
-from harness.errors import ConfigError
-from harness.mixers import MIXERS, state_nbytes
-from harness.mixers.lstm import LSTMMixer, LSTMOptions
+from blockyard.config import config_from_dict
+from blockyard.errors import ConfigError
+from blockyard.mixers import MIXERS, state_nbytes
+from blockyard.mixers.lstm import LSTMMixer, LSTMOptions
 
 WIDTH = 8
 
@@ -92,7 +92,7 @@ def test_cost_hooks_exact(hidden_mult):
 def test_backbone_keeps_torch_lstm_init():
     # torch initialises LSTM weights uniform in +-1/sqrt(hidden) (nn.LSTM docs); the backbone's
     # normal(0, init_std) init touches nn.Linear only, while the output projection is marked residual_out.
-    from harness.model import build_model
+    from blockyard.model import build_model
 
     cfg = config_from_dict({"model": {"width": 16, "depth": 1, "pattern": ["lstm"], "init_std": 1e-3}}).model
     mixer = build_model(cfg, vocab_size=32).blocks[0].mixer
@@ -103,7 +103,7 @@ def test_backbone_keeps_torch_lstm_init():
 
 
 def test_hidden_mult_validated():
-    # Config validation names the dotted key (project contract, harness.errors.ConfigError).
+    # Config validation names the dotted key (project contract, blockyard.errors.ConfigError).
     mixers = {"l": {"kind": "lstm", "hidden_mult": 0.01}}
     with pytest.raises(ConfigError) as e:
         config_from_dict({"model": {"width": 8, "pattern": ["l"], "mixers": mixers}})

@@ -1,4 +1,4 @@
-"""The contract every registered mixer keeps (harness/mixers/base.py), checked over ``MIXERS``.
+"""The contract every registered mixer keeps (blockyard/mixers/base.py), checked over ``MIXERS``.
 
 A mixer added to the registry is tested here without further work: causality, the step path
 reproducing the full-sequence forward, finite gradients reaching every parameter, the analytic
@@ -14,9 +14,9 @@ import dataclasses
 import pytest
 import torch
 
-from harness.config import MixerConfig, config_from_dict
-from harness.mixers import MIXERS, state_nbytes
-from harness.model import build_model
+from blockyard.config import MixerConfig, config_from_dict
+from blockyard.mixers import MIXERS, state_nbytes
+from blockyard.model import build_model
 
 WIDTH = 32
 SEQ_LEN = 40

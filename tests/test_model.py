@@ -1,4 +1,4 @@
-"""The backbone (harness/model.py) and the preset configs (configs/*.yaml)."""
+"""The backbone (blockyard/model.py) and the preset configs (configs/*.yaml)."""
 
 from __future__ import annotations
 
@@ -10,13 +10,13 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from harness.config import config_from_dict, load_config
-from harness.mixers import MIXERS
-from harness.model import build_model
+from blockyard.config import config_from_dict, load_config
+from blockyard.mixers import MIXERS
+from blockyard.model import build_model
 
 CONFIGS = Path(__file__).resolve().parent.parent / "configs"
 PRESETS = sorted(CONFIGS.glob("*.yaml"))
-BYTE_VOCAB = 256  # harness.config: data.tokenizer "bytes" = UTF-8 bytes, vocab 256
+BYTE_VOCAB = 256  # blockyard.config: data.tokenizer "bytes" = UTF-8 bytes, vocab 256
 
 
 def model_config(**model):

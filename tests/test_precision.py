@@ -15,13 +15,13 @@ import pytest
 import torch
 import torch.nn.functional as F
 
-from harness.config import config_from_dict
-from harness.mixers.attention import causal_attention
-from harness.model import build_model
-from harness.train import runtime as runtime_mod
-from harness.train.loop import token_loss_sum, train_step
-from harness.train.optim import build_optimizer, build_scheduler
-from harness.train.runtime import cpu_bf16_support, resolve_runtime
+from blockyard.config import config_from_dict
+from blockyard.mixers.attention import causal_attention
+from blockyard.model import build_model
+from blockyard.train import runtime as runtime_mod
+from blockyard.train.loop import token_loss_sum, train_step
+from blockyard.train.optim import build_optimizer, build_scheduler
+from blockyard.train.runtime import cpu_bf16_support, resolve_runtime
 
 NATIVE, WHY = cpu_bf16_support()
 

@@ -16,11 +16,11 @@ import torch
 import torch.nn.functional as F
 from scipy import stats
 
-from harness.config import config_from_dict
-from harness.errors import ConfigError
-from harness.kernels import get_scan_backend, set_scan_backend
-from harness.mixers import MIXERS, state_nbytes
-from harness.mixers.recurrence import (
+from blockyard.config import config_from_dict
+from blockyard.errors import ConfigError
+from blockyard.kernels import get_scan_backend, set_scan_backend
+from blockyard.mixers import MIXERS, state_nbytes
+from blockyard.mixers.recurrence import (
     MAX_PHASE,
     RGLRU,
     RecurrenceBlock,
@@ -175,7 +175,7 @@ def test_rg_lru_gradcheck_float64(scan_backend):
 
 
 def test_rg_lru_fast_scan_matches_loop_scan():
-    # The project scan (harness.kernels) and the test's sequential loop give the same RG-LRU states.
+    # The project scan (blockyard.kernels) and the test's sequential loop give the same RG-LRU states.
     torch.manual_seed(2)
     x, ga, gx = (torch.randn(3, 40, 6) for _ in range(3))
     lam, h0 = torch.randn(6), torch.randn(3, 6)
@@ -348,7 +348,7 @@ def test_state_is_float32_under_bf16_autocast():
 
 
 def test_gate_blocks_must_divide_recurrence_width():
-    # Config validation: the dotted key path is named (project contract, harness.errors.ConfigError).
+    # Config validation: the dotted key path is named (project contract, blockyard.errors.ConfigError).
     def load(**opts):
         mixer = {"kind": "recurrence", **opts}
         return config_from_dict({"model": {"width": 12, "pattern": ["rec"], "mixers": {"rec": mixer}}})
@@ -378,7 +378,7 @@ COST_CASES = [
 
 @pytest.mark.parametrize("opts", COST_CASES, ids=lambda d: ",".join(f"{k}={v}" for k, v in d.items()) or "default")
 def test_cost_hooks_exact(opts):
-    # Analytic counts vs the module's own tensors (harness.mixers.state_nbytes of the real state).
+    # Analytic counts vs the module's own tensors (blockyard.mixers.state_nbytes of the real state).
     width = 12
     o = RecurrenceOptions(**opts)
     m = _block(width, **opts)
@@ -401,7 +401,7 @@ def test_extra_flops_track_the_knobs():
 
 def test_backbone_keeps_special_init():
     # The backbone's generic normal init must not overwrite the decay init (De et al. 2024, sec. 2.4).
-    from harness.model import build_model
+    from blockyard.model import build_model
 
     cfg = config_from_dict({"model": {"width": 16, "depth": 1, "pattern": ["recurrence"]}}).model
     torch.manual_seed(10)

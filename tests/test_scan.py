@@ -20,8 +20,8 @@ import textwrap
 import pytest
 import torch
 
-from harness.kernels import SCAN_BACKENDS, build, linear_scan, scan_backend_info, scan_reference, set_scan_backend
-from harness.kernels import scan as scan_mod
+from blockyard.kernels import SCAN_BACKENDS, build, linear_scan, scan_backend_info, scan_reference, set_scan_backend
+from blockyard.kernels import scan as scan_mod
 
 FAST = ("chunked", "compiled")
 SHAPES = [(1, 1, 1), (2, 1, 3), (1, 7, 3), (3, 9, 5), (2, 64, 4), (2, 333, 17), (1, 50, 3)]
@@ -279,7 +279,7 @@ def fresh_build_state(monkeypatch, tmp_path):
     """A process that has not tried the build yet, building into an empty folder (under a name of
     its own: the real kernel may already be loaded in this process and would be reused)."""
     monkeypatch.setattr(build, "_STATE", build._BuildState())
-    monkeypatch.setattr(build, "extension_name", lambda: "harness_scan_fallback_test")
+    monkeypatch.setattr(build, "extension_name", lambda: "blockyard_scan_fallback_test")
     monkeypatch.setenv("TORCH_EXTENSIONS_DIR", str(tmp_path))
 
 
@@ -324,7 +324,7 @@ def test_ninja_beside_python_is_found_without_path(monkeypatch):
 _CHILD = textwrap.dedent(
     """
     import torch
-    from harness.kernels import build, linear_scan, scan_reference
+    from blockyard.kernels import build, linear_scan, scan_reference
     assert build.load_scan_ops() is not None, build.build_status()["error"]
     a, b = torch.rand(2, 50, 3), torch.randn(2, 50, 3)
     assert torch.equal(linear_scan(a, b, backend="compiled"), scan_reference(a, b))

@@ -10,11 +10,11 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from harness.config import config_from_dict
-from harness.model import build_model
-from harness.train.loop import token_loss_sum, train_step
-from harness.train.optim import build_optimizer, build_scheduler, lr_factor, param_groups, total_steps
-from harness.train.runtime import Runtime
+from blockyard.config import config_from_dict
+from blockyard.model import build_model
+from blockyard.train.loop import token_loss_sum, train_step
+from blockyard.train.optim import build_optimizer, build_scheduler, lr_factor, param_groups, total_steps
+from blockyard.train.runtime import Runtime
 
 CPU = Runtime(device=torch.device("cpu"), threads=1, precision="fp32", precision_reason="test", scan={})
 
@@ -31,7 +31,7 @@ def _cosine_reference(step: int, warmup: int, total: int, floor: float) -> float
     # Linear warmup, then SGDR cosine annealing without restarts (Loshchilov & Hutter 2017,
     # eq. 5: eta_t = eta_min + (eta_max - eta_min) (1 + cos(pi T_cur / T_i)) / 2) with
     # eta_max = 1, eta_min = floor, T_cur = step - warmup, T_i = total - warmup. Written out here
-    # independently of harness.train.optim.
+    # independently of blockyard.train.optim.
     if step <= warmup:
         return step / warmup
     t_cur, t_i = step - warmup, total - warmup

@@ -12,12 +12,12 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from harness.errors import ConfigError
-from harness.train import checkpoint as ckpt
-from harness.train.loop import divergence, evaluate
-from harness.train.memory import PeakRSS, current_rss_bytes
-from harness.train.records import parse_metrics
-from harness.train.runtime import Runtime, resolve_device, resolve_threads
+from blockyard.errors import ConfigError
+from blockyard.train import checkpoint as ckpt
+from blockyard.train.loop import divergence, evaluate
+from blockyard.train.memory import PeakRSS, current_rss_bytes
+from blockyard.train.records import parse_metrics
+from blockyard.train.runtime import Runtime, resolve_device, resolve_threads
 
 CPU = Runtime(device=torch.device("cpu"), threads=1, precision="fp32", precision_reason="test", scan={})
 

@@ -23,12 +23,12 @@ from pathlib import Path
 import pytest
 import yaml
 
-from harness.cli import main
-from harness.config import config_hash, load_config
-from harness.train import run_training
-from harness.train import runtime as runtime_mod
-from harness.train.progress import Bar, LogLines, Progress, make_progress
-from harness.train.records import TIMING_FIELDS, read_metrics, without_timing
+from blockyard.cli import main
+from blockyard.config import config_hash, load_config
+from blockyard.train import run_training
+from blockyard.train import runtime as runtime_mod
+from blockyard.train.progress import Bar, LogLines, Progress, make_progress
+from blockyard.train.records import TIMING_FIELDS, read_metrics, without_timing
 
 REPO = Path(__file__).resolve().parents[1]
 WORDS = ("the of and to in is that for it as was with be by on not he this are or his from at which but have an "
@@ -86,7 +86,7 @@ def comparable(run_dir: Path) -> list[dict]:
 
 def cli(args: list[str], **kw) -> subprocess.Popen:
     env = {**os.environ, "OMP_NUM_THREADS": "1", "PYTHONPATH": str(REPO)}
-    return subprocess.Popen([sys.executable, "-m", "harness", "train", *args], env=env, stdout=subprocess.PIPE,
+    return subprocess.Popen([sys.executable, "-m", "blockyard", "train", *args], env=env, stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True, **kw)
 
 
@@ -279,10 +279,10 @@ def test_progress_is_a_bar_on_a_tty():
 
 def test_grad_accum_uses_consecutive_micro_batches(workdir, monkeypatch):
     """Step s (1-based) reads micro-batches (s-1)*k .. (s-1)*k + k-1, so the data position is the step."""
-    import harness.data
+    import blockyard.data
 
     calls = []
-    real = harness.data.load_data
+    real = blockyard.data.load_data
 
     def recording(cfg):
         data = real(cfg)
@@ -295,7 +295,7 @@ def test_grad_accum_uses_consecutive_micro_batches(workdir, monkeypatch):
         data.train_batch = train_batch
         return data
 
-    monkeypatch.setattr(harness.data, "load_data", recording)
+    monkeypatch.setattr(blockyard.data, "load_data", recording)
     cfg = load_config(write_config(workdir, "accum", train={"grad_accum": 3, "batch_size": 2, "steps": 4}))
     out = workdir / "accum_run"
     run_training(cfg, out, progress="silent")
@@ -350,7 +350,7 @@ def test_done_dir_is_not_retrained_and_other_config_refused(workdir, capsys):
     assert main(["train", str(path), "--set", "train.lr=0.001", "--out", str(out), "--force"]) == 0
     assert yaml.safe_load((out / "config.yaml").read_text())["train"]["lr"] == 0.001
     assert snapshot(out)["metrics.jsonl"][0] != before["metrics.jsonl"][0]
-    # --force on a finished dir of the same config retrains it, and drops `harness eval` results
+    # --force on a finished dir of the same config retrains it, and drops `blockyard eval` results
     # of the checkpoint it replaces (a grid report would otherwise plot them for the new model).
     mtime = (out / "metrics.jsonl").stat().st_mtime_ns
     assert main(["eval", str(out), "--lengths", "1x"]) == 0 and (out / "eval.json").exists()
@@ -556,7 +556,7 @@ def test_scan_backend_and_threads_applied(workdir):
     env = json.loads((out / "env.json").read_text())
     assert env["scan_backend"]["default"] == "reference" and env["threads"] == 3
     assert torch.get_num_threads() == threads  # and restored after
-    from harness.kernels import set_scan_backend
+    from blockyard.kernels import set_scan_backend
 
     set_scan_backend("auto")
 

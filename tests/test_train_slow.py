@@ -7,9 +7,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from harness.config import config_from_dict
-from harness.errors import UserError
-from harness.train import run_training
+from blockyard.config import config_from_dict
+from blockyard.errors import UserError
+from blockyard.train import run_training
 
 
 def unigram_entropy_nats(tokens: np.ndarray, vocab: int) -> float:
@@ -30,7 +30,7 @@ def test_300_steps_on_plays_beat_unigram_entropy(tmp_path):
                   "checkpoint_every": 300},
         "runtime": {"threads": 2},
     })
-    from harness.data import load_data
+    from blockyard.data import load_data
 
     try:
         data = load_data(cfg)

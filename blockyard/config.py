@@ -1,0 +1,338 @@
+"""The config schema: every key, its default, its type and its allowed values, in one place.
+
+A config is a tree of frozen dataclasses (``Config`` at the root). YAML is only its
+serialisation: ``load_config`` reads a file, follows ``extends:`` (a path relative to the
+file), applies ``--set key.path=value`` overrides (values parsed as YAML) and validates the
+result. Mixer options are the one exception to "one file": each mixer kind declares its own
+``Options`` dataclass next to its code (``blockyard/mixers/``), and ``model.mixers.<name>``
+entries are validated against the options of their ``kind``.
+"""
+
+from __future__ import annotations
+
+import copy
+import dataclasses
+import hashlib
+import json
+import re
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from blockyard.errors import ConfigError, UserError
+from blockyard.schema import opt, opt_factory, parse, to_dict
+
+
+@dataclasses.dataclass(frozen=True)
+class MixerConfig:
+    """One named mixer of ``model.mixers``: its kind and that kind's options."""
+
+    kind: str
+    options: Any
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"kind": self.kind, **to_dict(self.options)}
+
+
+def _parse_mixer(data: Any, path: str) -> MixerConfig:
+    from blockyard.mixers import MIXERS
+
+    if not isinstance(data, dict):
+        raise ConfigError(path, f"expected a mapping with a 'kind', got {data!r}")
+    data = dict(data)
+    kind = data.pop("kind", None)
+    if kind not in MIXERS:
+        raise ConfigError(f"{path}.kind", f"{kind!r} is not a mixer kind (known: {', '.join(sorted(MIXERS))})")
+    return MixerConfig(kind=kind, options=parse(MIXERS[kind].Options, data, path))
+
+
+@dataclasses.dataclass(frozen=True)
+class ModelConfig:
+    width: int = opt(128, "model width d (residual stream size)", min=1)
+    depth: int = opt(4, "number of residual blocks", min=1)
+    pattern: tuple[str, ...] = opt(
+        ("global_attention",),
+        "mixer names cycled over depth; each is a key of model.mixers or a registered kind",
+    )
+    mixers: dict = opt_factory(dict, "named mixer configs: name -> {kind: ..., options}")
+    mlp: str = opt("gated", "MLP kind: gated = GeGLU (Shazeer 2020), plain = GeLU", choices=("gated", "plain"))
+    mlp_expansion: float = opt(3.0, "MLP hidden size as a multiple of width", min=0.0)
+    tie_embeddings: bool = opt(True, "output head shares the token embedding matrix")
+    norm_eps: float = opt(1e-6, "RMSNorm epsilon", min=0.0)
+    init_std: float = opt(0.02, "std of the normal init of embeddings and linear weights", min=0.0)
+
+    def validate(self, path: str) -> None:
+        p = f"{path}." if path else ""
+        if not self.pattern:
+            raise ConfigError(f"{p}pattern", "must name at least one mixer")
+        for i, name in enumerate(self.pattern):
+            if name not in self.mixers:
+                from blockyard.mixers import MIXERS
+
+                known = sorted(set(self.mixers) | set(MIXERS))
+                raise ConfigError(
+                    f"{p}pattern[{i}]",
+                    f"{name!r} names no entry of model.mixers and no mixer kind (known: {', '.join(known)})",
+                )
+        for name, mixer in self.mixers.items():
+            check = getattr(mixer.options, "check_width", None)
+            if callable(check):
+                check(f"{p}mixers.{name}", self.width)
+        hidden = round(self.mlp_expansion * self.width)
+        if self.mlp_expansion > 0 and hidden < 1:
+            raise ConfigError(f"{p}mlp_expansion", "gives an MLP hidden size of 0")
+
+    def layer_mixers(self) -> list[tuple[str, MixerConfig]]:
+        """(name, mixer config) for each of the ``depth`` blocks, the pattern cycled."""
+        return [(n, self.mixers[n]) for n in (self.pattern[i % len(self.pattern)] for i in range(self.depth))]
+
+    @property
+    def mlp_hidden(self) -> int:
+        return round(self.mlp_expansion * self.width)
+
+
+@dataclasses.dataclass(frozen=True)
+class TaskConfig:
+    """Parameters of the synthetic probe tasks (``data.corpus: task:NAME``)."""
+
+    num_pairs: int = opt(8, "MQAR: key-value pairs per sequence", min=1)
+    num_queries: int = opt(0, "MQAR: queries per sequence (0 = as many as pairs)", min=0)
+    num_keys: int = opt(64, "MQAR: size of the key alphabet", min=2)
+    num_values: int = opt(64, "MQAR: size of the value alphabet", min=2)
+    copy_tokens: int = opt(16, "selective copying: tokens to copy", min=1)
+    copy_vocab: int = opt(16, "selective copying: size of the alphabet of the tokens to copy", min=1)
+    passkey_digits: int = opt(5, "passkey retrieval: digits of the passkey", min=1)
+    num_sequences: int = opt(2048, "sequences in the fixed training pool of a task (0 = fresh ones every step)",
+                             min=0)
+
+
+@dataclasses.dataclass(frozen=True)
+class DataConfig:
+    corpus: str = opt("pydoc", "a path/glob, hub:NAME[:CONFIG], plays, pydoc or task:NAME")
+    text_field: str = opt("text", "field holding the text in .jsonl/.parquet/hub corpora")
+    tokenizer: str = opt("bytes", "bytes (UTF-8, vocab 256), chars, or bpe", choices=("bytes", "chars", "bpe"))
+    bpe_vocab: int = opt(1024, "BPE vocabulary size (includes the 256 byte symbols)", min=257)
+    seq_len: int = opt(128, "training context length in tokens", min=1)
+    val_fraction: float = opt(0.05, "share of documents (or of the text) held out for validation", min=0.0, max=0.5)
+    test_fraction: float = opt(0.05, "share held out for test", min=0.0, max=0.5)
+    errors: str = opt("strict", "undecodable text: strict = error, replace = U+FFFD with a warning",
+                      choices=("strict", "replace"))
+    cache_dir: str = opt("", "token cache folder (empty: $BLOCKYARD_CACHE or ~/.cache/blockyard)")
+    task: TaskConfig = opt_factory(TaskConfig, "synthetic task parameters")
+
+
+@dataclasses.dataclass(frozen=True)
+class TrainConfig:
+    steps: int = opt(200, "optimizer steps (ignored when train.tokens > 0)", min=1)
+    tokens: int = opt(0, "token budget; > 0 sets steps = ceil(tokens / tokens per step)", min=0)
+    batch_size: int = opt(16, "sequences per micro-batch", min=1)
+    grad_accum: int = opt(1, "micro-batches per optimizer step", min=1)
+    lr: float = opt(3e-3, "peak learning rate", min=0.0)
+    lr_floor: float = opt(0.1, "final learning rate as a fraction of the peak (cosine floor)", min=0.0, max=1.0)
+    warmup_steps: int = opt(20, "linear warmup steps", min=0)
+    weight_decay: float = opt(0.1, "AdamW decoupled weight decay", min=0.0)
+    decay_all: bool = opt(False, "also decay norms, biases and embeddings (default: matrices only)")
+    beta1: float = opt(0.9, "AdamW beta1", min=0.0, max=1.0)
+    beta2: float = opt(0.95, "AdamW beta2", min=0.0, max=1.0)
+    grad_clip: float = opt(1.0, "clip the global gradient norm to this (0 = off)", min=0.0)
+    seed: int = opt(0, "seed of the parameter init (and of the data unless data_seed >= 0)", min=0)
+    data_seed: int = opt(-1, "seed of the batch stream and validation windows (-1 = train.seed)", min=-1)
+    eval_every: int = opt(50, "evaluate on the validation windows every N steps (and at the end)", min=1)
+    eval_windows: int = opt(32, "number of fixed validation windows", min=1)
+    log_every: int = opt(10, "write a train line every N steps (and at step 1 and the last step)", min=1)
+    checkpoint_every: int = opt(100, "checkpoint every N steps (and at the end)", min=1)
+    keep_checkpoints: int = opt(2, "keep the last K checkpoints", min=1)
+    diverge_factor: float = opt(2.0, "stop as diverged when the loss exceeds this multiple of the first loss", min=1.0)
+
+    @property
+    def effective_data_seed(self) -> int:
+        return self.seed if self.data_seed < 0 else self.data_seed
+
+
+@dataclasses.dataclass(frozen=True)
+class EvalConfig:
+    probes: tuple[str, ...] = opt((), "probe tasks run at each evaluation: mqar, passkey (see blockyard/probes.py)")
+    probe_pairs: tuple[int, ...] = opt((4, 8, 16, 32), "mqar probe: numbers of key-value pairs", min=1)
+    probe_distances: tuple[int, ...] = opt(
+        (16, 64, 256), "passkey probe: filler characters between the key and the question", min=0)
+    probe_sequences: int = opt(16, "sequences per probe size", min=1)
+
+    def validate(self, path: str) -> None:
+        from blockyard.probes import PROBES
+
+        p = f"{path}." if path else ""
+        for i, name in enumerate(self.probes):
+            if name not in PROBES:
+                raise ConfigError(f"{p}probes[{i}]", f"{name!r} is not a probe (known: {', '.join(PROBES)})")
+
+
+@dataclasses.dataclass(frozen=True)
+class RuntimeConfig:
+    device: str = opt("cpu", "torch device: cpu, or cuda where present")
+    threads: int = opt(0, "torch intra-op threads (0 = all cores)", min=0)
+    precision: str = opt("fp32", "fp32; bf16 autocast (CPU: where supported); bf16_emulated: bf16 numerics on any "
+                         "CPU at about 0.6x fp32 speed, to check what bf16 does to a result",
+                         choices=("fp32", "bf16", "bf16_emulated"))
+    activation_checkpointing: bool = opt(False, "recompute each residual block in backward to save memory")
+    scan: str = opt("auto", "recurrence scan backend", choices=("auto", "reference", "chunked", "compiled"))
+
+
+@dataclasses.dataclass(frozen=True)
+class Config:
+    name: str = opt("", "run name (default: the config file's stem)")
+    model: ModelConfig = opt_factory(ModelConfig, "model architecture")
+    data: DataConfig = opt_factory(DataConfig, "corpus, tokenizer and windows")
+    train: TrainConfig = opt_factory(TrainConfig, "optimisation")
+    eval: EvalConfig = opt_factory(EvalConfig, "evaluation extras")
+    runtime: RuntimeConfig = opt_factory(RuntimeConfig, "where and how to compute")
+
+
+# ----------------------------------------------------------------------------- loading
+
+
+class _Loader(yaml.SafeLoader):
+    """SafeLoader that also reads ``1e-3`` as a float (YAML 1.2); PyYAML's 1.1 rules need ``1.0e-3``."""
+
+
+_Loader.add_implicit_resolver(
+    "tag:yaml.org,2002:float",
+    re.compile(r"^[-+]?(?:[0-9][0-9_]*)(?:\.[0-9_]*)?[eE][-+]?[0-9]+$"),
+    list("-+0123456789"),
+)
+
+
+def yaml_load(text: str) -> Any:
+    """Parse YAML text the way every config, grid spec and ``--set`` value is parsed."""
+    return yaml.load(text, Loader=_Loader)  # noqa: S506 - a SafeLoader subclass
+
+
+def deep_merge(base: dict[str, Any], over: dict[str, Any]) -> dict[str, Any]:
+    """``over`` on top of ``base``: nested mappings merge, everything else replaces."""
+    out = copy.deepcopy(base)
+    for key, value in over.items():
+        if isinstance(value, dict) and isinstance(out.get(key), dict):
+            out[key] = deep_merge(out[key], value)
+        else:
+            out[key] = copy.deepcopy(value)
+    return out
+
+
+def read_yaml(path: Path) -> dict[str, Any]:
+    """A YAML mapping from ``path``; a missing file or bad YAML is a one-line UserError."""
+    try:
+        text = path.read_text()
+    except FileNotFoundError:
+        raise UserError(f"{path}: no such config file") from None
+    except (IsADirectoryError, PermissionError, UnicodeDecodeError) as e:
+        raise UserError(f"{path}: cannot read config ({e.__class__.__name__})") from None
+    try:
+        data = yaml_load(text)
+    except yaml.YAMLError as e:
+        mark = getattr(e, "problem_mark", None)
+        where = f" line {mark.line + 1}" if mark else ""
+        raise UserError(f"{path}:{where} invalid YAML ({getattr(e, 'problem', e)})") from None
+    if data is None:
+        return {}
+    if not isinstance(data, dict):
+        raise UserError(f"{path}: a config must be a mapping of keys, got {type(data).__name__}")
+    return data
+
+
+def resolve_extends(data: dict[str, Any], base_dir: Path, seen: tuple[Path, ...] = ()) -> dict[str, Any]:
+    """Follow ``extends:`` chains (paths relative to the including file's folder)."""
+    parent = data.pop("extends", None)
+    if parent is None:
+        return data
+    if not isinstance(parent, str):
+        raise ConfigError("extends", f"expected a path string, got {parent!r}")
+    ppath = (base_dir / parent).resolve()
+    if ppath in seen:
+        raise ConfigError("extends", f"{ppath} extends itself (cycle)")
+    pdata = resolve_extends(read_yaml(ppath), ppath.parent, (*seen, ppath))
+    return deep_merge(pdata, data)
+
+
+def parse_override(item: str) -> tuple[list[str], Any]:
+    """``a.b.c=value`` -> (['a', 'b', 'c'], YAML-parsed value)."""
+    key, sep, raw = item.partition("=")
+    if not sep or not key or any(not part for part in key.split(".")):
+        raise UserError(f"--set {item!r}: expected key.path=value")
+    try:
+        value = yaml_load(raw) if raw.strip() else ""
+    except yaml.YAMLError:
+        value = raw
+    return key.split("."), value
+
+
+def apply_overrides(data: dict[str, Any], overrides: list[str] | tuple[str, ...]) -> dict[str, Any]:
+    """Set each ``key.path=value`` into a copy of ``data``, creating mappings on the way."""
+    out = copy.deepcopy(data)
+    for item in overrides:
+        keys, value = parse_override(item)
+        node = out
+        for i, k in enumerate(keys[:-1]):
+            nxt = node.get(k)
+            if nxt is None:
+                nxt = node[k] = {}
+            if not isinstance(nxt, dict):
+                raise UserError(f"--set {item!r}: {'.'.join(keys[: i + 1])} is not a section")
+            node = nxt
+        node[keys[-1]] = value
+    return out
+
+
+def config_from_dict(data: dict[str, Any]) -> Config:
+    """Validate a plain dict (already merged) into a ``Config``; mixer entries by their kind."""
+    from blockyard.mixers import MIXERS
+
+    data = copy.deepcopy(data)
+    model = data.get("model")
+    if model is None:
+        model = data["model"] = {}
+    if not isinstance(model, dict):
+        raise ConfigError("model", f"expected a mapping of keys, got {model!r}")
+    raw_mixers = model.get("mixers") or {}
+    if not isinstance(raw_mixers, dict):
+        raise ConfigError("model.mixers", "expected a mapping name -> {kind: ..., options}")
+    mixers = {}
+    for name, entry in raw_mixers.items():
+        mixers[str(name)] = _parse_mixer(entry, f"model.mixers.{name}")
+    pattern = model.get("pattern", ModelConfig.__dataclass_fields__["pattern"].default)
+    if isinstance(pattern, (list, tuple)):
+        for name in pattern:
+            if isinstance(name, str) and name not in mixers and name in MIXERS:
+                # A bare kind in the pattern is that kind with its default options.
+                mixers[name] = MixerConfig(kind=name, options=parse(MIXERS[name].Options, {}, f"model.mixers.{name}"))
+    model["mixers"] = mixers
+    return parse(Config, data)
+
+
+def load_config(path: str | Path, overrides: list[str] | tuple[str, ...] = ()) -> Config:
+    """Read, inherit, override and validate a config file."""
+    path = Path(path)
+    data = resolve_extends(read_yaml(path), path.resolve().parent, (path.resolve(),))
+    data = apply_overrides(data, overrides)
+    if not data.get("name"):
+        data["name"] = path.stem
+    return config_from_dict(data)
+
+
+def replace(cfg: Config, overrides: dict[str, Any]) -> Config:
+    """A new validated config with dotted-key overrides applied (used by grids)."""
+    data = to_dict(cfg)
+    items = [f"{k}={json.dumps(v)}" for k, v in overrides.items()]
+    return config_from_dict(apply_overrides(data, items))
+
+
+def dump_config(cfg: Config) -> str:
+    """The fully resolved config as YAML (what a run dir's ``config.yaml`` holds)."""
+    return yaml.safe_dump(to_dict(cfg), sort_keys=False)
+
+
+def config_hash(cfg: Config, length: int = 8) -> str:
+    """Short stable hash of everything that defines a run (the name excluded)."""
+    data = to_dict(cfg)
+    data.pop("name", None)
+    blob = json.dumps(data, sort_keys=True, separators=(",", ":"))
+    return hashlib.sha256(blob.encode()).hexdigest()[:length]

@@ -1,0 +1,171 @@
+"""What a cell costs (parameters, FLOPs per token, token budget) and how variants are made comparable.
+
+``match: params`` changes each non-reference variant's ``model.mlp_expansion`` (its MLP hidden
+size, a whole number of units) so that its non-embedding parameter count lands within 2% of the
+reference's at the same axis point. ``match: flops`` changes each non-reference variant's token
+budget (``train.tokens``) so that flops_per_token x tokens equals the reference's training FLOPs.
+Either way the adjusted value and the resulting params / FLOPs are reported.
+
+Parameters are counted on a model built on the meta device (no memory, no init cost), so the
+count is the model's own, whatever the mixers do. FLOPs per token come from ``blockyard.cost``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from typing import Any
+
+from blockyard.config import Config
+from blockyard.errors import UserError
+from blockyard.grid.spec import Cell, GridSpec, config_with
+
+# Non-embedding parameter counts of matched variants must be this close to the reference's.
+PARAMS_TOLERANCE = 0.02
+
+
+def vocab_size(cfg: Config) -> int:
+    """The vocabulary the data layer derives from ``cfg.data`` (256 bytes where it cannot say)."""
+    try:
+        from blockyard.data import vocab_size_for
+    except ImportError:
+        return 256
+    return int(vocab_size_for(cfg))
+
+
+def count_params(cfg: Config) -> dict[str, int]:
+    """``{total, non_embedding}`` from the cost model's analytic counts (``blockyard.cost``).
+
+    No model is built: the grid's parent process stays small while its workers train (building
+    one, even on the meta device, kept ~70-135 MB resident here). ``tests/test_cost.py`` checks
+    the analytic counts against built models; a mixer without the ``param_count`` hook is built
+    for real instead.
+    """
+    from blockyard.cost import param_breakdown
+
+    vocab = vocab_size(cfg)
+    try:
+        groups = param_breakdown(cfg, vocab)
+    except NotImplementedError:
+        from blockyard.model import build_model
+
+        groups = build_model(cfg.model, vocab).param_groups()
+    return {"total": int(groups["total"]), "non_embedding": int(groups["non_embedding"])}
+
+
+def flops_per_token(cfg: Config) -> float | None:
+    """Training FLOPs per token from ``blockyard.cost`` (None where the cost model is unavailable)."""
+    try:
+        from blockyard.cost import flops_per_token as cost_flops
+    except ImportError:
+        return None
+    return float(cost_flops(cfg))
+
+
+def tokens_per_step(cfg: Config) -> int:
+    return cfg.train.batch_size * cfg.train.grad_accum * cfg.data.seq_len
+
+
+def planned_steps(cfg: Config) -> int:
+    """Optimizer steps the trainer will take: ceil(train.tokens / tokens per step), or train.steps."""
+    if cfg.train.tokens > 0:
+        return math.ceil(cfg.train.tokens / tokens_per_step(cfg))
+    return cfg.train.steps
+
+
+def planned_tokens(cfg: Config) -> int:
+    """Training tokens the trainer will see (whole steps)."""
+    return planned_steps(cfg) * tokens_per_step(cfg)
+
+
+@dataclasses.dataclass(frozen=True)
+class CellCost:
+    """Static cost of one cell, as the report and the dry run show it."""
+
+    params_total: int
+    params_non_embedding: int
+    flops_per_token: float | None
+    tokens: int
+
+    @property
+    def train_flops(self) -> float | None:
+        return None if self.flops_per_token is None else self.flops_per_token * self.tokens
+
+
+def cell_cost(cfg: Config) -> CellCost:
+    params = count_params(cfg)
+    return CellCost(params["total"], params["non_embedding"], flops_per_token(cfg), planned_tokens(cfg))
+
+
+# ----------------------------------------------------------------------------- matching
+
+
+def _non_embedding_at_hidden(base: dict[str, Any], overrides: dict[str, Any], width: int, hidden: int) -> int:
+    cfg = config_with(base, {**overrides, "model.mlp_expansion": hidden / width})
+    return count_params(cfg)["non_embedding"]
+
+
+def match_params_hidden(base: dict[str, Any], overrides: dict[str, Any], width: int, target: int, who: str) -> int:
+    """The MLP hidden size whose non-embedding count is closest to ``target`` (bisection; monotone in it).
+
+    Raises a UserError when even the closest is off by more than PARAMS_TOLERANCE (e.g. the variant
+    without any MLP already has more parameters than the reference).
+    """
+    lo, hi = 1, max(2, width)
+    while _non_embedding_at_hidden(base, overrides, width, hi) < target:
+        hi *= 2
+        if hi > 1_000_000 * width:
+            raise UserError(f"match: params: {who} cannot reach {target:,d} non-embedding parameters")
+    # Smallest hidden with count >= target, then pick the closer of it and its predecessor.
+    while lo < hi:
+        mid = (lo + hi) // 2
+        if _non_embedding_at_hidden(base, overrides, width, mid) >= target:
+            hi = mid
+        else:
+            lo = mid + 1
+    candidates = [h for h in (lo - 1, lo) if h >= 1]
+    best = min(candidates, key=lambda h: abs(_non_embedding_at_hidden(base, overrides, width, h) - target))
+    got = _non_embedding_at_hidden(base, overrides, width, best)
+    if abs(got - target) > PARAMS_TOLERANCE * target:
+        raise UserError(
+            f"match: params: {who} has {got:,d} non-embedding parameters at the smallest workable MLP "
+            f"(model.mlp_expansion = {best / width:g}), more than 2% from the reference's {target:,d}; "
+            "it cannot be matched by the MLP width (the expansion would have to go to zero or below)"
+        )
+    return best
+
+
+def apply_matching(spec: GridSpec, cells: list[Cell]) -> list[Cell]:
+    """Cells with the fairness adjustments of ``spec.match`` applied (the reference is untouched)."""
+    if spec.match == "none":
+        return cells
+    refs = {(c.point, c.seed): c for c in cells if c.variant == spec.reference}
+    ref_cost: dict[tuple, CellCost] = {}
+    solved: dict[tuple[str, tuple], dict[str, Any]] = {}
+    out = []
+    for cell in cells:
+        if cell.variant == spec.reference:
+            out.append(cell)
+            continue
+        ref = refs[(cell.point, cell.seed)]
+        key = (cell.variant, cell.point)
+        if key not in solved:
+            if ref.point not in ref_cost:
+                ref_cost[ref.point] = cell_cost(ref.cfg)
+            solved[key] = _solve(spec, cell, ref_cost[ref.point])
+        adjustments = solved[key]
+        cfg = config_with(spec.base, {**cell.overrides, **adjustments})
+        out.append(dataclasses.replace(cell, cfg=cfg, adjustments=adjustments))
+    return out
+
+
+def _solve(spec: GridSpec, cell: Cell, ref: CellCost) -> dict[str, Any]:
+    who = f"variant {cell.variant}" + (f" at {cell.point_label}" if cell.point else "")
+    if spec.match == "params":
+        width = cell.cfg.model.width
+        hidden = match_params_hidden(spec.base, cell.overrides, width, ref.params_non_embedding, who)
+        return {"model.mlp_expansion": hidden / width}
+    fpt = flops_per_token(cell.cfg)
+    if fpt is None or ref.train_flops is None:
+        raise UserError("match: flops needs blockyard.cost.flops_per_token, which is not available")
+    return {"train.tokens": max(1, round(ref.train_flops / fpt))}

@@ -1,0 +1,455 @@
+"""Run a grid: plan its cells, guard the grid dir, train what is left, record it, write the report.
+
+Grid dir layout::
+
+    GRID_DIR/grid.yaml          the grid spec as given (earlier versions kept as grid.<n>.yaml)
+    GRID_DIR/index.sqlite       every cell: variant, seed, axis point, config hash, status, timings, metrics
+    GRID_DIR/configs/<cell>.yaml  each cell's resolved config (what ``blockyard train`` is given)
+    GRID_DIR/cells/<cell>/      each cell's run dir (config.yaml, metrics.jsonl, summary.json, ...)
+    GRID_DIR/logs/<cell>.log    each cell's trainer output
+    GRID_DIR/report.md, report.html, results.csv, *.png
+
+Rerunning the same grid resumes it: finished (done or diverged) cells are skipped, the others
+are (re)started, and the trainer resumes interrupted ones from their checkpoints. A grid dir
+holding cells of another spec is refused unless ``--force``, which moves the changed cells'
+dirs to ``GRID_DIR/superseded/`` rather than deleting anything.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import fcntl
+import hashlib
+import json
+import os
+import time
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from typing import Any
+
+from blockyard.config import config_hash, dump_config, replace
+from blockyard.errors import UserError
+from blockyard.grid import executors
+from blockyard.grid.fairness import CellCost, apply_matching, cell_cost, planned_steps
+from blockyard.grid.index import FINISHED, INDEX_NAME, GridIndex, open_index
+from blockyard.grid.spec import Cell, GridSpec, expand_cells, load_grid
+from blockyard.grid.status import LOCK_NAME, cell_dir, format_duration, grid_progress, lock_holder, read_summary
+from blockyard.schema import to_dict
+
+DEFAULT_ROOT = Path("runs") / "grids"
+STATUS_EVERY_S = 30.0
+# Trainer exit codes (blockyard train): 0 done, 2 bad input, 3 diverged, 128 + signal when stopped.
+EXIT_DIVERGED = 3
+EXIT_STOPPED = (130, 143, -2, -15)
+
+
+def available_cores() -> int:
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:
+        return os.cpu_count() or 1
+
+
+@dataclasses.dataclass(frozen=True)
+class PlannedCell:
+    cell: Cell
+    cost: CellCost
+    config_hash: str
+
+    @property
+    def id(self) -> str:
+        return self.cell.id
+
+
+def plan_cells(spec: GridSpec, threads: int) -> list[PlannedCell]:
+    """Every cell with fairness adjustments and ``runtime.threads`` applied, its cost and config hash."""
+    cells = apply_matching(spec, expand_cells(spec))
+    costs: dict[tuple, CellCost] = {}
+    planned = []
+    for cell in cells:
+        cfg = replace(cell.cfg, {"runtime.threads": threads})
+        cell = dataclasses.replace(cell, cfg=cfg)
+        key = (cell.variant, cell.point)  # the seed changes neither params nor FLOPs
+        if key not in costs:
+            costs[key] = cell_cost(cfg)
+        planned.append(PlannedCell(cell, costs[key], config_hash(cfg)))
+    return planned
+
+
+def fingerprint(plan: list[PlannedCell]) -> str:
+    blob = json.dumps({p.id: p.config_hash for p in plan}, sort_keys=True)
+    return hashlib.sha256(blob.encode()).hexdigest()[:16]
+
+
+# ----------------------------------------------------------------------------- dry run
+
+
+def dry_run_text(plan: list[PlannedCell], workers: int, threads: int, measure: bool = True) -> str:
+    """The cells with params, FLOPs/token, tokens and (measured-speed) estimated time."""
+    from blockyard.grid.estimate import measure_tokens_per_s
+
+    speeds: dict[str, float] = {}
+    header = ["cell", "adjustment", "params (non-emb)", "FLOPs/token", "steps", "tokens", "tokens/s", "est. time"]
+    rows = []
+    total_s = 0.0
+    longest = 0.0
+    for p in plan:
+        cfg = p.cell.cfg
+        # Speed depends on the model, the batch shape and the runtime only (not on lr, seed or budget).
+        key = json.dumps([to_dict(cfg.model), cfg.data.seq_len, cfg.train.batch_size, cfg.train.grad_accum,
+                          to_dict(cfg.runtime)], sort_keys=True, default=str)
+        if measure and key not in speeds:
+            speeds[key] = measure_tokens_per_s(p.cell.cfg, threads)
+        speed = speeds.get(key)
+        est = p.cost.tokens / speed if speed else None
+        if est is not None:
+            total_s += est
+            longest = max(longest, est)
+        adj = ", ".join(f"{k}={v:.4g}" if isinstance(v, float) else f"{k}={v}" for k, v in p.cell.adjustments.items())
+        rows.append([
+            p.id, adj or "-", f"{p.cost.params_non_embedding:,d}",
+            "n/a" if p.cost.flops_per_token is None else f"{p.cost.flops_per_token:,.0f}",
+            str(planned_steps(p.cell.cfg)), f"{p.cost.tokens:,d}",
+            f"{speed:,.0f}" if speed else "-", format_duration(est) if est is not None else "-",
+        ])
+    widths = [max(len(str(c)) for c in col) for col in zip(header, *rows, strict=True)]
+    lines = ["  ".join(str(c).ljust(w) for c, w in zip(r, widths, strict=True)).rstrip() for r in [header, *rows]]
+    if measure:
+        wall = max(total_s / max(1, workers), longest)
+        lines += [
+            "",
+            f"{len(plan)} cells, {workers} worker(s) x {threads} thread(s). Estimated time: "
+            f"{format_duration(wall)} for the grid ({format_duration(total_s)} of cell time), from a "
+            "measured micro-benchmark (forward + backward + AdamW steps on random tokens, here, at each cell's "
+            "thread count); evaluation, checkpoints and start-up are not included.",
+        ]
+    return "\n".join(lines)
+
+
+# ----------------------------------------------------------------------------- the grid dir
+
+
+@contextlib.contextmanager
+def grid_lock(grid_dir: Path) -> Iterator[None]:
+    """Hold ``GRID_DIR/grid.lock`` (flock: released by the kernel even after kill -9)."""
+    path = grid_dir / LOCK_NAME
+    fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    try:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            holder = lock_holder(grid_dir)
+            raise UserError(f"{grid_dir}: another grid process{f' ({holder})' if holder else ''} is running this "
+                            f"grid; watch it with: blockyard grid --status {grid_dir}") from None
+        os.ftruncate(fd, 0)
+        os.write(fd, f"{os.getpid()}\n".encode())
+        try:
+            yield
+        finally:
+            os.ftruncate(fd, 0)
+    finally:
+        os.close(fd)
+
+
+def _check_grid_dir(grid_dir: Path) -> bool:
+    """True when ``grid_dir`` already holds a grid; refuses a non-empty dir that is not one."""
+    if grid_dir.exists() and not grid_dir.is_dir():
+        raise UserError(f"{grid_dir}: exists and is not a directory (pass another --out)")
+    if (grid_dir / INDEX_NAME).exists():
+        return True
+    if grid_dir.is_dir() and any(grid_dir.iterdir()):
+        raise UserError(f"{grid_dir}: is not empty and holds no grid ({INDEX_NAME} missing); pass another --out")
+    return False
+
+
+def _changes(old: dict[str, str], new: dict[str, str]) -> tuple[list[str], list[str], list[str]]:
+    changed = sorted(i for i in new if i in old and old[i] != new[i])
+    added = sorted(i for i in new if i not in old)
+    removed = sorted(i for i in old if i not in new)
+    return changed, added, removed
+
+
+def _refuse_changed_spec(grid_dir: Path, grid_file: str | Path, old: dict[str, str], new: dict[str, str],
+                         force: bool, hint: str = "") -> None:
+    changed, added, removed = _changes(old, new)
+    if not old or force or not (changed or added or removed):
+        return
+    what = ", ".join(f"{len(v)} {k}" for k, v in (("changed", changed), ("new", added), ("removed", removed)) if v)
+    example = (changed or added or removed)[0]
+    raise UserError(
+        f"{grid_dir}: holds a grid whose cells differ from {grid_file} ({what}; e.g. {example}){hint}; pass --out "
+        "for a new grid dir, or --force to run the new cells here (changed and removed cells are moved to "
+        "superseded/, nothing is deleted)")
+
+
+def _unique_path(path: Path) -> Path:
+    if not path.exists():
+        return path
+    n = 2
+    while path.with_name(f"{path.name}.{n}").exists():
+        n += 1
+    return path.with_name(f"{path.name}.{n}")
+
+
+def _archive_spec(grid_dir: Path, text: str) -> None:
+    """Write grid.yaml; an earlier, different copy is kept as grid.<n>.yaml."""
+    current = grid_dir / "grid.yaml"
+    if current.exists() and current.read_text() != text:
+        n = 1
+        while (grid_dir / f"grid.{n}.yaml").exists():
+            n += 1
+        current.rename(grid_dir / f"grid.{n}.yaml")
+    if not current.exists():
+        current.write_text(text)
+
+
+def _supersede(grid_dir: Path, ids: list[str], old_hashes: dict[str, str]) -> list[str]:
+    """Move the dirs (and configs, logs) of cells whose config changed to superseded/; returns what moved."""
+    moved = []
+    for cid in ids:
+        target = _unique_path(grid_dir / "superseded" / f"{cid}.{old_hashes.get(cid, 'old')}")
+        for src, name in ((cell_dir(grid_dir, cid), "run"), (grid_dir / "configs" / f"{cid}.yaml", "config.yaml"),
+                          (grid_dir / "logs" / f"{cid}.log", "train.log")):
+            if src.exists():
+                target.mkdir(parents=True, exist_ok=True)
+                src.rename(target / name)
+        if target.exists():
+            moved.append(str(target.relative_to(grid_dir)))
+    return moved
+
+
+def _plan_rows(plan: list[PlannedCell]) -> list[dict[str, Any]]:
+    return [{
+        "id": p.id, "variant": p.cell.variant, "seed": p.cell.seed, "point": [list(kv) for kv in p.cell.point],
+        "config_hash": p.config_hash, "adjustments": p.cell.adjustments, "planned_tokens": p.cost.tokens,
+        "flops_per_token": p.cost.flops_per_token, "params_total": p.cost.params_total,
+        "params_non_embedding": p.cost.params_non_embedding,
+    } for p in plan]
+
+
+def _write_if_changed(path: Path, text: str) -> None:
+    if not path.exists() or path.read_text() != text:
+        tmp = path.with_name(f".{path.name}.tmp")
+        tmp.write_text(text)
+        tmp.replace(path)
+
+
+def prepare_data(plan: list[PlannedCell], echo: Callable[[str], None]) -> None:
+    """Load each distinct data config once here, before any cell starts.
+
+    A corpus that cannot be read fails the grid at once (instead of in every cell), and the token
+    cache is built once rather than by several cells at the same time.
+    """
+    from blockyard.data import load_data
+
+    seen: set[str] = set()
+    for p in plan:
+        cfg = p.cell.cfg
+        key = json.dumps(to_dict(cfg.data), sort_keys=True, default=str)
+        if key in seen:
+            continue
+        seen.add(key)
+        echo(f"preparing data: {cfg.data.corpus} ({cfg.data.tokenizer} tokens)")
+        load_data(cfg)
+
+
+# ----------------------------------------------------------------------------- outcomes
+
+
+def last_log_line(path: Path) -> str | None:
+    try:
+        lines = [ln.strip() for ln in path.read_text(errors="replace").splitlines() if ln.strip()]
+    except OSError:
+        return None
+    lines = [ln for ln in lines if not ln.startswith("=== ")]
+    return lines[-1][:300] if lines else None
+
+
+def outcome(exit_code: int | None, summary: dict[str, Any] | None) -> str:
+    """The cell status from the trainer's exit code, cross-checked with its summary.json."""
+    status = (summary or {}).get("status")
+    if exit_code == 0:
+        return "done" if status == "done" else "failed"
+    if exit_code == EXIT_DIVERGED:
+        return "diverged"
+    if exit_code in EXIT_STOPPED:
+        return "interrupted"
+    return "failed"
+
+
+class _Recorder:
+    """Executor events -> index rows and progress lines."""
+
+    def __init__(self, grid_dir: Path, index: GridIndex, name: str, echo: Callable[[str], None],
+                 status_every_s: float) -> None:
+        self.grid_dir, self.index, self.name, self.echo = grid_dir, index, name, echo
+        self.status_every_s = status_every_s
+        self._last_status = time.monotonic()
+
+    def started(self, job: executors.CellJob) -> None:
+        self.index.mark_running(job.id)
+        self.echo(f"start {job.id}")
+
+    def finished(self, job: executors.CellJob, exit_code: int | None, message: str | None) -> None:
+        summary = read_summary(job.out_dir / "summary.json")
+        status = outcome(exit_code, summary)
+        if status not in ("done", "interrupted") and message is None:
+            message = last_log_line(job.log_path)
+        self.index.mark_finished(job.id, status, summary=summary, exit_code=exit_code, message=message)
+        detail = ""
+        if status == "done" and summary:
+            detail = f": final val loss {summary.get('final_val_loss', float('nan')):.4f}"
+            if summary.get("wall_s"):
+                detail += f", {format_duration(summary['wall_s'])}"
+        elif message:
+            detail = f": {message}"
+        self.echo(f"{status} {job.id}{detail}")
+        self.status()
+
+    def tick(self) -> None:
+        if time.monotonic() - self._last_status >= self.status_every_s:
+            self.status()
+
+    def status(self) -> None:
+        self._last_status = time.monotonic()
+        self.echo(grid_progress(self.grid_dir, self.index.cells(), self.name).line())
+
+
+def _reconcile(grid_dir: Path, index: GridIndex) -> list[str]:
+    """Sync the index with the cell dirs (after a kill); returns the ids still to train, in order."""
+    todo = []
+    for row in index.cells():
+        summary = read_summary(cell_dir(grid_dir, row["id"]) / "summary.json")
+        status = (summary or {}).get("status")
+        if status in FINISHED:
+            if row["status"] != status:
+                index.mark_finished(row["id"], status, summary=summary, exit_code=row["exit_code"],
+                                    message=row["message"], ended_at=row["ended_at"])
+            continue
+        if row["status"] == "running":  # left so by a grid process that was killed
+            index.mark_finished(row["id"], "interrupted", summary=summary, message="grid process ended")
+        todo.append(row["id"])
+    return todo
+
+
+# ----------------------------------------------------------------------------- entry point
+
+
+def run_grid(
+    grid_file: str | Path,
+    *,
+    out: str | Path | None = None,
+    workers: int | None = None,
+    threads: int | None = None,
+    executor: str = "local",
+    address: str | None = None,
+    force: bool = False,
+    dry_run: bool = False,
+    echo: Callable[[str], None] = print,
+    status_every_s: float = STATUS_EVERY_S,
+) -> int:
+    """``blockyard grid``: returns 0 when every cell finished (done or diverged), 1 when some failed,
+    130 when stopped by a signal."""
+    if workers is not None and workers < 1:
+        raise UserError(f"--workers {workers}: must be at least 1")
+    if threads is not None and threads < 1:
+        raise UserError(f"--threads {threads}: must be at least 1")
+    if executor not in ("local", "ray"):
+        raise UserError(f"--executor {executor}: allowed: local, ray")
+    if address and executor != "ray":
+        raise UserError("--address is for --executor ray")
+    spec = load_grid(grid_file)
+    grid_dir = Path(out) if out else DEFAULT_ROOT / spec.name
+    exists = _check_grid_dir(grid_dir)
+    cores = available_cores()
+
+    recorded_threads = None
+    old_hashes: dict[str, str] = {}
+    if exists:
+        with open_index(grid_dir, readonly=True) as index:
+            value = index.get_meta("threads")
+            recorded_threads = int(value) if value else None
+            old_hashes = {r["id"]: r["config_hash"] for r in index.cells()}
+    if threads is None:
+        # A grid keeps the thread count it started with: it is part of each cell's config (and the
+        # trainer resumes a run dir only under the same config).
+        if recorded_threads is not None:
+            threads = recorded_threads
+        elif executor == "ray":
+            threads = 1
+        else:
+            threads = max(1, cores // (workers or cores))
+    if workers is None and executor == "local":
+        workers = max(1, cores // threads)
+    plan = plan_cells(spec, threads)
+    if executor == "local" and workers is not None and workers * threads > cores:
+        echo(f"note: {workers} worker(s) x {threads} thread(s) exceed the {cores} core(s) here; cells will share them")
+
+    if dry_run:
+        echo(f"grid {spec.name}: {len(plan)} cells -> {grid_dir}" + (" (exists)" if exists else ""))
+        echo(dry_run_text(plan, workers or max(1, cores // threads), threads))
+        return 0
+
+    new = {p.id: p.config_hash for p in plan}
+    # Checked before anything is written (a refused command leaves the dir as it was), and again
+    # under the lock in case another process changed the grid in between.
+    hint = ""
+    if recorded_threads is not None and threads != recorded_threads:
+        hint = f" (it was started with --threads {recorded_threads}, this run asks for {threads})"
+    _refuse_changed_spec(grid_dir, grid_file, old_hashes, new, force, hint)
+    unfinished = [p for p in plan
+                  if (read_summary(cell_dir(grid_dir, p.id) / "summary.json") or {}).get("status") not in FINISHED]
+    prepare_data(unfinished, echo)
+    grid_dir.mkdir(parents=True, exist_ok=True)
+    with grid_lock(grid_dir), open_index(grid_dir) as index:
+        old = {r["id"]: r["config_hash"] for r in index.cells()}
+        changed, added, removed = _changes(old, new)
+        if old and (changed or added or removed):
+            _refuse_changed_spec(grid_dir, grid_file, old, new, force, hint)
+            moved = _supersede(grid_dir, changed + removed, old)
+            if moved:
+                echo(f"moved {len(moved)} superseded cell(s) to {grid_dir / 'superseded'}")
+            index.remove_unplanned(set(new))
+        _archive_spec(grid_dir, spec.text)
+        (grid_dir / "configs").mkdir(exist_ok=True)
+        for p in plan:
+            _write_if_changed(grid_dir / "configs" / f"{p.id}.yaml", dump_config(p.cell.cfg))
+        index.plan(_plan_rows(plan))
+        index.set_meta({"name": spec.name, "description": spec.description, "reference": spec.reference or "",
+                        "match": spec.match, "threads": str(threads), "fingerprint": fingerprint(plan),
+                        "grid_file": str(Path(grid_file).resolve())})
+        todo = _reconcile(grid_dir, index)
+        recorder = _Recorder(grid_dir, index, spec.name, echo, status_every_s)
+        finished = len(plan) - len(todo)
+        echo(f"grid {spec.name}: {len(plan)} cells in {grid_dir} ({finished} already finished, {len(todo)} to run; "
+             f"{executor} executor, {workers or 'auto'} worker(s) x {threads} thread(s))")
+        jobs = [executors.CellJob(id=cid, config_path=(grid_dir / "configs" / f"{cid}.yaml").resolve(),
+                                  out_dir=cell_dir(grid_dir, cid).resolve(),
+                                  log_path=(grid_dir / "logs" / f"{cid}.log").resolve(), threads=threads)
+                for cid in todo]
+        if jobs:
+            (grid_dir / "cells").mkdir(exist_ok=True)
+        try:
+            if executor == "ray":
+                executors.run_ray(jobs, workers, recorder, address=address, cores=cores)
+            else:
+                executors.run_local(jobs, workers or 1, recorder)
+        except executors.GridStopped as stop:
+            recorder.status()
+            echo(f"grid stopped ({stop}); rerun the same command to resume")
+            return 130
+        if not jobs:
+            recorder.status()
+        rows = index.cells()
+
+    from blockyard.grid.report import write_report
+
+    report = write_report(grid_dir)
+    echo(f"report: {report}")
+    failed = [r["id"] for r in rows if r["status"] not in FINISHED]
+    if failed:
+        echo(f"{len(failed)} cell(s) failed: {', '.join(failed)} (see {grid_dir / 'logs'}); "
+             "rerun the same command to retry them")
+        return 1
+    return 0

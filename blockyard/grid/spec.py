@@ -1,0 +1,331 @@
+"""The grid spec: a base config crossed with axes, variants and seeds, expanded into cells.
+
+A grid file (YAML) holds::
+
+    name: gate-ablation              # optional; default: the file's stem
+    description: one line of why     # optional
+    base: ../recurrence-only.yaml    # a config path relative to this file, or an inline mapping
+    variants:                        # named sets of dotted-key overrides (several keys at once)
+      gate_on:  {}
+      gate_off: {model.mixers.recurrence.gate: false}
+    reference: gate_on               # what every other variant is compared against
+    axes:                            # dotted key -> list of values, crossed with each other
+      model.width: [64, 96]
+    seeds: [0, 1, 2]                 # each sets train.seed (and so the data seed)
+    match: params                    # none | params | flops (see blockyard.grid.fairness)
+
+Every cell is (variant, one value per axis, seed). Each cell's config is validated by
+``blockyard.config``; errors name the variant, axis or cell they come from.
+"""
+
+from __future__ import annotations
+
+import copy
+import dataclasses
+import itertools
+import json
+import re
+from pathlib import Path
+from typing import Any
+
+from blockyard.config import Config, config_from_dict, read_yaml, resolve_extends
+from blockyard.errors import ConfigError, UserError
+
+MATCH_MODES = ("none", "params", "flops")
+GRID_KEYS = ("name", "description", "base", "variants", "reference", "axes", "seeds", "match")
+# The variant name of a grid that declares no variants.
+BASE_VARIANT = "base"
+# Keys a grid may not override: the seed comes from ``seeds:``, the name is the cell id.
+_RESERVED_KEYS = ("train.seed", "name")
+_NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]*$")
+
+
+@dataclasses.dataclass(frozen=True)
+class GridSpec:
+    """A parsed, validated grid file (before fairness matching)."""
+
+    name: str
+    description: str
+    text: str  # the grid file's text (copied into the grid dir)
+    base: dict[str, Any]  # the base config as a plain dict, ``extends:`` resolved
+    variants: dict[str, dict[str, Any]]  # name -> {dotted key: value}; {BASE_VARIANT: {}} if none
+    reference: str | None
+    axes: dict[str, tuple[Any, ...]]  # dotted key -> values
+    seeds: tuple[int, ...]
+    match: str
+
+
+@dataclasses.dataclass(frozen=True)
+class Cell:
+    """One training run of the grid: a variant at one axis point and one seed."""
+
+    id: str
+    variant: str
+    point: tuple[tuple[str, Any], ...]  # ((dotted axis key, value), ...) in axis order
+    seed: int
+    overrides: dict[str, Any]  # every dotted-key override applied to the base, in order
+    cfg: Config
+    # Fairness adjustments (dotted key -> value) applied on top; empty for the reference.
+    adjustments: dict[str, Any] = dataclasses.field(default_factory=dict)
+
+    @property
+    def point_label(self) -> str:
+        """The axis point in words (``width=64, depth=3``); empty without axes."""
+        return ", ".join(f"{k}={_value_text(v)}" for k, v in self.point)
+
+
+# ----------------------------------------------------------------------------- reading
+
+
+def load_grid(path: str | Path) -> GridSpec:
+    """Read and validate a grid file; every cell's config is validated too."""
+    path = Path(path)
+    if path.is_dir():
+        raise UserError(f"{path}: is a folder; expected a grid YAML file")
+    data = read_yaml(path)
+    text = path.read_text()
+    return parse_grid(data, base_dir=path.resolve().parent, default_name=path.stem, text=text)
+
+
+def parse_grid(
+    data: dict[str, Any],
+    *,
+    base_dir: Path,
+    default_name: str = "grid",
+    text: str | None = None,
+) -> GridSpec:
+    """Validate a grid mapping (the parsed YAML); relative paths resolve against ``base_dir``."""
+    unknown = sorted(set(data) - set(GRID_KEYS))
+    if unknown:
+        raise ConfigError(str(unknown[0]), f"unknown grid key (allowed: {', '.join(GRID_KEYS)})")
+    name = data.get("name") or default_name
+    if not isinstance(name, str) or not _NAME_RE.match(name):
+        raise ConfigError("name", f"{name!r}: use letters, digits, '_', '.' and '-' (it names the grid dir)")
+    description = data.get("description") or ""
+    if not isinstance(description, str):
+        raise ConfigError("description", "expected a string")
+    base = _parse_base(data.get("base"), base_dir)
+    variants = _parse_variants(data.get("variants"))
+    reference = _parse_reference(data.get("reference"), variants, declared="variants" in data)
+    axes = _parse_axes(data.get("axes"))
+    seeds = _parse_seeds(data.get("seeds"))
+    match = data.get("match", "none")
+    if match not in MATCH_MODES:
+        raise ConfigError("match", f"{match!r} is not allowed (allowed: {', '.join(MATCH_MODES)})")
+    if match != "none" and reference is None:
+        raise ConfigError("match", f"match: {match} needs variants and a reference to match against")
+    for key in axes:
+        for vname, overrides in variants.items():
+            if key in overrides:
+                raise ConfigError(f"axes.{key}", f"also set by variants.{vname}; set each key in one place")
+    spec = GridSpec(
+        name=name,
+        description=description.strip(),
+        text=text if text is not None else json.dumps(data, indent=2, default=str),
+        base=base,
+        variants=variants,
+        reference=reference,
+        axes=axes,
+        seeds=seeds,
+        match=match,
+    )
+    _validate_pieces(spec)
+    return spec
+
+
+def _parse_base(raw: Any, base_dir: Path) -> dict[str, Any]:
+    if raw is None:
+        raise ConfigError("base", "required: a config path (relative to the grid file) or an inline mapping")
+    if isinstance(raw, str):
+        path = (base_dir / raw).resolve()
+        try:
+            data = read_yaml(path)
+        except UserError as e:
+            raise ConfigError("base", str(e)) from None
+        return resolve_extends(data, path.parent, (path,))
+    if isinstance(raw, dict):
+        return resolve_extends(copy.deepcopy(raw), base_dir)
+    raise ConfigError("base", f"expected a config path or a mapping, got {raw!r}")
+
+
+def _check_override_key(path: str, key: Any) -> str:
+    if not isinstance(key, str) or not key or any(not part for part in key.split(".")):
+        raise ConfigError(path, f"{key!r} is not a dotted config key (e.g. model.width)")
+    if key in _RESERVED_KEYS:
+        why = "set by seeds:" if key == "train.seed" else "set to the cell id"
+        raise ConfigError(f"{path}.{key}", f"cannot be overridden in a grid ({why})")
+    return key
+
+
+def _parse_variants(raw: Any) -> dict[str, dict[str, Any]]:
+    if raw is None:
+        return {BASE_VARIANT: {}}
+    if not isinstance(raw, dict) or not raw:
+        raise ConfigError("variants", "expected a mapping: variant name -> {dotted.key: value, ...}")
+    variants: dict[str, dict[str, Any]] = {}
+    for vname, overrides in raw.items():
+        if not isinstance(vname, str) or not _NAME_RE.match(vname):
+            raise ConfigError(f"variants.{vname}", "variant names use letters, digits, '_', '.' and '-'")
+        if overrides is None:
+            overrides = {}
+        if not isinstance(overrides, dict):
+            raise ConfigError(f"variants.{vname}", f"expected a mapping of dotted keys to values, got {overrides!r}")
+        for key in overrides:
+            _check_override_key(f"variants.{vname}", key)
+        variants[vname] = dict(overrides)
+    return variants
+
+
+def _parse_reference(raw: Any, variants: dict[str, dict[str, Any]], *, declared: bool) -> str | None:
+    if not declared:
+        if raw is not None:
+            raise ConfigError("reference", "names a variant, but the grid declares no variants")
+        return None
+    if raw is None:
+        raise ConfigError("reference", f"required with variants: one of {', '.join(variants)}")
+    if raw not in variants:
+        raise ConfigError("reference", f"{raw!r} is not a variant (variants: {', '.join(variants)})")
+    return str(raw)
+
+
+def _parse_axes(raw: Any) -> dict[str, tuple[Any, ...]]:
+    if raw is None:
+        return {}
+    if not isinstance(raw, dict):
+        raise ConfigError("axes", "expected a mapping: dotted.key -> [values]")
+    axes: dict[str, tuple[Any, ...]] = {}
+    for key, values in raw.items():
+        _check_override_key("axes", key)
+        if not isinstance(values, list) or not values:
+            raise ConfigError(f"axes.{key}", "expected a list of values")
+        texts = [json.dumps(v, sort_keys=True) for v in values]
+        if len(set(texts)) != len(texts):
+            raise ConfigError(f"axes.{key}", "lists a value twice")
+        axes[key] = tuple(values)
+    return axes
+
+
+def _parse_seeds(raw: Any) -> tuple[int, ...]:
+    allowed = "expected a list of distinct non-negative integers, e.g. [0, 1]"
+    if not isinstance(raw, list) or not raw:
+        raise ConfigError("seeds", allowed)
+    for s in raw:
+        if not isinstance(s, int) or isinstance(s, bool) or s < 0:
+            raise ConfigError("seeds", f"{s!r}: {allowed}")
+    if len(set(raw)) != len(raw):
+        raise ConfigError("seeds", f"lists a seed twice; {allowed}")
+    return tuple(raw)
+
+
+# ----------------------------------------------------------------------------- configs
+
+
+def config_with(base: dict[str, Any], overrides: dict[str, Any]) -> Config:
+    """The base dict with dotted-key overrides applied, validated (``blockyard.config.replace`` on a dict)."""
+    data = copy.deepcopy(base)
+    for key, value in overrides.items():
+        set_dotted(data, key, value)
+    _default_mixer_kinds(data)
+    return config_from_dict(data)
+
+
+def set_dotted(data: dict[str, Any], key: str, value: Any) -> None:
+    """``data[a][b][c] = value`` for ``key = 'a.b.c'``, creating sections on the way (values as given)."""
+    parts = key.split(".")
+    node = data
+    for i, part in enumerate(parts[:-1]):
+        nxt = node.get(part)
+        if nxt is None:
+            nxt = node[part] = {}
+        if not isinstance(nxt, dict):
+            raise ConfigError(key, f"{'.'.join(parts[: i + 1])} is a value, not a section")
+        node = nxt
+    node[parts[-1]] = copy.deepcopy(value)
+
+
+def _default_mixer_kinds(data: dict[str, Any]) -> None:
+    """``model.mixers.<kind>.<option>`` set without a ``kind``: the entry named after a mixer kind is that kind.
+
+    This mirrors the config rule that a bare kind in ``model.pattern`` is that kind with default
+    options, so a variant can set ``model.mixers.recurrence.gate`` whether or not the base spelled
+    the entry out.
+    """
+    from blockyard.mixers import MIXERS
+
+    mixers = (data.get("model") or {}).get("mixers") if isinstance(data.get("model"), dict) else None
+    if not isinstance(mixers, dict):
+        return
+    for name, entry in mixers.items():
+        if isinstance(entry, dict) and "kind" not in entry and name in MIXERS:
+            entry["kind"] = name
+
+
+def _validate_pieces(spec: GridSpec) -> None:
+    """Each variant alone, then each axis value alone, on the base: errors name their source."""
+    try:
+        config_with(spec.base, {})
+    except ConfigError as e:
+        raise ConfigError("base", str(e)) from None
+    for vname, overrides in spec.variants.items():
+        try:
+            config_with(spec.base, overrides)
+        except ConfigError as e:
+            raise ConfigError(f"variants.{vname}", str(e)) from None
+    for key, values in spec.axes.items():
+        for value in values:
+            try:
+                config_with(spec.base, {key: value})
+            except ConfigError as e:
+                detail = str(e).removeprefix(f"{key}: ")
+                raise ConfigError(f"axes.{key}", f"value {_value_text(value)}: {detail}") from None
+
+
+def _value_text(value: Any) -> str:
+    if isinstance(value, (list, tuple)):
+        return "[" + ",".join(_value_text(v) for v in value) + "]"
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, dict):
+        return json.dumps(value, sort_keys=True)
+    return str(value)
+
+
+def _slug(text: str) -> str:
+    return re.sub(r"[^A-Za-z0-9_.]+", "_", text).strip("_") or "x"
+
+
+def _axis_labels(keys: list[str]) -> dict[str, str]:
+    """Short labels for cell ids: the key's last part, or the whole key where those collide."""
+    last = [k.split(".")[-1] for k in keys]
+    return {k: (short if last.count(short) == 1 else k.replace(".", "_")) for k, short in zip(keys, last, strict=True)}
+
+
+def cell_id(variant: str, point: tuple[tuple[str, Any], ...], seed: int, labels: dict[str, str]) -> str:
+    """``<variant>-<axis><value>...-seed<k>``: the cell's folder name under ``cells/``."""
+    parts = [variant] + [_slug(f"{labels[k]}{_value_text(v)}") for k, v in point] + [f"seed{seed}"]
+    return "-".join(parts)
+
+
+def expand_cells(spec: GridSpec) -> list[Cell]:
+    """Every (variant, axis point, seed), its config validated; order: variant, point, seed."""
+    keys = list(spec.axes)
+    labels = _axis_labels(keys)
+    points = [tuple(zip(keys, combo, strict=True)) for combo in itertools.product(*(spec.axes[k] for k in keys))]
+    cells: list[Cell] = []
+    seen: dict[str, Cell] = {}
+    for vname, voverrides in spec.variants.items():
+        for point in points:
+            for seed in spec.seeds:
+                cid = cell_id(vname, point, seed, labels)
+                overrides = {**voverrides, **dict(point), "train.seed": seed, "name": cid}
+                try:
+                    cfg = config_with(spec.base, overrides)
+                except ConfigError as e:
+                    raise ConfigError(f"cell {cid}", str(e)) from None
+                cell = Cell(id=cid, variant=vname, point=point, seed=seed, overrides=overrides, cfg=cfg)
+                if cid in seen:
+                    raise UserError(f"axes: cells {seen[cid].overrides} and {overrides} share the id {cid}; "
+                                    "use values that read differently")
+                seen[cid] = cell
+                cells.append(cell)
+    return cells

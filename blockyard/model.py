@@ -1,0 +1,167 @@
+"""The backbone: the one place that turns a model config into a PyTorch model.
+
+    tokens -> embedding -> depth x [x + mixer(RMSNorm(x)); x + MLP(RMSNorm(x))] -> RMSNorm -> head
+
+Pre-norm residual blocks (Xiong et al. 2020), RMSNorm (Zhang & Sennrich 2019), GeGLU or GeLU
+MLPs (Shazeer 2020), head tied to the embedding by default (Press & Wolf 2017), its input scaled by width^-1/2.
+
+Init scheme: embeddings and every linear weight ~ N(0, init_std); the output projection of
+each mixer and MLP (modules marked ``residual_out = True``) ~ N(0, init_std / sqrt(2 * depth)),
+so that the residual stream's variance does not grow with depth (GPT-2, Radford et al. 2019);
+linear biases zero; norm gains one. Mixers then re-initialise their own special parameters
+(decay rates, convolutions) in ``reset_special_parameters``; torch's LSTM keeps torch's init.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import torch
+import torch.nn.functional as F
+from torch import nn
+from torch.utils.checkpoint import checkpoint
+
+from blockyard.config import ModelConfig
+from blockyard.mixers import MIXERS, Mixer
+
+
+class MLP(nn.Module):
+    """``gated``: W_o (GeLU(W_g x) * W_u x) (GeGLU, Shazeer 2020); ``plain``: W_o GeLU(W_i x)."""
+
+    def __init__(self, width: int, hidden: int, kind: str) -> None:
+        super().__init__()
+        self.kind = kind
+        self.hidden = hidden
+        self.proj_in = nn.Linear(width, 2 * hidden if kind == "gated" else hidden, bias=False)
+        self.proj_out = nn.Linear(hidden, width, bias=False)
+        self.proj_out.residual_out = True
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        h = self.proj_in(x)
+        if self.kind == "gated":
+            gate, up = h.chunk(2, dim=-1)
+            h = F.gelu(gate) * up
+        else:
+            h = F.gelu(h)
+        return self.proj_out(h)
+
+    @staticmethod
+    def param_count(width: int, hidden: int, kind: str) -> int:
+        return (3 if kind == "gated" else 2) * width * hidden
+
+
+class Block(nn.Module):
+    """One pre-norm residual block: temporal mixer, then MLP (skipped when the MLP is empty)."""
+
+    def __init__(self, mixer: Mixer, width: int, hidden: int, mlp_kind: str, eps: float) -> None:
+        super().__init__()
+        self.mixer_norm = nn.RMSNorm(width, eps=eps)
+        self.mixer = mixer
+        self.mlp_norm = nn.RMSNorm(width, eps=eps) if hidden > 0 else None
+        self.mlp = MLP(width, hidden, mlp_kind) if hidden > 0 else None
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        x = x + self.mixer(self.mixer_norm(x))
+        if self.mlp is not None:
+            x = x + self.mlp(self.mlp_norm(x))
+        return x
+
+    def step(self, x_t: torch.Tensor, state: Any) -> tuple[torch.Tensor, Any]:
+        y, state = self.mixer.step(self.mixer_norm(x_t), state)
+        x_t = x_t + y
+        if self.mlp is not None:
+            x_t = x_t + self.mlp(self.mlp_norm(x_t))
+        return x_t, state
+
+
+class LanguageModel(nn.Module):
+    """A causal language model over a vocabulary of ``vocab_size`` tokens."""
+
+    def __init__(self, cfg: ModelConfig, vocab_size: int, *, activation_checkpointing: bool = False) -> None:
+        super().__init__()
+        self.cfg = cfg
+        self.vocab_size = vocab_size
+        self.activation_checkpointing = activation_checkpointing
+        self.embed = nn.Embedding(vocab_size, cfg.width)
+        blocks = []
+        for layer, (_name, mcfg) in enumerate(cfg.layer_mixers()):
+            mixer = MIXERS[mcfg.kind](cfg.width, mcfg.options, layer=layer, depth=cfg.depth)
+            blocks.append(Block(mixer, cfg.width, cfg.mlp_hidden, cfg.mlp, cfg.norm_eps))
+        self.blocks = nn.ModuleList(blocks)
+        self.final_norm = nn.RMSNorm(cfg.width, eps=cfg.norm_eps)
+        self.head = None if cfg.tie_embeddings else nn.Linear(cfg.width, vocab_size, bias=False)
+        self.reset_parameters()
+
+    def reset_parameters(self) -> None:
+        std = self.cfg.init_std
+        out_std = std / math.sqrt(2 * self.cfg.depth)
+        for module in self.modules():
+            if isinstance(module, nn.Linear):
+                nn.init.normal_(module.weight, 0.0, out_std if getattr(module, "residual_out", False) else std)
+                if module.bias is not None:
+                    nn.init.zeros_(module.bias)
+            elif isinstance(module, nn.Embedding):
+                nn.init.normal_(module.weight, 0.0, std)
+            elif isinstance(module, nn.RMSNorm) and module.weight is not None:
+                nn.init.ones_(module.weight)
+        for block in self.blocks:
+            block.mixer.reset_special_parameters()
+
+    def _logits(self, h: torch.Tensor) -> torch.Tensor:
+        h = self.final_norm(h)
+        if self.head is None:
+            # Tied head: scale by width^-1/2 (Raffel et al. 2020, T5). Without it a token's own
+            # embedding dominates the residual stream at init and its logit is init_std * width,
+            # which puts the fresh loss far above ln(vocab) at width 256.
+            return F.linear(h * self.cfg.width**-0.5, self.embed.weight)
+        return self.head(h)
+
+    def forward(self, tokens: torch.Tensor) -> torch.Tensor:
+        """``tokens: (B, T)`` int64 -> logits ``(B, T, vocab)``."""
+        h = self.embed(tokens)
+        for block in self.blocks:
+            if self.activation_checkpointing and self.training and torch.is_grad_enabled():
+                h = checkpoint(block, h, use_reentrant=False)
+            else:
+                h = block(h)
+        return self._logits(h)
+
+    def init_state(self, batch: int, *, device: torch.device | str | None = None) -> list[Any]:
+        """One step state per block, for ``batch`` sequences."""
+        return [block.mixer.init_state(batch, device=device) for block in self.blocks]
+
+    def step(self, token: torch.Tensor, states: list[Any]) -> tuple[torch.Tensor, list[Any]]:
+        """``token: (B,)`` and the states -> logits ``(B, vocab)`` for the next token, new states."""
+        h = self.embed(token)
+        new_states = []
+        for block, state in zip(self.blocks, states, strict=True):
+            h, state = block.step(h, state)
+            new_states.append(state)
+        return self._logits(h), new_states
+
+    def param_groups(self) -> dict[str, int]:
+        """Parameter counts: per mixer kind, MLPs, norms, embedding, head, totals."""
+        counts: dict[str, int] = {}
+
+        def add(key: str, n: int) -> None:
+            counts[key] = counts.get(key, 0) + n
+
+        for block in self.blocks:
+            add(f"mixer:{block.mixer.kind}", sum(p.numel() for p in block.mixer.parameters()))
+            if block.mlp is not None:
+                add("mlp", sum(p.numel() for p in block.mlp.parameters()))
+            norms = [block.mixer_norm] + ([block.mlp_norm] if block.mlp_norm is not None else [])
+            add("norms", sum(p.numel() for n in norms for p in n.parameters()))
+        add("norms", sum(p.numel() for p in self.final_norm.parameters()))
+        add("embedding", self.embed.weight.numel())
+        if self.head is not None:
+            add("head", self.head.weight.numel())
+        counts["total"] = sum(p.numel() for p in self.parameters())
+        counts["non_embedding"] = counts["total"] - counts["embedding"] - counts.get("head", 0)
+        return counts
+
+
+def build_model(cfg: ModelConfig, vocab_size: int, *, activation_checkpointing: bool = False) -> LanguageModel:
+    """The model for ``cfg`` over ``vocab_size`` tokens (the config was validated on load)."""
+    return LanguageModel(cfg, vocab_size, activation_checkpointing=activation_checkpointing)

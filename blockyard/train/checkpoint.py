@@ -1,0 +1,173 @@
+"""Checkpoints: everything a resumed run needs to continue exactly where the saved one stopped.
+
+A checkpoint holds model, optimizer and scheduler state, the torch / numpy / python RNG states,
+the data position (the step: batches are a pure function of seed and step) and the loop's own
+state (first loss, best val loss, time spent). Files are ``checkpoints/step_<N>.pt``, written
+atomically; the last ``train.keep_checkpoints`` are kept. A checkpoint that cannot be read is
+renamed ``*.pt.corrupt`` (kept for inspection, ignored from then on) and the previous one used.
+"""
+
+from __future__ import annotations
+
+import random
+import re
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+
+from blockyard.train.records import atomic_write
+
+FORMAT = 1
+_NAME = re.compile(r"^step_(\d+)\.pt$")
+_REQUIRED = ("format", "step", "config_hash", "model", "optimizer", "scheduler", "rng", "loop")
+
+
+def checkpoint_path(folder: Path, step: int) -> Path:
+    return Path(folder) / f"step_{step:07d}.pt"
+
+
+def list_checkpoints(folder: Path) -> list[tuple[int, Path]]:
+    """(step, path) of the checkpoint files in ``folder``, oldest first."""
+    if not Path(folder).is_dir():
+        return []
+    found = []
+    for path in Path(folder).iterdir():
+        m = _NAME.match(path.name)
+        if m:
+            found.append((int(m.group(1)), path))
+    return sorted(found)
+
+
+# ----------------------------------------------------------------------------- RNG states
+
+
+def rng_state() -> dict[str, Any]:
+    """torch, numpy and python RNG states as tensors and plain values (loadable with weights_only)."""
+    np_state = np.random.get_state(legacy=False)
+    state = {
+        "torch": torch.get_rng_state(),
+        "numpy": {
+            "bit_generator": np_state["bit_generator"],
+            "key": torch.from_numpy(np_state["state"]["key"].astype(np.int64)),
+            "pos": int(np_state["state"]["pos"]),
+            "has_gauss": int(np_state["has_gauss"]),
+            "gauss": float(np_state["gauss"]),
+        },
+        "python": random.getstate(),
+    }
+    if torch.cuda.is_available() and torch.cuda.is_initialized():
+        state["cuda"] = torch.cuda.get_rng_state_all()
+    return state
+
+
+def set_rng_state(state: dict[str, Any]) -> None:
+    torch.set_rng_state(state["torch"])
+    n = state["numpy"]
+    np.random.set_state({
+        "bit_generator": n["bit_generator"],
+        "state": {"key": n["key"].numpy().astype(np.uint32), "pos": n["pos"]},
+        "has_gauss": n["has_gauss"],
+        "gauss": n["gauss"],
+    })
+    random.setstate(_as_python_state(state["python"]))
+    if "cuda" in state and torch.cuda.is_available():
+        torch.cuda.set_rng_state_all(state["cuda"])
+
+
+def _as_python_state(value: Any) -> Any:
+    # random.setstate wants tuples; a round trip through some loaders turns them into lists.
+    if isinstance(value, list):
+        return tuple(_as_python_state(v) for v in value)
+    if isinstance(value, tuple):
+        return tuple(_as_python_state(v) for v in value)
+    return value
+
+
+# ----------------------------------------------------------------------------- save / load
+
+
+@dataclass
+class Checkpoint:
+    """A loaded checkpoint: ``step`` and the raw state dict (see :func:`save_checkpoint`)."""
+
+    step: int
+    path: Path
+    state: dict[str, Any]
+
+
+def save_checkpoint(
+    folder: Path,
+    *,
+    step: int,
+    config_hash: str,
+    model: torch.nn.Module,
+    optimizer: torch.optim.Optimizer,
+    scheduler: Any,
+    loop: dict[str, Any],
+    keep: int,
+) -> Path:
+    """Write ``step_<step>.pt`` atomically, then delete all but the newest ``keep`` checkpoints."""
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    state = {
+        "format": FORMAT,
+        "step": step,
+        "config_hash": config_hash,
+        "model": model.state_dict(),
+        "optimizer": optimizer.state_dict(),
+        "scheduler": scheduler.state_dict(),
+        "rng": rng_state(),
+        "loop": dict(loop),
+    }
+    path = checkpoint_path(folder, step)
+    atomic_write(path, lambda f: torch.save(state, f))
+    for _old_step, old in list_checkpoints(folder)[:-keep]:
+        old.unlink(missing_ok=True)
+    return path
+
+
+def read_checkpoint(path: Path, config_hash: str) -> Checkpoint:
+    """Load and sanity-check one checkpoint; raises ValueError saying what is wrong with it."""
+    try:
+        state = torch.load(path, map_location="cpu", weights_only=True)
+    except Exception as e:  # torch raises several types for truncated or garbled files
+        raise ValueError(f"unreadable ({e.__class__.__name__}: {str(e).splitlines()[0] if str(e) else ''})") from e
+    if not isinstance(state, dict) or any(k not in state for k in _REQUIRED):
+        raise ValueError("not a blockyard checkpoint (keys missing)")
+    if state["format"] != FORMAT:
+        raise ValueError(f"checkpoint format {state['format']} (this blockyard reads {FORMAT})")
+    if state["config_hash"] != config_hash:
+        raise ValueError(f"written for config {state['config_hash']}, not {config_hash}")
+    m = _NAME.match(Path(path).name)
+    if m and int(m.group(1)) != state["step"]:
+        raise ValueError(f"holds step {state['step']}, its name says {m.group(1)}")
+    return Checkpoint(step=int(state["step"]), path=Path(path), state=state)
+
+
+def latest_valid_checkpoint(folder: Path, config_hash: str, warn: Any = None) -> Checkpoint | None:
+    """The newest readable checkpoint in ``folder``; broken newer ones are renamed ``*.corrupt``."""
+    for _step, path in reversed(list_checkpoints(folder)):
+        try:
+            return read_checkpoint(path, config_hash)
+        except ValueError as e:
+            bad = path.with_name(path.name + ".corrupt")
+            path.replace(bad)
+            (warn or _stderr_warning)(f"checkpoint {path} is {e}; moved to {bad.name}, trying the previous one")
+    return None
+
+
+def _stderr_warning(message: str) -> None:
+    print(f"warning: {message}", file=sys.stderr)
+
+
+def restore(ckpt: Checkpoint, model: torch.nn.Module, optimizer: torch.optim.Optimizer, scheduler: Any) -> dict:
+    """Load model, optimizer, scheduler and RNG states; returns the loop state."""
+    model.load_state_dict(ckpt.state["model"])
+    optimizer.load_state_dict(ckpt.state["optimizer"])
+    scheduler.load_state_dict(ckpt.state["scheduler"])
+    set_rng_state(ckpt.state["rng"])
+    return dict(ckpt.state["loop"])

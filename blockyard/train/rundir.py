@@ -1,0 +1,92 @@
+"""What to do with a run dir before training: start fresh, resume, report it done, or refuse.
+
+The decision reads the dir only; nothing is removed until the caller has validated the new
+config, data and model (:func:`clear_records`), so a refused or failing command leaves the dir
+exactly as it was. ``--force`` removes only the run's own records (``records.RECORD_NAMES``).
+"""
+
+from __future__ import annotations
+
+import shutil
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from blockyard.config import config_from_dict, config_hash
+from blockyard.errors import UserError
+from blockyard.train.records import RECORD_NAMES, read_json
+
+
+@dataclass(frozen=True)
+class DirState:
+    """``kind``: new (missing or empty), same (this config), other (another or unreadable config),
+    foreign (files but no config.yaml)."""
+
+    kind: str
+    summary: dict[str, Any] | None = None
+    stored_hash: str | None = None
+
+
+def stored_config_hash(path: Path) -> str | None:
+    """``config_hash`` of a run dir's config.yaml, None when it cannot be read as a config."""
+    try:
+        data = yaml.safe_load(path.read_text())
+        return config_hash(config_from_dict(data))
+    except (OSError, yaml.YAMLError, UserError, TypeError, AttributeError):
+        return None
+
+
+def inspect_run_dir(out: Path, cfg_hash: str) -> DirState:
+    if not out.exists() or (out.is_dir() and not any(out.iterdir())):
+        return DirState("new")
+    if not out.is_dir():
+        raise UserError(f"{out}: exists and is not a directory (pass another --out)")
+    config_file = out / "config.yaml"
+    if not config_file.exists():
+        return DirState("foreign")
+    stored = stored_config_hash(config_file)
+    summary = read_json(out / "summary.json")
+    return DirState("same" if stored == cfg_hash else "other", summary=summary, stored_hash=stored)
+
+
+def plan_run_dir(state: DirState, out: Path, cfg_hash: str, force: bool) -> str:
+    """``fresh``, ``resume`` or ``finished`` for this dir; raises UserError when it must be left alone.
+
+    Finished means done or diverged: rerunning a diverged config would only diverge again
+    (the run is deterministic), so both need ``force`` to retrain.
+    """
+    if state.kind == "new":
+        return "fresh"
+    if force:
+        return "fresh"
+    if state.kind == "same":
+        finished = state.summary is not None and state.summary.get("status") in ("done", "diverged")
+        return "finished" if finished else "resume"
+    if state.kind == "other":
+        held = f"config {state.stored_hash}" if state.stored_hash else "an unreadable config.yaml"
+        raise UserError(f"{out}: holds a run of {held}, not of this config ({cfg_hash}); "
+                        "use --force to replace it or --out for another dir")
+    raise UserError(f"{out}: is not empty and holds no run (no config.yaml); "
+                    "use --force to write a run into it or --out for another dir")
+
+
+def clear_records(out: Path) -> None:
+    """Remove the run records in ``out`` (and leftover temp files of them), nothing else."""
+    for name in RECORD_NAMES:
+        path = out / name
+        if path.is_dir() and not path.is_symlink():
+            shutil.rmtree(path)
+        elif path.exists() or path.is_symlink():
+            path.unlink()
+    for name in RECORD_NAMES:
+        for tmp in out.glob(f".{name}.*.tmp"):
+            tmp.unlink(missing_ok=True)
+
+
+def remove_temp_files(folder: Path) -> None:
+    """Drop temp files an interrupted atomic write left behind (``.NAME.XXXX.tmp``)."""
+    if folder.is_dir():
+        for tmp in folder.glob(".*.tmp"):
+            tmp.unlink(missing_ok=True)

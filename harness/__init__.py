@@ -1,3 +1,0 @@
-"""A CPU-first harness for training tiny language models and ablating their temporal-mixing blocks."""
-
-__version__ = "0.1.0"
