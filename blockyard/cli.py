@@ -60,7 +60,7 @@ def _add_blocks(sub: argparse._SubParsersAction) -> None:
 
 
 def _cmd_blocks(args: argparse.Namespace) -> int:
-    from blockyard.cost import blocks_command
+    from blockyard.cost.analytic import blocks_command
 
     print(blocks_command(args.configs, args.overrides, plot=args.plot))
     return 0
@@ -172,11 +172,11 @@ def _add_bench(sub: argparse._SubParsersAction) -> None:
                    help="seeds of the --quality runs; the target is on the mean paired difference (default 6)")
     p.add_argument("--quality-lr", type=float, default=None, metavar="LR",
                    help="peak learning rate of the --quality runs (default 1e-3: at 3e-3 rounding alone moves "
-                        "the 300-step loss by several %%, see blockyard/bench.py)")
+                        "the 300-step loss by several %%, see blockyard/bench/__init__.py)")
     p.add_argument("--json", default=None, metavar="PATH", help="also write every figure as JSON here")
     p.add_argument("--decode", action="store_true",
                    help="instead: decode tokens/s and state bytes of the step path vs context, batch 1 and 64 "
-                        "(blockyard/bench_decode.py; with --json, also a PNG beside it)")
+                        "(blockyard/bench/decode.py; with --json, also a PNG beside it)")
     p.set_defaults(func=_cmd_bench)
 
 
@@ -189,7 +189,7 @@ def _cmd_bench(args: argparse.Namespace) -> int:
     if args.decode:
         from pathlib import Path
 
-        from blockyard.bench_decode import bench_decode_command
+        from blockyard.bench.decode import bench_decode_command
 
         plot = None if args.json is None else str(Path(args.json).with_suffix(".png"))
         print(bench_decode_command(json_path=args.json, plot_path=plot))
@@ -221,7 +221,7 @@ def _add_sample(sub: argparse._SubParsersAction) -> None:
 
 
 def _cmd_sample(args: argparse.Namespace) -> int:
-    from blockyard.generate import sample_command
+    from blockyard.eval.generate import sample_command
 
     print(sample_command(args.run_dir, args.prompt, args.tokens, temperature=args.temperature, top_k=args.top_k,
                          seed=args.seed, threads=args.threads))
@@ -245,7 +245,7 @@ def _add_eval(sub: argparse._SubParsersAction) -> None:
 
 
 def _cmd_eval(args: argparse.Namespace) -> int:
-    from blockyard.evaluate import eval_command
+    from blockyard.eval.extrapolation import eval_command
 
     print(eval_command(args.run_dir, args.lengths, buckets=args.buckets, probes=args.probes))
     return 0

@@ -152,14 +152,14 @@ class TrainConfig:
 
 @dataclasses.dataclass(frozen=True)
 class EvalConfig:
-    probes: tuple[str, ...] = opt((), "probe tasks run at each evaluation: mqar, passkey (see blockyard/probes.py)")
+    probes: tuple[str, ...] = opt((), "probe tasks run at each evaluation: mqar, passkey (blockyard/eval/probes.py)")
     probe_pairs: tuple[int, ...] = opt((4, 8, 16, 32), "mqar probe: numbers of key-value pairs", min=1)
     probe_distances: tuple[int, ...] = opt(
         (16, 64, 256), "passkey probe: filler characters between the key and the question", min=0)
     probe_sequences: int = opt(16, "sequences per probe size", min=1)
 
     def validate(self, path: str) -> None:
-        from blockyard.probes import PROBES
+        from blockyard.eval.probes import PROBES
 
         p = f"{path}." if path else ""
         for i, name in enumerate(self.probes):

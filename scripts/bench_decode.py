@@ -1,7 +1,7 @@
 """Decode benchmark: tokens/s and state bytes of the step path vs context length, batch 1 and 64.
 
 Models: the presets' global attention, local attention (window 128), recurrence and 2:1 hybrid
-(see ``blockyard/bench_decode.py``). Prints a table; ``--json`` and ``--plot`` write the figures.
+(see ``blockyard/bench/decode.py``). Prints a table; ``--json`` and ``--plot`` write the figures.
 
     .venv/bin/python scripts/bench_decode.py [--contexts 128,512,1024,2048,4096] [--batches 1,64]
         [--models global,local,recurrence,hybrid] [--reps 8] [--max-state-mib 512]
@@ -13,7 +13,7 @@ from __future__ import annotations
 import argparse
 import sys
 
-from blockyard.bench_decode import MODELS, bench_decode_command
+from blockyard.bench.decode import MODELS, bench_decode_command
 from blockyard.errors import UserError
 
 

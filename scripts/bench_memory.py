@@ -110,8 +110,8 @@ def job_steps(spec: dict[str, Any]) -> dict[str, Any]:
     import torch
 
     from blockyard.config import config_from_dict
+    from blockyard.cost.memory import estimate_activation_memory
     from blockyard.data import load_data
-    from blockyard.memory_estimate import estimate_activation_memory
     from blockyard.model import build_model
     from blockyard.train import train_step
     from blockyard.train.memory import current_rss_bytes, peak_rss_bytes

@@ -19,7 +19,7 @@ import torch
 
 from blockyard import bench
 from blockyard.config import config_from_dict
-from blockyard.memory_estimate import (
+from blockyard.cost.memory import (
     estimate_activation_memory,
     memory_warning,
     saved_bytes_by_part,
@@ -239,7 +239,7 @@ def test_estimate_is_linear_in_batch_and_checkpointing_keeps_less():
 @pytest.mark.parametrize("kind", ["global_attention", "local_attention", "recurrence", "lstm"])
 def test_coarse_bound_is_above_the_precise_estimate(kind):
     # The pre-check may only skip configs that surely fit: its bound must exceed the counted bytes.
-    from blockyard.memory_estimate import coarse_bound_bytes
+    from blockyard.cost.memory import coarse_bound_bytes
 
     for width, expansion in ((64, 3.0), (64, 0.5), (128, 8.0)):
         cfg = config_from_dict({"model": {"width": width, "depth": 2, "pattern": [kind], "mlp_expansion": expansion},
@@ -263,7 +263,7 @@ def test_huge_config_warns_with_estimate_and_suggestions():
 
 def test_trainer_warns_before_training_when_activations_will_not_fit(tmp_path, monkeypatch, capsys):
     # The machine is made to look tiny (64 KiB available) instead of building a huge config.
-    import blockyard.memory_estimate as me
+    import blockyard.cost.memory as me
     from blockyard.train import run_training
 
     monkeypatch.setattr(me, "available_memory_bytes", lambda: 2**16)

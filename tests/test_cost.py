@@ -1,4 +1,4 @@
-"""The cost model (blockyard/cost.py) against counted parameters, Kaplan et al.'s FLOPs and measured states."""
+"""The cost model (blockyard/cost/analytic.py) against counted parameters, Kaplan et al.'s FLOPs and measured states."""
 
 from __future__ import annotations
 
@@ -8,9 +8,9 @@ from pathlib import Path
 import pytest
 import torch
 
-from blockyard import cost
 from blockyard.cli import main
 from blockyard.config import config_from_dict, load_config
+from blockyard.cost import analytic as cost
 from blockyard.errors import UserError
 from blockyard.mixers import MIXERS, state_nbytes
 from blockyard.model import build_model

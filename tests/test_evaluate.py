@@ -1,4 +1,4 @@
-"""Length extrapolation (blockyard/evaluate.py, ``blockyard eval``) and the probe suite (blockyard/probes.py)."""
+"""Length extrapolation (blockyard/eval/extrapolation.py, ``blockyard eval``); probes (blockyard/eval/probes.py)."""
 
 from __future__ import annotations
 
@@ -12,12 +12,13 @@ import torch
 import torch.nn.functional as F
 import yaml
 
-from blockyard import evaluate, probes
 from blockyard.cli import main
 from blockyard.config import config_from_dict, load_config
 from blockyard.data.tasks import KEY_SENTENCE, QUESTION, TASKS, SymbolTokenizer, passkey_symbols
 from blockyard.errors import ConfigError, UserError
-from blockyard.generate import load_run
+from blockyard.eval import extrapolation as evaluate
+from blockyard.eval import probes
+from blockyard.eval.generate import load_run
 from blockyard.train import run_training
 from blockyard.train.records import read_metrics
 

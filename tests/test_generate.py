@@ -1,4 +1,4 @@
-"""Generation through the step path (blockyard/generate.py) and ``blockyard sample``."""
+"""Generation through the step path (blockyard/eval/generate.py) and ``blockyard sample``."""
 
 from __future__ import annotations
 
@@ -13,7 +13,7 @@ from scipy import stats
 from blockyard.cli import main
 from blockyard.config import config_from_dict, load_config
 from blockyard.errors import UserError
-from blockyard.generate import filter_top_k, generate, load_run, sample_command, sample_next
+from blockyard.eval.generate import filter_top_k, generate, load_run, sample_command, sample_next
 from blockyard.model import build_model
 from blockyard.train import run_training
 
@@ -165,7 +165,7 @@ def test_sample_bad_run_dirs(tmp_path):
 
 
 def test_tiled_state_steps_like_a_batch_of_identical_sequences():
-    from blockyard.bench_decode import states_at, tile_state
+    from blockyard.bench.decode import states_at, tile_state
     from blockyard.mixers import state_nbytes
 
     model = tiny_model(["rec", "local", "global", "lstm"])
@@ -180,7 +180,7 @@ def test_tiled_state_steps_like_a_batch_of_identical_sequences():
 
 
 def test_decode_bench_measures_the_predicted_state_and_skips_over_budget():
-    from blockyard.bench_decode import decode_bench
+    from blockyard.bench.decode import decode_bench
 
     rows = decode_bench(models=["global", "recurrence"], contexts=[4, 8], batches=[1, 3], reps=1,
                         max_state_mib=0.2, overrides=["model.depth=1", "model.width=32"])

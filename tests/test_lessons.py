@@ -12,7 +12,7 @@ from pathlib import Path
 
 import pytest
 
-from blockyard import cost
+from blockyard.cost import analytic as cost
 from blockyard.grid.spec import expand_cells, load_grid
 
 LESSONS = Path(__file__).resolve().parents[1] / "configs" / "lessons"

@@ -41,7 +41,7 @@ def count_params(cfg: Config) -> dict[str, int]:
     the analytic counts against built models; a mixer without the ``param_count`` hook is built
     for real instead.
     """
-    from blockyard.cost import param_breakdown
+    from blockyard.cost.analytic import param_breakdown
 
     vocab = vocab_size(cfg)
     try:
@@ -56,7 +56,7 @@ def count_params(cfg: Config) -> dict[str, int]:
 def flops_per_token(cfg: Config) -> float | None:
     """Training FLOPs per token from ``blockyard.cost`` (None where the cost model is unavailable)."""
     try:
-        from blockyard.cost import flops_per_token as cost_flops
+        from blockyard.cost.analytic import flops_per_token as cost_flops
     except ImportError:
         return None
     return float(cost_flops(cfg))

@@ -237,7 +237,9 @@ def write_plots(grid_dir: Path, groups: list[Group]) -> list[tuple[str, str]]:
                         "Final validation loss vs non-embedding parameters (mean over seeds; bars: 95% t interval)."))
     plt.close(fig)
 
-    from blockyard.evaluate import report_figures  # length extrapolation (eval.json) and eval.probes, where present
+    from blockyard.eval.extrapolation import (
+        report_figures,  # length extrapolation (eval.json) and eval.probes, where present
+    )
 
     written += report_figures(grid_dir, {g.label: [cell_dir(grid_dir, r["id"]) for r in g.done] for g in groups})
     return written

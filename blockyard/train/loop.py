@@ -275,10 +275,10 @@ def run_training(
     torch.set_num_threads(runtime.threads)
     try:
         s = _build(cfg, cfg_hash, runtime)
-        from blockyard.memory_estimate import warn_if_too_large  # activations that will not fit: say so first
+        from blockyard.cost.memory import warn_if_too_large  # activations that will not fit: say so first
 
         warn_if_too_large(cfg, s.data.vocab_size, lambda m: show.message(f"warning: {m}"))
-        from blockyard.probes import make_eval_hook  # eval.probes; builds (and checks) the probes before training
+        from blockyard.eval.probes import make_eval_hook  # eval.probes; builds (and checks) the probes before training
 
         probes = make_eval_hook(cfg, s.data)
         return _train(s, out, action, show, (*eval_hooks, probes) if probes else tuple(eval_hooks))

@@ -150,7 +150,7 @@ def length_result(label: str, length: int, loss: BucketLoss, seq_len: int) -> di
 
 
 def length_extrapolation(run: Any, lengths: list[tuple[str, int]], n_buckets: int) -> list[dict[str, Any]]:
-    """Loss per position bucket of ``run`` (a ``blockyard.generate.LoadedRun``) at each length."""
+    """Loss per position bucket of ``run`` (a ``blockyard.eval.generate.LoadedRun``) at each length."""
     seq_len = run.cfg.data.seq_len
     rows = []
     for label, length in lengths:
@@ -192,7 +192,7 @@ def merge_eval(old: dict[str, Any] | None, new: dict[str, Any]) -> dict[str, Any
 def eval_command(run_dir: str | Path, lengths: str, *, buckets: int = 8, probes: str = "") -> str:
     """``blockyard eval``: length extrapolation (and probes) of a trained run; writes RUN_DIR/eval.json."""
     from blockyard.config import config_hash
-    from blockyard.generate import load_run
+    from blockyard.eval.generate import load_run
     from blockyard.train.records import read_json, write_json
 
     if buckets < 1:
@@ -202,7 +202,7 @@ def eval_command(run_dir: str | Path, lengths: str, *, buckets: int = 8, probes:
     probe_names = tuple(p.strip() for p in probes.split(",") if p.strip())
     probe_results = {}
     if probe_names:
-        from blockyard.probes import run_probes
+        from blockyard.eval.probes import run_probes
 
         probe_results = run_probes(run.model, run.cfg, run.data.tokenizer, names=probe_names)
     if not rows and not probe_results:
@@ -291,7 +291,7 @@ def report_figures(out_dir: str | Path, run_dirs: dict[str, list[Path]]) -> list
     """The extra PNGs of a grid report, for the runs of each variant label: length extrapolation (from
     the cells' eval.json, where ``blockyard eval`` was run) and probe accuracy (from the final val line of
     their metrics.jsonl, where ``eval.probes`` was set). Returns (file name, caption) of those written."""
-    from blockyard.probes import plot_probe_accuracy
+    from blockyard.eval.probes import plot_probe_accuracy
     from blockyard.train.records import read_metrics
 
     out_dir = Path(out_dir)

@@ -290,7 +290,7 @@ def blockyard_run(case: BenchCase, steps: int, warmup: int, cache_dir: Path, thr
 
 def flops_per_token(cfg: Any, vocab_size: int) -> float:
     """Training FLOPs per token actually computed: Kaplan et al. 2020's 6N + mixer terms, plus the head's 6 d V."""
-    from blockyard.cost import flops_breakdown
+    from blockyard.cost.analytic import flops_breakdown
 
     parts = flops_breakdown(cfg, vocab_size)
     return parts["total"] + parts["head"]
@@ -303,7 +303,7 @@ def _bench_scan_module() -> Any:
     """The kernels' own measuring code, ``scripts/bench_scan.py`` (not a package module: loaded by path)."""
     import importlib.util
 
-    path = Path(__file__).resolve().parents[1] / "scripts" / "bench_scan.py"
+    path = Path(__file__).resolve().parents[2] / "scripts" / "bench_scan.py"
     if not path.exists():
         return None
     spec = importlib.util.spec_from_file_location("blockyard_bench_scan", path)

@@ -25,13 +25,13 @@ from typing import Any
 
 import torch
 
-from blockyard import cost
 from blockyard.config import Config, load_config
+from blockyard.cost import analytic as cost
 from blockyard.errors import UserError
 from blockyard.mixers import state_nbytes
 from blockyard.model import build_model
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 VOCAB = 256  # byte tokens, as the presets
 
 # name -> (preset, overrides): the four patterns at the presets' width, depth and MLP.

@@ -1,0 +1,1 @@
+"""Evaluation of trained runs: length extrapolation, recall probes, generation through the step path."""
