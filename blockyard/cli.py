@@ -172,7 +172,7 @@ def _add_bench(sub: argparse._SubParsersAction) -> None:
                    help="seeds of the --quality runs; the target is on the mean paired difference (default 6)")
     p.add_argument("--quality-lr", type=float, default=None, metavar="LR",
                    help="peak learning rate of the --quality runs (default 1e-3: at 3e-3 rounding alone moves "
-                        "the 300-step loss by several %%, see blockyard/bench/__init__.py)")
+                        "the 300-step loss by several %%, see blockyard/bench/quality.py)")
     p.add_argument("--json", default=None, metavar="PATH", help="also write every figure as JSON here")
     p.add_argument("--decode", action="store_true",
                    help="instead: decode tokens/s and state bytes of the step path vs context, batch 1 and 64 "
@@ -194,7 +194,7 @@ def _cmd_bench(args: argparse.Namespace) -> int:
         plot = None if args.json is None else str(Path(args.json).with_suffix(".png"))
         print(bench_decode_command(json_path=args.json, plot_path=plot))
         return 0
-    from blockyard.bench import bench_command
+    from blockyard.bench.command import bench_command
 
     print(bench_command(steps=args.steps, warmup=args.warmup, rounds=args.rounds, profile=args.profile,
                         quality=args.quality, quality_steps=args.quality_steps,

@@ -1,6 +1,6 @@
 """Speed benchmark: blockyard configs beside a hand-written PyTorch loop and this machine's peaks.
 
-The same as ``blockyard bench`` (see ``blockyard/bench/__init__.py``); prints ratios measured side by side.
+The same as ``blockyard bench`` (see ``blockyard/bench/speed.py``); prints ratios measured side by side.
 
     .venv/bin/python scripts/bench.py [--steps 30] [--rounds 2] [--quality] [--json out.json]
 """

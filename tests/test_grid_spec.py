@@ -13,8 +13,9 @@ import torch
 
 from blockyard.cli import main
 from blockyard.config import to_dict
+from blockyard.cost.analytic import flops_per_token
 from blockyard.errors import UserError
-from blockyard.grid.fairness import PARAMS_TOLERANCE, apply_matching, count_params, flops_per_token, planned_tokens
+from blockyard.grid.fairness import MATCH_TOLERANCE, apply_matching, count_params, planned_tokens
 from blockyard.grid.index import open_index
 from blockyard.grid.run import _plan_rows, plan_cells
 from blockyard.grid.spec import expand_cells, load_grid
@@ -187,7 +188,7 @@ def test_non_grid_dir_is_refused(tmp_path):
 
 
 def _real_non_embedding(cfg) -> int:
-    """Count on a real (CPU) model, independently of the meta-device count used for matching."""
+    """Count on a real (CPU) model, independently of the analytic count used for matching."""
     torch.manual_seed(0)
     model = build_model(cfg.model, 256)
     embed = model.embed.weight.numel() + (model.head.weight.numel() if model.head is not None else 0)
@@ -217,7 +218,7 @@ def test_match_params_lands_within_two_percent_for_recurrence_vs_attention(tmp_p
             assert after.adjustments == {} and after.cfg == before.cfg
             continue
         got = _real_non_embedding(after.cfg)
-        assert abs(got - ref) <= PARAMS_TOLERANCE * ref, (after.id, got, ref)
+        assert abs(got - ref) <= MATCH_TOLERANCE * ref, (after.id, got, ref)
         # Only the MLP expansion moved.
         assert set(after.adjustments) == {"model.mlp_expansion"}
         a, b = to_dict(before.cfg), to_dict(after.cfg)
@@ -225,7 +226,7 @@ def test_match_params_lands_within_two_percent_for_recurrence_vs_attention(tmp_p
         b["model"].pop("mlp_expansion")
         assert a == b
         # Unmatched, these variants are more than 2% off (else the test would prove nothing).
-        assert abs(_real_non_embedding(before.cfg) - ref) > PARAMS_TOLERANCE * ref, after.id
+        assert abs(_real_non_embedding(before.cfg) - ref) > MATCH_TOLERANCE * ref, after.id
     assert count_params(cells[0].cfg)["non_embedding"] == ref
 
 
@@ -337,7 +338,7 @@ def test_demo_grids_expand_and_match_parameters(name, variants, seeds):
     assert len(plan) == len(variants) * seeds
     ref = plan[0].cost.params_non_embedding
     for p in plan:
-        assert abs(p.cost.params_non_embedding - ref) <= PARAMS_TOLERANCE * ref
+        assert abs(p.cost.params_non_embedding - ref) <= MATCH_TOLERANCE * ref
         assert p.cell.cfg.data.corpus == "plays" and p.cell.cfg.runtime.threads == 1
     patterns = {p.cell.variant: p.cell.cfg.model.pattern for p in plan}
     if name == "default":

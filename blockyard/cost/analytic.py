@@ -123,10 +123,15 @@ def flops_breakdown(cfg: Config, vocab_size: int | None = None) -> dict[str, flo
     return {"dense": dense, "mixer_extra": extra, "total": dense + extra, "head": head}
 
 
-def flops_per_token(cfg: Config) -> float:
-    """Training FLOPs per token: 6 N + the mixers' extra terms, embeddings excluded (Kaplan et al. 2020)."""
+def flops_per_token(cfg: Config, vocab_size: int | None = None, *, with_head: bool = False) -> float:
+    """Training FLOPs per token: 6 N + the mixers' extra terms, embeddings excluded (Kaplan et al. 2020).
+
+    ``with_head`` adds the unembedding's 6 d V: left out of compute budgets by the Kaplan convention,
+    but computed all the same, so a utilisation measured from tokens/s counts it (the benchmark's MFU).
+    """
     rows = layer_costs(cfg.model, cfg.data.seq_len)
-    return 6.0 * non_embedding_params(cfg.model) + sum(r.extra_flops_per_token for r in rows)
+    body = 6.0 * non_embedding_params(cfg.model) + sum(r.extra_flops_per_token for r in rows)
+    return body + (6.0 * cfg.model.width * _vocab_size(cfg, vocab_size) if with_head else 0.0)
 
 
 def layer_state_bytes(model: ModelConfig, context: int, batch: int = 1) -> list[int]:

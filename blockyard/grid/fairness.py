@@ -1,13 +1,14 @@
 """What a cell costs (parameters, FLOPs per token, token budget) and how variants are made comparable.
 
 ``match: params`` changes each non-reference variant's ``model.mlp_expansion`` (its MLP hidden
-size, a whole number of units) so that its non-embedding parameter count lands within 2% of the
-reference's at the same axis point. ``match: flops`` changes each non-reference variant's token
-budget (``train.tokens``) so that flops_per_token x tokens equals the reference's training FLOPs.
+size, a whole number of units) so that its non-embedding parameter count lands within
+``MATCH_TOLERANCE`` (2%) of the reference's at the same axis point. ``match: flops`` changes each
+non-reference variant's token budget (``train.tokens``) so that flops_per_token x tokens equals
+the reference's training FLOPs.
 Either way the adjusted value and the resulting params / FLOPs are reported.
 
-Parameters are counted on a model built on the meta device (no memory, no init cost), so the
-count is the model's own, whatever the mixers do. FLOPs per token come from ``blockyard.cost``.
+Parameters and FLOPs per token are the cost model's analytic counts (``blockyard.cost.analytic``,
+checked against built models by ``tests/test_cost.py``): no model is built.
 """
 
 from __future__ import annotations
@@ -20,16 +21,14 @@ from blockyard.config import Config
 from blockyard.errors import UserError
 from blockyard.grid.spec import Cell, GridSpec, config_with
 
-# Non-embedding parameter counts of matched variants must be this close to the reference's.
-PARAMS_TOLERANCE = 0.02
+# Non-embedding parameter counts of matched variants must be this close to the reference's (relative).
+MATCH_TOLERANCE = 0.02
 
 
 def vocab_size(cfg: Config) -> int:
-    """The vocabulary the data layer derives from ``cfg.data`` (256 bytes where it cannot say)."""
-    try:
-        from blockyard.data import vocab_size_for
-    except ImportError:
-        return 256
+    """The vocabulary the data layer derives from ``cfg.data``."""
+    from blockyard.data import vocab_size_for  # here, not above: the data layer imports torch
+
     return int(vocab_size_for(cfg))
 
 
@@ -51,15 +50,6 @@ def count_params(cfg: Config) -> dict[str, int]:
 
         groups = build_model(cfg.model, vocab).param_groups()
     return {"total": int(groups["total"]), "non_embedding": int(groups["non_embedding"])}
-
-
-def flops_per_token(cfg: Config) -> float | None:
-    """Training FLOPs per token from ``blockyard.cost`` (None where the cost model is unavailable)."""
-    try:
-        from blockyard.cost.analytic import flops_per_token as cost_flops
-    except ImportError:
-        return None
-    return float(cost_flops(cfg))
 
 
 def tokens_per_step(cfg: Config) -> int:
@@ -84,15 +74,17 @@ class CellCost:
 
     params_total: int
     params_non_embedding: int
-    flops_per_token: float | None
+    flops_per_token: float
     tokens: int
 
     @property
-    def train_flops(self) -> float | None:
-        return None if self.flops_per_token is None else self.flops_per_token * self.tokens
+    def train_flops(self) -> float:
+        return self.flops_per_token * self.tokens
 
 
 def cell_cost(cfg: Config) -> CellCost:
+    from blockyard.cost.analytic import flops_per_token  # here, not above: the cost model imports torch
+
     params = count_params(cfg)
     return CellCost(params["total"], params["non_embedding"], flops_per_token(cfg), planned_tokens(cfg))
 
@@ -108,7 +100,7 @@ def _non_embedding_at_hidden(base: dict[str, Any], overrides: dict[str, Any], wi
 def match_params_hidden(base: dict[str, Any], overrides: dict[str, Any], width: int, target: int, who: str) -> int:
     """The MLP hidden size whose non-embedding count is closest to ``target`` (bisection; monotone in it).
 
-    Raises a UserError when even the closest is off by more than PARAMS_TOLERANCE (e.g. the variant
+    Raises a UserError when even the closest is off by more than MATCH_TOLERANCE (e.g. the variant
     without any MLP already has more parameters than the reference).
     """
     lo, hi = 1, max(2, width)
@@ -126,10 +118,11 @@ def match_params_hidden(base: dict[str, Any], overrides: dict[str, Any], width: 
     candidates = [h for h in (lo - 1, lo) if h >= 1]
     best = min(candidates, key=lambda h: abs(_non_embedding_at_hidden(base, overrides, width, h) - target))
     got = _non_embedding_at_hidden(base, overrides, width, best)
-    if abs(got - target) > PARAMS_TOLERANCE * target:
+    if abs(got - target) > MATCH_TOLERANCE * target:
         raise UserError(
             f"match: params: {who} has {got:,d} non-embedding parameters at the smallest workable MLP "
-            f"(model.mlp_expansion = {best / width:g}), more than 2% from the reference's {target:,d}; "
+            f"(model.mlp_expansion = {best / width:g}), more than {MATCH_TOLERANCE:.0%} from the reference's "
+            f"{target:,d}; "
             "it cannot be matched by the MLP width (the expansion would have to go to zero or below)"
         )
     return best
@@ -165,7 +158,6 @@ def _solve(spec: GridSpec, cell: Cell, ref: CellCost) -> dict[str, Any]:
         width = cell.cfg.model.width
         hidden = match_params_hidden(spec.base, cell.overrides, width, ref.params_non_embedding, who)
         return {"model.mlp_expansion": hidden / width}
-    fpt = flops_per_token(cell.cfg)
-    if fpt is None or ref.train_flops is None:
-        raise UserError("match: flops needs blockyard.cost.flops_per_token, which is not available")
-    return {"train.tokens": max(1, round(ref.train_flops / fpt))}
+    from blockyard.cost.analytic import flops_per_token
+
+    return {"train.tokens": max(1, round(ref.train_flops / flops_per_token(cell.cfg)))}

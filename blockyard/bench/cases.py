@@ -1,0 +1,89 @@
+"""The blockyard side of the benchmark: which configs are timed, and how one is trained and read.
+
+Each case is trained by ``blockyard.train.run_training`` itself, records and all, in a temp run
+dir; its tokens/s is read from the loop's own clock in ``metrics.jsonl``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import itertools
+import tempfile
+from pathlib import Path
+from typing import Any
+
+
+@dataclasses.dataclass(frozen=True)
+class BenchCase:
+    """One blockyard training config of the benchmark (all at width 256, depth 4 unless said)."""
+
+    name: str
+    kind: str  # a mixer kind: global_attention, recurrence, local_attention, ...
+    seq_len: int
+    batch: int
+    precision: str = "fp32"
+    width: int = 256
+    depth: int = 4
+
+    @property
+    def tokens_per_step(self) -> int:
+        return self.seq_len * self.batch
+
+
+
+# blockyard's own configs timed against each other. Batches at seq 2048 keep the tokens per step.
+CASES = (
+    BenchCase("attention-fp32", "global_attention", 256, 16),
+    BenchCase("attention-bf16", "global_attention", 256, 16, "bf16"),
+    BenchCase("recurrence-fp32", "recurrence", 256, 16),
+    BenchCase("recurrence-bf16", "recurrence", 256, 16, "bf16"),
+    BenchCase("attention-fp32-s2048", "global_attention", 2048, 2),
+    BenchCase("recurrence-fp32-s2048", "recurrence", 2048, 2),
+)
+# Plain-loop twins of blockyard's cases (same shapes, same precision).
+PLAIN_TWINS = {"attention-fp32": "plain-fp32", "attention-bf16": "plain-bf16"}
+
+
+def blockyard_config(case: BenchCase, steps: int, cache_dir: str | Path, threads: int = 0, **train: Any) -> Any:
+    """The blockyard ``Config`` of ``case``: pydoc bytes, evaluation and checkpoint only at the end."""
+    from blockyard.config import config_from_dict
+
+    mixer: dict[str, Any] = {"kind": case.kind}
+    if "attention" in case.kind:
+        mixer["heads"] = 4
+    return config_from_dict({
+        "name": f"bench-{case.name}",
+        "model": {"width": case.width, "depth": case.depth, "pattern": ["mix"], "mixers": {"mix": mixer}},
+        "data": {"corpus": "pydoc", "tokenizer": "bytes", "seq_len": case.seq_len, "cache_dir": str(cache_dir)},
+        "train": {"steps": steps, "batch_size": case.batch, "eval_every": steps, "checkpoint_every": steps,
+                  "eval_windows": 2, "log_every": 10, **train},
+        "runtime": {"precision": case.precision, "threads": threads},
+    })
+
+
+def loop_tokens_per_s(metrics: list[dict[str, Any]], warmup: int) -> float:
+    """Tokens/s of the whole training loop: the best window between consecutive train lines at step >= ``warmup``.
+
+    Uses the lines' ``wall_s`` (the loop's own clock) rather than the logged ``tokens_per_s``,
+    which times the step function alone: this way batching, logging and RSS probes count too.
+    The best window (the least disturbed by other processes) is taken, as for the plain loop.
+    """
+    lines = [m for m in metrics if m.get("split") == "train" and m["step"] >= warmup]
+    if len(lines) < 2:
+        raise ValueError(f"need two train lines at step >= {warmup}; raise --steps")
+    return max((b["tokens"] - a["tokens"]) / (b["wall_s"] - a["wall_s"]) for a, b in itertools.pairwise(lines))
+
+
+def blockyard_run(case: BenchCase, steps: int, warmup: int, cache_dir: Path, threads: int = 0,
+                **train: Any) -> dict[str, Any]:
+    """Train ``case`` with ``blockyard.train.run_training`` in a temp run dir; its loop tokens/s and summary."""
+    from blockyard.train import run_training
+    from blockyard.train.records import read_metrics
+
+    cfg = blockyard_config(case, steps, cache_dir, threads, **train)
+    with tempfile.TemporaryDirectory(prefix="blockyard-bench-") as tmp:
+        summary = run_training(cfg, Path(tmp) / "run", progress="warnings")
+        metrics = read_metrics(Path(tmp) / "run" / "metrics.jsonl")
+    if summary.get("status") != "done":  # e.g. stopped by SIGTERM: its speed is no measurement
+        raise RuntimeError(f"bench run {case.name} ended {summary.get('status')!r}, not 'done'")
+    return {"tokens_per_s": loop_tokens_per_s(metrics, warmup), "summary": summary, "config": cfg}
