@@ -51,7 +51,7 @@ def _cmd_train(args: argparse.Namespace) -> int:
 
 
 def _add_blocks(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("blocks", help="list the mixer zoo, or summarise the model a config builds")
+    p = sub.add_parser("blocks", help="list the block catalogue, or summarise the model a config builds")
     p.add_argument("configs", nargs="*", help="config files (none: list the registered mixer kinds)")
     p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
                    help="override a config key; repeatable")

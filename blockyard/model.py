@@ -7,7 +7,7 @@ MLPs (Shazeer 2020), head tied to the embedding by default (Press & Wolf 2017), 
 
 Init scheme: embeddings and every linear weight ~ N(0, init_std); the output projection of
 each mixer and MLP (modules marked ``residual_out = True``) ~ N(0, init_std / sqrt(2 * depth)),
-so that the residual stream's variance does not grow with depth (GPT-2, Radford et al. 2019);
+so that the residual stream's variance does not grow with depth (Radford et al. 2019, OpenAI report, sec. 2.3);
 linear biases zero; norm gains one. Mixers then re-initialise their own special parameters
 (decay rates, convolutions) in ``reset_special_parameters``; torch's LSTM keeps torch's init.
 """

@@ -85,7 +85,7 @@ def test_flops_of_a_plain_transformer_equal_kaplan():
 
 def test_local_attention_flops_stop_growing_at_the_window():
     # Kaplan's n_ctx term counts the keys each query attends to; a window of W caps it at W
-    # (Beltagy et al. 2020, "Longformer", sec. 3: sliding window cost O(n w)).
+    # (Beltagy et al. 2020, arXiv:2004.05150, sec. 3: sliding window cost O(n w)).
     def flops(kind, seq_len):
         mixers = {"a": {"kind": kind, **({"window": 16} if kind == "local_attention" else {})}}
         cfg = config_from_dict({"model": {"width": 32, "depth": 2, "pattern": ["a"], "mixers": mixers},

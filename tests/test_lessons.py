@@ -60,7 +60,7 @@ def test_each_lesson_is_documented(path):
 
 @pytest.mark.slow
 def test_selective_copying_needs_the_input_dependent_gate(tmp_path):
-    # Gu & Dao 2023 ("Mamba", sec. 3.1 and table 1): a linear time-invariant recurrence cannot
+    # Gu & Dao 2023 (arXiv:2312.00752, sec. 3.1 and table 1): a linear time-invariant recurrence cannot
     # solve selective copying (its response to a token is the same whatever the token, so it
     # cannot skip the blanks), a selective (input-gated) one can. The lesson-gate grid, seed 0,
     # shortened to 700 steps: the LTI model stays at chance (ln copy_vocab nats per answer)
@@ -81,7 +81,7 @@ def test_selective_copying_needs_the_input_dependent_gate(tmp_path):
 
 @pytest.mark.slow
 def test_global_attention_solves_mqar_with_few_pairs_at_small_width(tmp_path):
-    # Arora et al. 2023 ("Zoology", arXiv:2312.04927, sec. 3 and fig. 2; from memory): attention
+    # Arora et al. 2023 (arXiv:2312.04927, sec. 3 and fig. 2; from memory): attention
     # solves multi-query associative recall at model width 64. The lesson-mqar grid's global
     # attention, seed 0, shortened to 1000 steps: answer accuracy on the 4-pair task near 1, far
     # above the ~0.3 of the plateau where a model copies some value of the context without

@@ -3,7 +3,7 @@
 What training holds between a forward pass and its backward pass is the set of tensors autograd
 saves for backward. We count them without computing anything: the model is built and run once
 (forward + loss, one micro-batch) under ``FakeTensorMode``, which gives every tensor its real CPU
-shape, dtype and kernel choice (so SDPA takes the same flash-attention-for-CPU path, saving
+shape, dtype and kernel choice (so SDPA takes the same fused CPU kernel, Dao et al. 2022, arXiv:2205.14135, saving
 O(T) per head rather than a T x T matrix) but allocates no storage. ``saved_tensors_hooks``
 sees every tensor saved for backward; each storage is counted once and parameters are left out
 (they are the model's memory, not activations).

@@ -1,13 +1,13 @@
 """Synthetic probe tasks, generated from the seed (no files); loss and accuracy on answers only.
 
-- ``mqar``: multi-query associative recall (Arora et al. 2023, "Zoology", arXiv:2312.04927):
+- ``mqar``: multi-query associative recall (Arora et al. 2023, arXiv:2312.04927):
   ``num_pairs`` key-value pairs (distinct keys), a separator, then queries ``key value``, each key
   drawn uniformly with replacement from the pairs; each queried value is an answer. The rest of
   the window is padding.
-- ``selective_copy``: selective copying (Gu & Dao 2023, "Mamba", Sec. 3.1): ``copy_tokens`` data
+- ``selective_copy``: selective copying (Gu & Dao 2023, arXiv:2312.00752, sec. 3.1): ``copy_tokens`` data
   tokens scattered in order among blank tokens, a separator, then the data tokens again, in order;
   those are the answers.
-- ``passkey``: passkey retrieval (Mohtashami & Jaggi 2023, "Landmark Attention"): a number hidden
+- ``passkey``: passkey retrieval (Mohtashami & Jaggi 2023, arXiv:2305.16300): a number hidden
   at a sentence boundary in repeated filler text, asked for at the end; its digits are the answers.
   Filler, sentences and symbols are our own.
 

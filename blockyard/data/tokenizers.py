@@ -40,7 +40,7 @@ def text_pieces(text: str, max_chars: int = PIECE_CHARS) -> Iterator[str]:
     """Consecutive slices of ``text`` (joined they give ``text``) of at most ``max_chars``
     characters, cut at clean places so that encoding the pieces equals encoding the whole.
 
-    Byte-level BPE pre-tokenizes with the GPT-2 pattern (Radford et al. 2019), under which a
+    Byte-level BPE pre-tokenizes with the pattern of Radford et al. 2019 (OpenAI report), under which a
     newline between non-space characters is a pre-token of its own and a single space before a
     non-space character opens a pre-token, so no merge spans such a cut (bytes and chars are per
     symbol anyway). A window with no clean place (no space or newline at all) is cut hard.
