@@ -81,6 +81,7 @@ def test_flops_of_a_plain_transformer_equal_kaplan():
     assert breakdown["total"] == pytest.approx(cost.flops_per_token(cfg))
     assert breakdown["mixer_extra"] == 6 * n_layer * n_ctx * d_attn
     assert breakdown["head"] == 6 * d * VOCAB  # reported apart, not in the total (Kaplan exclude it)
+    assert cost.flops_per_token(cfg, VOCAB, with_head=True) == pytest.approx(kaplan + 6 * d * VOCAB, rel=0.01)
 
 
 def test_local_attention_flops_stop_growing_at_the_window():

@@ -13,6 +13,7 @@ checked against built models by ``tests/test_cost.py``): no model is built.
 
 from __future__ import annotations
 
+import bisect
 import dataclasses
 import math
 from typing import Any
@@ -103,21 +104,18 @@ def match_params_hidden(base: dict[str, Any], overrides: dict[str, Any], width: 
     Raises a UserError when even the closest is off by more than MATCH_TOLERANCE (e.g. the variant
     without any MLP already has more parameters than the reference).
     """
-    lo, hi = 1, max(2, width)
-    while _non_embedding_at_hidden(base, overrides, width, hi) < target:
+    def count(hidden: int) -> int:
+        return _non_embedding_at_hidden(base, overrides, width, hidden)
+
+    hi = max(2, width)
+    while count(hi) < target:
         hi *= 2
         if hi > 1_000_000 * width:
             raise UserError(f"match: params: {who} cannot reach {target:,d} non-embedding parameters")
-    # Smallest hidden with count >= target, then pick the closer of it and its predecessor.
-    while lo < hi:
-        mid = (lo + hi) // 2
-        if _non_embedding_at_hidden(base, overrides, width, mid) >= target:
-            hi = mid
-        else:
-            lo = mid + 1
-    candidates = [h for h in (lo - 1, lo) if h >= 1]
-    best = min(candidates, key=lambda h: abs(_non_embedding_at_hidden(base, overrides, width, h) - target))
-    got = _non_embedding_at_hidden(base, overrides, width, best)
+    # Smallest hidden in [1, hi] with count >= target, then pick the closer of it and its predecessor.
+    lo = bisect.bisect_left(range(hi + 1), target, lo=1, key=count)
+    best = min((h for h in (lo - 1, lo) if h >= 1), key=lambda h: abs(count(h) - target))
+    got = count(best)
     if abs(got - target) > MATCH_TOLERANCE * target:
         raise UserError(
             f"match: params: {who} has {got:,d} non-embedding parameters at the smallest workable MLP "
