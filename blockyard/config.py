@@ -20,6 +20,7 @@ from typing import Any
 
 import yaml
 
+from blockyard.data.tasks import PROBE_TASKS, TaskOptions
 from blockyard.errors import ConfigError, UserError
 from blockyard.schema import opt, opt_factory, parse, to_dict
 
@@ -93,21 +94,6 @@ class ModelConfig:
 
 
 @dataclasses.dataclass(frozen=True)
-class TaskConfig:
-    """Parameters of the synthetic probe tasks (``data.corpus: task:NAME``)."""
-
-    num_pairs: int = opt(8, "MQAR: key-value pairs per sequence", min=1)
-    num_queries: int = opt(0, "MQAR: queries per sequence (0 = as many as pairs)", min=0)
-    num_keys: int = opt(64, "MQAR: size of the key alphabet", min=2)
-    num_values: int = opt(64, "MQAR: size of the value alphabet", min=2)
-    copy_tokens: int = opt(16, "selective copying: tokens to copy", min=1)
-    copy_vocab: int = opt(16, "selective copying: size of the alphabet of the tokens to copy", min=1)
-    passkey_digits: int = opt(5, "passkey retrieval: digits of the passkey", min=1)
-    num_sequences: int = opt(2048, "sequences in the fixed training pool of a task (0 = fresh ones every step)",
-                             min=0)
-
-
-@dataclasses.dataclass(frozen=True)
 class DataConfig:
     corpus: str = opt("pydoc", "a path/glob, hub:NAME[:CONFIG], plays, pydoc or task:NAME")
     text_field: str = opt("text", "field holding the text in .jsonl/.parquet/hub corpora")
@@ -119,7 +105,7 @@ class DataConfig:
     errors: str = opt("strict", "undecodable text: strict = error, replace = U+FFFD with a warning",
                       choices=("strict", "replace"))
     cache_dir: str = opt("", "token cache folder (empty: $BLOCKYARD_CACHE or ~/.cache/blockyard)")
-    task: TaskConfig = opt_factory(TaskConfig, "synthetic task parameters")
+    task: TaskOptions = opt_factory(TaskOptions, "synthetic task parameters (blockyard/data/tasks.py)")
 
 
 @dataclasses.dataclass(frozen=True)
@@ -159,12 +145,10 @@ class EvalConfig:
     probe_sequences: int = opt(16, "sequences per probe size", min=1)
 
     def validate(self, path: str) -> None:
-        from blockyard.eval.probes import PROBES
-
         p = f"{path}." if path else ""
         for i, name in enumerate(self.probes):
-            if name not in PROBES:
-                raise ConfigError(f"{p}probes[{i}]", f"{name!r} is not a probe (known: {', '.join(PROBES)})")
+            if name not in PROBE_TASKS:
+                raise ConfigError(f"{p}probes[{i}]", f"{name!r} is not a probe (known: {', '.join(PROBE_TASKS)})")
 
 
 @dataclasses.dataclass(frozen=True)

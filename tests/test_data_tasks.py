@@ -10,9 +10,9 @@ import numpy as np
 import pytest
 import torch
 
-from blockyard.config import TaskConfig, config_from_dict
+from blockyard.config import config_from_dict
 from blockyard.data import answer_accuracy, load_data, mqar_batch, passkey_batch, selective_copy_batch, task_batches
-from blockyard.data.tasks import SEP, TASKS, mqar_queries
+from blockyard.data.tasks import SEP, TASKS, TaskOptions, mqar_queries
 from blockyard.errors import ConfigError
 
 
@@ -22,7 +22,7 @@ def task_cfg(name: str, seq_len: int, task: dict | None = None, **train):
 
 
 def test_mqar_lookup_table_solves_it_and_key_blind_guess_is_at_chance():
-    p = TaskConfig(num_pairs=6, num_queries=10, num_keys=20, num_values=16)
+    p = TaskOptions(num_pairs=6, num_queries=10, num_keys=20, num_values=16)
     x, y = mqar_batch(p, seed=0, step=0, batch=800, seq_len=40)
     assert x.shape == y.shape == (800, 40)
     assert int(x.max()) < TASKS["mqar"].vocab_size(p) == 2 + 20 + 16
@@ -46,7 +46,7 @@ def test_mqar_lookup_table_solves_it_and_key_blind_guess_is_at_chance():
 
 
 def test_mqar_keys_distinct_and_queries_drawn_uniformly_with_replacement():
-    p = TaskConfig(num_pairs=5, num_queries=0, num_keys=8, num_values=4)  # 0: as many queries as pairs
+    p = TaskOptions(num_pairs=5, num_queries=0, num_keys=8, num_values=4)  # 0: as many queries as pairs
     x, y = mqar_batch(p, seed=3, step=2, batch=4000, seq_len=30)
     slots, repeated = Counter(), 0
     for xs, ys in zip(x.tolist(), y.tolist(), strict=True):
@@ -68,7 +68,7 @@ def test_mqar_last_query_cannot_be_answered_by_elimination():
     # A key-blind rule that answers "a context value not yet given as an answer" (the shortcut a
     # permutation of queries allows: 100% on the last query) must do no better than a random context
     # value on the last query. With replacement: P(right) = 1/4 for 4 pairs, values mostly distinct.
-    p = TaskConfig(num_pairs=4, num_queries=0, num_keys=16, num_values=64)
+    p = TaskOptions(num_pairs=4, num_queries=0, num_keys=16, num_values=64)
     x, y = mqar_batch(p, seed=1, step=0, batch=3000, seq_len=16)
     hits = 0
     for xs, ys in zip(x.tolist(), y.tolist(), strict=True):
@@ -81,7 +81,7 @@ def test_mqar_last_query_cannot_be_answered_by_elimination():
 
 
 def test_selective_copy_answers_are_the_scattered_tokens_in_order():
-    p = TaskConfig(copy_tokens=6, copy_vocab=5)
+    p = TaskOptions(copy_tokens=6, copy_vocab=5)
     x, y = selective_copy_batch(p, seed=1, step=0, batch=200, seq_len=40)
     tok = TASKS["selective_copy"].tokenizer(p)
     for xs, ys in zip(x.tolist(), y.tolist(), strict=True):
@@ -95,7 +95,7 @@ def test_selective_copy_answers_are_the_scattered_tokens_in_order():
 
 
 def test_passkey_answer_digits_equal_the_hidden_key():
-    p = TaskConfig(passkey_digits=7)
+    p = TaskOptions(passkey_digits=7)
     x, y = passkey_batch(p, seed=5, step=1, batch=100, seq_len=300)
     tok = TASKS["passkey"].tokenizer(p)
     positions = set()
@@ -167,6 +167,6 @@ def test_answer_accuracy_counts_answer_positions_only():
     # Reference: the count by hand, 2 right of 3 answers.
     assert answer_accuracy(logits, y) == pytest.approx(2 / 3)
     assert np.isnan(answer_accuracy(logits, torch.full((2, 4), -100)))
-    x, y = mqar_batch(TaskConfig(), 0, 0, 4, 64)
+    x, y = mqar_batch(TaskOptions(), 0, 0, 4, 64)
     perfect = torch.nn.functional.one_hot(y.clamp(min=0), 130).float()
     assert answer_accuracy(perfect, y) == 1.0

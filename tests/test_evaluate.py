@@ -14,7 +14,7 @@ import yaml
 
 from blockyard.cli import main
 from blockyard.config import config_from_dict, load_config
-from blockyard.data.tasks import KEY_SENTENCE, QUESTION, TASKS, SymbolTokenizer, passkey_symbols
+from blockyard.data.tasks import KEY_SENTENCE, PROBE_TASKS, QUESTION, TASKS, SymbolTokenizer, passkey_symbols
 from blockyard.errors import ConfigError, UserError
 from blockyard.eval import extrapolation as evaluate
 from blockyard.eval import probes
@@ -241,6 +241,14 @@ def test_probes_that_cannot_run_are_config_errors():
     mqar_tok = TASKS["mqar"].tokenizer(probe_cfg().data.task)
     with pytest.raises(ConfigError, match="passkey: this run's tokenizer cannot encode"):
         probes.build_probe_sets(probe_cfg(probes=["passkey"]), mqar_tok, 100)
+
+
+def test_the_config_accepts_exactly_the_probes_that_exist():
+    # config.py validates eval.probes against data.tasks.PROBE_TASKS so that it need not import the
+    # evaluation code (no import cycle); the two lists must agree.
+    assert tuple(probes.PROBES) == PROBE_TASKS
+    for name in PROBE_TASKS:
+        assert config_from_dict({"eval": {"probes": [name]}}).eval.probes == (name,)
 
 
 def test_a_probe_error_stops_training_before_the_run_dir_changes(root):

@@ -12,7 +12,7 @@ from __future__ import annotations
 import numpy as np
 import torch
 
-IGNORE = -100  # the label torch.nn.functional.cross_entropy ignores by default
+IGNORE_INDEX = -100  # a label that carries no loss: torch.nn.functional.cross_entropy ignores it by default
 TRAIN_STREAM = 1
 VAL_STREAM = 2
 
@@ -56,6 +56,23 @@ def gather_windows(tokens: np.ndarray, starts: np.ndarray, seq_len: int) -> tupl
     return windows[:, :-1].contiguous(), windows[:, 1:].contiguous()
 
 
+def val_windows(tokens: np.ndarray, seed: int, n_windows: int, seq_len: int,
+                batch_size: int) -> list[tuple[torch.Tensor, torch.Tensor]]:
+    """The fixed validation windows of a split (``val_window_starts``) as batches of ``batch_size``.
+
+    The trainer's val loss and ``blockyard eval`` at other lengths both read them here, so at the
+    training ``seq_len`` the two measure the same windows.
+    """
+    x, y = gather_windows(tokens, val_window_starts(seed, n_windows, len(tokens), seq_len), seq_len)
+    return chunked(x, y, batch_size)
+
+
 def chunked(x: torch.Tensor, y: torch.Tensor, batch_size: int) -> list[tuple[torch.Tensor, torch.Tensor]]:
     """Consecutive batches of ``batch_size`` rows (the last may be smaller)."""
     return [(x[i : i + batch_size], y[i : i + batch_size]) for i in range(0, x.shape[0], batch_size)]
+
+
+def count_correct(logits: torch.Tensor, y: torch.Tensor) -> tuple[int, int]:
+    """(positions whose argmax is the target, scored positions), over positions ``y != IGNORE_INDEX``."""
+    mask = y != IGNORE_INDEX
+    return int((logits.argmax(dim=-1)[mask] == y[mask]).sum()), int(mask.sum())

@@ -17,9 +17,7 @@ then reads the files as memmaps.
 from __future__ import annotations
 
 import array
-import contextlib
 import dataclasses
-import fcntl
 import hashlib
 import itertools
 import json
@@ -27,7 +25,6 @@ import operator
 import os
 import shutil
 import socket
-import sys
 import tempfile
 import time
 from collections.abc import Iterator
@@ -46,6 +43,7 @@ from blockyard.data.tokenizers import (
     stream_pieces,
 )
 from blockyard.errors import ConfigError, UserError
+from blockyard.fs import exclusive_lock
 
 FORMAT_VERSION = 1
 SPLITS = ("train", "val", "test")
@@ -77,22 +75,6 @@ def cache_key(corpus: Corpus, spec: CacheSpec) -> str:
                       sort_keys=True)
     slug = "".join(c if c.isalnum() else "_" for c in corpus.name.split("/")[-1])[:32] or "corpus"
     return f"{slug}-{spec.tokenizer}-{hashlib.sha256(blob.encode()).hexdigest()[:16]}"
-
-
-@contextlib.contextmanager
-def exclusive_lock(path: Path) -> Iterator[None]:
-    """Hold an exclusive advisory lock on ``path`` (created if missing) for the block."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    with open(path, "a+") as fh:
-        try:
-            fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except BlockingIOError:
-            print(f"waiting for another process to finish {path.stem} ...", file=sys.stderr)
-            fcntl.flock(fh.fileno(), fcntl.LOCK_EX)
-        try:
-            yield
-        finally:
-            fcntl.flock(fh.fileno(), fcntl.LOCK_UN)
 
 
 # ----------------------------------------------------------------------------- split plan

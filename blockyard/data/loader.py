@@ -14,10 +14,10 @@ from typing import Any
 import numpy as np
 import torch
 
-from blockyard.data.batches import chunked, gather_windows, stream_rng, train_window_starts, val_window_starts
+from blockyard.data.batches import gather_windows, stream_rng, train_window_starts, val_windows
 from blockyard.data.cache import SPLITS, CacheSpec, PreparedCorpus, prepare
 from blockyard.data.sources import cache_root, resolve_corpus
-from blockyard.data.tasks import PICK_STREAM, POOL_STREAM, VAL_STREAM, Task, get_task
+from blockyard.data.tasks import PICK_STREAM, POOL_STREAM, Task, get_task
 from blockyard.errors import ConfigError, UserError
 from blockyard.schema import to_dict
 
@@ -38,7 +38,8 @@ class TokenData:
     def train_batch(self, step: int) -> Batch:
         raise NotImplementedError
 
-    def val_batches(self) -> list[Batch]:
+    def val_batches(self, length: int | None = None) -> list[Batch]:
+        """The fixed validation windows, cut at ``length`` tokens (default: ``data.seq_len``)."""
         raise NotImplementedError
 
     def describe(self) -> dict[str, Any]:
@@ -59,15 +60,13 @@ class CorpusData(TokenData):
         self.val_tokens = prepared.splits["val"]
         self.test_tokens = prepared.splits["test"]
         self.fingerprint = prepared.path.name
-        self._val_starts = val_window_starts(seed, eval_windows, len(self.val_tokens), seq_len)
 
     def train_batch(self, step: int) -> Batch:
         starts = train_window_starts(self.seed, step, self.batch_size, len(self.train_tokens), self.seq_len)
         return gather_windows(self.train_tokens, starts, self.seq_len)
 
-    def val_batches(self) -> list[Batch]:
-        x, y = gather_windows(self.val_tokens, self._val_starts, self.seq_len)
-        return chunked(x, y, self.batch_size)
+    def val_batches(self, length: int | None = None) -> list[Batch]:
+        return val_windows(self.val_tokens, self.seed, self.eval_windows, length or self.seq_len, self.batch_size)
 
     def describe(self) -> dict[str, Any]:
         m = self.prepared.manifest
@@ -107,9 +106,9 @@ class TaskData(TokenData):
         picks = stream_rng(self.seed, PICK_STREAM, step).integers(0, pool, size=self.batch_size)
         return self.task.sequences(self.params, self.seed, POOL_STREAM, picks, self.seq_len)
 
-    def val_batches(self) -> list[Batch]:
-        x, y = self.task.sequences(self.params, self.seed, VAL_STREAM, range(self.eval_windows), self.seq_len)
-        return chunked(x, y, self.batch_size)
+    def val_batches(self, length: int | None = None) -> list[Batch]:
+        return self.task.val_batches(self.params, self.seed, self.eval_windows, length or self.seq_len,
+                                     self.batch_size)
 
     def describe(self) -> dict[str, Any]:
         return {

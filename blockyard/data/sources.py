@@ -46,6 +46,7 @@ from pathlib import Path
 from typing import Any
 
 from blockyard.errors import ConfigError, UserError
+from blockyard.fs import exclusive_lock
 
 CORPUS_KEY = "data.corpus"
 KEYWORDS = ("plays", "pydoc")
@@ -419,8 +420,6 @@ def extract_plays(archive: Path, dest: Path) -> list[Path]:
 
 def fetch_plays(root: Path, quiet: bool = False) -> Path:
     """Fetch, verify and extract the plays into the cache once; safe against concurrent fetchers."""
-    from blockyard.data.cache import exclusive_lock
-
     folder = plays_dir(root)
     if plays_fetched(root):
         return folder

@@ -24,9 +24,9 @@ from collections.abc import Callable, Iterable
 import numpy as np
 import torch
 
-from blockyard.config import TaskConfig
-from blockyard.data.batches import IGNORE, chunked, stream_rng
+from blockyard.data.batches import IGNORE_INDEX, chunked, count_correct, stream_rng
 from blockyard.errors import ConfigError
+from blockyard.schema import opt
 
 POOL_STREAM = 11  # the fixed training pool (data.task.num_sequences > 0)
 FRESH_STREAM = 12  # fresh sequences per step (make_batch; pool size 0)
@@ -42,6 +42,25 @@ KEY_SENTENCE = "Note the code {key} and keep it. "
 QUESTION = "Which code was noted? The code is "
 
 Sequence = tuple[np.ndarray, np.ndarray]  # (tokens: seq_len + 1 ids, answer: bool mask over them)
+
+
+@dataclasses.dataclass(frozen=True)
+class TaskOptions:
+    """The ``data.task`` config section: parameters of the synthetic tasks (``data.corpus: task:NAME``).
+
+    Declared here, next to the tasks that read it, as a mixer's ``Options`` sit next to the mixer;
+    ``blockyard.config`` nests it under ``data.task``.
+    """
+
+    num_pairs: int = opt(8, "MQAR: key-value pairs per sequence", min=1)
+    num_queries: int = opt(0, "MQAR: queries per sequence (0 = as many as pairs)", min=0)
+    num_keys: int = opt(64, "MQAR: size of the key alphabet", min=2)
+    num_values: int = opt(64, "MQAR: size of the value alphabet", min=2)
+    copy_tokens: int = opt(16, "selective copying: tokens to copy", min=1)
+    copy_vocab: int = opt(16, "selective copying: size of the alphabet of the tokens to copy", min=1)
+    passkey_digits: int = opt(5, "passkey retrieval: digits of the passkey", min=1)
+    num_sequences: int = opt(2048, "sequences in the fixed training pool of a task (0 = fresh ones every step)",
+                             min=0)
 
 
 class SymbolTokenizer:
@@ -71,25 +90,25 @@ class SymbolTokenizer:
 # ----------------------------------------------------------------------------- MQAR
 
 
-def mqar_queries(p: TaskConfig) -> int:
+def mqar_queries(p: TaskOptions) -> int:
     return p.num_queries or p.num_pairs
 
 
-def mqar_min_seq_len(p: TaskConfig) -> int:
+def mqar_min_seq_len(p: TaskOptions) -> int:
     return 2 * p.num_pairs + 2 * mqar_queries(p)  # pairs + separator + queries = seq_len + 1 at least
 
 
-def mqar_check(p: TaskConfig) -> None:
+def mqar_check(p: TaskOptions) -> None:
     if p.num_pairs > p.num_keys:
         raise ConfigError("data.task.num_pairs", f"{p.num_pairs} pairs need as many distinct keys, "
                                                  f"but data.task.num_keys is {p.num_keys}")
 
 
-def mqar_symbols(p: TaskConfig) -> list[str]:
+def mqar_symbols(p: TaskOptions) -> list[str]:
     return ["<pad>", "<sep>", *(f"k{i}" for i in range(p.num_keys)), *(f"v{i}" for i in range(p.num_values))]
 
 
-def mqar_sequence(p: TaskConfig, rng: np.random.Generator, seq_len: int) -> Sequence:
+def mqar_sequence(p: TaskOptions, rng: np.random.Generator, seq_len: int) -> Sequence:
     """``k v k v ... <sep> k v k v ... <pad>...``: values uniform, keys distinct, queried keys drawn
     with replacement. (Asking the keys as a permutation would let a model answer the last query by
     elimination, "the context value not yet asked for", without binding any key to its value.)"""
@@ -110,15 +129,15 @@ def mqar_sequence(p: TaskConfig, rng: np.random.Generator, seq_len: int) -> Sequ
 # ----------------------------------------------------------------------------- selective copying
 
 
-def copy_min_seq_len(p: TaskConfig) -> int:
+def copy_min_seq_len(p: TaskOptions) -> int:
     return 2 * p.copy_tokens  # a region with room for every data token, the separator, the copies
 
 
-def copy_symbols(p: TaskConfig) -> list[str]:
+def copy_symbols(p: TaskOptions) -> list[str]:
     return [".", "<sep>", *(f"t{i}" for i in range(p.copy_vocab))]
 
 
-def copy_sequence(p: TaskConfig, rng: np.random.Generator, seq_len: int) -> Sequence:
+def copy_sequence(p: TaskOptions, rng: np.random.Generator, seq_len: int) -> Sequence:
     """``[region of seq_len - C tokens: C data tokens at sorted random places, blanks elsewhere]
     <sep> [the C data tokens in order]``."""
     n = p.copy_tokens
@@ -137,15 +156,15 @@ def copy_sequence(p: TaskConfig, rng: np.random.Generator, seq_len: int) -> Sequ
 # ----------------------------------------------------------------------------- passkey
 
 
-def passkey_min_seq_len(p: TaskConfig) -> int:
+def passkey_min_seq_len(p: TaskOptions) -> int:
     return len(KEY_SENTENCE.format(key="0" * p.passkey_digits)) + len(QUESTION) + p.passkey_digits - 1
 
 
-def passkey_symbols(p: TaskConfig) -> list[str]:
+def passkey_symbols(p: TaskOptions) -> list[str]:
     return sorted(set(FILLER + KEY_SENTENCE.replace("{key}", "") + QUESTION + "0123456789"))
 
 
-def passkey_text(p: TaskConfig, rng: np.random.Generator, seq_len: int) -> tuple[str, str]:
+def passkey_text(p: TaskOptions, rng: np.random.Generator, seq_len: int) -> tuple[str, str]:
     """(window text of seq_len + 1 characters, the passkey) with the key at a sentence boundary."""
     key = "".join(str(d) for d in rng.integers(0, 10, size=p.passkey_digits))
     sentence = KEY_SENTENCE.format(key=key)
@@ -156,7 +175,7 @@ def passkey_text(p: TaskConfig, rng: np.random.Generator, seq_len: int) -> tuple
     return filler[:cut] + sentence + filler[cut:] + QUESTION + key, key
 
 
-def passkey_sequence(p: TaskConfig, rng: np.random.Generator, seq_len: int) -> Sequence:
+def passkey_sequence(p: TaskOptions, rng: np.random.Generator, seq_len: int) -> Sequence:
     text, key = passkey_text(p, rng, seq_len)
     tokens = SymbolTokenizer(passkey_symbols(p), "").encode(text)
     answer = np.zeros(seq_len + 1, dtype=bool)
@@ -171,19 +190,19 @@ def passkey_sequence(p: TaskConfig, rng: np.random.Generator, seq_len: int) -> S
 class Task:
     name: str
     summary: str
-    symbols: Callable[[TaskConfig], list[str]]
+    symbols: Callable[[TaskOptions], list[str]]
     joiner: str
-    min_seq_len: Callable[[TaskConfig], int]
-    sequence: Callable[[TaskConfig, np.random.Generator, int], Sequence]
-    check: Callable[[TaskConfig], None] = lambda p: None
+    min_seq_len: Callable[[TaskOptions], int]
+    sequence: Callable[[TaskOptions, np.random.Generator, int], Sequence]
+    check: Callable[[TaskOptions], None] = lambda p: None
 
-    def vocab_size(self, p: TaskConfig) -> int:
+    def vocab_size(self, p: TaskOptions) -> int:
         return len(self.symbols(p))
 
-    def tokenizer(self, p: TaskConfig) -> SymbolTokenizer:
+    def tokenizer(self, p: TaskOptions) -> SymbolTokenizer:
         return SymbolTokenizer(self.symbols(p), self.joiner)
 
-    def validate(self, p: TaskConfig, seq_len: int) -> None:
+    def validate(self, p: TaskOptions, seq_len: int) -> None:
         """ConfigError for parameters the task cannot honour, or a window too short for them."""
         self.check(p)
         need = self.min_seq_len(p)
@@ -191,16 +210,23 @@ class Task:
             raise ConfigError("data.seq_len", f"{seq_len} is too short for task:{self.name} with these "
                                               f"data.task settings (minimum {need})")
 
-    def sequences(self, p: TaskConfig, seed: int, stream: int, indices: Iterable[int],
+    def sequences(self, p: TaskOptions, seed: int, stream: int, indices: Iterable[int],
                   seq_len: int) -> tuple[torch.Tensor, torch.Tensor]:
         """(x, y) for sequences ``indices`` of ``stream``; y = -100 off the answers."""
         rows = [self.sequence(p, stream_rng(seed, stream, int(i)), seq_len) for i in indices]
         tokens = np.stack([t for t, _ in rows])
         answer = np.stack([a for _, a in rows])
-        y = np.where(answer[:, 1:], tokens[:, 1:], IGNORE)
+        y = np.where(answer[:, 1:], tokens[:, 1:], IGNORE_INDEX)
         return torch.from_numpy(tokens[:, :-1].copy()), torch.from_numpy(y)
 
-    def make_batch(self, p: TaskConfig, seed: int, step: int, batch: int,
+    def val_batches(self, p: TaskOptions, seed: int, n: int, seq_len: int,
+                    batch_size: int) -> list[tuple[torch.Tensor, torch.Tensor]]:
+        """The ``n`` fixed validation sequences (``VAL_STREAM``) at ``seq_len``, in batches of ``batch_size``."""
+        self.validate(p, seq_len)
+        x, y = self.sequences(p, seed, VAL_STREAM, range(n), seq_len)
+        return chunked(x, y, batch_size)
+
+    def make_batch(self, p: TaskOptions, seed: int, step: int, batch: int,
                    seq_len: int) -> tuple[torch.Tensor, torch.Tensor]:
         """Batch ``step`` of fresh sequences: sequences step*batch .. step*batch + batch - 1."""
         self.validate(p, seq_len)
@@ -220,38 +246,38 @@ TASKS: dict[str, Task] = {
 }
 
 
+#: The tasks ``eval.probes`` can run at growing sizes during training (built by blockyard/eval/probes.py);
+#: named here, beside the tasks, so that the config validates ``eval.probes`` without the evaluation code.
+PROBE_TASKS = ("mqar", "passkey")
+
+
 def get_task(name: str) -> Task:
     if name not in TASKS:
         raise ConfigError("data.corpus", f"task:{name} is not a task (known: {', '.join(f'task:{t}' for t in TASKS)})")
     return TASKS[name]
 
 
-def mqar_batch(params: TaskConfig, seed: int, step: int, batch: int, seq_len: int) -> tuple[torch.Tensor, ...]:
+def mqar_batch(params: TaskOptions, seed: int, step: int, batch: int, seq_len: int) -> tuple[torch.Tensor, ...]:
     return TASKS["mqar"].make_batch(params, seed, step, batch, seq_len)
 
 
-def selective_copy_batch(params: TaskConfig, seed: int, step: int, batch: int,
+def selective_copy_batch(params: TaskOptions, seed: int, step: int, batch: int,
                          seq_len: int) -> tuple[torch.Tensor, ...]:
     return TASKS["selective_copy"].make_batch(params, seed, step, batch, seq_len)
 
 
-def passkey_batch(params: TaskConfig, seed: int, step: int, batch: int, seq_len: int) -> tuple[torch.Tensor, ...]:
+def passkey_batch(params: TaskOptions, seed: int, step: int, batch: int, seq_len: int) -> tuple[torch.Tensor, ...]:
     return TASKS["passkey"].make_batch(params, seed, step, batch, seq_len)
 
 
-def task_batches(name: str, params: TaskConfig, seed: int, n: int, seq_len: int,
+def task_batches(name: str, params: TaskOptions, seed: int, n: int, seq_len: int,
                  batch_size: int = 32) -> list[tuple[torch.Tensor, torch.Tensor]]:
     """``n`` validation sequences of a task in batches: what ``load_data(...).val_batches()``
     gives for ``task:name`` with ``train.eval_windows = n``; for probing any model."""
-    task = get_task(name)
-    task.validate(params, seq_len)
-    x, y = task.sequences(params, seed, VAL_STREAM, range(n), seq_len)
-    return chunked(x, y, batch_size)
+    return get_task(name).val_batches(params, seed, n, seq_len, batch_size)
 
 
 def answer_accuracy(logits: torch.Tensor, y: torch.Tensor) -> float:
     """Share of answer positions (y != -100) where the argmax of the logits is the answer."""
-    mask = y != IGNORE
-    if not bool(mask.any()):
-        return float("nan")
-    return (logits.argmax(dim=-1)[mask] == y[mask]).float().mean().item()
+    correct, scored = count_correct(logits, y)
+    return correct / scored if scored else float("nan")

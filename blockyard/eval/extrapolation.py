@@ -25,10 +25,10 @@ from typing import Any
 import torch
 import torch.nn.functional as F
 
+from blockyard.data.batches import IGNORE_INDEX
 from blockyard.errors import UserError
 from blockyard.train.records import EVAL_FILE
 
-IGNORE_INDEX = -100  # y == -100 marks positions without loss (DEVELOPERS.md, data interface)
 Batches = list[tuple[torch.Tensor, torch.Tensor]]
 
 
@@ -95,31 +95,20 @@ def parse_lengths(text: str, seq_len: int) -> list[tuple[str, int]]:
     return out
 
 
-def validation_windows(data: Any, cfg: Any, length: int) -> Batches:
+def validation_windows(data: Any, length: int) -> Batches:
     """The run's validation windows, cut at ``length`` tokens instead of ``data.seq_len``.
 
-    Same seed, number of windows and placement rule as the trainer's (``val_window_starts``), so
-    at ``length == seq_len`` these are exactly the windows its val loss was measured on. For a
+    ``data.val_batches(length)``: same seed, number of windows and placement rule as the trainer's,
+    so at ``length == seq_len`` these are exactly the windows its val loss was measured on. For a
     synthetic task, the task's validation sequences generated at that length.
     """
-    from blockyard.data.batches import chunked, gather_windows, val_window_starts
-    from blockyard.data.tasks import VAL_STREAM
-
-    seed, n, batch = cfg.train.effective_data_seed, cfg.train.eval_windows, cfg.train.batch_size
-    if data.is_task:
-        try:
-            data.task.validate(data.params, length)
-        except UserError as e:
-            raise UserError(f"--lengths: {length} tokens: {e}") from None
-        x, y = data.task.sequences(data.params, seed, VAL_STREAM, range(n), length)
-        return chunked(x, y, batch)
-    tokens = data.val_tokens
-    if len(tokens) < length + 1:
+    if not data.is_task and len(data.val_tokens) < length + 1:
         raise UserError(f"--lengths: {length} tokens do not fit the validation split "
-                        f"({len(tokens)} tokens); use shorter lengths or raise data.val_fraction")
-    starts = val_window_starts(seed, n, len(tokens), length)
-    x, y = gather_windows(tokens, starts, length)
-    return chunked(x, y, batch)
+                        f"({len(data.val_tokens)} tokens); use shorter lengths or raise data.val_fraction")
+    try:
+        return data.val_batches(length)
+    except UserError as e:  # a task's ConfigError: too short for its parameters
+        raise UserError(f"--lengths: {length} tokens: {e}") from None
 
 
 @torch.no_grad()
@@ -154,7 +143,7 @@ def length_extrapolation(run: Any, lengths: list[tuple[str, int]], n_buckets: in
     seq_len = run.cfg.data.seq_len
     rows = []
     for label, length in lengths:
-        batches = validation_windows(run.data, run.cfg, length)
+        batches = validation_windows(run.data, length)
         rows.append(length_result(label, length, windows_loss(run.model, batches, n_buckets), seq_len))
     return rows
 

@@ -34,10 +34,11 @@ from typing import Any
 import numpy as np
 import torch
 
+from blockyard.data.batches import IGNORE_INDEX, count_correct, stream_rng
+from blockyard.data.tasks import FILLER, KEY_SENTENCE, QUESTION, TASKS, mqar_min_seq_len, task_batches
 from blockyard.errors import ConfigError
 
 Batch = tuple[torch.Tensor, torch.Tensor]
-IGNORE_INDEX = -100
 PROBE_STREAM = 21  # generator stream of the passkey probes (the data layer uses 11-14)
 
 
@@ -57,8 +58,6 @@ def _check_vocab(need: int, vocab_size: int, key: str, what: str, hint: str = ""
 
 def mqar_probe_sets(cfg: Any, vocab_size: int) -> list[ProbeSet]:
     """One set per ``eval.probe_pairs`` entry, in the smallest window that holds pairs and queries."""
-    from blockyard.data.tasks import TASKS, mqar_min_seq_len, task_batches
-
     task = TASKS["mqar"]
     base = cfg.data.task
     _check_vocab(task.vocab_size(base), vocab_size, "eval.probes",
@@ -79,8 +78,6 @@ def mqar_probe_sets(cfg: Any, vocab_size: int) -> list[ProbeSet]:
 
 def passkey_text_at_distance(rng: np.random.Generator, digits: int, distance: int) -> tuple[str, str]:
     """(context ending with the question, the key): the key sentence, ``distance`` filler characters, the question."""
-    from blockyard.data.tasks import FILLER, KEY_SENTENCE, QUESTION
-
     key = "".join(str(d) for d in rng.integers(0, 10, size=digits))
     filler = (FILLER * (distance // len(FILLER) + 1))[:distance]
     return KEY_SENTENCE.format(key=key) + filler + QUESTION, key
@@ -109,8 +106,6 @@ def pad_batch(rows: Sequence[tuple[np.ndarray, int]]) -> Batch:
 
 def passkey_probe_sets(cfg: Any, tokenizer: Any, vocab_size: int) -> list[ProbeSet]:
     """One set per ``eval.probe_distances`` entry, in the run's own tokenizer."""
-    from blockyard.data.batches import stream_rng
-
     digits, n, batch = cfg.data.task.passkey_digits, cfg.eval.probe_sequences, cfg.train.batch_size
     sets = []
     for distance in cfg.eval.probe_distances:
@@ -158,9 +153,9 @@ def answer_correct(model: torch.nn.Module, batches: Sequence[Batch], device: Any
         else:
             with autocast():
                 logits = model(x)
-        mask = y != IGNORE_INDEX
-        correct += int((logits.argmax(-1)[mask] == y[mask]).sum())
-        scored += int(mask.sum())
+        hits, n = count_correct(logits, y)
+        correct += hits
+        scored += n
     return correct, scored
 
 

@@ -29,6 +29,7 @@ import torch.nn.functional as F
 from torch import nn
 
 from blockyard.config import Config, config_hash, dump_config
+from blockyard.data.batches import IGNORE_INDEX, count_correct
 from blockyard.train import checkpoint as ckpt
 from blockyard.train.memory import PeakRSS
 from blockyard.train.optim import build_optimizer, build_scheduler, tokens_per_step, total_steps
@@ -38,7 +39,6 @@ from blockyard.train.rundir import clear_records, inspect_run_dir, plan_run_dir,
 from blockyard.train.runtime import Runtime, resolve_runtime
 from blockyard.train.signals import StopRequest
 
-IGNORE_INDEX = -100
 Batch = tuple[torch.Tensor, torch.Tensor]
 #: An extra evaluation metric: (model, runtime) -> {name: value}, merged into each val line.
 EvalHook = Callable[[nn.Module, Runtime], dict[str, float]]
@@ -124,7 +124,7 @@ def evaluate(
             loss_sum += loss.item()
             count += n
             if is_task:
-                correct += int(((logits.argmax(-1) == y) & (y != IGNORE_INDEX)).sum())
+                correct += count_correct(logits, y)[0]
         if count == 0:
             raise ValueError("the validation windows hold no scored target tokens")
         mean = loss_sum / count
