@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import io
 import json
@@ -325,3 +326,31 @@ def test_cli_corpus_fetch_arguments(tmp_path, capsys):
     assert err.startswith("error: corpus fetch: './some/path' cannot be fetched") and "\n" not in err
     assert cli_main(["corpus", "fetch"]) == 2
     assert "give a NAME" in capsys.readouterr().err
+
+
+# ----------------------------------------------------------------------------- the registry
+
+
+def test_a_registered_corpus_kind_is_resolved_fetched_and_listed(tmp_path, monkeypatch):
+    # A registry read by every consumer (resolution, fetch, listing, messages) is common practice, no source.
+    monkeypatch.setattr(src, "CORPORA", dict(src.CORPORA))
+    notes = src.Corpus(name="notes", kind="notes", fingerprint="notes:1", documents=lambda: iter(["a note"]))
+    kind = src.register_corpus(src.CorpusKind(
+        "notes", "notes:WHO", src.scheme("notes"), lambda corpus, root, text_field, errors: notes,
+        lambda root: src.CorpusInfo("notes:WHO", "field notes", "a notebook", "ours", "never"),
+        lambda name, root: f"{name}: fetched"))
+    assert src.resolve_corpus("notes:ann", tmp_path) is notes
+    assert src.fetch_corpus("notes:ann", tmp_path) == "notes:ann: fetched"
+    assert "\nnotes:WHO\n  what:     field notes\n" in src.list_corpora(tmp_path)
+    with pytest.raises(ConfigError, match=r"'ftp:x' is not a known corpus \(allowed: .*notes:WHO"):
+        src.resolve_corpus("ftp:x", tmp_path)
+    with pytest.raises(UserError, match=r"cannot be fetched \(allowed: .*notes:WHO"):
+        src.fetch_corpus("ftp:x", tmp_path)
+    assert src.register_corpus(kind) is kind  # registering the same kind again changes nothing
+    with pytest.raises(ValueError, match="registered twice"):
+        src.register_corpus(dataclasses.replace(kind, form="other"))
+    # A keyword beats a local folder of the same name; the local kind takes what no other kind claims.
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "pydoc").mkdir()
+    assert src.corpus_kind("pydoc").name == "pydoc"
+    assert src.corpus_kind("notes.txt").name == "local" and src.corpus_kind("hub:a/b").name == "hub"

