@@ -282,9 +282,9 @@ def test_length_plot_and_seed_means(run_dir, tmp_path):
 def test_probe_plot_reads_the_val_line_keys(tmp_path):
     line = {"loss": 1.0, "probe_mqar_p16_acc": 0.5, "probe_mqar_p4_acc": 1.0, "probe_mqar_acc": 0.75,
             "probe_passkey_d0_acc": 0.2}
-    assert probes.probe_curves(line) == {"mqar": [(4, 1.0), (16, 0.5)], "passkey": [(0, 0.2)]}
-    assert probes.plot_probe_accuracy({"v": [line, line]}, tmp_path / "p.png").read_bytes()[:4] == b"\x89PNG"
-    assert probes.plot_probe_accuracy({"v": [{"loss": 1.0}]}, tmp_path / "none.png") is None
+    assert evaluate.probe_curves(line) == {"mqar": [(4, 1.0), (16, 0.5)], "passkey": [(0, 0.2)]}
+    assert evaluate.plot_probe_accuracy({"v": [line, line]}, tmp_path / "p.png").read_bytes()[:4] == b"\x89PNG"
+    assert evaluate.plot_probe_accuracy({"v": [{"loss": 1.0}]}, tmp_path / "none.png") is None
 
 
 def test_report_figures_from_cell_dirs(run_dir, root, tmp_path):

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import re
 from pathlib import Path
 from typing import Any
 
@@ -237,6 +238,17 @@ def mean_buckets(evals: list[dict[str, Any]], length: int) -> tuple[list[float],
     return centres, means
 
 
+def save_figure(fig: Any, path: str | Path) -> Path:
+    """Write ``fig`` as a PNG at ``path`` (folders created), close it, return the path."""
+    import matplotlib.pyplot as plt
+
+    out = Path(path)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(out, dpi=120)
+    plt.close(fig)
+    return out
+
+
 def plot_length_extrapolation(evals: dict[str, list[dict[str, Any]]], path: str | Path) -> Path:
     """PNG for a grid report: per variant (key), loss vs evaluation length, and loss per position
     at the longest length all its runs share; the training seq_len is marked. ``evals`` maps a
@@ -269,18 +281,56 @@ def plot_length_extrapolation(evals: dict[str, list[dict[str, Any]]], path: str 
     ax_len.set_title("length extrapolation")
     ax_pos.set_title("loss by position at the longest length")
     fig.tight_layout()
-    out = Path(path)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(out, dpi=120)
-    plt.close(fig)
-    return out
+    return save_figure(fig, path)
+
+
+def probe_curves(line: dict[str, Any]) -> dict[str, list[tuple[int, float]]]:
+    """From a val line: probe -> [(size, accuracy)] sorted by size (pairs for mqar, distance for passkey)."""
+    pattern = re.compile(r"^probe_(\w+?)_[pd](\d+)_acc$")
+    curves: dict[str, list[tuple[int, float]]] = {}
+    for key, value in line.items():
+        m = pattern.match(key)
+        if m and value is not None:
+            curves.setdefault(m.group(1), []).append((int(m.group(2)), float(value)))
+    return {k: sorted(v) for k, v in curves.items()}
+
+
+def plot_probe_accuracy(lines: dict[str, list[dict[str, Any]]], path: str | Path) -> Path | None:
+    """PNG for a grid report: one panel per probe, accuracy vs size, one line per variant (key),
+    averaged over its runs' final val lines. Returns the path, or None when no line holds probes."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    by_variant = {label: [probe_curves(line) for line in runs] for label, runs in lines.items()}
+    names = sorted({p for curves in by_variant.values() for c in curves for p in c})
+    if not names:
+        return None
+    fig, axes = plt.subplots(1, len(names), figsize=(5 * len(names), 3.6), squeeze=False)
+    for ax, name in zip(axes[0], names, strict=True):
+        for label, runs in by_variant.items():
+            points = [dict(c[name]) for c in runs if name in c]
+            if not points:
+                continue
+            sizes = sorted(set.intersection(*(set(p) for p in points)))
+            ax.plot(sizes, [sum(p[s] for p in points) / len(points) for s in sizes], marker="o", ms=3,
+                    label=f"{label} (n={len(points)})")
+        ax.set_xscale("symlog", base=2, linthresh=1)  # a passkey distance may be 0
+        ax.set_ylim(-0.02, 1.02)
+        ax.set_xlabel("key-value pairs" if name == "mqar" else "distance (filler characters)")
+        ax.set_ylabel("accuracy")
+        ax.set_title(f"probe: {name}")
+        ax.grid(True, which="both", alpha=0.3)
+        ax.legend(fontsize=7)
+    fig.tight_layout()
+    return save_figure(fig, path)
 
 
 def report_figures(out_dir: str | Path, run_dirs: dict[str, list[Path]]) -> list[tuple[str, str]]:
     """The extra PNGs of a grid report, for the runs of each variant label: length extrapolation (from
     the cells' eval.json, where ``blockyard eval`` was run) and probe accuracy (from the final val line of
     their metrics.jsonl, where ``eval.probes`` was set). Returns (file name, caption) of those written."""
-    from blockyard.eval.probes import plot_probe_accuracy
     from blockyard.train.records import read_metrics
 
     out_dir = Path(out_dir)

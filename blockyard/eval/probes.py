@@ -26,9 +26,7 @@ What the numbers measure depends on what the model was trained on:
 from __future__ import annotations
 
 import dataclasses
-import re
 from collections.abc import Callable, Sequence
-from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -198,53 +196,3 @@ def make_eval_hook(cfg: Any, data: Any) -> Callable[[torch.nn.Module, Any], dict
         return run_probe_sets(model, sets, runtime.device, runtime.autocast)
 
     return hook
-
-
-# ----------------------------------------------------------------------------- plot (for the grid report)
-
-
-def probe_curves(line: dict[str, Any]) -> dict[str, list[tuple[int, float]]]:
-    """From a val line: probe -> [(size, accuracy)] sorted by size (pairs for mqar, distance for passkey)."""
-    pattern = re.compile(r"^probe_(\w+?)_[pd](\d+)_acc$")
-    curves: dict[str, list[tuple[int, float]]] = {}
-    for key, value in line.items():
-        m = pattern.match(key)
-        if m and value is not None:
-            curves.setdefault(m.group(1), []).append((int(m.group(2)), float(value)))
-    return {k: sorted(v) for k, v in curves.items()}
-
-
-def plot_probe_accuracy(lines: dict[str, list[dict[str, Any]]], path: str | Path) -> Path | None:
-    """PNG for a grid report: one panel per probe, accuracy vs size, one line per variant (key),
-    averaged over its runs' final val lines. Returns the path, or None when no line holds probes."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    by_variant = {label: [probe_curves(line) for line in runs] for label, runs in lines.items()}
-    names = sorted({p for curves in by_variant.values() for c in curves for p in c})
-    if not names:
-        return None
-    fig, axes = plt.subplots(1, len(names), figsize=(5 * len(names), 3.6), squeeze=False)
-    for ax, name in zip(axes[0], names, strict=True):
-        for label, runs in by_variant.items():
-            points = [dict(c[name]) for c in runs if name in c]
-            if not points:
-                continue
-            sizes = sorted(set.intersection(*(set(p) for p in points)))
-            ax.plot(sizes, [sum(p[s] for p in points) / len(points) for s in sizes], marker="o", ms=3,
-                    label=f"{label} (n={len(points)})")
-        ax.set_xscale("symlog", base=2, linthresh=1)  # a passkey distance may be 0
-        ax.set_ylim(-0.02, 1.02)
-        ax.set_xlabel("key-value pairs" if name == "mqar" else "distance (filler characters)")
-        ax.set_ylabel("accuracy")
-        ax.set_title(f"probe: {name}")
-        ax.grid(True, which="both", alpha=0.3)
-        ax.legend(fontsize=7)
-    fig.tight_layout()
-    out = Path(path)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(out, dpi=120)
-    plt.close(fig)
-    return out
