@@ -20,7 +20,7 @@ from typing import Any
 
 import yaml
 
-from blockyard.data.tasks import PROBE_TASKS, TaskOptions
+from blockyard.data.task_options import PROBE_TASKS, TaskOptions
 from blockyard.errors import ConfigError, UserError
 from blockyard.schema import opt, opt_factory, parse, to_dict
 
@@ -105,7 +105,7 @@ class DataConfig:
     errors: str = opt("strict", "undecodable text: strict = error, replace = U+FFFD with a warning",
                       choices=("strict", "replace"))
     cache_dir: str = opt("", "token cache folder (empty: $BLOCKYARD_CACHE or ~/.cache/blockyard)")
-    task: TaskOptions = opt_factory(TaskOptions, "synthetic task parameters (blockyard/data/tasks.py)")
+    task: TaskOptions = opt_factory(TaskOptions, "synthetic task parameters (blockyard/data/task_options.py)")
 
 
 @dataclasses.dataclass(frozen=True)

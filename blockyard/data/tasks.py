@@ -25,8 +25,8 @@ import numpy as np
 import torch
 
 from blockyard.data.batches import IGNORE_INDEX, chunked, count_correct, stream_rng
+from blockyard.data.task_options import TaskOptions
 from blockyard.errors import ConfigError
-from blockyard.schema import opt
 
 POOL_STREAM = 11  # the fixed training pool (data.task.num_sequences > 0)
 FRESH_STREAM = 12  # fresh sequences per step (make_batch; pool size 0)
@@ -42,25 +42,6 @@ KEY_SENTENCE = "Note the code {key} and keep it. "
 QUESTION = "Which code was noted? The code is "
 
 Sequence = tuple[np.ndarray, np.ndarray]  # (tokens: seq_len + 1 ids, answer: bool mask over them)
-
-
-@dataclasses.dataclass(frozen=True)
-class TaskOptions:
-    """The ``data.task`` config section: parameters of the synthetic tasks (``data.corpus: task:NAME``).
-
-    Declared here, next to the tasks that read it, as a mixer's ``Options`` sit next to the mixer;
-    ``blockyard.config`` nests it under ``data.task``.
-    """
-
-    num_pairs: int = opt(8, "MQAR: key-value pairs per sequence", min=1)
-    num_queries: int = opt(0, "MQAR: queries per sequence (0 = as many as pairs)", min=0)
-    num_keys: int = opt(64, "MQAR: size of the key alphabet", min=2)
-    num_values: int = opt(64, "MQAR: size of the value alphabet", min=2)
-    copy_tokens: int = opt(16, "selective copying: tokens to copy", min=1)
-    copy_vocab: int = opt(16, "selective copying: size of the alphabet of the tokens to copy", min=1)
-    passkey_digits: int = opt(5, "passkey retrieval: digits of the passkey", min=1)
-    num_sequences: int = opt(2048, "sequences in the fixed training pool of a task (0 = fresh ones every step)",
-                             min=0)
 
 
 class SymbolTokenizer:
@@ -248,7 +229,6 @@ TASKS: dict[str, Task] = {
 
 #: The tasks ``eval.probes`` can run at growing sizes during training (built by blockyard/eval/probes.py);
 #: named here, beside the tasks, so that the config validates ``eval.probes`` without the evaluation code.
-PROBE_TASKS = ("mqar", "passkey")
 
 
 def get_task(name: str) -> Task:
