@@ -62,6 +62,11 @@ class ModelConfig:
     tie_embeddings: bool = opt(True, "output head shares the token embedding matrix")
     norm_eps: float = opt(1e-6, "RMSNorm epsilon", min=0.0)
     init_std: float = opt(0.02, "std of the normal init of embeddings and linear weights", min=0.0)
+    parametrization: str = opt(
+        "standard", "standard, or mup: init, per-layer Adam lr and output multiplier scaled with width relative "
+        "to model.base_width (Yang et al. 2022, arXiv:2203.03466), so an lr tuned at one width transfers",
+        choices=("standard", "mup"))
+    base_width: int = opt(128, "mup: the width at which mup equals standard (where the lr was tuned)", min=1)
 
     def validate(self, path: str) -> None:
         p = f"{path}." if path else ""
@@ -83,6 +88,21 @@ class ModelConfig:
         hidden = round(self.mlp_expansion * self.width)
         if self.mlp_expansion > 0 and hidden < 1:
             raise ConfigError(f"{p}mlp_expansion", "gives an MLP hidden size of 0")
+        if self.parametrization == "mup":
+            self._check_base_width(p)
+
+    def _check_base_width(self, p: str) -> None:
+        """mup compares each parameter's shape with the model built at ``base_width``, so that model must exist."""
+        for name, mixer in self.mixers.items():
+            check = getattr(mixer.options, "check_width", None)
+            if not callable(check):
+                continue
+            try:
+                check(f"{p}mixers.{name}", self.base_width)
+            except ConfigError as e:
+                raise ConfigError(f"{p}base_width", f"{self.base_width} is not a valid width for mup ({e})") from None
+        if self.mlp_expansion > 0 and round(self.mlp_expansion * self.base_width) < 1:
+            raise ConfigError(f"{p}base_width", f"{self.base_width} gives an MLP hidden size of 0")
 
     def layer_mixers(self) -> list[tuple[str, MixerConfig]]:
         """(name, mixer config) for each of the ``depth`` blocks, the pattern cycled."""

@@ -10,10 +10,14 @@ each mixer and MLP (modules marked ``residual_out = True``) ~ N(0, init_std / sq
 so that the residual stream's variance does not grow with depth (Radford et al. 2019, OpenAI report, sec. 2.3);
 linear biases zero; norm gains one. Mixers then re-initialise their own special parameters
 (decay rates, convolutions) in ``reset_special_parameters``; torch's LSTM keeps torch's init.
+
+``model.parametrization: mup`` scales these stds, each parameter's Adam lr and the logits with
+width relative to ``model.base_width`` (blockyard/parametrization.py has the rule and the table).
 """
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from typing import Any
 
@@ -24,6 +28,7 @@ from torch.utils.checkpoint import checkpoint
 
 from blockyard.config import ModelConfig
 from blockyard.mixers import MIXERS, Mixer
+from blockyard.parametrization import ParamScaling, readout_multiplier, scaling
 
 
 class MLP(nn.Module):
@@ -91,14 +96,44 @@ class LanguageModel(nn.Module):
         self.blocks = nn.ModuleList(blocks)
         self.final_norm = nn.RMSNorm(cfg.width, eps=cfg.norm_eps)
         self.head = None if cfg.tie_embeddings else nn.Linear(cfg.width, vocab_size, bias=False)
+        # Tied head: scale its input by width^-1/2 (Raffel et al. 2020, T5). Without it a token's own
+        # embedding dominates the residual stream at init and its logit is init_std * width,
+        # which puts the fresh loss far above ln(vocab) at width 256.
+        self.readout_scale = cfg.width**-0.5 if cfg.tie_embeddings else 1.0
+        self.width_scaling: dict[str, ParamScaling] = {}
+        if cfg.parametrization == "mup":
+            self._scale_with_width()
         self.reset_parameters()
+
+    def _scale_with_width(self) -> None:
+        """muP: classify every parameter against the base-width model, scale the readout and attention."""
+        cfg = self.cfg
+        base_cfg = dataclasses.replace(cfg, width=cfg.base_width, parametrization="standard")
+        with torch.device("meta"), torch.random.fork_rng(devices=[]):
+            base = LanguageModel(base_cfg, self.vocab_size)
+            base_shapes = {name: tuple(p.shape) for name, p in base.named_parameters()}
+        head = "embed.weight" if self.head is None else "head.weight"
+        tables = {f"{name}.weight" for name, m in self.named_modules() if isinstance(m, nn.Embedding)}
+        self.width_scaling = {
+            name: scaling(tuple(p.shape), base_shapes[name], fan_in_dim=0 if name in tables else 1,
+                          readout=name == head)
+            for name, p in self.named_parameters()
+        }
+        self.readout_scale = base.readout_scale * readout_multiplier(cfg.width, cfg.base_width)
+        for block in self.blocks:
+            block.mixer.use_base_width(cfg.base_width)
+
+    def lr_multipliers(self) -> dict[str, float]:
+        """Parameter name -> factor on the peak lr (muP's per-layer Adam lr; all 1 under standard)."""
+        return {name: s.lr_mult for name, s in self.width_scaling.items()}
 
     def reset_parameters(self) -> None:
         std = self.cfg.init_std
         out_std = std / math.sqrt(2 * self.cfg.depth)
-        for module in self.modules():
+        for name, module in self.named_modules():
             if isinstance(module, nn.Linear):
-                nn.init.normal_(module.weight, 0.0, out_std if getattr(module, "residual_out", False) else std)
+                mult = self.width_scaling[f"{name}.weight"].init_mult if self.width_scaling else 1.0
+                nn.init.normal_(module.weight, 0.0, mult * (out_std if getattr(module, "residual_out", False) else std))
                 if module.bias is not None:
                     nn.init.zeros_(module.bias)
             elif isinstance(module, nn.Embedding):
@@ -110,12 +145,9 @@ class LanguageModel(nn.Module):
 
     def _logits(self, h: torch.Tensor) -> torch.Tensor:
         h = self.final_norm(h)
-        if self.head is None:
-            # Tied head: scale by width^-1/2 (Raffel et al. 2020, T5). Without it a token's own
-            # embedding dominates the residual stream at init and its logit is init_std * width,
-            # which puts the fresh loss far above ln(vocab) at width 256.
-            return F.linear(h * self.cfg.width**-0.5, self.embed.weight)
-        return self.head(h)
+        if self.readout_scale != 1.0:
+            h = h * self.readout_scale
+        return F.linear(h, self.embed.weight if self.head is None else self.head.weight)
 
     def forward(self, tokens: torch.Tensor) -> torch.Tensor:
         """``tokens: (B, T)`` int64 -> logits ``(B, T, vocab)``."""

@@ -183,6 +183,12 @@ class _Attention(Mixer):
         self.qkv = nn.Linear(width, (self.heads + 2 * self.kv_heads) * self.head_dim, bias=False)
         self.out = nn.Linear(self.heads * self.head_dim, width, bias=False)
         self.out.residual_out = True
+        self.query_scale = 1.0
+
+    def use_base_width(self, base_width: int) -> None:
+        # muP scores q.k / head_dim instead of / sqrt(head_dim) (Yang et al. 2022, sec. 4, from memory),
+        # equal at the base head dim: queries times sqrt(base_head_dim / head_dim), then torch's 1/sqrt(d).
+        self.query_scale = math.sqrt((base_width // self.heads) / self.head_dim)
 
     def _project(self, x: torch.Tensor, positions: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
         """``x: (B, T, D)`` at absolute ``positions: (T,)`` -> q (B, H, T, d), k and v (B, Hkv, T, d)."""
@@ -192,6 +198,8 @@ class _Attention(Mixer):
         if self.options.rope:
             q = apply_rope(q, positions, self.options.rope_base)
             k = apply_rope(k, positions, self.options.rope_base)
+        if self.query_scale != 1.0:
+            q = q * self.query_scale
         return q, k, v
 
     def _merge(self, y: torch.Tensor) -> torch.Tensor:

@@ -78,6 +78,13 @@ class Mixer(nn.Module):
         Called by the model builder after the generic init; the default does nothing.
         """
 
+    def use_base_width(self, base_width: int) -> None:
+        """muP (``model.parametrization: mup``): set forward multipliers relative to ``base_width``.
+
+        Parameter init and lrs are scaled by the backbone (blockyard/parametrization.py); this hook
+        is for multipliers inside the mixer's math. Called once, before init; the default has none.
+        """
+
     # ----- cost model hooks (analytic; no module needed) -----
     @classmethod
     def param_count(cls, width: int, options: Any) -> int:

@@ -5,7 +5,8 @@
 The output projection W_o is always there, also when hidden == D: it is the mixer's residual
 output (``residual_out``), which the backbone initialises small like every other mixer's, so an
 LSTM block enters the residual stream on the same footing as the others. The LSTM keeps torch's
-own init (the backbone's generic init touches only nn.Linear and nn.Embedding).
+own init (the backbone's generic init touches only nn.Linear and nn.Embedding); under
+``model.parametrization: mup`` its biases are drawn as at the base width.
 """
 
 from __future__ import annotations
@@ -60,6 +61,19 @@ class LSTMMixer(Mixer):
         self.lstm = nn.LSTM(width, self.hidden, num_layers=1, batch_first=True)
         self.proj_out = nn.Linear(self.hidden, width, bias=False)
         self.proj_out.residual_out = True
+        self.base_hidden: int | None = None
+
+    def use_base_width(self, base_width: int) -> None:
+        # torch draws the biases from +-hidden^-1/2, which shrinks with width; muP keeps vectors'
+        # init width-free, so under mup they are drawn as at the base width (reset_special_parameters).
+        self.base_hidden = self.options.hidden(base_width)
+
+    def reset_special_parameters(self) -> None:
+        if self.base_hidden is None or self.base_hidden == self.hidden:
+            return
+        bound = self.base_hidden**-0.5
+        for bias in (self.lstm.bias_ih_l0, self.lstm.bias_hh_l0):
+            nn.init.uniform_(bias, -bound, bound)
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         y, _ = self.lstm(x)

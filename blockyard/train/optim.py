@@ -4,6 +4,11 @@ AdamW: decoupled weight decay (Loshchilov & Hutter 2019, "Decoupled Weight Decay
 Regularization"). Decay applies to weight matrices only; norm gains, biases and embeddings
 are left undecayed unless ``train.decay_all`` (common practice, no source).
 
+Per-layer learning rates: under ``model.parametrization: mup`` the model gives each parameter a
+factor on the peak lr (``LanguageModel.lr_multipliers``, muP's Adam column of Yang et al. 2022);
+parameters with the same factor share a group whose ``lr`` is ``train.lr x lr_scale``. The decay
+step of AdamW is lr x weight_decay x p, so it scales with the group's lr too.
+
 Schedule: linear warmup to the peak, then cosine decay to ``lr_floor * peak`` (cosine
 annealing without restarts, Loshchilov & Hutter 2017, "SGDR").
 """
@@ -42,25 +47,36 @@ def param_groups(model: nn.Module, weight_decay: float, decay_all: bool = False)
     """AdamW parameter groups: ``decay`` (matrices, ndim >= 2, not embeddings) and ``no_decay``.
 
     With ``decay_all`` every parameter is in the ``decay`` group. Empty groups are dropped.
-    Each group carries a ``group`` name key (kept by torch in the optimizer state).
+    Each group carries a ``group`` name key (kept by torch in the optimizer state). Parameters
+    whose lr factor (``model.lr_multipliers()``, where the model has it) is not 1 go to groups
+    ``decay x0.25`` etc. with an ``lr_scale`` key, after the unscaled ones, so that group 0 runs
+    at the peak lr.
     """
     embeddings = _embedding_param_ids(model)
-    decay, no_decay = [], []
-    for p in model.parameters():
+    multipliers = model.lr_multipliers() if hasattr(model, "lr_multipliers") else {}
+    buckets: dict[tuple[bool, float], list[nn.Parameter]] = {(True, 1.0): [], (False, 1.0): []}
+    for name, p in model.named_parameters():
         if not p.requires_grad:
             continue
         is_matrix = p.ndim >= 2 and id(p) not in embeddings
-        (decay if decay_all or is_matrix else no_decay).append(p)
-    groups = [
-        {"group": "decay", "params": decay, "weight_decay": weight_decay},
-        {"group": "no_decay", "params": no_decay, "weight_decay": 0.0},
-    ]
+        buckets.setdefault((decay_all or is_matrix, multipliers.get(name, 1.0)), []).append(p)
+    groups = []
+    for (decay, scale), params in sorted(buckets.items(), key=lambda kv: (kv[0][1] != 1.0, not kv[0][0], kv[0][1])):
+        group = {"group": "decay" if decay else "no_decay", "params": params,
+                 "weight_decay": weight_decay if decay else 0.0}
+        if scale != 1.0:
+            group["group"] += f" x{scale:.4g}"
+            group["lr_scale"] = scale
+        groups.append(group)
     return [g for g in groups if g["params"]]
 
 
 def build_optimizer(model: nn.Module, cfg: TrainConfig) -> torch.optim.AdamW:
-    """``torch.optim.AdamW`` over :func:`param_groups` with the config's lr and betas."""
+    """``torch.optim.AdamW`` over :func:`param_groups` with the config's lr (times each ``lr_scale``) and betas."""
     groups = param_groups(model, cfg.weight_decay, cfg.decay_all)
+    for group in groups:
+        if "lr_scale" in group:
+            group["lr"] = cfg.lr * group["lr_scale"]
     return torch.optim.AdamW(groups, lr=cfg.lr, betas=(cfg.beta1, cfg.beta2))
 
 
