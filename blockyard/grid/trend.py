@@ -11,9 +11,12 @@ Loss fit per variant (``fit_power_law``):
                                     noise exactly, so E is left out (taken as 0: Kaplan et al. 2020's
                                     pure power law) and the result says so.
   Intervals for alpha, E and A: percentile bootstrap over seeds (Efron & Tibshirani 1993, ch. 13):
-  resample the seeds within each rung with replacement, refit, take the (1 -+ level) / 2 quantiles.
-  A rung with one seed contributes no seed-to-seed variation; with one seed everywhere there is no
-  interval.
+  resample the seeds within each rung with replacement (deviations from the rung mean inflated by
+  sqrt(k / (k - 1)), see ``_resample``), refit, take the (1 -+ level) / 2 quantiles. A rung with one
+  seed contributes no seed-to-seed variation; with one seed everywhere there is no interval. With
+  few seeds the intervals are approximate: at level 0.95 and 4 seeds per rung they covered the true
+  alpha in 90% (log form, 1000 simulated ladders) and 92% (full form, 60) of simulations
+  (tests/test_trend.py).
 
 Trend of a gap (``gap_trend``): the per-seed paired differences d (variant - reference, same seed)
 at every rung, regressed by ordinary least squares on x = log2 N: d = a + b x. The slope b is the
@@ -76,9 +79,22 @@ def _points(n: np.ndarray, vals: list[np.ndarray]) -> tuple[np.ndarray, np.ndarr
     return np.repeat(n, [len(v) for v in vals]), np.concatenate(vals)
 
 
-def _resample(vals: list[np.ndarray], rng: np.random.Generator) -> list[np.ndarray]:
-    """The seeds of each rung drawn with replacement (the rung's seed count kept)."""
-    return [v[rng.integers(0, len(v), len(v))] for v in vals]
+def _resample(vals: list[np.ndarray], n_boot: int, rng: np.random.Generator) -> np.ndarray:
+    """``(n_boot, points)``: each row draws every rung's seeds with replacement, in ``_points`` order.
+
+    A draw's deviations from its rung's mean are inflated by sqrt(k / (k - 1)) for a rung of k
+    seeds, so that the bootstrap variance of a rung mean is s^2 / k, not the plain bootstrap's
+    (k - 1) / k of it (Efron & Tibshirani 1993, ch. 5; from memory): with 4 seeds per rung that
+    raised the simulated coverage of the full form's 95% alpha interval from 83% to 92-95% (60
+    simulated ladders each; noisy figures).
+    """
+    rows = []
+    for v in vals:
+        draw = v[rng.integers(0, len(v), (n_boot, len(v)))]
+        if len(v) > 1:
+            draw = v.mean() + (draw - v.mean()) * math.sqrt(len(v) / (len(v) - 1))
+        rows.append(draw)
+    return np.concatenate(rows, axis=1)
 
 
 def _percentiles(samples: np.ndarray, level: float) -> tuple[float, float]:
@@ -153,12 +169,35 @@ def _fit_full(x: np.ndarray, y: np.ndarray, p0: tuple[float, float, float] | Non
     return float(popt[0]), float(popt[1]), float(popt[2])
 
 
-def _fit_log(x: np.ndarray, y: np.ndarray) -> tuple[float, float]:
-    """(B, alpha) of log y = log B - alpha log x by OLS."""
+def _fit_log(x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(B, alpha) of log y = log B - alpha log x by OLS; ``y`` may hold one sample per row."""
     if np.any(y <= 0):
         raise ValueError("the log-log fit needs positive losses")
-    res = stats.linregress(np.log(x), np.log(y))
-    return float(math.exp(res.intercept)), float(-res.slope)
+    lx, ly = np.log(x), np.log(y)
+    dx = lx - lx.mean()
+    slope = (ly - ly.mean(axis=-1, keepdims=True)) @ dx / (dx @ dx)
+    intercept = ly.mean(axis=-1) - slope * lx.mean()
+    return np.exp(intercept), -slope
+
+
+def _bootstrap(
+    x: np.ndarray, vals: list[np.ndarray], start: tuple[float, float, float] | None, n_boot: int, seed: int
+) -> tuple[np.ndarray, int]:
+    """``(refits (k, 3) of (E, B, alpha), failures)`` over resampled seeds; ``start`` None: the log form."""
+    samples = _resample(vals, n_boot, np.random.default_rng(seed))
+    if start is None:
+        ok = np.all(samples > 0, axis=1)  # an inflated draw can in principle leave the log's domain
+        b, alpha = _fit_log(x, samples[ok])
+        return np.column_stack([np.zeros(len(b)), b, alpha]), int(n_boot - ok.sum())
+    rows = []
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", optimize.OptimizeWarning)
+        for ys in samples:
+            try:
+                rows.append(_fit_full(x, ys, start))
+            except (RuntimeError, ValueError):
+                pass
+    return np.asarray(rows).reshape(-1, 3), n_boot - len(rows)
 
 
 def fit_power_law(
@@ -178,54 +217,37 @@ def fit_power_law(
     n0 = float(np.exp(np.mean(np.log(n_arr))))
     x, y = _points(n_arr / n0, vals)
     notes = []
-    full = len(n_arr) >= MIN_RUNGS_FOR_E
-    if not full:
+    full: tuple[float, float, float] | None = None
+    if len(n_arr) < MIN_RUNGS_FOR_E:
         notes.append(f"{len(n_arr)} rungs (< {MIN_RUNGS_FOR_E}): fitted log L on log N without E")
-    estimate = None
-    if full:
+    else:
         try:
-            estimate = _fit_full(x, y, None)
+            full = _fit_full(x, y, None)
         except (RuntimeError, ValueError) as e:
-            full = False
             notes.append(f"the E + A N^-alpha fit did not converge ({e}); fitted log L on log N without E")
-    if not full:
+    if full is None:
         b, alpha = _fit_log(x, y)
-        estimate = (0.0, b, alpha)
+        e, b, alpha = 0.0, float(b), float(alpha)
+    else:
+        e, b, alpha = full
 
-    def refit(sample: list[np.ndarray]) -> tuple[float, float, float]:
-        _, ys = _points(n_arr / n0, sample)
-        if full:
-            return _fit_full(x, ys, estimate)
-        b_, a_ = _fit_log(x, ys)
-        return 0.0, b_, a_
-
-    boots, failed = [], 0
+    boots, failed = np.empty((0, 3)), 0
     if all(len(v) < 2 for v in vals):
         notes.append("one seed per rung: no bootstrap interval")
     elif n_boot > 0:
-        rng = np.random.default_rng(seed)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", optimize.OptimizeWarning)
-            for _ in range(n_boot):
-                try:
-                    boots.append(refit(_resample(vals, rng)))
-                except (RuntimeError, ValueError):
-                    failed += 1
+        boots, failed = _bootstrap(x, vals, full, n_boot, seed)
         if failed:
             notes.append(f"{failed} of {n_boot} bootstrap refits did not converge and were left out")
-    arr = np.asarray(boots).reshape(-1, 3)
-    e_b, a_b, alpha_b = arr[:, 0], arr[:, 1] * n0 ** arr[:, 2], arr[:, 2]
-    e, b, alpha = estimate
-    e_lo, e_hi = _percentiles(e_b, level)
-    a_lo, a_hi = _percentiles(a_b, level)
-    al_lo, al_hi = _percentiles(alpha_b, level)
+    e_lo, e_hi = _percentiles(boots[:, 0], level)
+    a_lo, a_hi = _percentiles(boots[:, 1] * n0 ** boots[:, 2], level)
+    al_lo, al_hi = _percentiles(boots[:, 2], level)
     return PowerLawFit(
-        form=FULL_FORM if full else LOG_FORM,
-        E=e if full else None,
+        form=LOG_FORM if full is None else FULL_FORM,
+        E=None if full is None else e,
         A=b * n0**alpha,
         alpha=alpha,
-        E_low=e_lo if full else None,
-        E_high=e_hi if full else None,
+        E_low=None if full is None else e_lo,
+        E_high=None if full is None else e_hi,
         A_low=a_lo,
         A_high=a_hi,
         alpha_low=al_lo,
