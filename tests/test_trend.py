@@ -214,3 +214,25 @@ def test_extrapolation_beyond_a_decade_carries_a_caution_in_the_sentence():
         gap_trend(n, diffs, target=0)
     with pytest.raises(ValueError, match="3 paired differences"):
         gap_trend(n[:2], [[0.1], [0.2]])
+
+
+# ----------------------------------------------------------------------------- pictures
+
+PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
+
+
+def test_plots_write_pngs(tmp_path):
+    from blockyard.grid.trend_plots import plot_gap_vs_params, plot_loss_vs_params
+
+    rng = np.random.default_rng(0)
+    n = np.geomspace(2e4, 1e6, 5)
+    points = {"attention": (n, hoffmann_points(n, 3, 0.02, rng)), "recurrence": (n[:3], kaplan_points(n[:3], 3, 0.003,
+                                                                                                      rng))}
+    fits = {label: fit_power_law(*pts, n_boot=50) for label, pts in points.items()}
+    assert fits["recurrence"].E is None  # both forms drawn
+    out = plot_loss_vs_params(fits, points, tmp_path / "figs" / "loss_vs_params.png", target=1e7)
+    assert out.read_bytes()[:8] == PNG_MAGIC and out.stat().st_size > 5000
+    trends = {"recurrence - attention": gap_trend(n, ladder_diffs(n, 0.1, -0.015, 0.01, 3, rng), target=1e8),
+              "hybrid - attention": gap_trend(n, ladder_diffs(n, 0.01, 0.0, 0.01, 3, rng))}
+    out = plot_gap_vs_params(trends, tmp_path / "gap_vs_params.png")
+    assert out.read_bytes()[:8] == PNG_MAGIC and out.stat().st_size > 5000
