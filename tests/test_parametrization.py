@@ -195,6 +195,31 @@ def test_config_keys_are_validated():
     assert config_from_dict({"model": {"parametrization": "standard", "base_width": 66}}).model.base_width == 66
 
 
+def test_a_mup_run_trains_end_to_end_and_logs_the_peak_lr(tmp_path):
+    """Through the trainer (run_training): the extra lr groups reach the optimizer, resume state and log."""
+    from blockyard.train import run_training
+    from blockyard.train.optim import lr_factor
+    from blockyard.train.records import read_metrics
+
+    corpus = tmp_path / "corpus.txt"
+    corpus.write_text("the quick brown fox jumps over the lazy dog. " * 400)
+    cfg = config_from_dict({
+        "model": {"width": 64, "depth": 2, "parametrization": "mup", "base_width": 32,
+                  "pattern": ["recurrence", "global_attention"]},
+        "data": {"corpus": str(corpus), "seq_len": 32, "cache_dir": str(tmp_path / "cache")},
+        "train": {"steps": 6, "batch_size": 2, "warmup_steps": 2, "log_every": 1, "eval_every": 3,
+                  "checkpoint_every": 3, "eval_windows": 2, "lr": 0.01},
+        "runtime": {"threads": 1},
+    })
+    summary = run_training(cfg, tmp_path / "run")
+    assert math.isfinite(summary["final_val_loss"])
+    lines = [m for m in read_metrics(tmp_path / "run" / "metrics.jsonl") if m.get("split") == "train"]
+    assert [m["step"] for m in lines] == [1, 2, 3, 4, 5, 6]
+    for m in lines:
+        assert math.isfinite(m["loss"])
+        assert m["lr"] == pytest.approx(0.01 * lr_factor(m["step"], 2, 6, cfg.train.lr_floor))
+
+
 # ----------------------------------------------------------------------------- coordinate check
 
 
