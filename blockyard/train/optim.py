@@ -6,8 +6,9 @@ are left undecayed unless ``train.decay_all`` (common practice, no source).
 
 Per-layer learning rates: under ``model.parametrization: mup`` the model gives each parameter a
 factor on the peak lr (``LanguageModel.lr_multipliers``, muP's Adam column of Yang et al. 2022);
-parameters with the same factor share a group whose ``lr`` is ``train.lr x lr_scale``. The decay
-step of AdamW is lr x weight_decay x p, so it scales with the group's lr too.
+parameters with the same factor share a group whose ``lr`` is ``train.lr x lr_scale``. Table 3
+does not cover weight decay; torch's AdamW decays by lr x weight_decay x p, so here the decay
+follows each group's lr (a choice, no source).
 
 Schedule: linear warmup to the peak, then cosine decay to ``lr_floor * peak`` (cosine
 annealing without restarts, Loshchilov & Hutter 2017, "SGDR").
