@@ -166,3 +166,31 @@ def test_backend_choice_reaches_the_op(kernels):
     assert uses_fused_op(x, "auto") and uses_fused_op(x, "compiled")
     assert not uses_fused_op(x, "chunked") and not uses_fused_op(x, "reference")
     assert not uses_fused_op(x.to(torch.float16), "auto")  # not a dtype of the op
+
+
+@pytest.mark.parametrize(("gate", "conv_width", "input_norm"), [(True, 4, True), (False, 0, False), (True, 1, False),
+                                                                 (False, 3, True)])
+def test_fused_step_equals_the_composed_step_and_leaves_the_state_alone(kernels, gate, conv_width, input_norm):
+    # The one-call decode step (conv, gates, RG-LRU update in C++) against the composed ops' step,
+    # token by token from the same states; the state it is given is never written to.
+    from blockyard.mixers import MIXERS
+    from blockyard.mixers.recurrence import RecurrenceOptions
+
+    torch.manual_seed(11)
+    opts = RecurrenceOptions(gate=gate, conv_width=conv_width, input_norm=input_norm)
+    fused = MIXERS["recurrence"](16, opts, layer=0, depth=2, scan_backend="compiled")
+    composed = MIXERS["recurrence"](16, opts, layer=0, depth=2, scan_backend="chunked")
+    composed.load_state_dict(fused.state_dict())
+    x = torch.randn(3, 6, 16)
+    with torch.no_grad():
+        assert fused._fused_step_applies(x[:, 0]) and not composed._fused_step_applies(x[:, 0])
+        s_fused, s_comp = fused.init_state(3), composed.init_state(3)
+        for t in range(x.shape[1]):
+            before = [s_fused.h.clone(), s_fused.conv_tail.clone()]
+            y1, new_fused = fused.step(x[:, t], s_fused)
+            y2, s_comp = composed.step(x[:, t], s_comp)
+            assert torch.equal(s_fused.h, before[0]) and torch.equal(s_fused.conv_tail, before[1])
+            s_fused = new_fused
+            torch.testing.assert_close(y1, y2, atol=1e-5, rtol=1e-5)
+            torch.testing.assert_close(s_fused.h, s_comp.h, atol=1e-5, rtol=1e-5)
+            torch.testing.assert_close(s_fused.conv_tail, s_comp.conv_tail, atol=0, rtol=0)

@@ -364,6 +364,106 @@ std::tuple<at::Tensor, at::Tensor, at::Tensor, at::Tensor, at::Tensor> rglru_bac
   return {dx, dga, dgx, ddecay, dh0};
 }
 
+
+// ----------------------------------------------------------------------------- one decode step
+
+// y[j] = bias[j] + sum_i in[i] W[blk, i, j] over each diagonal block (W: (H, w, w)); the inner
+// loop runs over contiguous j, so it vectorises.
+void block_diagonal_matvec(const float* __restrict__ in, const float* __restrict__ weight,
+                           const float* __restrict__ bias, float* __restrict__ out, int64_t blocks, int64_t w) {
+  for (int64_t blk = 0; blk < blocks; ++blk) {
+    float* o = out + blk * w;
+    const float* x = in + blk * w;
+    const float* W = weight + blk * w * w;
+    for (int64_t j = 0; j < w; ++j) o[j] = bias[blk * w + j];
+    for (int64_t i = 0; i < w; ++i) {
+      const float xi = x[i];
+      const float* row = W + i * w;
+      for (int64_t j = 0; j < w; ++j) o[j] += xi * row[j];
+    }
+  }
+}
+
+// One token of the recurrent branch after its input projection, for a batch of sequences:
+// causal depthwise conv over (conv tail, u) (De et al. 2024, fig. 2), the gates, and the RG-LRU
+// update above. Returns (h_new, new conv tail): new tensors, the given state is only read.
+// The tail holds the conv inputs of the last K-1 tokens, oldest first; the new tail is the old
+// one shifted by one row with u appended, written once (no concatenation of temporaries).
+std::tuple<at::Tensor, at::Tensor> rglru_step(const at::Tensor& u, const at::Tensor& tail,
+                                              const c10::optional<at::Tensor>& conv_w,
+                                              const c10::optional<at::Tensor>& conv_b,
+                                              const c10::optional<at::Tensor>& gate_a_w,
+                                              const c10::optional<at::Tensor>& gate_a_b,
+                                              const c10::optional<at::Tensor>& gate_x_w,
+                                              const c10::optional<at::Tensor>& gate_x_b, const at::Tensor& decay,
+                                              const at::Tensor& h, double c, bool input_norm) {
+  TORCH_CHECK(u.dim() == 2 && u.scalar_type() == at::kFloat && u.is_contiguous(), "rg_lru step: u must be (B, C) float32");
+  const int64_t B = u.size(0), C = u.size(1);
+  const bool has_conv = conv_w.has_value();
+  const int64_t K = has_conv ? conv_w->size(1) : 1;
+  TORCH_CHECK(tail.dim() == 3 && tail.size(0) == B && tail.size(2) == C && tail.size(1) == (has_conv ? K - 1 : 0) &&
+                  tail.scalar_type() == at::kFloat && tail.is_contiguous(),
+              "rg_lru step: tail must be a contiguous (B, K-1, C) float32 tensor");
+  TORCH_CHECK(h.sizes() == u.sizes() && h.scalar_type() == at::kFloat && h.is_contiguous(), "rg_lru step: bad h");
+  TORCH_CHECK(decay.dim() == 1 && decay.size(0) == C && decay.scalar_type() == at::kFloat && decay.is_contiguous(),
+              "rg_lru step: bad decay");
+  const bool gated = gate_a_w.has_value();
+  int64_t blocks = 1, w = C;
+  if (gated) {
+    blocks = gate_a_w->size(0);
+    w = gate_a_w->size(1);
+    TORCH_CHECK(blocks * w == C && gate_a_w->is_contiguous() && gate_x_w->is_contiguous() &&
+                    gate_a_b->is_contiguous() && gate_x_b->is_contiguous(),
+                "rg_lru step: gate weights must be contiguous (H, C/H, C/H)");
+  }
+  if (has_conv) TORCH_CHECK(conv_w->is_contiguous() && conv_b->is_contiguous(), "rg_lru step: bad conv");
+  at::Tensor h_new = at::empty_like(h);
+  at::Tensor new_tail = at::empty_like(tail);
+  std::vector<float> v(C), ra(C), rx(C);
+  const at::Tensor la0_t = log_base_decay(decay);
+  const float* la0 = la0_t.const_data_ptr<float>();
+  const float cc = static_cast<float>(c);
+  for (int64_t b = 0; b < B; ++b) {
+    const float* ub = u.const_data_ptr<float>() + b * C;
+    const float* tb = tail.const_data_ptr<float>() + b * (K - 1) * C;
+    float* nt = new_tail.mutable_data_ptr<float>() + b * (K - 1) * C;
+    if (has_conv) {  // v = bias + sum_k w[:, k] * input_{t-K+1+k}
+      const float* cw = conv_w->const_data_ptr<float>();
+      const float* cb = conv_b->const_data_ptr<float>();
+      for (int64_t j = 0; j < C; ++j) {
+        float acc = cb[j];
+        for (int64_t k = 0; k + 1 < K; ++k) acc += cw[j * K + k] * tb[k * C + j];
+        v[j] = acc + cw[j * K + K - 1] * ub[j];
+      }
+      if (K > 1) {
+        std::memcpy(nt, tb + C, sizeof(float) * (K - 2) * C);
+        std::memcpy(nt + (K - 2) * C, ub, sizeof(float) * C);
+      }
+    } else {
+      std::memcpy(v.data(), ub, sizeof(float) * C);
+    }
+    if (gated) {
+      block_diagonal_matvec(v.data(), gate_a_w->const_data_ptr<float>(), gate_a_b->const_data_ptr<float>(), ra.data(),
+                            blocks, w);
+      block_diagonal_matvec(v.data(), gate_x_w->const_data_ptr<float>(), gate_x_b->const_data_ptr<float>(), rx.data(),
+                            blocks, w);
+    }
+    const float* hb = h.const_data_ptr<float>() + b * C;
+    float* out = h_new.mutable_data_ptr<float>() + b * C;
+    for (int64_t j = 0; j < C; ++j) {
+      float log_a = la0[j];
+      float x = v[j];
+      if (gated) {
+        log_a = cc * sigmoid_of(ra[j]) * log_a;
+        x = sigmoid_of(rx[j]) * x;
+      }
+      if (input_norm) x = std::sqrt(-expm1_of(2.0f * log_a)) * x;
+      out[j] = exp_of(log_a) * hb[j] + x;
+    }
+  }
+  return {h_new, new_tail};
+}
+
 }  // namespace
 
 TORCH_LIBRARY_FRAGMENT(BLOCKYARD_SCAN_NS, m) {
@@ -373,4 +473,7 @@ TORCH_LIBRARY_FRAGMENT(BLOCKYARD_SCAN_NS, m) {
   m.def("rglru_backward(Tensor grad_h, Tensor x, Tensor? gate_a, Tensor? gate_x, Tensor decay, Tensor h0, Tensor h,"
         " float c, bool input_norm) -> (Tensor, Tensor, Tensor, Tensor, Tensor)",
         &rglru_backward);
+  m.def("rglru_step(Tensor u, Tensor tail, Tensor? conv_w, Tensor? conv_b, Tensor? gate_a_w, Tensor? gate_a_b,"
+        " Tensor? gate_x_w, Tensor? gate_x_b, Tensor decay, Tensor h, float c, bool input_norm) -> (Tensor, Tensor)",
+        &rglru_step);
 }
