@@ -9,7 +9,8 @@ and, tiling the state over the batch, at a large batch; the models take turns, `
 ratios of issue 19's decode targets are printed and kept in the JSON (``decode_ratios``).
 Reported: ms per step, tokens/s (batch / step time), the state's measured bytes
 (``state_nbytes``) beside the cost model's prediction (``blockyard.cost.state_bytes``).
-Combinations whose predicted state exceeds ``max_state_mib`` are skipped (a global-attention KV cache at batch 64 and 4k tokens is GBs).
+Combinations whose predicted state exceeds ``max_state_mib`` are skipped (a global-attention
+KV cache at batch 64 and 4k tokens is GBs).
 
 The figures measure this implementation on this machine: the KV cache grows by concatenation
 (one copy of the cache per step), the local-attention ring buffer is copied once per step
