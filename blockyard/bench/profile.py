@@ -119,7 +119,7 @@ def profile_step(case: BenchCase, cache_dir: Path, warmup: int = 3, threads: int
     runtime, _ = resolve_runtime(cfg.runtime)
     data = load_data(cfg)
     torch.manual_seed(0)
-    model = build_model(cfg.model, data.vocab_size)
+    model = build_model(cfg.model, data.vocab_size, scan_backend=runtime.scan_backend)
     optimizer = build_optimizer(model, cfg.train)
     scheduler = build_scheduler(optimizer, cfg.train, cfg.train.steps)
     for i in range(warmup):
