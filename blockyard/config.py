@@ -179,7 +179,9 @@ class RuntimeConfig:
                          "CPU at about 0.6x fp32 speed, to check what bf16 does to a result",
                          choices=("fp32", "bf16", "bf16_emulated"))
     activation_checkpointing: bool = opt(False, "recompute each residual block in backward to save memory")
-    scan: str = opt("auto", "recurrence scan backend", choices=("auto", "reference", "chunked", "compiled"))
+    scan: str = opt("auto", "recurrence kernels: compiled = C++ (the fused RG-LRU op, the C++ scan), "
+                    "chunked / reference = PyTorch ops; auto = compiled where it builds, else chunked",
+                    choices=("auto", "reference", "chunked", "compiled"))
 
 
 @dataclasses.dataclass(frozen=True)

@@ -83,7 +83,8 @@ class Block(nn.Module):
 class LanguageModel(nn.Module):
     """A causal language model over a vocabulary of ``vocab_size`` tokens."""
 
-    def __init__(self, cfg: ModelConfig, vocab_size: int, *, activation_checkpointing: bool = False) -> None:
+    def __init__(self, cfg: ModelConfig, vocab_size: int, *, activation_checkpointing: bool = False,
+                 scan_backend: str = "auto") -> None:
         super().__init__()
         self.cfg = cfg
         self.vocab_size = vocab_size
@@ -91,7 +92,10 @@ class LanguageModel(nn.Module):
         self.embed = nn.Embedding(vocab_size, cfg.width)
         blocks = []
         for layer, (_name, mcfg) in enumerate(cfg.layer_mixers()):
-            mixer = MIXERS[mcfg.kind](cfg.width, mcfg.options, layer=layer, depth=cfg.depth)
+            cls = MIXERS[mcfg.kind]
+            # The scan backend (runtime.scan) goes to the mixers that run a linear scan, explicitly.
+            kernels = {"scan_backend": scan_backend} if getattr(cls, "takes_scan_backend", False) else {}
+            mixer = cls(cfg.width, mcfg.options, layer=layer, depth=cfg.depth, **kernels)
             blocks.append(Block(mixer, cfg.width, cfg.mlp_hidden, cfg.mlp, cfg.norm_eps))
         self.blocks = nn.ModuleList(blocks)
         self.final_norm = nn.RMSNorm(cfg.width, eps=cfg.norm_eps)
@@ -194,6 +198,12 @@ class LanguageModel(nn.Module):
         return counts
 
 
-def build_model(cfg: ModelConfig, vocab_size: int, *, activation_checkpointing: bool = False) -> LanguageModel:
-    """The model for ``cfg`` over ``vocab_size`` tokens (the config was validated on load)."""
-    return LanguageModel(cfg, vocab_size, activation_checkpointing=activation_checkpointing)
+def build_model(cfg: ModelConfig, vocab_size: int, *, activation_checkpointing: bool = False,
+                scan_backend: str = "auto") -> LanguageModel:
+    """The model for ``cfg`` over ``vocab_size`` tokens (the config was validated on load).
+
+    ``scan_backend``: the linear-scan / fused-recurrence implementation (``runtime.scan``, as the
+    trainer's ``Runtime.scan_backend``), passed to the recurrent mixers.
+    """
+    return LanguageModel(cfg, vocab_size, activation_checkpointing=activation_checkpointing,
+                         scan_backend=scan_backend)

@@ -1,10 +1,11 @@
 """Decode benchmark: tokens/s and state bytes of the step path vs context length, batch 1 and 64.
 
 Models: the presets' global attention, local attention (window 128), recurrence and 2:1 hybrid
-(see ``blockyard/bench/decode.py``). Prints a table; ``--json`` and ``--plot`` write the figures.
+(see ``blockyard/bench/decode.py``). Prints a table and issue 19's batch-1 ratios (models timed
+round-robin); ``--json`` and ``--plot`` write the figures.
 
     .venv/bin/python scripts/bench_decode.py [--contexts 128,512,1024,2048,4096] [--batches 1,64]
-        [--models global,local,recurrence,hybrid] [--reps 8] [--max-state-mib 512]
+        [--models global,local,recurrence,hybrid] [--reps 8] [--rounds 3] [--max-state-mib 512]
         [--json runs/bench/decode.json] [--plot runs/bench/decode.png] [--threads 1]
 """
 
@@ -29,7 +30,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--models", default=",".join(MODELS), help=f"comma separated, of: {', '.join(MODELS)}")
     p.add_argument("--contexts", type=int_list, default=[128, 512, 1024, 2048, 4096], help="context lengths")
     p.add_argument("--batches", type=int_list, default=[1, 64], help="batch sizes")
-    p.add_argument("--reps", type=int, default=8, help="timed steps per point (median)")
+    p.add_argument("--reps", type=int, default=8, help="timed steps per point and round (median)")
+    p.add_argument("--rounds", type=int, default=3,
+                   help="round-robin rounds over the models at each point (median of rounds)")
     p.add_argument("--max-state-mib", type=float, default=512.0, help="skip points whose state exceeds this")
     p.add_argument("--threads", type=int, default=1,
                    help="torch threads (default 1: one decode step is too small to share, and on a busy machine "
@@ -41,7 +44,8 @@ def main(argv: list[str] | None = None) -> int:
     args = p.parse_args(argv)
     try:
         print(bench_decode_command(models=[m for m in args.models.split(",") if m], contexts=args.contexts,
-                                   batches=args.batches, reps=args.reps, max_state_mib=args.max_state_mib,
+                                   batches=args.batches, reps=args.reps, rounds=args.rounds,
+                                   max_state_mib=args.max_state_mib,
                                    json_path=args.json, plot_path=args.plot, overrides=args.overrides,
                                    echo=lambda line: print(line, file=sys.stderr, flush=True), threads=args.threads))
     except UserError as e:

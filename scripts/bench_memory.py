@@ -124,7 +124,8 @@ def job_steps(spec: dict[str, Any]) -> dict[str, Any]:
     data = load_data(cfg)
     batches = [data.train_batch(i) for i in range(cfg.train.steps)]
     torch.manual_seed(cfg.train.seed)
-    model = build_model(cfg.model, data.vocab_size, activation_checkpointing=cfg.runtime.activation_checkpointing)
+    model = build_model(cfg.model, data.vocab_size, activation_checkpointing=cfg.runtime.activation_checkpointing,
+                        scan_backend=runtime.scan_backend)
     model.train()
     optimizer = build_optimizer(model, cfg.train)
     scheduler = build_scheduler(optimizer, cfg.train, cfg.train.steps)
@@ -134,7 +135,8 @@ def job_steps(spec: dict[str, Any]) -> dict[str, Any]:
     losses = [train_step(model, optimizer, scheduler, [b], runtime, cfg.train.grad_clip).loss for b in batches]
     peak = peak_rss_bytes()
     est = estimate_activation_memory(cfg.model, data.vocab_size, cfg.train.batch_size, cfg.data.seq_len,
-                                     activation_checkpointing=cfg.runtime.activation_checkpointing)
+                                     activation_checkpointing=cfg.runtime.activation_checkpointing,
+                                     scan_backend=runtime.scan_backend)
     return {"baseline_rss_bytes": baseline, "peak_rss_bytes": peak, "peak_before_training_bytes": before,
             "activation_bytes": peak - baseline, "losses": losses, "estimate_bytes": est.total_bytes}
 

@@ -224,6 +224,7 @@ def test_profile_splits_the_scan_out_of_the_recurrence():
     assert {"scan", "mixer:recurrence"} <= buckets
     assert set(step_time_shares(events)) == buckets  # the shares sum exactly the buckets' events
     assert _is_scan("autograd::engine::evaluate_function: _ChunkedScanBackward")
+    assert _is_scan("blockyard::rg_lru") and _is_scan("GeneratedBackwardFor_blockyard_rg_lru_defaultBackward")
     assert not _is_scan("aten::mm")
 
 

@@ -192,3 +192,23 @@ def test_decode_bench_measures_the_predicted_state_and_skips_over_budget():
     tight = decode_bench(models=["global"], contexts=[8], batches=[3], reps=1, max_state_mib=4e-3,
                          overrides=["model.depth=1", "model.width=32"])
     assert "skipped" in tight[0]
+
+
+def test_decode_ratios_follow_the_rows():
+    # Issue 19's decode targets from the measured rows: step-time ratios at the shortest context,
+    # the tokens/s ratio at the longest; models or contexts not measured give no ratio.
+    from blockyard.bench.decode import decode_ratios
+
+    def row(model, context, ms):
+        return {"model": model, "context": context, "batch": 1, "step_ms": ms, "tokens_per_s": 1e3 / ms}
+
+    rows = [row("global", 128, 2.0), row("recurrence", 128, 1.5), row("hybrid", 128, 2.4),
+            row("global", 4096, 30.0), row("recurrence", 4096, 1.5), {**row("recurrence", 128, 9.0), "batch": 64}]
+    got = {r["name"]: r for r in decode_ratios(rows)}
+    assert got["recurrence / global step time, shortest context"]["ratio"] == pytest.approx(0.75)
+    assert got["recurrence / global step time, shortest context"]["met"]
+    assert got["hybrid / global step time, shortest context"]["ratio"] == pytest.approx(1.2)
+    assert not got["hybrid / global step time, shortest context"]["met"]
+    longest = got["recurrence / global tokens/s, longest context"]
+    assert longest["context"] == 4096 and longest["ratio"] == pytest.approx(20.0) and longest["met"]
+    assert decode_ratios([row("global", 128, 2.0)]) == []

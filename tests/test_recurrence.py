@@ -8,6 +8,7 @@ sqrt(1 - |lambda|^2) normalisation; Gu et al. 2022 (S4D): fixed diagonal decay, 
 from __future__ import annotations
 
 import cmath
+import functools
 import itertools
 import math
 
@@ -18,7 +19,7 @@ from scipy import stats
 
 from blockyard.config import config_from_dict
 from blockyard.errors import ConfigError
-from blockyard.kernels import get_scan_backend, set_scan_backend
+from blockyard.kernels import linear_scan
 from blockyard.mixers import MIXERS, state_nbytes
 from blockyard.mixers.recurrence import (
     MAX_PHASE,
@@ -27,6 +28,7 @@ from blockyard.mixers.recurrence import (
     RecurrenceOptions,
     complex_lru,
     rg_lru,
+    rg_lru_reference,
 )
 
 WIDTH = 8
@@ -42,9 +44,9 @@ def _scan_loop(a: torch.Tensor, b: torch.Tensor, h0: torch.Tensor | None = None)
     return torch.stack(out, dim=1)
 
 
-def _block(width: int = WIDTH, **opts) -> RecurrenceBlock:
+def _block(width: int = WIDTH, scan_backend: str = "auto", **opts) -> RecurrenceBlock:
     torch.manual_seed(0)
-    return MIXERS["recurrence"](width, RecurrenceOptions(**opts), layer=0, depth=2)
+    return MIXERS["recurrence"](width, RecurrenceOptions(**opts), layer=0, depth=2, scan_backend=scan_backend)
 
 
 def _block_reference(m: RecurrenceBlock, x: torch.Tensor) -> torch.Tensor:
@@ -125,17 +127,15 @@ def test_forward_matches_published_equations(opts):
 
 @pytest.fixture(params=["reference", "chunked", "compiled"])
 def scan_backend(request):
-    """Each backend of runtime.scan in turn (set the way the trainer sets it), restored afterwards."""
-    before = get_scan_backend()
-    set_scan_backend(request.param)
-    yield request.param
-    set_scan_backend(before)
+    """Each backend of runtime.scan in turn, passed to the block the way the model builder passes it."""
+    return request.param
 
 
 @pytest.mark.parametrize("opts", [{}, {"gate": False}, {"complex": True}, {"complex": True, "gate": False}])
 def test_every_scan_backend_matches_published_equations(opts, scan_backend):
-    # As above, for each backend the runtime.scan key selects; T = 40 takes the chunked path past its short cut.
-    m = _block(**opts)
+    # As above, for each backend the runtime.scan key selects (compiled: the fused RG-LRU op for the
+    # real variants); T = 40 takes the chunked path past its short cut.
+    m = _block(scan_backend=scan_backend, **opts)
     x = torch.randn(2, 40, WIDTH)
     torch.testing.assert_close(m(x).double(), _block_reference(m, x), atol=1e-5, rtol=1e-5)
     x.requires_grad_(True)
@@ -164,11 +164,13 @@ def test_rg_lru_gradcheck_float64(scan_backend):
         a.requires_grad_(True)
 
     def real(x, lam, ga, gx, h0):
-        return rg_lru(x, lam, ga, gx, c=8.0, input_norm=True, h0=h0)
+        return rg_lru(x, lam, ga, gx, c=8.0, input_norm=True, h0=h0, backend=scan_backend)
 
     def cplx(x, lam, ga, gx, h0):
         theta_log = torch.full_like(lam, math.log(0.3))
-        return torch.view_as_real(complex_lru(x, lam - 3.0, theta_log, ga, gx, c=8.0, h0=h0.to(torch.complex128)))
+        scan = functools.partial(linear_scan, backend=scan_backend)
+        return torch.view_as_real(complex_lru(x, lam - 3.0, theta_log, ga, gx, c=8.0, h0=h0.to(torch.complex128),
+                                              scan=scan))
 
     assert torch.autograd.gradcheck(real, args)
     assert torch.autograd.gradcheck(cplx, args)
@@ -179,7 +181,7 @@ def test_rg_lru_fast_scan_matches_loop_scan():
     torch.manual_seed(2)
     x, ga, gx = (torch.randn(3, 40, 6) for _ in range(3))
     lam, h0 = torch.randn(6), torch.randn(3, 6)
-    torch.testing.assert_close(rg_lru(x, lam, ga, gx, h0=h0), rg_lru(x, lam, ga, gx, h0=h0, scan=_scan_loop))
+    torch.testing.assert_close(rg_lru(x, lam, ga, gx, h0=h0), rg_lru_reference(x, lam, ga, gx, h0=h0, scan=_scan_loop))
 
 
 def test_closed_recurrence_gate_copies_the_state():

@@ -20,7 +20,7 @@ import textwrap
 import pytest
 import torch
 
-from blockyard.kernels import SCAN_BACKENDS, build, linear_scan, scan_backend_info, scan_reference, set_scan_backend
+from blockyard.kernels import SCAN_BACKENDS, build, check_backend, linear_scan, scan_backend_info, scan_reference
 from blockyard.kernels import scan as scan_mod
 
 FAST = ("chunked", "compiled")
@@ -38,14 +38,12 @@ def compiled_ops():
 
 
 @pytest.fixture
-def backend(request, compiled_ops):
+def backend(request):
+    """The backend under test; only ``compiled`` needs the kernel (the chunked comparisons run
+    on machines without a compiler too)."""
+    if request.param == "compiled":
+        request.getfixturevalue("compiled_ops")
     return request.param
-
-
-@pytest.fixture(autouse=True)
-def _restore_default_backend():
-    yield
-    set_scan_backend("auto")
 
 
 def random_inputs(shape, dtype=torch.float32, seed=0, h0=True):
@@ -237,22 +235,23 @@ def test_invalid_inputs_raise_clear_errors(args, error, words, backend):
 
 def test_unknown_backend_names_the_allowed_ones():
     with pytest.raises(ValueError, match="allowed: auto, reference, chunked, compiled"):
-        set_scan_backend("nope")
+        check_backend("nope")
     a, b, _ = random_inputs((1, 3, 2))
     with pytest.raises(ValueError, match="allowed: auto, reference, chunked, compiled"):
         linear_scan(a, b, backend="fast")
 
 
-def test_set_scan_backend_sets_what_auto_runs(compiled_ops, monkeypatch):
+def test_the_backend_is_explicit_with_no_process_default(compiled_ops, monkeypatch):
+    # Issue 14: no module-global backend; what a call gets depends on its own argument only.
+    assert not hasattr(scan_mod, "set_scan_backend") and not hasattr(scan_mod, "_default_backend")
     a, b, h0 = random_inputs((2, 6, 3))
-    assert scan_mod.resolve_backend(a) == "compiled"
     calls = []
     monkeypatch.setattr(scan_mod, "scan_chunked", lambda *xs: calls.append("chunked") or scan_reference(*xs))
-    set_scan_backend("chunked")
-    linear_scan(a, b, h0)
-    assert calls == ["chunked"] and scan_backend_info()["default"] == "chunked"
-    # An explicit backend wins over the default.
-    assert scan_mod.resolve_backend(a, "compiled") == "compiled"
+    linear_scan(a, b, h0, backend="chunked")
+    linear_scan(a, b, h0)  # auto, unaffected by the call before: compiled here
+    assert calls == ["chunked"] and scan_mod.resolve_backend(a) == "compiled"
+    assert scan_backend_info("chunked")["requested"] == "chunked"
+    assert scan_backend_info()["resolved_cpu_float32"] == "compiled"
 
 
 def test_auto_rules_by_device_and_dtype(compiled_ops):
@@ -269,7 +268,7 @@ def test_auto_rules_by_device_and_dtype(compiled_ops):
 
 def test_backend_info_reports_the_build(compiled_ops):
     info = scan_backend_info()
-    assert info["resolved_cpu_float32"] == "compiled"
+    assert info["resolved_cpu_float32"] == "compiled" and info["rg_lru_cpu"] == "fused C++ op"
     assert info["compiled"]["state"] == "built" and info["compiled"]["error"] is None
     assert "-O3" in info["compiled"]["cflags"]
 

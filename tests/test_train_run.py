@@ -554,11 +554,9 @@ def test_scan_backend_and_threads_applied(workdir):
     assert summary["status"] == "done" and seen == [3]  # applied while training
     assert read_metrics(out / "metrics.jsonl")[-1]["probe_threads"] == 3.0  # hook metrics reach the val line
     env = json.loads((out / "env.json").read_text())
-    assert env["scan_backend"]["default"] == "reference" and env["threads"] == 3
+    assert env["scan_backend"]["requested"] == "reference" and env["threads"] == 3
+    assert env["scan_backend"]["rg_lru_cpu"] == "PyTorch ops around the reference scan"
     assert torch.get_num_threads() == threads  # and restored after
-    from blockyard.kernels import set_scan_backend
-
-    set_scan_backend("auto")
 
 
 def test_token_budget_sets_the_number_of_steps(workdir):

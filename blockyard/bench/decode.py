@@ -4,13 +4,18 @@ For each model (the laptop-size presets: global attention, local attention, recu
 2:1 hybrid) the prompt is stepped once at batch 1 up to the longest context, keeping the state
 at each measured context L (states are immutable, so keeping them is free of copies). At each
 L, ``reps`` decode steps are timed from that same state (so the context stays L), at batch 1
-and, tiling the state over the batch, at a large batch. Reported: ms per step, tokens/s
-(batch / step time), the state's measured bytes (``state_nbytes``) beside the cost model's
-prediction (``blockyard.cost.state_bytes``). Combinations whose predicted state exceeds
-``max_state_mib`` are skipped (a global-attention KV cache at batch 64 and 4k tokens is GBs).
+and, tiling the state over the batch, at a large batch; the models take turns, ``rounds`` times
+(round-robin, so a busy machine slows all alike), and the median round counts. At batch 1 the
+ratios of issue 19's decode targets are printed and kept in the JSON (``decode_ratios``).
+Reported: ms per step, tokens/s (batch / step time), the state's measured bytes
+(``state_nbytes``) beside the cost model's prediction (``blockyard.cost.state_bytes``).
+Combinations whose predicted state exceeds ``max_state_mib`` are skipped (a global-attention
+KV cache at batch 64 and 4k tokens is GBs).
 
 The figures measure this implementation on this machine: the KV cache grows by concatenation
-(one copy of the cache per step), which is what ``blockyard sample`` runs.
+(one copy of the cache per step), the local-attention ring buffer is copied once per step
+(states are never written in place), the recurrence steps through one fused C++ call where
+the kernels built; this is what ``blockyard sample`` runs.
 """
 
 from __future__ import annotations
@@ -86,26 +91,84 @@ def time_steps(model: torch.nn.Module, states: list[Any], batch: int, reps: int)
     return statistics.median(times)
 
 
-def bench_model(name: str, cfg: Config, contexts: list[int], batches: list[int], reps: int,
-                max_state_bytes: int) -> list[dict[str, Any]]:
+@dataclasses.dataclass
+class _Subject:
+    """One benchmarked model: its config, the module in eval mode and its states by context."""
+
+    name: str
+    cfg: Config
+    model: torch.nn.Module
+    snapshots: dict[int, list[Any]]
+
+
+def prepare(name: str, cfg: Config, contexts: list[int]) -> _Subject:
     torch.manual_seed(0)
     model = build_model(cfg.model, VOCAB).eval()
-    snapshots = states_at(model, contexts)
+    return _Subject(name, cfg, model, states_at(model, contexts))
+
+
+def bench_models(subjects: list[_Subject], contexts: list[int], batches: list[int], reps: int, rounds: int,
+                 max_state_bytes: int) -> list[dict[str, Any]]:
+    """Rows per (model, context, batch); at each (context, batch) the models are timed in turn,
+    ``rounds`` times round-robin (so load from other processes hits all alike), median of rounds."""
     rows = []
     for L in contexts:
         for batch in batches:
-            predicted = cost.state_bytes(cfg, L, batch=batch)
-            row = {"model": name, "pattern": list(cfg.model.pattern), "context": L, "batch": batch,
-                   "predicted_state_bytes": predicted}
-            if predicted > max_state_bytes:
-                rows.append({**row, "skipped": f"state {cost.format_bytes(predicted)} > budget"})
-                continue
-            states = snapshots[L] if batch == 1 else tile_state(snapshots[L], batch)
-            step_s = time_steps(model, states, batch, reps)
-            rows.append({**row, "step_ms": 1e3 * step_s, "tokens_per_s": batch / step_s,
-                         "state_bytes": state_nbytes(states)})
-            del states
+            timed: dict[str, list[float]] = {}
+            states: dict[str, Any] = {}
+            for sub in subjects:
+                predicted = cost.state_bytes(sub.cfg, L, batch=batch)
+                if predicted <= max_state_bytes:
+                    states[sub.name] = sub.snapshots[L] if batch == 1 else tile_state(sub.snapshots[L], batch)
+                    timed[sub.name] = []
+            for _ in range(rounds):
+                for sub in subjects:
+                    if sub.name in states:
+                        timed[sub.name].append(time_steps(sub.model, states[sub.name], batch, reps))
+            for sub in subjects:
+                predicted = cost.state_bytes(sub.cfg, L, batch=batch)
+                row = {"model": sub.name, "pattern": list(sub.cfg.model.pattern), "context": L, "batch": batch,
+                       "predicted_state_bytes": predicted}
+                if sub.name not in states:
+                    rows.append({**row, "skipped": f"state {cost.format_bytes(predicted)} > budget"})
+                    continue
+                step_s = statistics.median(timed[sub.name])
+                rows.append({**row, "step_ms": 1e3 * step_s, "tokens_per_s": batch / step_s,
+                             "state_bytes": state_nbytes(states[sub.name])})
+            states.clear()
     return rows
+
+
+# Issue 19's decode targets at batch 1: (name, numerator model, denominator model, context (None:
+# the shortest / longest measured), figure, comparison, bound). Step-time ratios: lower is better.
+DECODE_TARGETS = (
+    ("recurrence / global step time, shortest context", "recurrence", "global", "shortest", "step_ms", "<=", 1.0),
+    ("hybrid / global step time, shortest context", "hybrid", "global", "shortest", "step_ms", "<=", 1.1),
+    ("recurrence / global tokens/s, longest context", "recurrence", "global", "longest", "tokens_per_s", ">=", 8.0),
+)
+
+
+def decode_ratios(rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """The target ratios at batch 1 from ``rows`` (those whose models were measured)."""
+    done = {(r["model"], r["context"]): r for r in rows if r["batch"] == 1 and "skipped" not in r}
+    contexts = sorted({c for _, c in done})
+    out = []
+    for name, num, den, where, figure, op, bound in DECODE_TARGETS:
+        if not contexts:
+            break
+        ctx = contexts[0] if where == "shortest" else contexts[-1]
+        a, b = done.get((num, ctx)), done.get((den, ctx))
+        if a is None or b is None:
+            continue
+        ratio = a[figure] / b[figure]
+        met = ratio <= bound if op == "<=" else ratio >= bound
+        out.append({"name": name, "context": ctx, "ratio": ratio, "target": f"{op} {bound}", "met": met})
+    return out
+
+
+def format_ratios(ratios: list[dict[str, Any]]) -> str:
+    return "\n".join(f"{r['name']} ({r['context']}): {r['ratio']:.2f}x (target {r['target']}: "
+                     f"{'met' if r['met'] else 'NOT met'})" for r in ratios)
 
 
 def format_rows(rows: list[dict[str, Any]]) -> str:
@@ -156,7 +219,7 @@ def plot_rows(rows: list[dict[str, Any]], path: Path) -> None:
 
 
 def decode_bench(*, models: list[str] | None = None, contexts: list[int] | None = None,
-                 batches: list[int] | None = None, reps: int = 8, max_state_mib: float = 512.0,
+                 batches: list[int] | None = None, reps: int = 8, rounds: int = 3, max_state_mib: float = 512.0,
                  overrides: list[str] | None = None, echo: Callable[[str], None] | None = None) -> list[dict[str, Any]]:
     """Rows of the decode benchmark (see the module docstring); ``echo`` gets a line per model."""
     names = models or list(MODELS)
@@ -166,18 +229,20 @@ def decode_bench(*, models: list[str] | None = None, contexts: list[int] | None 
     contexts = sorted(contexts or [128, 512, 1024, 2048, 4096])
     if contexts[0] < 1:
         raise UserError("--contexts: lengths must be >= 1")
-    rows = []
+    subjects = []
     for name in names:
         preset, extra = MODELS[name]
         cfg = load_config(REPO / "configs" / preset, [*extra, *(overrides or [])])
         if echo:
-            echo(f"{name}: prefilling {max(contexts)} tokens by stepping, then timing")
-        rows += bench_model(name, cfg, contexts, batches or [1, 64], reps, int(max_state_mib * 2**20))
-    return rows
+            echo(f"{name}: prefilling {max(contexts)} tokens by stepping")
+        subjects.append(prepare(name, cfg, contexts))
+    if echo:
+        echo(f"timing {len(subjects)} models round-robin, {rounds} rounds")
+    return bench_models(subjects, contexts, batches or [1, 64], reps, rounds, int(max_state_mib * 2**20))
 
 
 def bench_decode_command(*, models: list[str] | None = None, contexts: list[int] | None = None,
-                         batches: list[int] | None = None, reps: int = 8, max_state_mib: float = 512.0,
+                         batches: list[int] | None = None, reps: int = 8, rounds: int = 3, max_state_mib: float = 512.0,
                          json_path: str | None = None, plot_path: str | None = None,
                          overrides: list[str] | None = None, echo: Callable[[str], None] | None = None,
                          threads: int = 1) -> str:
@@ -188,15 +253,20 @@ def bench_decode_command(*, models: list[str] | None = None, contexts: list[int]
     if threads:
         torch.set_num_threads(threads)
     try:
-        rows = decode_bench(models=models, contexts=contexts, batches=batches, reps=reps,
+        rows = decode_bench(models=models, contexts=contexts, batches=batches, reps=reps, rounds=rounds,
                             max_state_mib=max_state_mib, overrides=overrides, echo=echo)
     finally:
         used = torch.get_num_threads()
         torch.set_num_threads(before)
-    text = f"decode: median of {reps} steps from the same state, {used} thread(s)\n" + format_rows(rows)
+    ratios = decode_ratios(rows)
+    text = (f"decode: median over {rounds} round-robin rounds of the median of {reps} steps from the same state, "
+            f"{used} thread(s)\n" + format_rows(rows))
+    if ratios:
+        text += "\nbatch-1 ratios, measured side by side:\n" + format_ratios(ratios)
     if json_path:
         Path(json_path).parent.mkdir(parents=True, exist_ok=True)
-        Path(json_path).write_text(json.dumps({"threads": used, "reps": reps, "rows": rows}, indent=2) + "\n")
+        Path(json_path).write_text(json.dumps({"threads": used, "reps": reps, "rounds": rounds, "rows": rows,
+                                               "ratios": ratios}, indent=2) + "\n")
         text += f"\nwrote {json_path}"
     if plot_path:
         plot_rows(rows, Path(plot_path))

@@ -61,15 +61,19 @@ def _forward_bucket(event: Any) -> str | None:
 
 
 def _is_scan(name: str) -> bool:
-    """The range of a scan autograd Function (``_CompiledScan``, ``_ChunkedScan``) or of its backward."""
+    """The range of a scan autograd Function (``_ChunkedScan``) or of its backward, or of a compiled
+    kernel's custom op (``blockyard::linear_scan``, the fused ``blockyard::rg_lru``, which holds the
+    RG-LRU's gates and decay too) or of its backward."""
     name = name.removeprefix("autograd::engine::evaluate_function: ")
-    return name.startswith("_") and "Scan" in name
+    compiled = name.startswith(("blockyard::", "GeneratedBackwardFor_blockyard_"))
+    return compiled or (name.startswith("_") and "Scan" in name)
 
 
 def event_buckets(events: list[Any]) -> list[tuple[Any, str]]:
     """Each profiled event with the bucket its time is charged to: a block kind (forward + its
-    backward), ``scan`` (the linear scan inside recurrences, forward + backward, apart from its
-    mixer), ``optimizer`` (AdamW step and zero_grad), ``other`` (clipping, schedule, loss bookkeeping).
+    backward), ``scan`` (the linear scan inside recurrences, or the fused RG-LRU op, forward +
+    backward, apart from its mixer), ``optimizer`` (AdamW step and zero_grad), ``other`` (clipping,
+    schedule, loss bookkeeping).
 
     A backward op is charged to the forward op it differentiates: the autograd engine's
     ``evaluate_function`` range carries that op's sequence number.
@@ -119,7 +123,7 @@ def profile_step(case: BenchCase, cache_dir: Path, warmup: int = 3, threads: int
     runtime, _ = resolve_runtime(cfg.runtime)
     data = load_data(cfg)
     torch.manual_seed(0)
-    model = build_model(cfg.model, data.vocab_size)
+    model = build_model(cfg.model, data.vocab_size, scan_backend=runtime.scan_backend)
     optimizer = build_optimizer(model, cfg.train)
     scheduler = build_scheduler(optimizer, cfg.train, cfg.train.steps)
     for i in range(warmup):

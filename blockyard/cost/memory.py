@@ -20,9 +20,8 @@ practice, no source). Under bf16 autocast the estimate stays the fp32 one, an up
 
 from __future__ import annotations
 
-import contextlib
 import dataclasses
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from typing import Any
 
 import torch
@@ -52,22 +51,6 @@ def _fake_mode() -> Any:
     from torch._subclasses.fake_tensor import FakeTensorMode
 
     return FakeTensorMode()
-
-
-@contextlib.contextmanager
-def _portable_scan() -> Iterator[None]:
-    """The chunked scan backend while estimating: the compiled C++ op has no fake-tensor kernel.
-
-    Both backends save the same tensors for backward (a, h and the start state).
-    """
-    from blockyard.kernels import get_scan_backend, set_scan_backend
-
-    before = get_scan_backend()
-    set_scan_backend("chunked")
-    try:
-        yield
-    finally:
-        set_scan_backend(before)
 
 
 def saved_bytes_by_part(model: nn.Module, tokens: torch.Tensor) -> tuple[dict[str, int], int, int]:
@@ -115,12 +98,18 @@ def saved_bytes_by_part(model: nn.Module, tokens: torch.Tensor) -> tuple[dict[st
 
 
 def estimate_activation_memory(model_cfg: ModelConfig, vocab_size: int, batch: int, seq_len: int, *,
-                               activation_checkpointing: bool = False) -> ActivationEstimate:
-    """Activation bytes of one training micro-batch of ``batch`` x ``seq_len`` tokens (no allocation)."""
+                               activation_checkpointing: bool = False, scan_backend: str = "auto"
+                               ) -> ActivationEstimate:
+    """Activation bytes of one training micro-batch of ``batch`` x ``seq_len`` tokens (no allocation).
+
+    ``scan_backend`` (``runtime.scan``): the compiled kernels are torch custom ops with fake-tensor
+    kernels (``blockyard.kernels.ops``), so the estimate traces the path the run will take.
+    """
     from blockyard.model import build_model
 
-    with _portable_scan(), _fake_mode():
-        model = build_model(model_cfg, vocab_size)  # checkpointing off: we want each block's own saves
+    with _fake_mode():
+        # checkpointing off: we want each block's own saves
+        model = build_model(model_cfg, vocab_size, scan_backend=scan_backend)
         model.train()
         tokens = torch.zeros(batch, seq_len, dtype=torch.long)
         parts, largest, block_input = saved_bytes_by_part(model, tokens)
@@ -175,7 +164,8 @@ def memory_warning(cfg: Config, vocab_size: int, available_bytes: int | None = N
         return None
     batch, seq_len = cfg.train.batch_size, cfg.data.seq_len
     checkpointing = cfg.runtime.activation_checkpointing
-    est = estimate_activation_memory(cfg.model, vocab_size, batch, seq_len, activation_checkpointing=checkpointing)
+    est = estimate_activation_memory(cfg.model, vocab_size, batch, seq_len, activation_checkpointing=checkpointing,
+                                     scan_backend=cfg.runtime.scan)
     if est.total_bytes <= available:
         return None
     per_sequence = est.total_bytes / batch  # activations are linear in the batch
@@ -184,7 +174,8 @@ def memory_warning(cfg: Config, vocab_size: int, available_bytes: int | None = N
     if fits >= 1:
         hints.append(f"train.batch_size <= {fits} (with train.grad_accum to keep the tokens per step)")
     if not checkpointing:
-        ckpt = estimate_activation_memory(cfg.model, vocab_size, batch, seq_len, activation_checkpointing=True)
+        ckpt = estimate_activation_memory(cfg.model, vocab_size, batch, seq_len, activation_checkpointing=True,
+                                          scan_backend=cfg.runtime.scan)
         hints.append(f"runtime.activation_checkpointing: true (estimate {_gib(ckpt.total_bytes)})")
     if not hints:
         hints.append("a shorter data.seq_len or a smaller model")

@@ -34,7 +34,8 @@ def measure_tokens_per_s(cfg: Config, threads: int, steps: int = TIMED_STEPS) ->
         runtime, _ = resolve_runtime(cfg.runtime)  # its warnings reach the user when the cell trains
         torch.manual_seed(0)
         vocab = vocab_size(cfg)
-        model = build_model(cfg.model, vocab, activation_checkpointing=cfg.runtime.activation_checkpointing)
+        model = build_model(cfg.model, vocab, activation_checkpointing=cfg.runtime.activation_checkpointing,
+                            scan_backend=runtime.scan_backend)
         model.to(runtime.device)
         opt = build_optimizer(model, cfg.train)
         sched = build_scheduler(opt, cfg.train, steps + 1)

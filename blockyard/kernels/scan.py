@@ -17,8 +17,10 @@ Backends:
   products of a ever happens, so decays near 0 cannot blow up.
 - ``compiled``: the C++ kernel of ``scan_cpu.cpp`` (CPU, real and complex), parallel over batch x
   channels, sequential in time.
-- ``auto``: the module default set by ``set_scan_backend`` (config key ``runtime.scan``); when
-  that is ``auto`` too: compiled for CPU tensors when the kernel builds, else chunked.
+- ``auto``: compiled for CPU tensors when the kernel builds, else chunked.
+
+The backend is always passed explicitly (the trainer's ``Runtime.scan_backend``, config key
+``runtime.scan``, handed to the model): there is no process-wide default.
 
 Backward of every fast path is itself a reverse scan (chain rule through h_t = a_t h_{t-1} + b_t;
 complex values follow PyTorch's convention grad_x(w x) = grad * conj(w)):
@@ -33,53 +35,47 @@ import math
 from typing import Any
 
 import torch
-from torch.autograd.function import once_differentiable
 
-from blockyard.kernels import build
+from blockyard.kernels import build, ops
 
 SCAN_BACKENDS = ("auto", "reference", "chunked", "compiled")
 COMPILED_DTYPES = (torch.float32, torch.float64, torch.complex64, torch.complex128)
 # Up to this many steps a plain loop is cheapest; longer sequences are cut into chunks.
 SEQUENTIAL_MAX_STEPS = 8
 
-_default_backend = "auto"
-
 
 # ----------------------------------------------------------------------------- backend choice
 
 
-def set_scan_backend(name: str) -> None:
-    """Set the backend that ``linear_scan(..., backend="auto")`` uses (config key ``runtime.scan``)."""
-    global _default_backend
+def check_backend(name: str) -> str:
+    """``name`` if it is one of SCAN_BACKENDS, else ValueError naming the allowed ones."""
     if name not in SCAN_BACKENDS:
         raise ValueError(f"unknown scan backend {name!r}; allowed: {', '.join(SCAN_BACKENDS)}")
-    _default_backend = name
-
-
-def get_scan_backend() -> str:
-    """The module default set by ``set_scan_backend`` (``auto`` unless changed)."""
-    return _default_backend
+    return name
 
 
 def resolve_backend(a: torch.Tensor, backend: str = "auto") -> str:
-    """The concrete backend ``linear_scan`` would run for inputs like ``a`` (may build the kernel)."""
-    if backend not in SCAN_BACKENDS:
-        raise ValueError(f"unknown scan backend {backend!r}; allowed: {', '.join(SCAN_BACKENDS)}")
-    if backend == "auto":
-        backend = _default_backend
-    if backend != "auto":
+    """The concrete backend ``linear_scan`` runs for inputs like ``a`` (may build the kernel).
+
+    ``auto``: compiled for CPU tensors of a compiled dtype when the kernel builds, else chunked.
+    """
+    if check_backend(backend) != "auto":
         return backend
     if a.device.type == "cpu" and a.dtype in COMPILED_DTYPES and build.load_scan_ops() is not None:
         return "compiled"
     return "chunked"
 
 
-def scan_backend_info() -> dict[str, Any]:
-    """For env.json: the default, what it resolves to for CPU float32, and the kernel's build status."""
+def scan_backend_info(backend: str = "auto") -> dict[str, Any]:
+    """For env.json: the requested backend (``runtime.scan``), what it resolves to for CPU float32,
+    and the kernel's build status."""
     probe = torch.empty(0, dtype=torch.float32)
+    resolved = resolve_backend(probe, backend)
     return {
-        "default": _default_backend,
-        "resolved_cpu_float32": resolve_backend(probe),
+        "requested": check_backend(backend),
+        "resolved_cpu_float32": resolved,
+        # The real RG-LRU runs as the fused C++ op where the backend resolves to compiled.
+        "rg_lru_cpu": "fused C++ op" if resolved == "compiled" else f"PyTorch ops around the {resolved} scan",
         "compiled": build.build_status(),
     }
 
@@ -229,41 +225,12 @@ def scan_chunked(a: torch.Tensor, b: torch.Tensor, h0: torch.Tensor | None = Non
 # ----------------------------------------------------------------------------- compiled (C++)
 
 
-def _scan_ops() -> Any:
-    ops = build.load_scan_ops()
-    if ops is None:
-        raise RuntimeError(f"scan backend 'compiled' is unavailable: {build.build_status()['error']}")
-    return ops
-
-
-class _CompiledScan(torch.autograd.Function):
-    """The C++ kernel, forward and reverse-scan backward (first derivatives only)."""
-
-    @staticmethod
-    def forward(ctx, a: torch.Tensor, b: torch.Tensor, h0: torch.Tensor | None) -> torch.Tensor:
-        start = _zeros_state(a) if h0 is None else h0
-        h = _scan_ops().forward(a, b, start)
-        ctx.save_for_backward(a, h, start)
-        ctx.h0_given = h0 is not None
-        return h
-
-    @staticmethod
-    @once_differentiable
-    def backward(ctx, grad_h: torch.Tensor):
-        a, h, start = ctx.saved_tensors
-        need_a, need_b, need_h0 = ctx.needs_input_grad
-        grad_a, grad_b, grad_h0 = _scan_ops().backward(grad_h.contiguous(), a, h, start, need_a)
-        return grad_a if need_a else None, grad_b if need_b else None, grad_h0 if need_h0 and ctx.h0_given else None
-
-
 def scan_compiled(a: torch.Tensor, b: torch.Tensor, h0: torch.Tensor | None = None) -> torch.Tensor:
-    """The C++ kernel (CPU; float32/64, complex64/128); raises RuntimeError if it could not be built."""
+    """The C++ kernel (CPU; float32/64, complex64/128) as the custom op ``blockyard::linear_scan``
+    (fake kernel and autograd included); raises RuntimeError if it could not be built."""
     if a.device.type != "cpu":
         raise ValueError(f"scan backend 'compiled' runs on CPU tensors only, got {a.device}; use 'chunked' or 'auto'")
     if a.dtype not in COMPILED_DTYPES:
         raise TypeError(f"scan backend 'compiled' supports {[str(d) for d in COMPILED_DTYPES]}, got {a.dtype}")
-    a, b = a.contiguous(), b.contiguous()
-    h0 = None if h0 is None else h0.contiguous()
-    if _needs_graph(a, b, h0):
-        return _CompiledScan.apply(a, b, h0)
-    return _scan_ops().forward(a, b, _zeros_state(a) if h0 is None else h0)
+    start = _zeros_state(a) if h0 is None else h0.contiguous()
+    return ops.linear_scan_op(a.contiguous(), b.contiguous(), start)

@@ -160,11 +160,15 @@ def cached_attention(q: torch.Tensor, keys: torch.Tensor, values: torch.Tensor) 
 
 
 def ring_write(buffer: torch.Tensor, item: torch.Tensor, position: int, window: int) -> torch.Tensor:
-    """A new buffer ``(B, Hkv, <= W, d)`` with ``item: (B, Hkv, 1, d)`` appended (not yet full) or in slot p % W."""
+    """A new buffer ``(B, Hkv, <= W, d)`` with ``item: (B, Hkv, 1, d)`` appended (not yet full) or in slot p % W.
+
+    Out of place (step states are never written to): one copy of the buffer with the slot replaced
+    (``index_copy``), rather than slicing around the slot and concatenating three pieces.
+    """
     if buffer.shape[2] < window:
         return torch.cat((buffer, item), dim=2)
-    slot = position % window
-    return torch.cat((buffer[:, :, :slot], item, buffer[:, :, slot + 1 :]), dim=2)
+    slot = torch.tensor([position % window], device=buffer.device)
+    return buffer.index_copy(2, slot, item)
 
 
 # ----------------------------------------------------------------------------- modules

@@ -13,7 +13,11 @@ with recurrence width C = round(width_mult * D). The RG-LRU (their eqs. 1-4), pe
 
 W_a, W_x are block-diagonal. The decay lives in log space and sqrt(1 - a^2) is computed as
 sqrt(-expm1(2 log a)), which keeps precision for a close to 1; the state is float32 even under
-bf16 autocast. The linear recurrence itself runs through ``blockyard.kernels.linear_scan``.
+bf16 autocast. Two implementations of the same math: ``rg_lru_reference`` composes PyTorch ops
+around ``blockyard.kernels.linear_scan`` (the reference, and the fallback without a compiler);
+the fused C++ op ``blockyard.kernels.ops.rg_lru_fused`` does decay, input normalisation, input
+gate and scan in one pass. ``rg_lru(..., backend=)`` picks one: the scan backend (config key
+``runtime.scan``) is handed to the block by the model builder, never read from a global.
 
 Ablation knobs (``RecurrenceOptions``): ``gate: false`` is a fixed-decay diagonal recurrence in the
 style of S4D (Gu et al. 2022): a = sigmoid(Lambda), constant over time, and no input gate either,
@@ -25,6 +29,7 @@ the style of the LRU (Orvieto et al. 2023); ``input_norm: false`` drops the sqrt
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
 from collections.abc import Callable
 
@@ -33,7 +38,8 @@ import torch.nn.functional as F
 from torch import nn
 
 from blockyard.errors import ConfigError
-from blockyard.kernels import linear_scan
+from blockyard.kernels import check_backend, linear_scan, resolve_backend
+from blockyard.kernels.ops import RG_LRU_DTYPES, compiled_ops, rg_lru_fused
 from blockyard.mixers.base import Mixer, register_mixer
 from blockyard.schema import opt
 
@@ -158,7 +164,39 @@ def _compute_dtype(x: torch.Tensor) -> torch.dtype:
     return torch.promote_types(x.dtype, torch.float32)
 
 
+def uses_fused_op(x: torch.Tensor, backend: str) -> bool:
+    """Whether ``rg_lru`` runs the fused C++ op for inputs like ``x`` under scan ``backend``: where
+    ``backend`` resolves to ``compiled`` (``auto``: the kernels built), for CPU float32 / bfloat16 /
+    float64 inputs."""
+    if x.device.type != "cpu" or x.dtype not in RG_LRU_DTYPES:
+        return False
+    return resolve_backend(x.new_empty(0, dtype=_compute_dtype(x)), backend) == "compiled"
+
+
 def rg_lru(
+    x: torch.Tensor,
+    decay: torch.Tensor,
+    gate_a_logits: torch.Tensor | None = None,
+    gate_x_logits: torch.Tensor | None = None,
+    *,
+    c: float = 8.0,
+    input_norm: bool = True,
+    h0: torch.Tensor | None = None,
+    backend: str = "auto",
+) -> torch.Tensor:
+    """The RG-LRU (De et al. 2024, eqs. 1-4): all states h (B, T, C) in float32 (or float64).
+
+    Runs the fused op where ``backend`` (``runtime.scan``) resolves to the compiled kernels, else
+    ``rg_lru_reference`` with that scan backend; both compute the same math.
+    """
+    both_or_none = (gate_a_logits is None) == (gate_x_logits is None)
+    if both_or_none and uses_fused_op(x, backend):
+        return rg_lru_fused(x, decay, gate_a_logits, gate_x_logits, c=c, input_norm=input_norm, h0=h0)
+    scan = functools.partial(linear_scan, backend=backend)
+    return rg_lru_reference(x, decay, gate_a_logits, gate_x_logits, c=c, input_norm=input_norm, h0=h0, scan=scan)
+
+
+def rg_lru_reference(
     x: torch.Tensor,
     decay: torch.Tensor,
     gate_a_logits: torch.Tensor | None = None,
@@ -169,7 +207,7 @@ def rg_lru(
     h0: torch.Tensor | None = None,
     scan: Scan = linear_scan,
 ) -> torch.Tensor:
-    """The RG-LRU (De et al. 2024, eqs. 1-4): all states h (B, T, C) in float32 (or float64).
+    """The RG-LRU (De et al. 2024, eqs. 1-4) as PyTorch ops around ``scan``: states h (B, T, C) in float32 (or float64).
 
     x, gate logits: (B, T, C); decay = Lambda: (C,). Gate logits None drop that gate: no
     ``gate_a_logits`` gives the fixed decay a = sigmoid(Lambda), no ``gate_x_logits`` gives i_t = 1.
@@ -279,9 +317,10 @@ class CausalDepthwiseConv(nn.Module):
 class RGLRU(nn.Module):
     """The RG-LRU's parameters (gates and decay), real or complex; the math is ``rg_lru`` / ``complex_lru``."""
 
-    def __init__(self, width: int, options: RecurrenceOptions) -> None:
+    def __init__(self, width: int, options: RecurrenceOptions, *, scan_backend: str = "auto") -> None:
         super().__init__()
         self.options = options
+        self.scan_backend = check_backend(scan_backend)
         self.gate_a = BlockDiagonalLinear(width, options.gate_blocks) if options.gate else None
         self.gate_x = BlockDiagonalLinear(width, options.gate_blocks) if options.gate else None
         if options.complex:
@@ -314,10 +353,13 @@ class RGLRU(nn.Module):
             ra = None if self.gate_a is None else self.gate_a(xf)
             rx = None if self.gate_x is None else self.gate_x(xf)
             if opts.complex:
-                h = complex_lru(xf, self.nu_log, self.theta_log, ra, rx, c=opts.c, input_norm=opts.input_norm, h0=h0)
+                scan = functools.partial(linear_scan, backend=self.scan_backend)
+                h = complex_lru(xf, self.nu_log, self.theta_log, ra, rx, c=opts.c, input_norm=opts.input_norm, h0=h0,
+                                scan=scan)
                 y = h.real
             else:
-                h = rg_lru(xf, self.decay, ra, rx, c=opts.c, input_norm=opts.input_norm, h0=h0)
+                h = rg_lru(xf, self.decay, ra, rx, c=opts.c, input_norm=opts.input_norm, h0=h0,
+                           backend=self.scan_backend)
                 y = h
         return y.to(x.dtype), h[:, -1]
 
@@ -330,14 +372,18 @@ class RecurrenceBlock(Mixer):
     summary = "gated linear recurrence block around the RG-LRU (De et al. 2024), with ablation knobs"
     Options = RecurrenceOptions
 
-    def __init__(self, width: int, options: RecurrenceOptions, *, layer: int, depth: int) -> None:
+    # The model builder passes ``scan_backend`` (config key ``runtime.scan``) to mixers that set this.
+    takes_scan_backend = True
+
+    def __init__(self, width: int, options: RecurrenceOptions, *, layer: int, depth: int,
+                 scan_backend: str = "auto") -> None:
         super().__init__(width, options, layer=layer, depth=depth)
         options.check_width("", width)
         rec = options.recurrence_width(width)
         self.rec_width = rec
         self.proj_in = nn.Linear(width, 2 * rec, bias=False)  # gate branch | recurrent branch
         self.conv = CausalDepthwiseConv(rec, options.conv_width) if options.conv_width > 0 else None
-        self.lru = RGLRU(rec, options)
+        self.lru = RGLRU(rec, options, scan_backend=scan_backend)
         self.proj_out = nn.Linear(rec, width, bias=False)
         self.proj_out.residual_out = True
 
@@ -368,9 +414,32 @@ class RecurrenceBlock(Mixer):
         )
 
     def step(self, x_t: torch.Tensor, state: RecurrenceState) -> tuple[torch.Tensor, RecurrenceState]:
+        if self._fused_step_applies(x_t):
+            return self._fused_step(x_t, state)
         y, h, tail = self._mix(x_t[:, None], state)
         tail = state.conv_tail if tail is None else tail.to(state.conv_tail.dtype)
         return y[:, 0], RecurrenceState(h=h.to(state.h.dtype), conv_tail=tail)
+
+    def _fused_step(self, x_t: torch.Tensor, state: RecurrenceState) -> tuple[torch.Tensor, RecurrenceState]:
+        """The decode step with conv, gates and RG-LRU update in one C++ call (``rglru_step``): the same
+        math as ``_mix`` on one token, with a handful of ops instead of a few dozen. Returns a new state."""
+        gate, rec = self.proj_in(x_t).chunk(2, dim=-1)
+        lru, conv = self.lru, self.conv
+        weights = [None] * 2 if conv is None else [conv.weight, conv.bias]
+        for g in (lru.gate_a, lru.gate_x):
+            weights += [None] * 2 if g is None else [g.weight, g.bias]
+        h, tail = compiled_ops().rglru_step(rec.float().contiguous(), state.conv_tail, *weights, lru.decay,
+                                            state.h, float(self.options.c), self.options.input_norm)
+        y = self.proj_out(F.gelu(gate) * h.to(gate.dtype))
+        return y, RecurrenceState(h=h, conv_tail=tail)
+
+    def _fused_step_applies(self, x_t: torch.Tensor) -> bool:
+        """The fused step is for inference (no autograd through it), real float32 states, the compiled backend."""
+        if self.options.complex or x_t.dtype != torch.float32:
+            return False
+        if torch.is_grad_enabled() and (x_t.requires_grad or any(p.requires_grad for p in self.parameters())):
+            return False
+        return uses_fused_op(x_t, self.lru.scan_backend)
 
     # ----- cost model hooks
 

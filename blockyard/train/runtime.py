@@ -26,7 +26,8 @@ class Runtime:
     threads: int
     precision: str  # effective: fp32, bf16 or bf16_emulated
     precision_reason: str
-    scan: dict[str, Any]
+    scan_backend: str  # runtime.scan as requested; passed to build_model (no process-wide default)
+    scan: dict[str, Any]  # what it resolves to and the kernels' build status, for env.json
 
     @contextlib.contextmanager
     def autocast(self) -> Iterator[None]:
@@ -141,18 +142,17 @@ def resolve_precision(requested: str, device: torch.device) -> tuple[str, str, s
     return "fp32", f"bf16 requested but unsupported: {why}", warning
 
 
-def configure_scan(name: str) -> dict[str, Any]:
-    """Select the recurrence scan backend (``runtime.scan``) and describe the choice."""
-    from blockyard.kernels import scan_backend_info, set_scan_backend
+def describe_scan(name: str) -> dict[str, Any]:
+    """What the recurrence scan backend ``runtime.scan`` resolves to here (builds the kernels on first use)."""
+    from blockyard.kernels import scan_backend_info
 
-    set_scan_backend(name)
-    return dict(scan_backend_info())
+    return dict(scan_backend_info(name))
 
 
 def resolve_runtime(cfg: RuntimeConfig) -> tuple[Runtime, list[str]]:
-    """The Runtime for ``cfg`` and any warnings to show; selects the scan backend (process-wide)."""
+    """The Runtime for ``cfg`` and any warnings to show; changes no process-wide state."""
     device = resolve_device(cfg.device)
     precision, reason, warning = resolve_precision(cfg.precision, device)
     runtime = Runtime(device=device, threads=resolve_threads(cfg.threads), precision=precision,
-                      precision_reason=reason, scan=configure_scan(cfg.scan))
+                      precision_reason=reason, scan_backend=cfg.scan, scan=describe_scan(cfg.scan))
     return runtime, [warning] if warning else []

@@ -1,0 +1,149 @@
+"""The C++ kernels as torch custom operators (``torch.library``), each with a fake-tensor kernel and autograd.
+
+Registered under the stable names ``blockyard::linear_scan`` and ``blockyard::rg_lru`` (and their
+backward ops), their implementations call the compiled library of ``build.py``, whose namespace
+is a hash of the source. The fake kernels only describe output shapes and dtypes, so
+FakeTensorMode (the memory estimator) and ``torch.compile`` trace through the ops without the
+library, or a compiler, being present.
+
+Both ops are first-derivative only (their backward ops have no autograd of their own); the
+pure-PyTorch paths (``blockyard.kernels.scan``, ``blockyard.mixers.recurrence.rg_lru_reference``)
+remain the references, the fallback when the library cannot be built, and support double backward.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import torch
+from torch import Tensor
+
+from blockyard.kernels import build
+
+# Input dtypes of the fused RG-LRU op (its state is float32, float64 for float64 inputs).
+RG_LRU_DTYPES = (torch.float32, torch.bfloat16, torch.float64)
+
+
+def compiled_ops() -> Any:
+    """``torch.ops.<hashed namespace>`` of the built library; RuntimeError naming the build error if it failed."""
+    ops = build.load_scan_ops()
+    if ops is None:
+        raise RuntimeError(f"scan backend 'compiled' is unavailable: {build.build_status()['error']}")
+    return ops
+
+
+def state_dtype(dtype: torch.dtype) -> torch.dtype:
+    """The dtype the recurrence state is kept in for inputs of ``dtype``: float32 at least."""
+    return torch.promote_types(dtype, torch.float32)
+
+
+# ----------------------------------------------------------------------------- linear scan
+
+
+@torch.library.custom_op("blockyard::linear_scan", mutates_args=())
+def linear_scan_op(a: Tensor, b: Tensor, h0: Tensor) -> Tensor:
+    """h_t = a_t h_{t-1} + b_t over dim 1 (contiguous CPU a, b: (B, T, C); h0: (B, C))."""
+    return compiled_ops().forward(a, b, h0)
+
+
+@linear_scan_op.register_fake
+def _(a: Tensor, b: Tensor, h0: Tensor) -> Tensor:
+    return torch.empty_like(a)
+
+
+@torch.library.custom_op("blockyard::linear_scan_backward", mutates_args=())
+def linear_scan_backward_op(grad_h: Tensor, a: Tensor, h: Tensor, h0: Tensor, need_grad_a: bool
+                            ) -> tuple[Tensor, Tensor, Tensor]:
+    """(dL/da or an empty tensor, dL/db, dL/dh0) of the scan (reverse scan in C++)."""
+    grad_a, grad_b, grad_h0 = compiled_ops().backward(grad_h, a, h, h0, need_grad_a)
+    return grad_a, grad_b, grad_h0
+
+
+@linear_scan_backward_op.register_fake
+def _(grad_h: Tensor, a: Tensor, h: Tensor, h0: Tensor, need_grad_a: bool) -> tuple[Tensor, Tensor, Tensor]:
+    grad_a = torch.empty_like(a) if need_grad_a else a.new_empty(0)
+    return grad_a, torch.empty_like(a), torch.empty_like(h0)
+
+
+def _scan_setup(ctx: Any, inputs: tuple[Any, ...], output: Tensor) -> None:
+    a, _b, h0 = inputs
+    ctx.save_for_backward(a, output, h0)
+
+
+def _scan_backward(ctx: Any, grad_h: Tensor) -> tuple[Tensor | None, ...]:
+    a, h, h0 = ctx.saved_tensors
+    need_a, need_b, need_h0 = ctx.needs_input_grad
+    grad_a, grad_b, grad_h0 = linear_scan_backward_op(grad_h.contiguous(), a, h, h0, need_a)
+    return grad_a if need_a else None, grad_b if need_b else None, grad_h0 if need_h0 else None
+
+
+linear_scan_op.register_autograd(_scan_backward, setup_context=_scan_setup)
+
+
+# ----------------------------------------------------------------------------- fused RG-LRU
+
+
+@torch.library.custom_op("blockyard::rg_lru", mutates_args=())
+def rg_lru_op(x: Tensor, gate_a: Tensor | None, gate_x: Tensor | None, decay: Tensor, h0: Tensor, c: float,
+              input_norm: bool) -> Tensor:
+    """The RG-LRU's states h (B, T, C) in one pass (``rglru_cpu.cpp``); gates both given or both None."""
+    return compiled_ops().rglru_forward(x, gate_a, gate_x, decay, h0, c, input_norm)
+
+
+@rg_lru_op.register_fake
+def _(x: Tensor, gate_a: Tensor | None, gate_x: Tensor | None, decay: Tensor, h0: Tensor, c: float,
+      input_norm: bool) -> Tensor:
+    return x.new_empty(x.shape, dtype=state_dtype(x.dtype))
+
+
+@torch.library.custom_op("blockyard::rg_lru_backward", mutates_args=())
+def rg_lru_backward_op(grad_h: Tensor, x: Tensor, gate_a: Tensor | None, gate_x: Tensor | None, decay: Tensor,
+                       h0: Tensor, h: Tensor, c: float, input_norm: bool
+                       ) -> tuple[Tensor, Tensor, Tensor, Tensor, Tensor]:
+    """(dx, dgate_a, dgate_x, ddecay, dh0); the gate gradients are empty tensors without gates."""
+    grads = compiled_ops().rglru_backward(grad_h, x, gate_a, gate_x, decay, h0, h, c, input_norm)
+    return tuple(grads)
+
+
+@rg_lru_backward_op.register_fake
+def _(grad_h: Tensor, x: Tensor, gate_a: Tensor | None, gate_x: Tensor | None, decay: Tensor, h0: Tensor,
+      h: Tensor, c: float, input_norm: bool) -> tuple[Tensor, Tensor, Tensor, Tensor, Tensor]:
+    gate = torch.empty_like(x) if gate_a is not None else x.new_empty(0)
+    return torch.empty_like(x), gate, gate.clone(), torch.empty_like(decay), torch.empty_like(h0)
+
+
+def _rg_lru_setup(ctx: Any, inputs: tuple[Any, ...], output: Tensor) -> None:
+    x, gate_a, gate_x, decay, h0, c, input_norm = inputs
+    ctx.save_for_backward(x, gate_a, gate_x, decay, h0, output)
+    ctx.c, ctx.input_norm = c, input_norm
+
+
+def _rg_lru_backward(ctx: Any, grad_h: Tensor) -> tuple[Tensor | None, ...]:
+    x, gate_a, gate_x, decay, h0, h = ctx.saved_tensors
+    dx, dga, dgx, ddecay, dh0 = rg_lru_backward_op(grad_h.contiguous(), x, gate_a, gate_x, decay, h0, h,
+                                                   ctx.c, ctx.input_norm)
+    need = ctx.needs_input_grad
+    gated = gate_a is not None
+    return (dx if need[0] else None, dga if gated and need[1] else None, dgx if gated and need[2] else None,
+            ddecay if need[3] else None, dh0 if need[4] else None, None, None)
+
+
+rg_lru_op.register_autograd(_rg_lru_backward, setup_context=_rg_lru_setup)
+
+
+def rg_lru_fused(x: Tensor, decay: Tensor, gate_a_logits: Tensor | None = None, gate_x_logits: Tensor | None = None,
+                 *, c: float = 8.0, input_norm: bool = True, h0: Tensor | None = None) -> Tensor:
+    """The RG-LRU through the fused op, same signature and math as ``rg_lru_reference``: states (B, T, C).
+
+    x and the gate logits: float32, bfloat16 or float64 CPU tensors (cast to x's dtype); Lambda
+    and h0 are cast to the state dtype. Raises RuntimeError when the library could not be built.
+    """
+    if x.device.type != "cpu" or x.dtype not in RG_LRU_DTYPES:
+        raise TypeError(f"the fused RG-LRU op takes CPU {[str(d) for d in RG_LRU_DTYPES]} inputs, "
+                        f"got {x.dtype} on {x.device}")
+    if (gate_a_logits is None) != (gate_x_logits is None):
+        raise ValueError("the fused RG-LRU op takes both gate logits or neither")
+    sdt = state_dtype(x.dtype)
+    gates = [None if g is None else g.to(x.dtype).contiguous() for g in (gate_a_logits, gate_x_logits)]
+    start = x.new_zeros(x.shape[0], x.shape[2], dtype=sdt) if h0 is None else h0.to(sdt).contiguous()
+    return rg_lru_op(x.contiguous(), gates[0], gates[1], decay.to(sdt).contiguous(), start, float(c), input_norm)
