@@ -36,6 +36,8 @@ def _add_train(sub: argparse._SubParsersAction) -> None:
                    help="override a config key (dotted path, value parsed as YAML); repeatable")
     p.add_argument("--out", default=None, help="run dir (default: runs/<config name>/<config hash>)")
     p.add_argument("--force", action="store_true", help="retrain a finished dir or replace a dir of another config")
+    p.add_argument("--no-check", dest="check", action="store_false",
+                   help="skip the mixer contract gate on plugin mixers (env.json records that it was skipped)")
     p.set_defaults(func=_cmd_train)
 
 
@@ -44,7 +46,7 @@ def _cmd_train(args: argparse.Namespace) -> int:
     from blockyard.train import train_from_cli
 
     cfg = load_config(args.config, args.overrides)
-    return train_from_cli(cfg, out=args.out, force=args.force)
+    return train_from_cli(cfg, out=args.out, force=args.force, check=args.check)
 
 
 # ----------------------------------------------------------------------------- blocks
@@ -88,6 +90,8 @@ def _add_grid(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--force", action="store_true",
                    help="run a changed spec in an existing grid dir (changed cells are moved to superseded/)")
     p.add_argument("--status", metavar="GRID_DIR", default=None, help="print the progress of a grid and exit")
+    p.add_argument("--no-check", dest="check", action="store_false",
+                   help="skip the mixer contract gate on plugin mixers, here and in every cell")
     p.set_defaults(func=_cmd_grid)
 
 
@@ -104,7 +108,7 @@ def _cmd_grid(args: argparse.Namespace) -> int:
     from blockyard.grid.run import run_grid
 
     return run_grid(args.grid, out=args.out, workers=args.workers, threads=args.threads, executor=args.executor,
-                    address=args.address, force=args.force, dry_run=args.dry_run,
+                    address=args.address, force=args.force, dry_run=args.dry_run, check=args.check,
                     echo=lambda line: print(line, flush=True))
 
 
@@ -251,6 +255,29 @@ def _cmd_eval(args: argparse.Namespace) -> int:
     return 0
 
 
+# ----------------------------------------------------------------------------- check
+
+
+def _add_check(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("check", help="run the mixer contract on a plugin file or a config's mixers and model",
+                       description=(
+        "Causality (first leaking position), step == forward (largest difference), finite gradients, "
+        "determinism, batch-first states never changed in place, and the cost formulas against counted "
+        "parameters and measured state. Exit code 0: every check passes; 1: a check fails; 2: bad input."))
+    p.add_argument("target", help="a plugin .py file, or a config YAML file")
+    p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
+                   help="override a config key; repeatable")
+    p.set_defaults(func=_cmd_check)
+
+
+def _cmd_check(args: argparse.Namespace) -> int:
+    from blockyard.check import check_command
+
+    text, code = check_command(args.target, args.overrides)
+    print(text)
+    return code
+
+
 # ----------------------------------------------------------------------------- registry
 
 _SUBCOMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [_add_train, _add_blocks]
@@ -258,6 +285,7 @@ _SUBCOMMANDS += [_add_grid, _add_report]
 _SUBCOMMANDS += [_add_corpus]
 _SUBCOMMANDS += [_add_bench]
 _SUBCOMMANDS += [_add_sample, _add_eval]
+_SUBCOMMANDS += [_add_check]
 
 
 def build_parser() -> argparse.ArgumentParser:

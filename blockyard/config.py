@@ -5,7 +5,10 @@ serialisation: ``load_config`` reads a file, follows ``extends:`` (a path relati
 file), applies ``--set key.path=value`` overrides (values parsed as YAML) and validates the
 result. Mixer options are the one exception to "one file": each mixer kind declares its own
 ``Options`` dataclass next to its code (``blockyard/mixers/``), and ``model.mixers.<name>``
-entries are validated against the options of their ``kind``.
+entries are validated against the options of their ``kind``. ``plugins`` (Python files of the
+user's own mixers, paths relative to the config file) are loaded before the mixers are read, so
+their kinds may be named; ``extends`` chains concatenate the lists, and each file's content hash
+is part of ``config_hash``.
 """
 
 from __future__ import annotations
@@ -187,6 +190,8 @@ class RuntimeConfig:
 @dataclasses.dataclass(frozen=True)
 class Config:
     name: str = opt("", "run name (default: the config file's stem)")
+    plugins: tuple[str, ...] = opt((), "Python files whose @register_mixer classes join the mixer registry "
+                                   "(paths relative to the config file; blockyard/mixers/plugins.py)")
     model: ModelConfig = opt_factory(ModelConfig, "model architecture")
     data: DataConfig = opt_factory(DataConfig, "corpus, tokenizer and windows")
     train: TrainConfig = opt_factory(TrainConfig, "optimisation")
@@ -246,8 +251,16 @@ def read_yaml(path: Path) -> dict[str, Any]:
 
 
 def resolve_extends(data: dict[str, Any], base_dir: Path, seen: tuple[Path, ...] = ()) -> dict[str, Any]:
-    """Follow ``extends:`` chains (paths relative to the including file's folder)."""
+    """Follow ``extends:`` chains (paths relative to the including file's folder).
+
+    ``plugins`` paths are made absolute against the folder of the file that lists them, and the
+    lists of a chain are concatenated (the parent's first) rather than replaced.
+    """
+    from blockyard.mixers.plugins import resolve_plugin_paths
+
     parent = data.pop("extends", None)
+    if "plugins" in data:
+        data["plugins"] = [str(p) for p in resolve_plugin_paths(data["plugins"], base_dir)]
     if parent is None:
         return data
     if not isinstance(parent, str):
@@ -256,7 +269,10 @@ def resolve_extends(data: dict[str, Any], base_dir: Path, seen: tuple[Path, ...]
     if ppath in seen:
         raise ConfigError("extends", f"{ppath} extends itself (cycle)")
     pdata = resolve_extends(read_yaml(ppath), ppath.parent, (*seen, ppath))
-    return deep_merge(pdata, data)
+    merged = deep_merge(pdata, data)
+    if "plugins" in pdata and "plugins" in data:
+        merged["plugins"] = list(dict.fromkeys([*pdata["plugins"], *data["plugins"]]))
+    return merged
 
 
 def parse_override(item: str) -> tuple[list[str], Any]:
@@ -288,11 +304,19 @@ def apply_overrides(data: dict[str, Any], overrides: list[str] | tuple[str, ...]
     return out
 
 
-def config_from_dict(data: dict[str, Any]) -> Config:
-    """Validate a plain dict (already merged) into a ``Config``; mixer entries by their kind."""
+def config_from_dict(data: dict[str, Any], base_dir: Path | None = None) -> Config:
+    """Validate a plain dict (already merged) into a ``Config``; mixer entries by their kind.
+
+    ``plugins`` are loaded first (relative paths against ``base_dir``, else the current directory).
+    """
     from blockyard.mixers import MIXERS
+    from blockyard.mixers.plugins import load_plugins, resolve_plugin_paths
 
     data = copy.deepcopy(data)
+    if "plugins" in data:
+        plugin_paths = resolve_plugin_paths(data["plugins"], base_dir)
+        load_plugins(plugin_paths)
+        data["plugins"] = [str(p) for p in plugin_paths]
     model = data.get("model")
     if model is None:
         model = data["model"] = {}
@@ -321,7 +345,7 @@ def load_config(path: str | Path, overrides: list[str] | tuple[str, ...] = ()) -
     data = apply_overrides(data, overrides)
     if not data.get("name"):
         data["name"] = path.stem
-    return config_from_dict(data)
+    return config_from_dict(data, path.resolve().parent)
 
 
 def replace(cfg: Config, overrides: dict[str, Any]) -> Config:
@@ -331,14 +355,38 @@ def replace(cfg: Config, overrides: dict[str, Any]) -> Config:
     return config_from_dict(apply_overrides(data, items))
 
 
-def dump_config(cfg: Config) -> str:
-    """The fully resolved config as YAML (what a run dir's ``config.yaml`` holds)."""
-    return yaml.safe_dump(to_dict(cfg), sort_keys=False)
+def dump_config(cfg: Config, plugins: list[str] | None = None) -> str:
+    """The fully resolved config as YAML (what a run dir's ``config.yaml`` holds).
+
+    ``plugins``: the entries to write instead of ``cfg.plugins`` (paths of copies, relative to
+    the YAML file), so that a run dir names the plugin files it keeps.
+    """
+    data = to_dict(cfg)
+    if plugins is not None:
+        data["plugins"] = list(plugins)
+    if not data["plugins"]:
+        del data["plugins"]
+    return yaml.safe_dump(data, sort_keys=False)
+
+
+def dict_hash(data: dict[str, Any], base_dir: Path | None = None, length: int = 8) -> str:
+    """The hash of a resolved config dict, as :func:`config_hash` computes it for the parsed config.
+
+    Plugin files enter by content hash, not by path: a copy of the same file hashes the same;
+    an edited file is another config. No plugins, no key: configs without plugins keep
+    the hashes they had before the key existed.
+    """
+    from blockyard.mixers.plugins import file_digest, resolve_plugin_paths
+
+    data = dict(data)
+    data.pop("name", None)
+    paths = resolve_plugin_paths(data.pop("plugins", None), base_dir)
+    if paths:
+        data["plugins"] = [file_digest(p) for p in paths]
+    blob = json.dumps(data, sort_keys=True, separators=(",", ":"))
+    return hashlib.sha256(blob.encode()).hexdigest()[:length]
 
 
 def config_hash(cfg: Config, length: int = 8) -> str:
-    """Short stable hash of everything that defines a run (the name excluded)."""
-    data = to_dict(cfg)
-    data.pop("name", None)
-    blob = json.dumps(data, sort_keys=True, separators=(",", ":"))
-    return hashlib.sha256(blob.encode()).hexdigest()[:length]
+    """Short stable hash of everything that defines a run (the name excluded, plugin contents included)."""
+    return dict_hash(to_dict(cfg), length=length)

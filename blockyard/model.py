@@ -6,7 +6,7 @@ Pre-norm residual blocks (Xiong et al. 2020), RMSNorm (Zhang & Sennrich 2019), G
 MLPs (Shazeer 2020), head tied to the embedding by default (Press & Wolf 2017), its input scaled by width^-1/2.
 
 Init scheme: embeddings and every linear weight ~ N(0, init_std); the output projection of
-each mixer and MLP (modules marked ``residual_out = True``) ~ N(0, init_std / sqrt(2 * depth)),
+each mixer and MLP (modules marked ``residual_out``, blockyard/mixers/base.py) ~ N(0, init_std / sqrt(2 * depth)),
 so that the residual stream's variance does not grow with depth (Radford et al. 2019, OpenAI report, sec. 2.3);
 linear biases zero; norm gains one. Mixers then re-initialise their own special parameters
 (decay rates, convolutions) in ``reset_special_parameters``; torch's LSTM keeps torch's init.
@@ -28,6 +28,7 @@ from torch.utils.checkpoint import checkpoint
 
 from blockyard.config import ModelConfig
 from blockyard.mixers import MIXERS, Mixer
+from blockyard.mixers.base import is_residual_out, mark_residual_out
 from blockyard.parametrization import ParamScaling, readout_multiplier, scaling
 
 
@@ -40,7 +41,7 @@ class MLP(nn.Module):
         self.hidden = hidden
         self.proj_in = nn.Linear(width, 2 * hidden if kind == "gated" else hidden, bias=False)
         self.proj_out = nn.Linear(hidden, width, bias=False)
-        self.proj_out.residual_out = True
+        mark_residual_out(self.proj_out)
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         h = self.proj_in(x)
@@ -137,7 +138,7 @@ class LanguageModel(nn.Module):
         for name, module in self.named_modules():
             if isinstance(module, nn.Linear):
                 mult = self.width_scaling[f"{name}.weight"].init_mult if self.width_scaling else 1.0
-                nn.init.normal_(module.weight, 0.0, mult * (out_std if getattr(module, "residual_out", False) else std))
+                nn.init.normal_(module.weight, 0.0, mult * (out_std if is_residual_out(module) else std))
                 if module.bias is not None:
                     nn.init.zeros_(module.bias)
             elif isinstance(module, nn.Embedding):

@@ -8,7 +8,7 @@ import torch
 
 from blockyard.config import config_from_dict
 from blockyard.errors import ConfigError
-from blockyard.mixers import MIXERS, state_nbytes
+from blockyard.mixers import MIXERS
 from blockyard.mixers.lstm import LSTMMixer, LSTMOptions
 
 WIDTH = 8
@@ -46,46 +46,14 @@ def test_forward_matches_hand_written_cell(hidden_mult):
     torch.testing.assert_close(m(x).double(), _cell_loop(m, x), atol=1e-5, rtol=1e-5)
 
 
-@pytest.mark.parametrize("hidden_mult", [1.0, 0.5])
-def test_step_matches_forward(hidden_mult):
-    # An LSTM is causal, so generating token by token reproduces the full-sequence pass.
-    m = _mixer(hidden_mult=hidden_mult)
-    x = torch.randn(3, 7, WIDTH)
-    with torch.no_grad():
-        full = m(x)
-        state = m.init_state(3)
-        steps = []
-        for t in range(x.shape[1]):
-            y, state = m.step(x[:, t], state)
-            steps.append(y)
-    torch.testing.assert_close(torch.stack(steps, dim=1), full, atol=1e-5, rtol=1e-5)
+# step == forward, causality, exact cost hooks: tests/test_mixers_contract.py (hidden_mult 1, 0.5, 2).
 
 
-def test_causal():
-    # Position t depends only on positions <= t (common practice, no source).
-    m = _mixer()
-    x = torch.randn(1, 10, WIDTH)
-    x2 = x.clone()
-    x2[:, 4] += 1.0
-    with torch.no_grad():
-        y, y2 = m(x), m(x2)
-    torch.testing.assert_close(y[:, :4], y2[:, :4], rtol=0, atol=0)
-    assert (y[:, 4:] - y2[:, 4:]).abs().amax(dim=-1).min() > 0
-
-
-@pytest.mark.parametrize("hidden_mult", [1.0, 0.5, 2.0])
-def test_cost_hooks_exact(hidden_mult):
-    # Analytic parameter count and state size vs the module's own tensors.
+@pytest.mark.parametrize("hidden_mult", [0.5, 2.0])
+def test_extra_flops_scale_with_the_hidden_size(hidden_mult):
+    # The cell's elementwise work is per hidden unit (_CELL_FLOPS, blockyard/mixers/lstm.py).
     width = 12
-    o = LSTMOptions(hidden_mult=hidden_mult)
-    m = _mixer(width, hidden_mult=hidden_mult)
-    assert LSTMMixer.param_count(width, o) == sum(p.numel() for p in m.parameters())
-    for batch in (1, 4):
-        state = m.init_state(batch)
-        assert LSTMMixer.state_bytes(width, o, 16, batch=batch) == state_nbytes(state)
-        _, state = m.step(torch.randn(batch, width), state)
-        assert LSTMMixer.state_bytes(width, o, 100_000, batch=batch) == state_nbytes(state)
-    assert LSTMMixer.extra_flops_per_token(width, o, 64) == pytest.approx(
+    assert LSTMMixer.extra_flops_per_token(width, LSTMOptions(hidden_mult=hidden_mult), 64) == pytest.approx(
         hidden_mult * LSTMMixer.extra_flops_per_token(width, LSTMOptions(), 64))
 
 

@@ -1,133 +1,82 @@
 """The contract every registered mixer keeps (blockyard/mixers/base.py), checked over ``MIXERS``.
 
-A mixer added to the registry is tested here without further work: causality, the step path
-reproducing the full-sequence forward, finite gradients reaching every parameter, the analytic
-parameter count and the analytic state size. The definitions are those of an autoregressive
-model (output t is a function of inputs <= t; generation token by token computes the same
-function): common practice, no source. A hook that raises NotImplementedError fails its test.
+The checks themselves live in ``blockyard/mixers/contract.py`` (the same code ``blockyard check``
+and the training gate run); here they run over every registered kind, with the option variants
+that take other code paths, so a mixer added to the registry is tested without further work.
+The definitions are those of an autoregressive model (output t is a function of inputs <= t;
+generation token by token computes the same function): common practice, no source. The second
+half checks the checks: each must fail on a mixer broken in its one way, at the right place.
 """
 
 from __future__ import annotations
 
 import dataclasses
+import itertools
+from typing import Any
 
 import pytest
 import torch
+from conftest import LEAKY, LINEAR_ATTENTION, mixer_options
 
-from blockyard.config import MixerConfig, config_from_dict
-from blockyard.mixers import MIXERS, state_nbytes
+from blockyard.config import config_from_dict
+from blockyard.mixers import MIXERS
+from blockyard.mixers.contract import (
+    MIXER_CHECKS,
+    build_mixer,
+    check_causality,
+    check_determinism,
+    check_gradients,
+    check_param_count,
+    check_residual_out,
+    check_state,
+    check_step,
+    mixer_contract,
+    mixer_inputs,
+    model_contract,
+    perturb_features,
+)
+from blockyard.mixers.plugins import load_plugin
 from blockyard.model import build_model
 
 WIDTH = 32
-SEQ_LEN = 40
-BATCH = 2
-SMALL_WINDOW = 16  # < SEQ_LEN, so local attention runs its blocked path (40 is not a multiple: padding)
+SMALL_WINDOW = 16  # < SEQ_LEN (40), so local attention runs its blocked path (40 is not a multiple: padding)
 
-CASES = [pytest.param(kind, {}, id=kind) for kind in sorted(MIXERS)]
-if "local_attention" in MIXERS:
-    CASES.append(pytest.param("local_attention", {"window": SMALL_WINDOW}, id=f"local_attention-window{SMALL_WINDOW}"))
-
-
-def mixer_config(kind: str, options: dict, width: int = WIDTH) -> MixerConfig:
-    """The validated config of ``kind``: a bare kind in the pattern gets that kind's option defaults."""
-    if options:
-        model = {"width": width, "depth": 1, "pattern": ["m"], "mixers": {"m": {"kind": kind, **options}}}
-        return config_from_dict({"model": model}).model.mixers["m"]
-    return config_from_dict({"model": {"width": width, "depth": 1, "pattern": [kind]}}).model.mixers[kind]
+# Option variants per kind that take other code paths (head layouts, windows, gates, state types).
+_HEADS = [{"heads": 4, "kv_heads": 2}, {"heads": 4, "kv_heads": 1}]
+VARIANTS: dict[str, list[dict[str, Any]]] = {
+    "global_attention": [{}, *_HEADS],
+    "local_attention": [{}, {"window": SMALL_WINDOW}, *({"window": 6, **h} for h in _HEADS)],
+    "recurrence": [
+        {"gate": gate, "complex": cplx, "conv_width": conv, "input_norm": norm}
+        for gate, cplx, conv, norm in itertools.product((True, False), (False, True), (0, 1, 4), (True, False))
+    ] + [{"width_mult": 1.5}, {"complex": True, "gate_blocks": 2}],
+    "lstm": [{"hidden_mult": m} for m in (1.0, 0.5, 2.0)],
+}
 
 
-def build_mixer(kind: str, options: dict, width: int = WIDTH):
-    torch.manual_seed(0)
-    mixer = MIXERS[kind](width, mixer_config(kind, options, width).options, layer=0, depth=1)
-    mixer.reset_special_parameters()
-    return mixer
+def _case_id(kind: str, options: dict[str, Any]) -> str:
+    return kind + "".join(f"-{k}{v:.3g}" if isinstance(v, float) else f"-{k}{v}" for k, v in options.items())
 
 
-def inputs(seed: int = 1) -> torch.Tensor:
-    return torch.randn(BATCH, SEQ_LEN, WIDTH, generator=torch.Generator().manual_seed(seed))
+CASES = [pytest.param(kind, opts, id=_case_id(kind, opts))
+         for kind in sorted(MIXERS) for opts in VARIANTS.get(kind, [{}])]
 
 
-def run_steps(step_fn, init_state, xs: torch.Tensor):
-    """Drive ``step_fn`` over ``xs`` along dim 1; returns the stacked outputs and every state."""
-    state, outs, states = init_state, [], []
-    for t in range(xs.shape[1]):
-        y, state = step_fn(xs[:, t], state)
-        outs.append(y)
-        states.append(state)
-    return torch.stack(outs, dim=1), states
+def test_every_registered_kind_is_covered():
+    assert set(VARIANTS) == set(MIXERS), "add the new kind's option variants to VARIANTS"
 
 
-# ----------------------------------------------------------------------------- each mixer alone
-
-
+@pytest.mark.parametrize("check", MIXER_CHECKS)
 @pytest.mark.parametrize("kind,options", CASES)
-def test_causal(kind, options):
-    mixer = build_mixer(kind, options)
-    x = inputs()
-    with torch.no_grad():
-        base = mixer(x)
-        for t in (0, 7, SEQ_LEN // 2, SEQ_LEN - 1):
-            x2 = x.clone()
-            x2[:, t] += 3.0 * torch.randn(BATCH, WIDTH, generator=torch.Generator().manual_seed(t))
-            y = mixer(x2)
-            past = (y[:, :t] - base[:, :t]).abs().max().item() if t else 0.0
-            assert past <= 1e-6, f"changing position {t} changed earlier outputs by {past:.2e}"
-            assert (y[:, t:] - base[:, t:]).abs().max().item() > 1e-4, f"position {t} has no effect at all"
+def test_contract(kind, options, check):
+    (result,) = mixer_contract(MIXERS[kind], WIDTH, mixer_options(kind, WIDTH, **options), checks=[check])
+    assert result.passed is True, f"{kind} {options}: {check}: {result.figure}"
 
 
-@pytest.mark.parametrize("kind,options", CASES)
-def test_step_reproduces_forward(kind, options):
-    mixer = build_mixer(kind, options)
-    x = inputs()
-    with torch.no_grad():
-        full = mixer(x)
-        stepped, states = run_steps(mixer.step, mixer.init_state(BATCH), x)
-    assert full.abs().max().item() > 1e-4, "output is ~0: the comparison below would prove nothing"
-    torch.testing.assert_close(stepped, full, atol=1e-5, rtol=0)
-    state = states[-1]
-    assert dataclasses.is_dataclass(state) and state.__dataclass_params__.frozen, "a step state is a frozen dataclass"
-
-
-@pytest.mark.parametrize("kind,options", CASES)
-def test_gradients_finite_and_reach_every_parameter(kind, options):
-    mixer = build_mixer(kind, options)
-    x = inputs().requires_grad_(True)
-    weights = torch.randn(BATCH, SEQ_LEN, WIDTH, generator=torch.Generator().manual_seed(2))
-    (mixer(x) * weights).sum().backward()
-    assert torch.isfinite(x.grad).all() and x.grad.abs().sum() > 0
-    for name, p in mixer.named_parameters():
-        assert p.grad is not None, f"{name} gets no gradient (unused parameter?)"
-        assert torch.isfinite(p.grad).all(), f"{name} has a non-finite gradient"
-        assert p.grad.abs().sum() > 0, f"{name} has an all-zero gradient"
-
-
-@pytest.mark.parametrize("width", [32, 64])
-@pytest.mark.parametrize("kind,options", CASES)
-def test_param_count_is_exact(kind, options, width):
-    mixer = build_mixer(kind, options, width)
-    counted = sum(p.numel() for p in mixer.parameters())
-    assert MIXERS[kind].param_count(width, mixer.options) == counted
-
-
-@pytest.mark.parametrize("kind,options", CASES)
-def test_state_bytes_match_measured_state(kind, options):
-    mixer = build_mixer(kind, options)  # fp32, the precision state_bytes is defined in
-    x = inputs()
-    with torch.no_grad():
-        _, states = run_steps(mixer.step, mixer.init_state(BATCH), x)
-    for length in (1, 5, SEQ_LEN):
-        measured = state_nbytes(states[length - 1])
-        analytic = MIXERS[kind].state_bytes(WIDTH, mixer.options, length, batch=BATCH)
-        assert analytic == measured, f"after {length} tokens: formula {analytic} B, state holds {measured} B"
-
-
-@pytest.mark.parametrize("kind,options", CASES)
-def test_extra_flops_finite_and_never_fall_with_context(kind, options):
-    # More context can never make a token cheaper to train on (common practice, no source).
-    opts = mixer_config(kind, options).options
-    flops = [MIXERS[kind].extra_flops_per_token(WIDTH, opts, n) for n in (1, 16, 256, 4096)]
-    assert all(f >= 0 and f == f and f != float("inf") for f in flops)
-    assert flops == sorted(flops)
+@pytest.mark.parametrize("kind", sorted(MIXERS))
+def test_param_count_exact_at_another_width(kind):
+    (result,) = mixer_contract(MIXERS[kind], 64, mixer_options(kind, 64), checks=["params"])
+    assert result.passed is True and result.value == 0, result.figure
 
 
 # ----------------------------------------------------------------------------- a mixed model
@@ -145,29 +94,127 @@ def mixed_model():
     }
     cfg = config_from_dict({"model": model})
     torch.manual_seed(0)
-    return build_model(cfg.model, vocab_size=61).eval()
+    return build_model(cfg.model, vocab_size=61)
 
 
-def tokens(seed: int = 3) -> torch.Tensor:
-    return torch.randint(0, 61, (BATCH, 30), generator=torch.Generator().manual_seed(seed))
+@pytest.mark.parametrize("check", ["causality", "step", "gradients", "determinism"])
+def test_mixed_model(check):
+    (result,) = model_contract(mixed_model(), 61, seq_len=30, checks=[check])
+    assert result.passed is True, result.figure
 
 
-def test_mixed_model_is_causal():
-    model, tok = mixed_model(), tokens()
-    with torch.no_grad():
-        base = model(tok)
-        for t in (0, 9, 29):
-            tok2 = tok.clone()
-            tok2[:, t] = (tok2[:, t] + 1) % 61
-            logits = model(tok2)
-            if t:
-                assert (logits[:, :t] - base[:, :t]).abs().max().item() <= 1e-6
-            assert (logits[:, t:] - base[:, t:]).abs().max().item() > 1e-4
+# ----------------------------------------------------------------------------- the checks catch what they claim to
 
 
-def test_mixed_model_step_reproduces_forward():
-    model, tok = mixed_model(), tokens()
-    with torch.no_grad():
-        full = model(tok)
-        stepped, _ = run_steps(model.step, model.init_state(BATCH), tok)
-    torch.testing.assert_close(stepped, full, atol=1e-5, rtol=0)
+def test_causality_reports_the_first_leaking_position_of_the_leaky_example():
+    (cls,) = load_plugin(LEAKY)  # keys and values at t come from token t + 1
+    (result,) = mixer_contract(cls, WIDTH, cls.Options(), checks=["causality"])
+    assert result.passed is False
+    assert (result.position, result.source) == (0, 1), result.figure
+    assert result.figure.startswith("output 0 changes when input 1 does")
+
+
+def test_causality_finds_a_leak_late_in_the_sequence():
+    # Output s sees input s + 1 only from s = 25 on: the first leaking output is 25, not 0.
+    mixer = build_mixer(MIXERS["lstm"], WIDTH, mixer_options("lstm", WIDTH))
+    x = mixer_inputs(WIDTH)
+
+    def leaky(inp: torch.Tensor) -> torch.Tensor:
+        y = mixer(inp)
+        return torch.cat([y[:, :25], y[:, 25:] + _shifted(inp)[:, 25:]], dim=1)
+
+    result = check_causality(leaky, x, perturb_features())
+    assert (result.passed, result.position, result.source) == (False, 25, 26), result.figure
+
+
+def _shifted(x: torch.Tensor) -> torch.Tensor:
+    """x_{t+1} at position t (zeros at the end)."""
+    return torch.cat([x[:, 1:], torch.zeros_like(x[:, :1])], dim=1)
+
+
+def test_causality_rejects_a_mixer_that_ignores_its_input():
+    x = mixer_inputs(WIDTH)
+    result = check_causality(lambda inp: torch.ones_like(inp) + 0 * inp[:, :1], x, perturb_features())
+    assert result.passed is False and "changes no output" in result.figure
+
+
+class _Drift(torch.nn.Module):
+    """An LSTM mixer whose step path adds 1e-3 from token 7 on: a step/forward mismatch at t=7."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.inner = build_mixer(MIXERS["lstm"], WIDTH, mixer_options("lstm", WIDTH))
+        self.t = 0
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return self.inner(x)
+
+    def step(self, x_t: torch.Tensor, state: Any) -> tuple[torch.Tensor, Any]:
+        y, state = self.inner.step(x_t, state)
+        self.t += 1
+        return (y + 1e-3 if self.t > 7 else y), state
+
+
+def test_step_check_reports_the_largest_difference_and_where():
+    m, x = _Drift(), mixer_inputs(WIDTH)
+    result = check_step(m, m.inner.init_state(2), m.step, x)
+    assert result.passed is False
+    assert result.position >= 7 and result.value == pytest.approx(1e-3, rel=1e-2), result.figure
+
+
+def test_gradient_check_names_an_unused_parameter():
+    mixer = build_mixer(MIXERS["lstm"], WIDTH, mixer_options("lstm", WIDTH))
+    mixer.unused = torch.nn.Parameter(torch.zeros(3))
+    result = check_gradients(mixer, mixer, mixer_inputs(WIDTH))
+    assert result.passed is False and result.figure.startswith("unused: no gradient"), result.figure
+
+
+def test_determinism_check_catches_noise():
+    mixer = build_mixer(MIXERS["lstm"], WIDTH, mixer_options("lstm", WIDTH))
+    result = check_determinism(lambda x: mixer(x) + 1e-6 * torch.rand(()), mixer_inputs(WIDTH))
+    assert result.passed is False and result.value > 0
+
+
+def _la_class():
+    (cls,) = load_plugin(LINEAR_ATTENTION)
+    return cls
+
+
+def test_state_check_catches_an_in_place_update():
+    cls = _la_class()
+
+    class InPlace(cls):
+        def step(self, x_t, state):
+            y, new = super().step(x_t, state)
+            state.s.copy_(new.s)  # "saves memory": the caller's state is now wrong
+            return y, new
+
+    result = check_state(build_mixer(InPlace, WIDTH, cls.Options()), mixer_inputs(WIDTH))
+    assert result.passed is False and "state.s" in result.figure and result.position == 0, result.figure
+
+
+def test_state_check_catches_a_state_that_is_not_batch_first():
+    cls = _la_class()
+
+    class HeadsFirst(cls):
+        def init_state(self, batch, *, device=None):
+            state = super().init_state(batch, device=device)
+            return dataclasses.replace(state, z=state.z.transpose(0, 1))
+
+    result = check_state(build_mixer(HeadsFirst, WIDTH, cls.Options()), mixer_inputs(WIDTH))
+    assert result.passed is False and "state.z" in result.figure and "batch-first" in result.figure
+
+
+def test_cost_and_init_checks_catch_a_wrong_formula_and_a_missing_mark():
+    cls = _la_class()
+
+    class OffByOne(cls):
+        @classmethod
+        def param_count(cls, width, options):
+            return 4 * width * width + 1
+
+    mixer = build_mixer(OffByOne, WIDTH, cls.Options())
+    result = check_param_count(mixer)
+    assert result.passed is False and result.value == 1
+    mixer.out.residual_out = False
+    assert check_residual_out(mixer).passed is False

@@ -20,7 +20,7 @@ from scipy import stats
 from blockyard.config import config_from_dict
 from blockyard.errors import ConfigError
 from blockyard.kernels import linear_scan
-from blockyard.mixers import MIXERS, state_nbytes
+from blockyard.mixers import MIXERS
 from blockyard.mixers.recurrence import (
     MAX_PHASE,
     RGLRU,
@@ -302,37 +302,8 @@ def test_conv_width_zero_has_no_conv():
     assert conv1["conv.weight"].shape == (WIDTH, 1)
 
 
-STEP_CASES = list(itertools.product((True, False), (False, True), (0, 1, 4), (True, False)))
-
-
-@pytest.mark.parametrize(("gate", "complex_state", "conv_width", "input_norm"), STEP_CASES)
-def test_step_matches_forward(gate, complex_state, conv_width, input_norm):
-    # The recurrence is causal (De et al. 2024, eq. 4), so token-by-token generation reproduces forward.
-    m = _block(gate=gate, complex=complex_state, conv_width=conv_width, input_norm=input_norm)
-    x = torch.randn(2, 7, WIDTH)
-    with torch.no_grad():
-        full = m(x)
-        state = m.init_state(2)
-        steps = []
-        for t in range(x.shape[1]):
-            y, new = m.step(x[:, t], state)
-            assert state_nbytes(new) == state_nbytes(state)  # constant-size state, never mutated in place
-            steps.append(y)
-            state = new
-    torch.testing.assert_close(torch.stack(steps, dim=1), full, atol=1e-5, rtol=1e-5)
-
-
-@pytest.mark.parametrize("opts", [{}, {"complex": True}, {"gate": False, "conv_width": 0}])
-def test_causal(opts):
-    # Position t depends only on positions <= t (common practice, no source: the autoregressive contract).
-    m = _block(**opts)
-    x = torch.randn(1, 10, WIDTH)
-    x2 = x.clone()
-    x2[:, 6] += 1.0
-    with torch.no_grad():
-        y, y2 = m(x), m(x2)
-    torch.testing.assert_close(y[:, :6], y2[:, :6], rtol=0, atol=0)
-    assert (y[:, 6:] - y2[:, 6:]).abs().amax(dim=-1).min() > 0
+# step == forward, causality and functional state over every gate / state / conv / norm combination,
+# and the exact cost hooks: tests/test_mixers_contract.py.
 
 
 def test_state_is_float32_under_bf16_autocast():
@@ -367,30 +338,6 @@ def test_gate_blocks_must_divide_recurrence_width():
         with pytest.raises(ConfigError) as e:
             load(**{key: value})
         assert e.value.path == f"model.mixers.rec.{key}"
-
-
-COST_CASES = [
-    {},
-    {"width_mult": 4 / 3},
-    {"conv_width": 0, "gate": False},
-    {"complex": True, "gate_blocks": 2},
-    {"complex": True, "gate": False, "conv_width": 1},
-]
-
-
-@pytest.mark.parametrize("opts", COST_CASES, ids=lambda d: ",".join(f"{k}={v}" for k, v in d.items()) or "default")
-def test_cost_hooks_exact(opts):
-    # Analytic counts vs the module's own tensors (blockyard.mixers.state_nbytes of the real state).
-    width = 12
-    o = RecurrenceOptions(**opts)
-    m = _block(width, **opts)
-    assert RecurrenceBlock.param_count(width, o) == sum(p.numel() for p in m.parameters())
-    for batch in (1, 3):
-        state = m.init_state(batch)
-        assert RecurrenceBlock.state_bytes(width, o, 10, batch=batch) == state_nbytes(state)
-        assert RecurrenceBlock.state_bytes(width, o, 10_000, batch=batch) == state_nbytes(state)
-        _, state = m.step(torch.randn(batch, width), state)
-        assert RecurrenceBlock.state_bytes(width, o, 10, batch=batch) == state_nbytes(state)
 
 
 def test_extra_flops_track_the_knobs():

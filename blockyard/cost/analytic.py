@@ -2,7 +2,8 @@
 
 Everything here is analytic, computed from the config alone (no model is built): each mixer kind
 answers for itself through its cost hooks (``param_count``, ``extra_flops_per_token``,
-``state_bytes`` in ``blockyard/mixers/base.py``); this module adds the backbone around them
+``state_bytes`` in ``blockyard/mixers/base.py``; a plugin mixer without them is measured by
+``blockyard/cost/measured.py``, and ``describe_config`` says so); this module adds the backbone around them
 (embedding, RMSNorms, MLPs, head) and sums over depth. Tests compare the numbers with counted
 parameters (``LanguageModel.param_groups``) and measured step states (``state_nbytes``).
 
@@ -19,6 +20,7 @@ import dataclasses
 from pathlib import Path
 
 from blockyard.config import Config, ModelConfig, load_config
+from blockyard.cost import measured
 from blockyard.errors import UserError
 from blockyard.mixers import MIXERS
 from blockyard.model import MLP
@@ -59,10 +61,10 @@ def layer_costs(model: ModelConfig, context: int) -> list[LayerCost]:
                 layer=layer,
                 name=name,
                 kind=mcfg.kind,
-                mixer_params=int(cls.param_count(model.width, mcfg.options)),
+                mixer_params=measured.param_count(cls, model.width, mcfg.options),
                 mlp_params=MLP.param_count(model.width, hidden, model.mlp) if has_mlp else 0,
                 norm_params=_rmsnorm_params(model.width) * (2 if has_mlp else 1),
-                extra_flops_per_token=float(cls.extra_flops_per_token(model.width, mcfg.options, context)),
+                extra_flops_per_token=measured.extra_flops_per_token(cls, model.width, mcfg.options, context),
             )
         )
     return rows
@@ -137,7 +139,7 @@ def flops_per_token(cfg: Config, vocab_size: int | None = None, *, with_head: bo
 def layer_state_bytes(model: ModelConfig, context: int, batch: int = 1) -> list[int]:
     """Bytes of each block's generation state after ``context`` tokens."""
     return [
-        int(MIXERS[mcfg.kind].state_bytes(model.width, mcfg.options, context, batch=batch))
+        measured.state_bytes(MIXERS[mcfg.kind], model.width, mcfg.options, context, batch=batch)
         for _name, mcfg in model.layer_mixers()
     ]
 
@@ -220,7 +222,17 @@ def describe_config(cfg: Config, vocab_size: int | None = None) -> str:
         "inference state per sequence: "
         + ", ".join(f"L={L}: {format_bytes(sum(states[L]))}" for L in REPORT_CONTEXTS),
     ]
-    return "\n".join(lines)
+    note = measured_note(model)
+    return "\n".join(lines + ([note] if note else []))
+
+
+def measured_note(model: ModelConfig) -> str:
+    """Which figures were measured on a built module rather than computed (plugins without cost hooks)."""
+    kinds = {mcfg.kind: measured.measured_hooks(MIXERS[mcfg.kind]) for _n, mcfg in model.layer_mixers()}
+    parts = [f"{kind}: {', '.join(hooks)}" for kind, hooks in kinds.items() if hooks]
+    if not parts:
+        return ""
+    return ("measured, not analytic (the plugin gives no formula; blockyard/cost/measured.py): " + "; ".join(parts))
 
 
 def plot_state_bytes(cfgs: list[Config], path: str | Path, contexts: list[int] | None = None) -> Path:

@@ -41,9 +41,11 @@ class CellJob:
     out_dir: Path
     log_path: Path
     threads: int
+    check: bool = True  # False: the cell trains with --no-check (the grid was started with it)
 
     def command(self) -> list[str]:
-        return [sys.executable, "-m", "blockyard", "train", str(self.config_path), "--out", str(self.out_dir)]
+        return [sys.executable, "-m", "blockyard", "train", str(self.config_path), "--out", str(self.out_dir),
+                *([] if self.check else ["--no-check"])]
 
 
 class Events(Protocol):

@@ -427,6 +427,8 @@ def build_report(grid_dir: Path, rows: list[dict[str, Any]], meta: dict[str, str
         doc.p("FLOP matching changed `train.tokens` (the token budget) of every non-reference variant so that "
               "FLOPs/token x tokens equals the reference's training FLOPs (up to whole optimizer steps); the "
               "column 'fairness adjustment' gives the budget used.")
+    if meta.get("cost_note"):
+        doc.p(meta["cost_note"])
 
     excluded = [r for r in rows if not (r["status"] == "done" and _finite(r["final_val_loss"]))]
     doc.h(2, "Cells left out of the statistics")
@@ -485,7 +487,7 @@ def write_report(grid_dir: str | Path) -> Path:
         raise UserError(f"{grid_dir}: no grid here (no {INDEX_NAME}); pass the dir a grid was run in")
     with open_index(grid_dir, readonly=True) as index:
         rows = index.cells()
-        meta = {k: index.get_meta(k) for k in ("name", "description", "reference", "match")}
+        meta = {k: index.get_meta(k) for k in ("name", "description", "reference", "match", "cost_note")}
     if not rows:
         raise UserError(f"{grid_dir}: the grid index holds no cells")
     plots = write_plots(grid_dir, group_cells(rows))

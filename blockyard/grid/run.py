@@ -5,6 +5,7 @@ Grid dir layout::
     GRID_DIR/grid.yaml          the grid spec as given (earlier versions kept as grid.<n>.yaml)
     GRID_DIR/index.sqlite       every cell: variant, seed, axis point, config hash, status, timings, metrics
     GRID_DIR/configs/<cell>.yaml  each cell's resolved config (what ``blockyard train`` is given)
+    GRID_DIR/plugins/           copies of the plugin files the cells load (a config's ``plugins``)
     GRID_DIR/cells/<cell>/      each cell's run dir (config.yaml, metrics.jsonl, summary.json, ...)
     GRID_DIR/logs/<cell>.log    each cell's trainer output
     GRID_DIR/report.md, report.html, results.csv, *.png
@@ -35,6 +36,7 @@ from blockyard.grid.fairness import CellCost, apply_matching, cell_cost, planned
 from blockyard.grid.index import FINISHED, INDEX_NAME, GridIndex, open_index
 from blockyard.grid.spec import Cell, GridSpec, expand_cells, load_grid
 from blockyard.grid.status import LOCK_NAME, cell_dir, format_duration, grid_progress, lock_holder, read_summary
+from blockyard.mixers.plugins import copy_plugins
 from blockyard.schema import to_dict
 
 DEFAULT_ROOT = Path("runs") / "grids"
@@ -219,6 +221,21 @@ def _supersede(grid_dir: Path, ids: list[str], old_hashes: dict[str, str]) -> li
     return moved
 
 
+def _plugin_copies(p: PlannedCell, grid_dir: Path) -> list[str] | None:
+    """Copy the cell's plugin files into GRID_DIR/plugins; the entries its config names them by
+    (relative to GRID_DIR/configs), or None without plugins."""
+    if not p.cell.cfg.plugins:
+        return None
+    return [f"../plugins/{c.name}" for c in copy_plugins(p.cell.cfg.plugins, grid_dir / "plugins")]
+
+
+def _cost_note(plan: list[PlannedCell]) -> str:
+    """Which cost figures were measured (plugin mixers without formulas), for the report."""
+    from blockyard.cost.analytic import measured_note
+
+    return " ".join(dict.fromkeys(note for p in plan if (note := measured_note(p.cell.cfg.model))))
+
+
 def _plan_rows(plan: list[PlannedCell]) -> list[dict[str, Any]]:
     return [{
         "id": p.id, "variant": p.cell.variant, "seed": p.cell.seed, "point": [list(kv) for kv in p.cell.point],
@@ -346,6 +363,7 @@ def run_grid(
     address: str | None = None,
     force: bool = False,
     dry_run: bool = False,
+    check: bool = True,
     echo: Callable[[str], None] = print,
     status_every_s: float = STATUS_EVERY_S,
 ) -> int:
@@ -400,6 +418,10 @@ def run_grid(
     _refuse_changed_spec(grid_dir, grid_file, old_hashes, new, force, hint)
     unfinished = [p for p in plan
                   if (read_summary(cell_dir(grid_dir, p.id) / "summary.json") or {}).get("status") not in FINISHED]
+    if check:  # a plugin mixer that leaks is refused before any cell starts (and each cell checks again)
+        from blockyard.check import gate_many
+
+        gate_many([p.cell.cfg for p in unfinished])
     prepare_data(unfinished, echo)
     grid_dir.mkdir(parents=True, exist_ok=True)
     with grid_lock(grid_dir), open_index(grid_dir) as index:
@@ -414,11 +436,12 @@ def run_grid(
         _archive_spec(grid_dir, spec.text)
         (grid_dir / "configs").mkdir(exist_ok=True)
         for p in plan:
-            _write_if_changed(grid_dir / "configs" / f"{p.id}.yaml", dump_config(p.cell.cfg))
+            text = dump_config(p.cell.cfg, _plugin_copies(p, grid_dir))
+            _write_if_changed(grid_dir / "configs" / f"{p.id}.yaml", text)
         index.plan(_plan_rows(plan))
         index.set_meta({"name": spec.name, "description": spec.description, "reference": spec.reference or "",
                         "match": spec.match, "threads": str(threads), "fingerprint": fingerprint(plan),
-                        "grid_file": str(Path(grid_file).resolve())})
+                        "grid_file": str(Path(grid_file).resolve()), "cost_note": _cost_note(plan)})
         todo = _reconcile(grid_dir, index)
         recorder = _Recorder(grid_dir, index, spec.name, echo, status_every_s)
         finished = len(plan) - len(todo)
@@ -426,7 +449,8 @@ def run_grid(
              f"{executor} executor, {workers or 'auto'} worker(s) x {threads} thread(s))")
         jobs = [executors.CellJob(id=cid, config_path=(grid_dir / "configs" / f"{cid}.yaml").resolve(),
                                   out_dir=cell_dir(grid_dir, cid).resolve(),
-                                  log_path=(grid_dir / "logs" / f"{cid}.log").resolve(), threads=threads)
+                                  log_path=(grid_dir / "logs" / f"{cid}.log").resolve(), threads=threads,
+                                  check=check)
                 for cid in todo]
         if jobs:
             (grid_dir / "cells").mkdir(exist_ok=True)

@@ -23,7 +23,7 @@ import torch.nn.functional as F
 from torch import nn
 
 from blockyard.errors import ConfigError
-from blockyard.mixers.base import Mixer, register_mixer
+from blockyard.mixers.base import Mixer, mark_residual_out, register_mixer
 from blockyard.mixers.rope import apply_rope
 from blockyard.schema import opt
 
@@ -186,7 +186,7 @@ class _Attention(Mixer):
         self.head_dim = width // options.heads
         self.qkv = nn.Linear(width, (self.heads + 2 * self.kv_heads) * self.head_dim, bias=False)
         self.out = nn.Linear(self.heads * self.head_dim, width, bias=False)
-        self.out.residual_out = True
+        mark_residual_out(self.out)
         self.query_scale = 1.0
 
     def use_base_width(self, base_width: int) -> None:

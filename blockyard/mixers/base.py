@@ -7,19 +7,33 @@ dataclass of tensors), created by ``init_state(batch)``. The step path never mut
 in place: it returns a new one.
 
 The cost hooks (``param_count``, ``extra_flops_per_token``, ``state_bytes``) are analytic
-formulas from the options alone; tests compare them with counted parameters and measured
-state tensors.
+formulas from the options alone; the contract (``blockyard/mixers/contract.py``) compares them
+with counted parameters and measured state tensors. A mixer loaded from a user's plugin file may
+leave them out: the cost model then measures them (``blockyard/cost/measured.py``).
+
+Init convention (``residual_out``): the backbone initialises every ``nn.Linear`` weight of a
+mixer ~ N(0, init_std), except the projections that write into the residual stream, which get
+N(0, init_std / sqrt(2 * depth)) so that the stream's variance does not grow with depth
+(Radford et al. 2019). A mixer declares those with :func:`mark_residual_out` (usually its one
+output projection); the contract checks that at least one is declared.
 """
 
 from __future__ import annotations
 
 import dataclasses
+import sys
 from typing import Any, ClassVar
 
 import torch
 from torch import nn
 
 MIXERS: dict[str, type[Mixer]] = {}
+#: The attribute that marks a module as writing into the residual stream (see the module docstring).
+RESIDUAL_OUT = "residual_out"
+#: Module names of plugin files start with this (``blockyard/mixers/plugins.py``).
+PLUGIN_MODULE_PREFIX = "blockyard_plugin_"
+#: The cost hooks a mixer class may give (a plugin may leave any of them out).
+COST_HOOKS = ("param_count", "extra_flops_per_token", "state_bytes")
 
 
 def register_mixer(cls: type[Mixer]) -> type[Mixer]:
@@ -28,10 +42,40 @@ def register_mixer(cls: type[Mixer]) -> type[Mixer]:
         raise TypeError(f"{cls.__name__} needs a class attribute 'kind'")
     if not dataclasses.is_dataclass(getattr(cls, "Options", None)):
         raise TypeError(f"{cls.__name__}.Options must be a dataclass of its config keys")
-    if cls.kind in MIXERS and MIXERS[cls.kind] is not cls:
-        raise ValueError(f"mixer kind {cls.kind!r} registered twice")
+    earlier = MIXERS.get(cls.kind)
+    if earlier is not None and earlier is not cls and not _same_plugin_file(earlier, cls):
+        if not earlier.__module__.startswith(PLUGIN_MODULE_PREFIX):
+            raise ValueError(f"mixer kind {cls.kind!r} is a built-in mixer; give the class another kind")
+        raise ValueError(f"mixer kind {cls.kind!r} is already registered by {_source_file(earlier)}")
     MIXERS[cls.kind] = cls
     return cls
+
+
+def _source_file(cls: type) -> str:
+    module = sys.modules.get(cls.__module__)
+    return str(getattr(module, "__file__", None) or cls.__module__)
+
+
+def _same_plugin_file(earlier: type, cls: type) -> bool:
+    """True when ``cls`` comes from an edited version of the plugin file that registered ``earlier``:
+    it then replaces it (a notebook or test that reloads a changed file)."""
+    return (earlier.__module__.startswith(PLUGIN_MODULE_PREFIX) and cls.__module__.startswith(PLUGIN_MODULE_PREFIX)
+            and _source_file(earlier) == _source_file(cls))
+
+
+def mark_residual_out(module: nn.Module) -> nn.Module:
+    """Declare ``module`` (a linear layer) as writing into the residual stream: its init is scaled down."""
+    setattr(module, RESIDUAL_OUT, True)
+    return module
+
+
+def is_residual_out(module: nn.Module) -> bool:
+    return bool(getattr(module, RESIDUAL_OUT, False))
+
+
+def gives_hook(cls: type[Mixer], name: str) -> bool:
+    """True when ``cls`` defines the cost hook ``name`` itself rather than inheriting the base's stub."""
+    return getattr(cls, name).__func__ is not getattr(Mixer, name).__func__
 
 
 def state_nbytes(state: Any) -> int:

@@ -17,7 +17,7 @@ import torch
 from torch import nn
 
 from blockyard.errors import ConfigError
-from blockyard.mixers.base import Mixer, register_mixer
+from blockyard.mixers.base import Mixer, mark_residual_out, register_mixer
 from blockyard.schema import opt
 
 # Rough forward FLOPs per hidden unit and token beyond 6 x params (common practice, no source:
@@ -60,7 +60,7 @@ class LSTMMixer(Mixer):
         self.hidden = options.hidden(width)
         self.lstm = nn.LSTM(width, self.hidden, num_layers=1, batch_first=True)
         self.proj_out = nn.Linear(self.hidden, width, bias=False)
-        self.proj_out.residual_out = True
+        mark_residual_out(self.proj_out)
         self.base_hidden: int | None = None
 
     def use_base_width(self, base_width: int) -> None:

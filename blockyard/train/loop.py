@@ -35,7 +35,7 @@ from blockyard.train.memory import PeakRSS
 from blockyard.train.optim import build_optimizer, build_scheduler, tokens_per_step, total_steps
 from blockyard.train.progress import Progress, make_progress
 from blockyard.train.records import MetricsLog, TensorBoardLog, atomic_write_text, environment, write_json
-from blockyard.train.rundir import clear_records, inspect_run_dir, plan_run_dir, remove_temp_files
+from blockyard.train.rundir import clear_records, inspect_run_dir, keep_plugin_copies, plan_run_dir, remove_temp_files
 from blockyard.train.runtime import Runtime, resolve_runtime
 from blockyard.train.signals import StopRequest
 
@@ -175,6 +175,7 @@ class Setup:
     scheduler: Any
     total: int
     tokens_per_step: int
+    mixer_check: str = ""  # what the contract gate on plugin mixers found (env.json)
 
 
 def _now() -> str:
@@ -247,11 +248,13 @@ def run_training(
     force: bool = False,
     progress: str | Progress | None = None,
     eval_hooks: Sequence[EvalHook] = (),
+    check: bool = True,
 ) -> dict[str, Any]:
     """Train ``cfg`` into ``out_dir`` (fresh, resumed, or not at all when done); the summary.
 
     ``progress``: None/"auto" (tqdm bar on a TTY, log lines otherwise), "log", "bar",
-    "silent", "warnings", or a :class:`Progress`. Raises UserError for bad input (the dir untouched).
+    "silent", "warnings", or a :class:`Progress`. ``check``: run the mixer contract gate on
+    plugin mixers first (``blockyard.check.gate``). Raises UserError for bad input (the dir untouched).
     """
     out = Path(out_dir)
     cfg_hash = config_hash(cfg)
@@ -275,7 +278,11 @@ def run_training(
     threads_before = torch.get_num_threads()
     torch.set_num_threads(runtime.threads)
     try:
+        from blockyard.check import SKIPPED, gate  # a plugin mixer that leaks is refused before anything is written
+
+        mixer_check = gate(cfg) if check else SKIPPED
         s = _build(cfg, cfg_hash, runtime)
+        s.mixer_check = mixer_check
         from blockyard.cost.memory import warn_if_too_large  # activations that will not fit: say so first
 
         warn_if_too_large(cfg, s.data.vocab_size, lambda m: show.message(f"warning: {m}"))
@@ -298,7 +305,7 @@ def _start(s: Setup, out: Path, action: str, show: Progress) -> tuple[int, LoopS
     if found is None:
         out.mkdir(parents=True, exist_ok=True)
         clear_records(out)
-        atomic_write_text(out / "config.yaml", dump_config(s.cfg))
+        atomic_write_text(out / "config.yaml", dump_config(s.cfg, keep_plugin_copies(s.cfg, out)))
         metrics = MetricsLog(out / "metrics.jsonl")
         return 0, LoopState(), metrics, TensorBoardLog(out / "tb")
     loop = LoopState(**ckpt.restore(found, s.model, s.optimizer, s.scheduler))
@@ -311,7 +318,8 @@ def _train(s: Setup, out: Path, action: str, show: Progress, eval_hooks: Sequenc
     cfg = s.cfg.train
     step, loop, metrics, tb = _start(s, out, action, show)
     write_json(out / "env.json", environment(**s.runtime.facts(), start_time=_now(),
-                                              resumed_from_step=step if step else None, data=s.data.describe()))
+                                              resumed_from_step=step if step else None, data=s.data.describe(),
+                                              mixer_check=s.mixer_check))
     params = _param_counts(s.model)
     if step == 0:
         show.message(f"training {s.cfg.name or 'run'} ({s.cfg_hash}) into {out}: {params['total']:,} params "
@@ -416,6 +424,6 @@ def exit_code(summary: dict[str, Any]) -> int:
     return 1
 
 
-def train_from_cli(cfg: Config, out: str | Path | None = None, force: bool = False) -> int:
+def train_from_cli(cfg: Config, out: str | Path | None = None, force: bool = False, check: bool = True) -> int:
     """``blockyard train``: run into ``out`` (default :func:`default_run_dir`); the exit code."""
-    return exit_code(run_training(cfg, Path(out) if out else default_run_dir(cfg), force=force))
+    return exit_code(run_training(cfg, Path(out) if out else default_run_dir(cfg), force=force, check=check))

@@ -32,7 +32,8 @@ import torch
 EVAL_FILE = "eval.json"
 
 #: Files and folders a run owns inside its dir; ``--force`` removes these and nothing else.
-RECORD_NAMES = ("config.yaml", "metrics.jsonl", "summary.json", "env.json", "checkpoints", "tb", EVAL_FILE)
+RECORD_NAMES = ("config.yaml", "metrics.jsonl", "summary.json", "env.json", "checkpoints", "tb", EVAL_FILE,
+                "plugins")
 
 #: Fields that measure time and so differ between otherwise identical runs.
 TIMING_FIELDS = ("tokens_per_s", "wall_s")

@@ -14,8 +14,9 @@ from typing import Any
 
 import yaml
 
-from blockyard.config import config_from_dict, config_hash
+from blockyard.config import Config, config_from_dict, config_hash, dict_hash
 from blockyard.errors import UserError
+from blockyard.mixers.plugins import copy_plugins, is_loaded, resolve_plugin_paths
 from blockyard.train.records import RECORD_NAMES, read_json
 
 
@@ -30,10 +31,18 @@ class DirState:
 
 
 def stored_config_hash(path: Path) -> str | None:
-    """``config_hash`` of a run dir's config.yaml, None when it cannot be read as a config."""
+    """``config_hash`` of a run dir's config.yaml, None when it cannot be read as a config.
+
+    Its ``plugins`` name the copies kept in the run dir. When those are not the versions loaded
+    in this process, the hash is taken from the file's dict as written: parsing it would load
+    the old plugin version into the registry in place of the one this process is about to train.
+    """
     try:
         data = yaml.safe_load(path.read_text())
-        return config_hash(config_from_dict(data))
+        stored_plugins = resolve_plugin_paths(data.get("plugins"), path.parent)
+        if not all(is_loaded(p) for p in stored_plugins):
+            return dict_hash(data, path.parent)
+        return config_hash(config_from_dict(data, path.parent))
     except (OSError, yaml.YAMLError, UserError, TypeError, AttributeError):
         return None
 
@@ -70,6 +79,14 @@ def plan_run_dir(state: DirState, out: Path, cfg_hash: str, force: bool) -> str:
                         "use --force to replace it or --out for another dir")
     raise UserError(f"{out}: is not empty and holds no run (no config.yaml); "
                     "use --force to write a run into it or --out for another dir")
+
+
+def keep_plugin_copies(cfg: Config, out: Path) -> list[str] | None:
+    """Copy ``cfg``'s plugin files into ``out/plugins``; the entries config.yaml names them by
+    (relative to ``out``), or None without plugins."""
+    if not cfg.plugins:
+        return None
+    return [str(p.relative_to(out)) for p in copy_plugins(cfg.plugins, out / "plugins")]
 
 
 def clear_records(out: Path) -> None:
