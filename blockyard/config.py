@@ -372,8 +372,8 @@ def dump_config(cfg: Config, plugins: list[str] | None = None) -> str:
 def dict_hash(data: dict[str, Any], base_dir: Path | None = None, length: int = 8) -> str:
     """The hash of a resolved config dict, as :func:`config_hash` computes it for the parsed config.
 
-    Plugin files enter by content hash, not by path: a copy of the same file hashes the same;
-    an edited file is another config. No plugins, no key: configs without plugins keep
+    Plugin files enter by content hash, not by path, read when this is called: a copy of the same
+    file hashes the same; an edited file is another config. No plugins, no key: configs without plugins keep
     the hashes they had before the key existed.
     """
     from blockyard.mixers.plugins import file_digest, resolve_plugin_paths

@@ -164,3 +164,69 @@ def test_format_helpers():
     assert cost.format_count(1234567) == "1.23M"
     assert cost.format_bytes(1536) == "1.5 KiB"
     assert cost.format_bytes(100) == "100 B"
+
+
+# ----------------------------------------------------------------------------- measured figures (plugins without hooks)
+
+
+def _counted_by_op(kind: str, width: int, context: int) -> dict[str, float]:
+    """torch's FlopCounterMode per op over one forward + backward, per token."""
+    from blockyard.cost.measured import flop_counter
+    from blockyard.mixers.contract import build_mixer
+
+    mixer = build_mixer(MIXERS[kind], width, small([kind]).model.mixers[kind].options)
+    x = torch.randn(1, context, width, requires_grad=True)
+    with flop_counter() as counter:
+        mixer(x).sum().backward()
+    return {str(op): n / context for op, n in counter.get_flop_counts()["Global"].items()}
+
+
+@pytest.mark.parametrize("width,context", [(32, 64), (64, 128)])
+def test_flop_counter_agrees_with_the_analytic_attention_formulas(width, context):
+    # torch.utils.flop_counter.FlopCounterMode, an outside count, against Kaplan et al. 2020's terms:
+    # - projections: 6 x params exactly (2 FLOPs per multiply-add forward, twice that backward);
+    # - scores and values: Kaplan et al. count 6 n_ctx d_attn, the causal average (half of the L x L
+    #   products, x3 for training). The counter counts the full L x L square, 4 n_ctx d forward, and
+    #   the attention backward as 5 products (the scores recomputed), 10 n_ctx d: 14 / 6 of Kaplan's
+    #   term. Stated tolerance: 1% (the counts are exact; the margin is for a changed torch formula).
+    by_op = _counted_by_op("global_attention", width, context)
+    cls, opts = MIXERS["global_attention"], small(["global_attention"]).model.mixers["global_attention"].options
+    dense = sum(n for op, n in by_op.items() if op in ("aten.mm", "aten.addmm", "aten.bmm"))
+    attention = sum(n for op, n in by_op.items() if "attention" in op)
+    assert dense == pytest.approx(6 * cls.param_count(width, opts), rel=0.01)
+    assert attention == pytest.approx(14 / 6 * cls.extra_flops_per_token(width, opts, context), rel=0.01)
+
+
+def test_measured_figures_of_a_plugin_match_its_own_formulas():
+    # The example plugin gives param_count and state_bytes: the measured path must reproduce them.
+    from conftest import LINEAR_ATTENTION
+
+    from blockyard.cost import measured
+    from blockyard.mixers.plugins import load_plugin
+
+    (cls,) = load_plugin(LINEAR_ATTENTION)
+    opts = cls.Options(heads=4)
+    assert measured.counted_params(cls, 64, opts) == cls.param_count(64, opts)
+    for context, batch in ((1, 1), (4096, 3)):
+        assert measured.measured_state_bytes(cls, 64, opts, context, batch=batch) == cls.state_bytes(
+            64, opts, context, batch=batch)
+    assert measured.measured_hooks(cls) == ("extra_flops_per_token",)
+
+
+def test_measured_state_bytes_extrapolate_a_growing_cache():
+    # Global attention's KV cache grows by 2 x d x 4 bytes per token: measured from steps 1 and 2.
+    from blockyard.cost import measured
+
+    cls, opts = MIXERS["global_attention"], small(["global_attention"]).model.mixers["global_attention"].options
+    for context in (1, 2, 1000):
+        assert measured.measured_state_bytes(cls, 32, opts, context) == cls.state_bytes(32, opts, context)
+
+
+def test_blocks_says_which_figures_were_measured(capsys):
+    from conftest import LEAKY
+
+    cfg = config_from_dict({"plugins": [str(LEAKY)], "model": {"width": 32, "pattern": ["leaky_linear_attention"]}})
+    text = cost.describe_config(cfg, VOCAB)
+    assert text.splitlines()[-1] == ("measured, not analytic (the plugin gives no formula; blockyard/cost/measured.py):"
+                                     " leaky_linear_attention: param_count, extra_flops_per_token, state_bytes")
+    assert cost.param_breakdown(cfg, VOCAB)["total"] == build_model(cfg.model, VOCAB).param_groups()["total"]

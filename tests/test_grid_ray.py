@@ -106,6 +106,23 @@ def test_ray_executor_matches_local_processes(tmp_path, ray_head):
     assert (tmp_path / "ray" / "logs" / "attention-seed3.log").read_text().count("(ray)") == 1
 
 
+@pytest.mark.slow
+def test_grid_with_a_plugin_on_ray_matches_local_processes(tmp_path, ray_head):
+    # Each Ray task loads the plugin from the grid dir's copy (the same file the local cells load).
+    from conftest import LINEAR_ATTENTION
+    from test_plugins_grid import plugin_grid
+
+    spec = plugin_grid(tmp_path / "spec", LINEAR_ATTENTION, "linear_attention")
+    assert run_grid(spec, out=tmp_path / "local", workers=2, threads=1, echo=lambda _: None) == 0
+    proc = subprocess.run([sys.executable, "-m", "blockyard", "grid", str(spec), "--out", str(tmp_path / "ray"),
+                           "--executor", "ray", "--address", ray_head, "--threads", "1"],
+                          capture_output=True, text=True, timeout=400, env=_ray_env())
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    local, ray = _finals(tmp_path / "local"), _finals(tmp_path / "ray")
+    assert set(ray) == {"softmax-seed0", "mine-seed0"} and ray == local
+    assert "(ray)" in (tmp_path / "ray" / "logs" / "mine-seed0.log").read_text()
+
+
 def test_missing_ray_is_a_one_line_user_error(monkeypatch):
     monkeypatch.setitem(sys.modules, "ray", None)  # makes `import ray` raise ImportError
     with pytest.raises(UserError, match=r"^--executor ray needs Ray: pip install '\.\[ray\]'"):

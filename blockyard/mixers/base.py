@@ -21,7 +21,6 @@ output projection); the contract checks that at least one is declared.
 from __future__ import annotations
 
 import dataclasses
-import sys
 from typing import Any, ClassVar
 
 import torch
@@ -43,24 +42,12 @@ def register_mixer(cls: type[Mixer]) -> type[Mixer]:
     if not dataclasses.is_dataclass(getattr(cls, "Options", None)):
         raise TypeError(f"{cls.__name__}.Options must be a dataclass of its config keys")
     earlier = MIXERS.get(cls.kind)
-    if earlier is not None and earlier is not cls and not _same_plugin_file(earlier, cls):
-        if not earlier.__module__.startswith(PLUGIN_MODULE_PREFIX):
-            raise ValueError(f"mixer kind {cls.kind!r} is a built-in mixer; give the class another kind")
-        raise ValueError(f"mixer kind {cls.kind!r} is already registered by {_source_file(earlier)}")
+    # A plugin's kind may be taken over by a later plugin (an edited file loaded again in the same
+    # process); the plugin loader refuses two files of one config that define the same kind.
+    if earlier is not None and earlier is not cls and not earlier.__module__.startswith(PLUGIN_MODULE_PREFIX):
+        raise ValueError(f"mixer kind {cls.kind!r} is a built-in mixer; give the class another kind")
     MIXERS[cls.kind] = cls
     return cls
-
-
-def _source_file(cls: type) -> str:
-    module = sys.modules.get(cls.__module__)
-    return str(getattr(module, "__file__", None) or cls.__module__)
-
-
-def _same_plugin_file(earlier: type, cls: type) -> bool:
-    """True when ``cls`` comes from an edited version of the plugin file that registered ``earlier``:
-    it then replaces it (a notebook or test that reloads a changed file)."""
-    return (earlier.__module__.startswith(PLUGIN_MODULE_PREFIX) and cls.__module__.startswith(PLUGIN_MODULE_PREFIX)
-            and _source_file(earlier) == _source_file(cls))
 
 
 def mark_residual_out(module: nn.Module) -> nn.Module:

@@ -112,8 +112,18 @@ def load_plugin(path: str | Path) -> tuple[type[Mixer], ...]:
 
 
 def load_plugins(paths: Sequence[str | Path]) -> list[str]:
-    """Load every file of ``paths`` in order; returns the mixer kinds they registered."""
-    return [cls.kind for path in paths for cls in load_plugin(path)]
+    """Load every file of ``paths`` in order; returns the mixer kinds they registered.
+
+    Two files that define the same kind are refused (which one a config meant is unclear).
+    """
+    source: dict[str, Path] = {}
+    for i, path in enumerate(map(Path, paths)):
+        for cls in load_plugin(path):
+            if cls.kind in source:
+                raise ConfigError(f"plugins[{i}]", f"{path} defines mixer kind {cls.kind!r}, as {source[cls.kind]} "
+                                  "does; give one of them another kind")
+            source[cls.kind] = path
+    return list(source)
 
 
 def is_loaded(path: str | Path) -> bool:
