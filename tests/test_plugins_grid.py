@@ -13,7 +13,7 @@ import yaml
 from conftest import LEAKY, LINEAR_ATTENTION
 
 from blockyard.errors import UserError
-from blockyard.grid.fairness import PARAMS_TOLERANCE
+from blockyard.grid.fairness import MATCH_TOLERANCE
 from blockyard.grid.index import open_index
 from blockyard.grid.run import plan_cells, run_grid
 from blockyard.grid.spec import load_grid
@@ -78,4 +78,4 @@ def test_parameter_matching_counts_a_plugin_without_formulas(tmp_path):
     assert mine.cell.adjustments  # the MLP width was changed to match
     built = build_model(mine.cell.cfg.model, 256).param_groups()["non_embedding"]
     assert built == mine.cost.params_non_embedding
-    assert abs(built - ref.cost.params_non_embedding) <= PARAMS_TOLERANCE * ref.cost.params_non_embedding
+    assert abs(built - ref.cost.params_non_embedding) <= MATCH_TOLERANCE * ref.cost.params_non_embedding
