@@ -145,8 +145,9 @@ class TrainConfig:
     beta1: float = opt(0.9, "AdamW beta1", min=0.0, max=1.0)
     beta2: float = opt(0.95, "AdamW beta2", min=0.0, max=1.0)
     grad_clip: float = opt(1.0, "clip the global gradient norm to this (0 = off)", min=0.0)
-    seed: int = opt(0, "seed of the parameter init (and of the data unless data_seed >= 0)", min=0)
+    seed: int = opt(0, "seed of the parameter init and of the data (unless init_seed / data_seed >= 0)", min=0)
     data_seed: int = opt(-1, "seed of the batch stream and validation windows (-1 = train.seed)", min=-1)
+    init_seed: int = opt(-1, "seed of the parameter init only (-1 = train.seed)", min=-1)
     eval_every: int = opt(50, "evaluate on the validation windows every N steps (and at the end)", min=1)
     eval_windows: int = opt(32, "number of fixed validation windows", min=1)
     log_every: int = opt(10, "write a train line every N steps (and at step 1 and the last step)", min=1)
@@ -157,6 +158,10 @@ class TrainConfig:
     @property
     def effective_data_seed(self) -> int:
         return self.seed if self.data_seed < 0 else self.data_seed
+
+    @property
+    def effective_init_seed(self) -> int:
+        return self.seed if self.init_seed < 0 else self.init_seed
 
 
 @dataclasses.dataclass(frozen=True)

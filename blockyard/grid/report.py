@@ -1,11 +1,10 @@
-"""The grid report: what the cells say, with error bars, in GRID_DIR/report.md, report.html, results.csv.
+"""The grid report: verdicts with simultaneous error bars (report.md / .html, verdicts.csv, results.csv, plots).
 
-Inputs are the grid index (every cell's status and final metrics) and each cell's
-``metrics.jsonl`` (for the curves). Per group (variant x axis point) it gives the mean final
-validation loss over seeds with a 95% Student-t interval; per non-reference group the paired
-difference to the reference at the same axis point (same seeds) with its interval, a verdict in
-plain words, and the seeds a difference of the observed size would need (see blockyard.grid.stats).
-Cells that diverged, failed or have not finished are listed and left out of every statistic.
+Inputs are the grid index (every cell's status and final metrics, the grid's design) and each
+cell's ``metrics.jsonl`` (for the curves). The statistics come from ``blockyard.grid.verdicts``
+(comparisons, family, divergence) and ``blockyard.grid.stats`` (pure numbers); this module only
+lays them out: the verdicts and their forest plot first, then the noise floor (null control),
+the variants with their costs, the cells left out, the curves, and the method in plain words.
 """
 
 from __future__ import annotations
@@ -22,48 +21,44 @@ from typing import Any
 
 from blockyard.errors import UserError
 from blockyard.grid import stats
+from blockyard.grid.fairness import PARAMS_TOLERANCE
 from blockyard.grid.index import INDEX_NAME, open_index
+from blockyard.grid.rounds import plan_rounds
+from blockyard.grid.spec import NULL_INIT_OFFSET, Design
 from blockyard.grid.status import cell_dir, read_jsonl
+from blockyard.grid.verdicts import Comparison, Family, common_seed_means, compare_all, group_outcomes, point_text
 
 CAUTION = (
     "These verdicts hold for this model size, this data and this training budget only. Effects seen in tiny "
     "models can shrink, vanish or reverse at scale: confirm at the scale you care about before relying on them."
 )
 BAND = "line: mean over seeds; band: min to max over seeds"
+FOREST = "verdicts.png"
 
 
 @dataclasses.dataclass
 class Group:
-    """The cells of one variant at one axis point."""
+    """The cells of one variant at one axis point (for curves and costs)."""
 
     variant: str
     point: tuple[tuple[str, Any], ...]
     rows: list[dict[str, Any]]
 
     @property
+    def key(self) -> tuple[str, tuple[tuple[str, Any], ...]]:
+        return (self.variant, self.point)
+
+    @property
     def label(self) -> str:
-        if not self.point:
-            return self.variant
-        return f"{self.variant} ({', '.join(f'{k}={_text(v)}' for k, v in self.point)})"
+        return self.variant if not self.point else f"{self.variant} ({point_text(self.point)})"
 
     @property
     def point_text(self) -> str:
-        return ", ".join(f"{k}={_text(v)}" for k, v in self.point) or "-"
+        return point_text(self.point)
 
     @property
     def done(self) -> list[dict[str, Any]]:
         return [r for r in self.rows if r["status"] == "done" and _finite(r["final_val_loss"])]
-
-    def finals(self) -> dict[int, float]:
-        return {r["seed"]: float(r["final_val_loss"]) for r in self.done}
-
-
-def _text(v: Any) -> str:
-    if isinstance(v, (list, tuple)):
-        return "[" + ", ".join(_text(x) for x in v) + "]"
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    return str(v)
 
 
 def _finite(x: Any) -> bool:
@@ -87,7 +82,9 @@ def _count(n: float | None) -> str:
     return f"{n:.3g}"
 
 
-def _ci_text(iv: stats.Interval, signed: bool = False) -> str:
+def _ci_text(iv: stats.Interval | None, signed: bool = False) -> str:
+    if iv is None:
+        return "-"
     if iv.low is None or iv.high is None:
         return stats.NO_INTERVAL
     f = _signed if signed else _fmt
@@ -99,43 +96,51 @@ def _mean(values: list[float]) -> float | None:
     return sum(values) / len(values) if values else None
 
 
+def _pct(x: float) -> str:
+    return f"{100 * x:.4g}%"
+
+
 def group_cells(rows: list[dict[str, Any]]) -> list[Group]:
     groups: dict[tuple, Group] = {}
     for r in rows:
-        key = (r["variant"], tuple(r["point"]))
+        key = (r["variant"], tuple(tuple(p) for p in r["point"]))
         if key not in groups:
-            groups[key] = Group(r["variant"], tuple(tuple(p) for p in r["point"]), [])
+            groups[key] = Group(r["variant"], key[1], [])
         groups[key].rows.append(r)
     return list(groups.values())
 
 
-# ----------------------------------------------------------------------------- statistics
+# ----------------------------------------------------------------------------- inputs
 
 
 @dataclasses.dataclass(frozen=True)
-class Comparison:
-    group: Group
-    reference: Group
-    seeds: list[int]
-    diff: stats.Interval | None
-    verdict: str
-    seeds_needed: int | None
+class GridResults:
+    """Everything the report says, computed once from the index rows and the recorded design."""
+
+    name: str
+    description: str
+    reference: str | None
+    match: str
+    design: Design
+    design_changed: bool
+    rows: list[dict[str, Any]]
+    groups: list[Group]
+    family: Family
+    rounds: str | None  # "N rounds ran; <why it stopped>" with a seed schedule
 
 
-def compare(group: Group, reference: Group) -> Comparison:
-    seeds, diffs = stats.paired_differences(group.finals(), reference.finals())
-    if not diffs:
-        return Comparison(group, reference, [], None, "no finished pairs", None)
-    iv = stats.mean_interval(diffs)
-    needed = stats.seeds_to_detect(iv.mean, iv.sd) if iv.sd is not None else None
-    return Comparison(group, reference, seeds, iv, stats.verdict(iv), needed)
-
-
-def comparisons(groups: list[Group], reference: str | None) -> list[Comparison]:
-    if reference is None:
-        return []
-    refs = {g.point: g for g in groups if g.variant == reference}
-    return [compare(g, refs[g.point]) for g in groups if g.variant != reference and g.point in refs]
+def grid_results(rows: list[dict[str, Any]], meta: dict[str, str | None], default_name: str) -> GridResults:
+    reference = meta.get("reference") or None
+    design = Design.from_json(meta.get("design"))
+    outcomes = group_outcomes(rows)
+    family = compare_all(outcomes, reference, design)
+    rounds = None
+    if design.schedule is not None:
+        state = plan_rounds(design, list(outcomes), reference, tuple(range(design.schedule.most)), outcomes)
+        rounds = f"{state.rounds} round(s) ran; {state.reason}" if state.complete else f"still running: {state.reason}"
+    return GridResults(meta.get("name") or default_name, meta.get("description") or "", reference,
+                       meta.get("match") or "none", design, meta.get("design_changed") == "1", rows,
+                       group_cells(rows), family, rounds)
 
 
 # ----------------------------------------------------------------------------- curves and plots
@@ -173,17 +178,113 @@ def _band(curves: list[list[tuple[float, float, float]]]) -> tuple[list[float], 
     return xs, walls, means, lows, highs
 
 
-def write_plots(grid_dir: Path, groups: list[Group]) -> list[tuple[str, str]]:
-    """PNG files in the grid dir; returns (file name, caption) for each written."""
+def write_plots(grid_dir: Path, res: GridResults) -> list[tuple[str, str]]:
+    """PNG files in the grid dir, the forest plot first; returns (file name, caption) for each written."""
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
+    written: list[tuple[str, str]] = []
+    if forest_plot(plt, grid_dir / FOREST, res.family):
+        written.append((FOREST, _forest_caption(res.family)))
+    written += _curve_plots(plt, grid_dir, res.groups)
+    if axis_varies_size(res.groups) and _params_plot(plt, grid_dir / "final_loss_vs_params.png", res.groups):
+        written.append(("final_loss_vs_params.png",
+                        "Final validation loss vs non-embedding parameters (mean over seeds; bars: 95% t interval "
+                        "of each group's own seeds)."))
+    from blockyard.eval.extrapolation import (
+        report_figures,  # length extrapolation (eval.json) and eval.probes, where present
+    )
+
+    written += report_figures(grid_dir, {g.label: [cell_dir(grid_dir, r["id"]) for r in g.done] for g in res.groups})
+    return written
+
+
+def forest_plot(plt: Any, path: Path, family: Family) -> bool:
+    """One row per comparison: the paired difference, its simultaneous interval (thick) and the unadjusted 95%
+    one (thin), the +-smallest-effect band shaded, the verdict beside each row; the null control below, in grey."""
+    rows = [c for c in family.comparisons + family.null if c.interval is not None]
+    if not rows:
+        return False
+    delta = family.design.smallest_effect
+    fig, ax = plt.subplots(figsize=(7.2, 1.2 + 0.42 * len(rows)))
+    ax.axvspan(-delta, delta, color="#9ecae1", alpha=0.35, linewidth=0, label=f"±smallest effect ({delta:g})")
+    ax.axvline(0, color="black", linewidth=0.8)
+    colors = {stats.BETTER: "#2b8a3e", stats.WORSE: "#c92a2a", stats.EQUIVALENT: "#1c7ed6", stats.UNDECIDED: "#555"}
+    for y, c in enumerate(reversed(rows)):
+        color = "#999" if not c.in_family else colors[c.verdict]
+        iv, un = c.interval, c.unadjusted
+        if iv.low is not None:
+            ax.plot([iv.low, iv.high], [y, y], color=color, linewidth=3, solid_capstyle="butt")
+        if un is not None and un.low is not None:
+            ax.plot([un.low, un.high], [y, y], color=color, linewidth=1, alpha=0.7, marker="|", ms=9)
+        ax.plot([iv.mean], [y], "o", color=color, ms=5)
+        word = c.verdict + ("" if c.in_family else " (null control)")
+        ax.annotate(word, xy=(1.01, y), xycoords=("axes fraction", "data"), va="center", fontsize=8, color=color)
+    ax.set_yticks(range(len(rows)))
+    ax.set_yticklabels([c.variant if not c.point else f"{c.variant} @ {c.point_text}" for c in reversed(rows)],
+                       fontsize=8)
+    ax.set_ylim(-0.7, len(rows) - 0.3)
+    ax.set_xlabel(f"final val loss difference to {family_reference(family)} (nats/token; < 0 is better)")
+    ax.grid(True, axis="x", alpha=0.3)
+    ax.legend(fontsize=7, loc="lower right")
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return True
+
+
+def family_reference(family: Family) -> str:
+    return next((c.reference for c in family.comparisons + family.null), "the reference")
+
+
+def _forest_caption(family: Family) -> str:
+    return (f"Paired differences to the reference (variant minus reference; dot: mean). Thick: "
+            f"{_pct(stats.LEVEL)} simultaneous interval over the grid's {family.size} comparison(s) (what the "
+            f"verdicts use); thin: unadjusted 95% interval. Shaded: ±{family.design.smallest_effect:g} nats/token, "
+            "the smallest effect that matters.")
+
+
+def axis_varies_size(groups: list[Group]) -> bool:
+    """True when the mean non-embedding parameters differ across axis points by more than the matching tolerance."""
+    by_point: dict[tuple, list[float]] = {}
+    for g in groups:
+        params = _mean([r["params_non_embedding"] for r in g.rows if r.get("params_non_embedding")])
+        if params:
+            by_point.setdefault(g.point, []).append(params)
+    means = [sum(v) / len(v) for v in by_point.values()]
+    return len(means) > 1 and max(means) > (1 + PARAMS_TOLERANCE) * min(means)
+
+
+def _params_plot(plt: Any, path: Path, groups: list[Group]) -> bool:
+    fig, ax = plt.subplots(figsize=(6.4, 4.2))
+    plotted = False
+    for g in groups:
+        finals = [float(r["final_val_loss"]) for r in g.done]
+        params = _mean([r["params_non_embedding"] for r in g.done])
+        if not finals or params is None:
+            continue
+        iv = stats.mean_interval(finals)
+        yerr = None if iv.half_width is None else [[iv.half_width], [iv.half_width]]
+        ax.errorbar([params], [iv.mean], yerr=yerr, fmt="o", capsize=4, label=g.label)
+        plotted = True
+    if plotted:
+        ax.set_xscale("log")
+        ax.set_xlabel("non-embedding parameters")
+        ax.set_ylabel("final validation loss (nats/token)")
+        ax.grid(True, alpha=0.3)
+        ax.legend(fontsize=7)
+        fig.tight_layout()
+        fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return plotted
+
+
+def _curve_plots(plt: Any, grid_dir: Path, groups: list[Group]) -> list[tuple[str, str]]:
     curves = {g.label: [_val_curve(grid_dir, r) for r in g.done] for g in groups}
     curves = {k: [c for c in v if c] for k, v in curves.items()}
     written: list[tuple[str, str]] = []
-
     fig_t, ax_t = plt.subplots(figsize=(6.4, 4.2))
     fig_w, ax_w = plt.subplots(figsize=(6.4, 4.2))
     any_curve = False
@@ -214,34 +315,6 @@ def write_plots(grid_dir: Path, groups: list[Group]) -> list[tuple[str, str]]:
             fig.savefig(grid_dir / name, dpi=110)
             written.append((name, caption))
         plt.close(fig)
-
-    fig, ax = plt.subplots(figsize=(6.4, 4.2))
-    plotted = False
-    for g in groups:
-        finals = list(g.finals().values())
-        params = _mean([r["params_non_embedding"] for r in g.done])
-        if not finals or params is None:
-            continue
-        iv = stats.mean_interval(finals)
-        yerr = None if iv.half_width is None else [[iv.half_width], [iv.half_width]]
-        ax.errorbar([params], [iv.mean], yerr=yerr, fmt="o", capsize=4, label=g.label)
-        plotted = True
-    if plotted:
-        ax.set_xlabel("non-embedding parameters")
-        ax.set_ylabel("final validation loss (nats/token)")
-        ax.grid(True, alpha=0.3)
-        ax.legend(fontsize=7)
-        fig.tight_layout()
-        fig.savefig(grid_dir / "final_loss_vs_params.png", dpi=110)
-        written.append(("final_loss_vs_params.png",
-                        "Final validation loss vs non-embedding parameters (mean over seeds; bars: 95% t interval)."))
-    plt.close(fig)
-
-    from blockyard.eval.extrapolation import (
-        report_figures,  # length extrapolation (eval.json) and eval.probes, where present
-    )
-
-    written += report_figures(grid_dir, {g.label: [cell_dir(grid_dir, r["id"]) for r in g.done] for g in groups})
     return written
 
 
@@ -327,22 +400,58 @@ def _inline_html(text: str) -> str:
 CSV_COLUMNS = ("id", "variant", "point", "seed", "status", "final_val_loss", "best_val_loss", "params_total",
                "params_non_embedding", "flops_per_token", "planned_tokens", "tokens_seen", "steps", "tokens_per_s",
                "wall_s", "adjustments", "config_hash", "message")
+VERDICT_COLUMNS = ("variant", "point", "pairs", "mean_diff", "low", "high", "low_unadjusted", "high_unadjusted",
+                   "paired_sd", "smallest_effect", "verdict", "seeds_needed", "diverged_variant",
+                   "diverged_reference", "note", "in_family", "confidence", "family_size", "sd_upper",
+                   "seeds_for_difference", "seeds_for_equivalence", "detectable_diff", "failed_variant",
+                   "failed_reference", "sensitivity_verdict", "sensitivity_low", "sensitivity_high", "seeds")
 
 
 def write_csv(path: Path, rows: list[dict[str, Any]]) -> None:
-    buf = io.StringIO()
-    writer = csv.writer(buf, lineterminator="\n")
-    writer.writerow(CSV_COLUMNS)
+    """results.csv: one row per cell."""
+    table = []
     for r in rows:
         values = []
         for c in CSV_COLUMNS:
             v = r.get(c)
             if c == "point":
-                v = "; ".join(f"{k}={_text(x)}" for k, x in r["point"])
+                v = "; ".join(f"{k}={value}" for k, value in (_point_items(r["point"])))
             elif c == "adjustments":
                 v = "; ".join(f"{k}={x:g}" if isinstance(x, float) else f"{k}={x}" for k, x in r[c].items())
-            values.append("" if v is None else v)
-        writer.writerow(values)
+            values.append(v)
+        table.append(values)
+    _write_table(path, CSV_COLUMNS, table)
+
+
+def _point_items(point: Any) -> list[tuple[str, str]]:
+    return [(k, point_text(((k, v),)).split("=", 1)[1]) for k, v in point]
+
+
+def verdict_table(family: Family) -> list[list[Any]]:
+    """verdicts.csv rows: every comparison of the family, then the null control's."""
+    out = []
+    for c in family.comparisons + family.null:
+        iv, un, pl, sens = c.interval, c.unadjusted, c.planning, c.sensitivity
+        out.append([
+            c.variant, "; ".join(f"{k}={v}" for k, v in _point_items(c.point)), len(c.seeds),
+            iv.mean if iv else None, iv.low if iv else None, iv.high if iv else None,
+            un.low if un else None, un.high if un else None, iv.sd if iv else None, c.smallest_effect, c.verdict,
+            pl.seeds_needed if pl else None, len(c.variant_outcomes.diverged), len(c.reference_outcomes.diverged),
+            c.note, c.in_family, 1 - family.look_alpha, family.size, pl.sd_upper if pl else None,
+            pl.seeds_for_difference if pl else None, pl.seeds_for_equivalence if pl else None,
+            pl.detectable if pl else None, len(c.variant_outcomes.failed), len(c.reference_outcomes.failed),
+            sens.verdict if sens else None, sens.interval.low if sens and sens.interval else None,
+            sens.interval.high if sens and sens.interval else None, " ".join(map(str, c.seeds)),
+        ])
+    return out
+
+
+def _write_table(path: Path, header: tuple[str, ...], rows: list[list[Any]]) -> None:
+    buf = io.StringIO()
+    writer = csv.writer(buf, lineterminator="\n")
+    writer.writerow(header)
+    for row in rows:
+        writer.writerow(["" if v is None else repr(v) if isinstance(v, float) else v for v in row])
     _atomic_write(path, buf.getvalue())
 
 
@@ -362,137 +471,267 @@ def _adjust_text(adjustments: dict[str, Any]) -> str:
     return "; ".join(parts)
 
 
-def build_report(grid_dir: Path, rows: list[dict[str, Any]], meta: dict[str, str | None],
-                 plots: list[tuple[str, str]]) -> Doc:
-    groups = group_cells(rows)
-    reference = meta.get("reference") or None
-    match = meta.get("match") or "none"
-    comps = comparisons(groups, reference)
+def build_report(grid_dir: Path, res: GridResults, plots: list[tuple[str, str]]) -> Doc:
+    """The report, section by section: verdicts first (what a reader acts on), the method last."""
     doc = Doc()
-    doc.h(1, f"Grid {meta.get('name') or grid_dir.name}")
-    if meta.get("description"):
-        doc.p(meta["description"])
-    status_counts: dict[str, int] = {}
-    for r in rows:
-        status_counts[r["status"]] = status_counts.get(r["status"], 0) + 1
-    seeds = sorted({r["seed"] for r in rows})
-    doc.p(f"{len(rows)} cells ({', '.join(f'{n} {s}' for s, n in sorted(status_counts.items()))}); "
-          f"seeds {', '.join(map(str, seeds))}; reference: {reference or 'none (no variants)'}; "
-          f"fairness: {_match_text(match)}.")
-
-    doc.h(2, "Verdicts")
-    if not comps:
-        doc.p("No comparisons: the grid has no variants besides the reference, or no finished pairs.")
-    else:
-        doc.p(f"Final validation loss (nats/token), paired by seed: variant minus **{reference}** at the same "
-              "axis point. Negative is better. Better / worse means the whole 95% interval is below / above 0.")
-        doc.table(
-            ["variant", "axis point", "pairs", "difference (mean)", "95% CI", "verdict", "seeds for 80% power"],
-            [[c.group.variant, c.group.point_text, str(len(c.seeds)), _signed(c.diff.mean if c.diff else None),
-              _ci_text(c.diff, signed=True) if c.diff else "-", f"**{c.verdict}**", _needed_text(c)]
-             for c in comps],
-        )
-
-    doc.h(2, "Variants")
-    table = []
-    for g in groups:
-        finals = list(g.finals().values())
-        iv = stats.mean_interval(finals) if finals else None
-        first = g.rows[0]
-        fpt = first.get("flops_per_token")
-        tokens = _mean([r["tokens_seen"] for r in g.done]) or first["planned_tokens"]
-        table.append([
-            g.variant + (" (reference)" if g.variant == reference else ""),
-            g.point_text,
-            f"{len(finals)}/{len(g.rows)}",
-            _fmt(iv.mean) if iv else "-",
-            _ci_text(iv) if iv else "-",
-            _count(_mean([r["params_non_embedding"] for r in g.rows if r.get("params_non_embedding")])),
-            _count(_mean([r["params_total"] for r in g.rows if r.get("params_total")])),
-            _count(fpt),
-            _count(tokens),
-            _count(fpt * tokens if fpt is not None and tokens else None),
-            _count(_mean([r["tokens_per_s"] for r in g.done])),
-            _fmt(_mean([r["wall_s"] for r in g.done]), 1),
-            _adjust_text(first["adjustments"]),
-        ])
-    doc.table(["variant", "axis point", "seeds done", "final val loss", "95% CI", "params (non-emb)", "params (total)",
-               "FLOPs/token", "train tokens", "train FLOPs", "tokens/s", "wall s per cell", "fairness adjustment"],
-              table)
-    if match == "params":
-        doc.p("Parameter matching changed `model.mlp_expansion` (the MLP hidden size) of every non-reference "
-              "variant so that its non-embedding parameters are within 2% of the reference's; the column "
-              "'fairness adjustment' gives the value used.")
-    elif match == "flops":
-        doc.p("FLOP matching changed `train.tokens` (the token budget) of every non-reference variant so that "
-              "FLOPs/token x tokens equals the reference's training FLOPs (up to whole optimizer steps); the "
-              "column 'fairness adjustment' gives the budget used.")
-    if meta.get("cost_note"):
-        doc.p(meta["cost_note"])
-
-    excluded = [r for r in rows if not (r["status"] == "done" and _finite(r["final_val_loss"]))]
-    doc.h(2, "Cells left out of the statistics")
-    if not excluded:
-        doc.p("None: every cell finished.")
-    else:
-        doc.p("These cells diverged, failed or have not finished; every statistic above leaves them out.")
-        doc.table(["cell", "status", "exit code", "message"],
-                  [[r["id"], r["status"], "-" if r["exit_code"] is None else str(r["exit_code"]),
-                    (r["message"] or "-")[:200]] for r in excluded])
-
+    doc.h(1, f"Grid {res.name}")
+    if res.description:
+        doc.p(res.description)
+    _summary_section(doc, res)
+    _verdicts_section(doc, res)
+    _null_section(doc, res.family)
+    _variants_section(doc, res)
+    _excluded_section(doc, res.rows)
     if plots:
         doc.h(2, "Plots")
         for name, caption in plots:
             doc.img(name, caption)
-
-    doc.h(2, "Method")
-    doc.ul([
-        "Final validation loss: the trainer's last evaluation on the fixed validation windows, in nats per token.",
-        "Interval of a mean over n seeds: mean ± t(0.975, n−1) · sd / √n (Student t, scipy.stats.t); "
-        "with one seed there is no interval (n=1: no interval).",
-        "Paired difference: per seed, variant minus reference; cells with the same seed train on the same "
-        "batches and are evaluated on the same validation windows. Its interval is the same t interval over "
-        "the per-seed differences.",
-        "Seeds for 80% power: the smallest number of seeds n ≥ 2 at which a two-sided paired t-test at the 5% "
-        "level detects a true difference equal to the observed mean difference with probability ≥ 0.8, "
-        "taking the observed paired sd as the true one (noncentral t, scipy.stats.nct). '-' where the "
-        "observed difference is 0 or there is one pair; '>1000' past 1000 seeds.",
-        f"Curves: {BAND}, over the evaluations every seed of a group has.",
-        f"Fairness: {_match_text(match)}.",
-        "Diverged or failed cells are listed above and excluded from all statistics.",
-    ])
+    _method_section(doc, res)
     doc.h(2, "Caution")
     doc.p(CAUTION)
     return doc
 
 
+def _summary_section(doc: Doc, res: GridResults) -> None:
+    counts: dict[str, int] = {}
+    for r in res.rows:
+        counts[r["status"]] = counts.get(r["status"], 0) + 1
+    seeds = sorted({r["seed"] for r in res.rows})
+    schedule = res.design.schedule
+    seeds_text = (f"seeds until decided (first {schedule.first}, most {schedule.most}, {schedule.step} per round; "
+                  f"seeds run: {', '.join(map(str, seeds))})" if schedule else f"seeds {', '.join(map(str, seeds))}")
+    doc.p(f"{len(res.rows)} cells ({', '.join(f'{n} {s}' for s, n in sorted(counts.items()))}); {seeds_text}; "
+          f"reference: {res.reference or 'none (no variants)'}; fairness: {_match_text(res.match)}; smallest effect "
+          f"that matters: {res.design.smallest_effect:g} nats/token.")
+    if res.rounds:
+        doc.p(f"Rounds: {res.rounds}.")
+    if res.design_changed:
+        doc.p("**Note:** the verdict rules (smallest effect, seed schedule or null control) were changed with "
+              "--force after cells had run; the error guarantee below assumes they were fixed in advance.")
+
+
+def _verdict_cell(c: Comparison) -> str:
+    return f"**{c.verdict}**" + (f" ({c.note})" if c.note else "")
+
+
 def _needed_text(c: Comparison) -> str:
-    if c.diff is None or c.diff.sd is None or c.diff.mean == 0:
+    if c.planning is None:
         return "-"
-    return ">1000" if c.seeds_needed is None else str(c.seeds_needed)
+    return f">{stats.MAX_SEEDS}" if c.planning.seeds_needed is None else str(c.planning.seeds_needed)
+
+
+def _diverged_text(c: Comparison) -> str:
+    return f"{len(c.variant_outcomes.diverged)} / {len(c.reference_outcomes.diverged)}"
+
+
+def _comparison_row(c: Comparison) -> list[str]:
+    detectable = c.planning.detectable if c.planning else None
+    return [c.variant, c.point_text, str(len(c.seeds)), _signed(c.mean_diff), _ci_text(c.interval, signed=True),
+            _verdict_cell(c), _ci_text(c.unadjusted, signed=True), _needed_text(c),
+            "-" if detectable is None else f"±{detectable:.4f}", _diverged_text(c)]
+
+
+COMPARISON_HEADER = ["variant", "axis point", "pairs", "difference (mean)", f"{_pct(stats.LEVEL)} simultaneous CI",
+                     "verdict", "unadjusted 95% CI", "seeds needed", "detectable (80% power)",
+                     "diverged (variant / ref)"]
+
+
+def _verdicts_section(doc: Doc, res: GridResults) -> None:
+    fam = res.family
+    doc.h(2, "Verdicts")
+    if not fam.comparisons:
+        doc.p("No comparisons: the grid has no variants besides the reference.")
+        return
+    counts = {v: sum(c.verdict == v for c in fam.comparisons) for v in stats.VERDICTS}
+    doc.p(f"**{sum(counts[v] for v in stats.VERDICTS[:3])} of {fam.size} comparison(s) decided**: "
+          + ", ".join(f"{n} {v}" for v, n in counts.items() if n) + ".")
+    doc.p(f"Final validation loss (nats/token), paired by seed: variant minus **{res.reference}** at the same axis "
+          f"point, on the seeds both finished; negative is better. The {fam.size} comparison(s) share one "
+          f"{_pct(stats.LEVEL)} error budget: each interval is a {_pct(1 - fam.look_alpha)} paired t interval, so all "
+          f"hold at once with probability ≥ {_pct(stats.LEVEL)} (see Method). Better / worse: the whole interval below "
+          f"/ above 0. Equivalent: the whole interval inside ±{res.design.smallest_effect:g}. Otherwise undecided.")
+    doc.table(COMPARISON_HEADER, [_comparison_row(c) for c in fam.comparisons])
+    notes = [n for c in fam.comparisons for n in _comparison_notes(c)]
+    if notes:
+        doc.ul(notes)
+
+
+def _who(c: Comparison) -> str:
+    return f"{c.variant}" + (f" at {c.point_text}" if c.point else "")
+
+
+def _comparison_notes(c: Comparison) -> list[str]:
+    notes = []
+    if c.divergence_differs:
+        v, r = c.variant_outcomes, c.reference_outcomes
+        line = (f"{_who(c)}: diverged on {len(v.diverged)} seed(s) (the reference on {len(r.diverged)}); the verdict "
+                "uses the seeds both finished.")
+        s = c.sensitivity
+        if s is not None:
+            line += (f" Counting each diverged cell as the worst loss seen at this point ({s.worst_loss:.4f}): "
+                     f"{s.pairs} pairs, difference {_ci_text(s.interval, signed=True)}, **{s.verdict}**.")
+        notes.append(line)
+    if not c.decided and c.planning is not None:
+        pl = c.planning
+        need = lambda n: f">{stats.MAX_SEEDS}" if n is None else str(n)  # noqa: E731
+        notes.append(f"{_who(c)} is undecided at {len(c.seeds)} pairs: about {need(pl.seeds_needed)} seeds per group "
+                     f"would decide it with 80% power ({need(pl.seeds_for_difference)} to find a difference of "
+                     f"±{c.smallest_effect:g}, {need(pl.seeds_for_equivalence)} to show equivalence if there is none; "
+                     f"planned with the paired sd's upper bound {pl.sd_upper:.4f}).")
+    elif c.planning is None and not c.decided:
+        notes.append(f"{_who(c)}: {c.note}; at least 2 finished pairs are needed for an interval.")
+    return notes
+
+
+def _null_section(doc: Doc, fam: Family) -> None:
+    if not fam.null:
+        return
+    doc.h(2, "Noise floor (null control)")
+    doc.p("`null_control: true`: the reference trained again with another initialisation seed (`train.init_seed`) "
+          "on the same data seeds, so its true difference to the reference is 0. It is not part of the family "
+          "above; its interval uses the same per-comparison level, so it shows what this design calls noise.")
+    doc.table(COMPARISON_HEADER, [_comparison_row(c) for c in fam.null])
+    for c in fam.null:
+        if c.interval is None or c.interval.sd is None:
+            continue
+        where = f" at {c.point_text}" if c.point else ""
+        line = (f"Two runs of the same model{where} differ by {_signed(c.interval.mean)} nats/token on average "
+                f"(interval {_ci_text(c.interval, signed=True)}; paired sd {c.interval.sd:.4f}).")
+        if c.verdict in (stats.BETTER, stats.WORSE):
+            line = (f"**Flagged:** the null control{where} came out **{c.verdict}**, a false positive. " + line +
+                    " Expected in about 1 grid in 20 at most; if it recurs, the cells are not exchangeable across "
+                    "seeds (e.g. a run depends on the init seed in another way) and the verdicts are suspect.")
+        doc.p(line)
+
+
+def _variants_section(doc: Doc, res: GridResults) -> None:
+    means = common_seed_means(group_outcomes(res.rows))
+    outcomes = group_outcomes(res.rows)
+    table = []
+    for g in res.groups:
+        o = outcomes[g.key]
+        pairs, iv = means[g.key]
+        first = g.rows[0]
+        fpt = first.get("flops_per_token")
+        tokens = _mean([r["tokens_seen"] for r in g.done]) or first["planned_tokens"]
+        name = g.variant + (" (reference)" if g.variant == res.reference else "")
+        table.append([
+            name, g.point_text, f"{len(o.losses)} / {len(o.diverged)} / {len(o.failed)}", str(pairs),
+            _fmt(iv.mean) if iv else "-", _ci_text(iv) if iv else "-",
+            _count(_mean([r["params_non_embedding"] for r in g.rows if r.get("params_non_embedding")])),
+            _count(_mean([r["params_total"] for r in g.rows if r.get("params_total")])),
+            _count(fpt), _count(tokens), _count(fpt * tokens if fpt is not None and tokens else None),
+            _count(_mean([r["tokens_per_s"] for r in g.done])), _fmt(_mean([r["wall_s"] for r in g.done]), 1),
+            _adjust_text(first["adjustments"]),
+        ])
+    doc.h(2, "Variants")
+    doc.p("Final validation loss: mean over the seeds that *every* group at the same axis point finished (column "
+          "'common seeds'), so the gap between two rows is the mean paired difference on the same seeds; a group "
+          "that lost its worst seeds to divergence cannot look better for it.")
+    doc.table(["variant", "axis point", "seeds done / diverged / failed", "common seeds", "final val loss", "95% CI",
+               "params (non-emb)", "params (total)", "FLOPs/token", "train tokens", "train FLOPs", "tokens/s",
+               "wall s per cell", "fairness adjustment"], table)
+    if res.match == "params":
+        doc.p("Parameter matching changed `model.mlp_expansion` (the MLP hidden size) of every non-reference "
+              f"variant so that its non-embedding parameters are within {PARAMS_TOLERANCE:.0%} of the reference's; "
+              "the column 'fairness adjustment' gives the value used.")
+    elif res.match == "flops":
+        doc.p("FLOP matching changed `train.tokens` (the token budget) of every non-reference variant so that "
+              "FLOPs/token x tokens equals the reference's training FLOPs (up to whole optimizer steps); the "
+              "column 'fairness adjustment' gives the budget used.")
+
+
+def _excluded_section(doc: Doc, rows: list[dict[str, Any]]) -> None:
+    excluded = [r for r in rows if not (r["status"] == "done" and _finite(r["final_val_loss"]))]
+    doc.h(2, "Cells without a final loss")
+    if not excluded:
+        doc.p("None: every cell finished.")
+        return
+    doc.p("These cells diverged, failed or have not finished. Diverged cells are outcomes: they are counted per "
+          "group above, comparisons use the seeds both groups finished, and where divergences differ the verdict's "
+          "note gives the result with them counted as the worst loss seen. Failed cells (an error, not the "
+          "training) are retried by a rerun.")
+    doc.table(["cell", "status", "exit code", "message"],
+              [[r["id"], r["status"], "-" if r["exit_code"] is None else str(r["exit_code"]),
+                (r["message"] or "-")[:200]] for r in excluded])
+
+
+def _method_section(doc: Doc, res: GridResults) -> None:
+    fam, design = res.family, res.design
+    items = [
+        "Final validation loss: the trainer's last evaluation on the fixed validation windows, in nats per token.",
+        "Pairing: a cell's seed sets its initialisation, its batches and its validation windows; variants are "
+        "compared seed by seed (variant minus reference at the same axis point), on the seeds both finished. "
+        "Grids may not override `train.seed`, `train.data_seed` or `train.init_seed`, so pairs stay pairs.",
+        f"Family: the grid's {fam.size} comparison(s) (every non-reference variant at every axis point) share one "
+        f"error budget of {_pct(1 - stats.LEVEL)}. Bonferroni: each comparison gets {_pct(fam.comparison_alpha)} "
+        "(two-sided), so the chance that any interval in the grid misses its true difference is at most "
+        f"{_pct(1 - stats.LEVEL)}, whatever the correlation between comparisons (they share the reference). Every "
+        "verdict read off intervals that all cover is right, so this bounds the chance of any wrong verdict.",
+        f"Interval: mean ± t · sd / √n over the n paired differences (Student t, n−1 degrees of freedom), at "
+        f"{_pct(1 - fam.look_alpha)} per comparison. The unadjusted column is the plain 95% interval, "
+        "for reading one comparison alone; verdicts never use it.",
+        f"Verdicts, at the smallest effect that matters δ = {design.smallest_effect:g} nats/token (grid key "
+        "`smallest_effect`): **better** when the whole interval is below 0, **worse** when above 0, **equivalent** "
+        "when it lies inside −δ..+δ (two one-sided tests, Schuirmann 1987; this wins when both hold, and the note "
+        "says 'lower by less than the smallest effect'), **undecided** otherwise. Undecided is not 'no difference'.",
+    ]
+    if design.schedule is not None:
+        sch = design.schedule
+        items.append(
+            f"Seeds until decided: round 1 trains {sch.first} seeds per group; each further round adds {sch.step} "
+            "seed(s) to every undecided variant and to the reference (and null control) at its axis point, until "
+            f"every comparison is decided or {sch.most} seeds are reached (looks after "
+            f"{', '.join(map(str, sch.looks()))} pairs). Looking several times would inflate the error, so every "
+            f"look uses one nominal level ({_pct(fam.look_alpha)}, Pocock 1977) chosen so that the intervals of all "
+            "looks hold at once (repeated confidence intervals, Jennison & Turnbull 2000, ch. 9); it is computed by "
+            "simulating the looks' t statistics, whose joint law under normal differences depends on neither mean "
+            "nor sd. A comparison's verdict is final once decided: it gets no more seeds.")
+    items += [
+        f"Seeds needed: the pairs at which a paired t test at {_pct(fam.comparison_alpha)} reaches 80% power, both to "
+        "call better/worse if the true difference is ±δ and to call equivalent if it is 0 (the larger is shown), "
+        f"from the power solver of statsmodels (TTestPower). The sd is the {_pct(stats.SD_BOUND_CONFIDENCE)} upper "
+        "confidence bound of the paired sd (chi-square), not its estimate, and never the observed difference "
+        "(observed power only restates the p-value). 'Detectable': the smallest true difference these pairs find "
+        f"with 80% power, same sd bound. '>{stats.MAX_SEEDS}': beyond {stats.MAX_SEEDS} seeds.",
+        "Divergence is an outcome: counted per group; comparisons and the variants table use the seeds common to "
+        "the compared groups; where divergences differ, a sensitivity result counts each diverged cell as the "
+        "worst final loss seen at that axis point.",
+        f"Curves: {BAND}, over the evaluations every seed of a group has.",
+        f"Fairness: {_match_text(res.match)}.",
+    ]
+    if fam.null:
+        items.append(f"Null control: the reference again under init seed {NULL_INIT_OFFSET:,d} + seed and the same "
+                     "data seeds (a true null), shown apart from the family.")
+    doc.h(2, "Method")
+    doc.ul(items)
 
 
 def _match_text(match: str) -> str:
     return {
         "none": "none (variants as configured)",
-        "params": "parameters matched by adjusting model.mlp_expansion (non-embedding params within 2%)",
+        "params": f"parameters matched by adjusting model.mlp_expansion (non-embedding params within "
+                  f"{PARAMS_TOLERANCE:.0%})",
         "flops": "training FLOPs matched by adjusting train.tokens",
     }.get(match, match)
 
 
 def write_report(grid_dir: str | Path) -> Path:
-    """Write report.md, report.html, results.csv and the PNG plots into ``grid_dir``; returns report.md."""
+    """Write report.md, report.html, verdicts.csv, results.csv and the plots into ``grid_dir``; returns report.md."""
     grid_dir = Path(grid_dir)
     if not (grid_dir / INDEX_NAME).exists():
         raise UserError(f"{grid_dir}: no grid here (no {INDEX_NAME}); pass the dir a grid was run in")
     with open_index(grid_dir, readonly=True) as index:
         rows = index.cells()
-        meta = {k: index.get_meta(k) for k in ("name", "description", "reference", "match", "cost_note")}
+        meta = {k: index.get_meta(k) for k in ("name", "description", "reference", "match", "design",
+                                               "design_changed")}
     if not rows:
         raise UserError(f"{grid_dir}: the grid index holds no cells")
-    plots = write_plots(grid_dir, group_cells(rows))
-    doc = build_report(grid_dir, rows, meta, plots)
+    res = grid_results(rows, meta, grid_dir.name)
+    plots = write_plots(grid_dir, res)
+    doc = build_report(grid_dir, res, plots)
     _atomic_write(grid_dir / "report.md", doc.markdown())
-    _atomic_write(grid_dir / "report.html", doc.html(grid_dir, f"Grid {meta.get('name') or grid_dir.name}"))
+    _atomic_write(grid_dir / "report.html", doc.html(grid_dir, f"Grid {res.name}"))
     write_csv(grid_dir / "results.csv", rows)
+    _write_table(grid_dir / "verdicts.csv", VERDICT_COLUMNS, verdict_table(res.family))
     return grid_dir / "report.md"

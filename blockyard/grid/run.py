@@ -5,7 +5,6 @@ Grid dir layout::
     GRID_DIR/grid.yaml          the grid spec as given (earlier versions kept as grid.<n>.yaml)
     GRID_DIR/index.sqlite       every cell: variant, seed, axis point, config hash, status, timings, metrics
     GRID_DIR/configs/<cell>.yaml  each cell's resolved config (what ``blockyard train`` is given)
-    GRID_DIR/plugins/           copies of the plugin files the cells load (a config's ``plugins``)
     GRID_DIR/cells/<cell>/      each cell's run dir (config.yaml, metrics.jsonl, summary.json, ...)
     GRID_DIR/logs/<cell>.log    each cell's trainer output
     GRID_DIR/report.md, report.html, results.csv, *.png
@@ -34,9 +33,8 @@ from blockyard.errors import UserError
 from blockyard.grid import executors
 from blockyard.grid.fairness import CellCost, apply_matching, cell_cost, planned_steps
 from blockyard.grid.index import FINISHED, INDEX_NAME, GridIndex, open_index
-from blockyard.grid.spec import Cell, GridSpec, expand_cells, load_grid
+from blockyard.grid.spec import NULL_VARIANT, Cell, Design, GridSpec, expand_cells, load_grid
 from blockyard.grid.status import LOCK_NAME, cell_dir, format_duration, grid_progress, lock_holder, read_summary
-from blockyard.mixers.plugins import copy_plugins
 from blockyard.schema import to_dict
 
 DEFAULT_ROOT = Path("runs") / "grids"
@@ -65,8 +63,15 @@ class PlannedCell:
 
 
 def plan_cells(spec: GridSpec, threads: int) -> list[PlannedCell]:
-    """Every cell with fairness adjustments and ``runtime.threads`` applied, its cost and config hash."""
-    cells = apply_matching(spec, expand_cells(spec))
+    """Every potential cell with fairness adjustments and ``runtime.threads`` applied, its cost and config hash.
+
+    The null control is the reference under another init seed: it is not matched (the reference
+    is the target), so its config differs from the reference's in ``train.init_seed`` only.
+    """
+    cells = expand_cells(spec)
+    matched = apply_matching(spec, [c for c in cells if c.variant != NULL_VARIANT])
+    by_id = {c.id: c for c in matched}
+    cells = [by_id.get(c.id, c) for c in cells]
     costs: dict[tuple, CellCost] = {}
     planned = []
     for cell in cells:
@@ -87,27 +92,16 @@ def fingerprint(plan: list[PlannedCell]) -> str:
 # ----------------------------------------------------------------------------- dry run
 
 
-def dry_run_text(plan: list[PlannedCell], workers: int, threads: int, measure: bool = True) -> str:
-    """The cells with params, FLOPs/token, tokens and (measured-speed) estimated time."""
-    from blockyard.grid.estimate import measure_tokens_per_s
-
-    speeds: dict[str, float] = {}
+def dry_run_text(plan: list[PlannedCell], workers: int, threads: int, measure: bool = True,
+                 design: Design | None = None) -> str:
+    """The cells with params, FLOPs/token, tokens and (measured-speed) estimated time; with a seed
+    schedule, the best case (every comparison decided after round 1) and the worst (all to ``most``)."""
+    estimates = _estimates(plan, threads) if measure else {}
     header = ["cell", "adjustment", "params (non-emb)", "FLOPs/token", "steps", "tokens", "tokens/s", "est. time"]
     rows = []
-    total_s = 0.0
-    longest = 0.0
     for p in plan:
-        cfg = p.cell.cfg
-        # Speed depends on the model, the batch shape and the runtime only (not on lr, seed or budget).
-        key = json.dumps([to_dict(cfg.model), cfg.data.seq_len, cfg.train.batch_size, cfg.train.grad_accum,
-                          to_dict(cfg.runtime)], sort_keys=True, default=str)
-        if measure and key not in speeds:
-            speeds[key] = measure_tokens_per_s(p.cell.cfg, threads)
-        speed = speeds.get(key)
+        speed = estimates.get(p.id)
         est = p.cost.tokens / speed if speed else None
-        if est is not None:
-            total_s += est
-            longest = max(longest, est)
         adj = ", ".join(f"{k}={v:.4g}" if isinstance(v, float) else f"{k}={v}" for k, v in p.cell.adjustments.items())
         rows.append([
             p.id, adj or "-", f"{p.cost.params_non_embedding:,d}",
@@ -117,16 +111,46 @@ def dry_run_text(plan: list[PlannedCell], workers: int, threads: int, measure: b
         ])
     widths = [max(len(str(c)) for c in col) for col in zip(header, *rows, strict=True)]
     lines = ["  ".join(str(c).ljust(w) for c, w in zip(r, widths, strict=True)).rstrip() for r in [header, *rows]]
-    if measure:
-        wall = max(total_s / max(1, workers), longest)
-        lines += [
-            "",
-            f"{len(plan)} cells, {workers} worker(s) x {threads} thread(s). Estimated time: "
-            f"{format_duration(wall)} for the grid ({format_duration(total_s)} of cell time), from a "
-            "measured micro-benchmark (forward + backward + AdamW steps on random tokens, here, at each cell's "
-            "thread count); evaluation, checkpoints and start-up are not included.",
-        ]
+    if not measure:
+        return "\n".join(lines)
+    seconds = {p.id: p.cost.tokens / estimates[p.id] for p in plan}
+    how = (f"{workers} worker(s) x {threads} thread(s); from a measured micro-benchmark (forward + backward + "
+           "AdamW steps on random tokens, here, at each cell's thread count); evaluation, checkpoints and "
+           "start-up are not included.")
+    schedule = design.schedule if design else None
+    if schedule is None:
+        lines += ["", f"{len(plan)} cells. Estimated time: {_wall_text(list(seconds.values()), workers)}. {how}"]
+        return "\n".join(lines)
+    first = [seconds[p.id] for p in plan if p.cell.seed < schedule.first]
+    lines += ["", f"Seeds until decided (first {schedule.first}, most {schedule.most}, {schedule.step} per round):",
+              f"  best case, every comparison decided after round 1: {len(first)} cells, {_wall_text(first, workers)}",
+              f"  worst case, every group to {schedule.most} seeds: {len(plan)} cells, "
+              f"{_wall_text(list(seconds.values()), workers)} (more: each round waits for its slowest cell)",
+              how]
     return "\n".join(lines)
+
+
+def _estimates(plan: list[PlannedCell], threads: int) -> dict[str, float]:
+    """Measured training tokens/s per cell (one benchmark per distinct model, batch shape and runtime)."""
+    from blockyard.grid.estimate import measure_tokens_per_s
+
+    speeds: dict[str, float] = {}
+    out = {}
+    for p in plan:
+        cfg = p.cell.cfg
+        # Speed depends on the model, the batch shape and the runtime only (not on lr, seed or budget).
+        key = json.dumps([to_dict(cfg.model), cfg.data.seq_len, cfg.train.batch_size, cfg.train.grad_accum,
+                          to_dict(cfg.runtime)], sort_keys=True, default=str)
+        if key not in speeds:
+            speeds[key] = measure_tokens_per_s(cfg, threads)
+        out[p.id] = speeds[key]
+    return out
+
+
+def _wall_text(seconds: list[float], workers: int) -> str:
+    total = sum(seconds)
+    wall = max(total / max(1, workers), max(seconds, default=0.0))
+    return f"{format_duration(wall)} for the grid ({format_duration(total)} of cell time)"
 
 
 # ----------------------------------------------------------------------------- the grid dir
@@ -173,8 +197,12 @@ def _changes(old: dict[str, str], new: dict[str, str]) -> tuple[list[str], list[
 
 
 def _refuse_changed_spec(grid_dir: Path, grid_file: str | Path, old: dict[str, str], new: dict[str, str],
-                         force: bool, hint: str = "") -> None:
+                         force: bool, hint: str = "", grows: bool = False) -> None:
+    """Refuse (unless ``force``) a spec whose cells differ from the grid dir's; ``grows``: a seed schedule,
+    whose potential cells not run yet are expected, not new."""
     changed, added, removed = _changes(old, new)
+    if grows:
+        added = []
     if not old or force or not (changed or added or removed):
         return
     what = ", ".join(f"{len(v)} {k}" for k, v in (("changed", changed), ("new", added), ("removed", removed)) if v)
@@ -183,6 +211,16 @@ def _refuse_changed_spec(grid_dir: Path, grid_file: str | Path, old: dict[str, s
         f"{grid_dir}: holds a grid whose cells differ from {grid_file} ({what}; e.g. {example}){hint}; pass --out "
         "for a new grid dir, or --force to run the new cells here (changed and removed cells are moved to "
         "superseded/, nothing is deleted)")
+
+
+def _refuse_changed_design(grid_dir: Path, grid_file: str | Path, old: str | None, new: Design, force: bool) -> None:
+    """A changed smallest effect, seed schedule or null control moves the goalposts of verdicts already seen."""
+    if old is None or force or Design.from_json(old) == new:
+        return
+    raise UserError(
+        f"{grid_dir}: its verdict rules (smallest_effect, seeds schedule, null_control) differ from {grid_file}'s; "
+        "changing them after seeing results invalidates the error guarantee: pass --out for a new grid dir, or "
+        "--force to apply them here anyway (the report then says so)")
 
 
 def _unique_path(path: Path) -> Path:
@@ -219,21 +257,6 @@ def _supersede(grid_dir: Path, ids: list[str], old_hashes: dict[str, str]) -> li
         if target.exists():
             moved.append(str(target.relative_to(grid_dir)))
     return moved
-
-
-def _plugin_copies(p: PlannedCell, grid_dir: Path) -> list[str] | None:
-    """Copy the cell's plugin files into GRID_DIR/plugins; the entries its config names them by
-    (relative to GRID_DIR/configs), or None without plugins."""
-    if not p.cell.cfg.plugins:
-        return None
-    return [f"../plugins/{c.name}" for c in copy_plugins(p.cell.cfg.plugins, grid_dir / "plugins")]
-
-
-def _cost_note(plan: list[PlannedCell]) -> str:
-    """Which cost figures were measured (plugin mixers without formulas), for the report."""
-    from blockyard.cost.analytic import measured_note
-
-    return " ".join(dict.fromkeys(note for p in plan if (note := measured_note(p.cell.cfg.model))))
 
 
 def _plan_rows(plan: list[PlannedCell]) -> list[dict[str, Any]]:
@@ -353,22 +376,31 @@ def _reconcile(grid_dir: Path, index: GridIndex) -> list[str]:
 # ----------------------------------------------------------------------------- entry point
 
 
-def run_grid(
-    grid_file: str | Path,
-    *,
-    out: str | Path | None = None,
-    workers: int | None = None,
-    threads: int | None = None,
-    executor: str = "local",
-    address: str | None = None,
-    force: bool = False,
-    dry_run: bool = False,
-    check: bool = True,
-    echo: Callable[[str], None] = print,
-    status_every_s: float = STATUS_EVERY_S,
-) -> int:
-    """``blockyard grid``: returns 0 when every cell finished (done or diverged), 1 when some failed,
-    130 when stopped by a signal."""
+@dataclasses.dataclass(frozen=True)
+class _Setup:
+    """What one ``blockyard grid`` call works with, resolved from its options and the grid dir."""
+
+    spec: GridSpec
+    grid_file: str | Path
+    grid_dir: Path
+    exists: bool
+    executor: str
+    address: str | None
+    workers: int | None
+    threads: int
+    cores: int
+    recorded_threads: int | None
+    old_hashes: dict[str, str]
+    old_design: str | None
+
+    @property
+    def hint(self) -> str:
+        if self.recorded_threads is not None and self.threads != self.recorded_threads:
+            return f" (it was started with --threads {self.recorded_threads}, this run asks for {self.threads})"
+        return ""
+
+
+def _check_options(workers: int | None, threads: int | None, executor: str, address: str | None) -> None:
     if workers is not None and workers < 1:
         raise UserError(f"--workers {workers}: must be at least 1")
     if threads is not None and threads < 1:
@@ -377,17 +409,22 @@ def run_grid(
         raise UserError(f"--executor {executor}: allowed: local, ray")
     if address and executor != "ray":
         raise UserError("--address is for --executor ray")
+
+
+def _setup(grid_file: str | Path, out: str | Path | None, workers: int | None, threads: int | None, executor: str,
+           address: str | None) -> _Setup:
+    """Read the spec and what the grid dir already holds; settle threads and workers."""
     spec = load_grid(grid_file)
     grid_dir = Path(out) if out else DEFAULT_ROOT / spec.name
     exists = _check_grid_dir(grid_dir)
     cores = available_cores()
-
-    recorded_threads = None
+    recorded_threads, old_design = None, None
     old_hashes: dict[str, str] = {}
     if exists:
         with open_index(grid_dir, readonly=True) as index:
             value = index.get_meta("threads")
             recorded_threads = int(value) if value else None
+            old_design = index.get_meta("design")
             old_hashes = {r["id"]: r["config_hash"] for r in index.cells()}
     if threads is None:
         # A grid keeps the thread count it started with: it is part of each cell's config (and the
@@ -400,80 +437,148 @@ def run_grid(
             threads = max(1, cores // (workers or cores))
     if workers is None and executor == "local":
         workers = max(1, cores // threads)
-    plan = plan_cells(spec, threads)
-    if executor == "local" and workers is not None and workers * threads > cores:
-        echo(f"note: {workers} worker(s) x {threads} thread(s) exceed the {cores} core(s) here; cells will share them")
+    return _Setup(spec, grid_file, grid_dir, exists, executor, address, workers, threads, cores, recorded_threads,
+                  old_hashes, old_design)
 
-    if dry_run:
-        echo(f"grid {spec.name}: {len(plan)} cells -> {grid_dir}" + (" (exists)" if exists else ""))
-        echo(dry_run_text(plan, workers or max(1, cores // threads), threads))
-        return 0
 
-    new = {p.id: p.config_hash for p in plan}
-    # Checked before anything is written (a refused command leaves the dir as it was), and again
-    # under the lock in case another process changed the grid in between.
-    hint = ""
-    if recorded_threads is not None and threads != recorded_threads:
-        hint = f" (it was started with --threads {recorded_threads}, this run asks for {threads})"
-    _refuse_changed_spec(grid_dir, grid_file, old_hashes, new, force, hint)
-    unfinished = [p for p in plan
-                  if (read_summary(cell_dir(grid_dir, p.id) / "summary.json") or {}).get("status") not in FINISHED]
-    if check:  # a plugin mixer that leaks is refused before any cell starts (and each cell checks again)
-        from blockyard.check import gate_many
+def _sync_index(s: _Setup, index: GridIndex, universe: list[PlannedCell], force: bool,
+                echo: Callable[[str], None]) -> None:
+    """Under the lock: re-check the spec, move superseded cells aside, record the spec and the design."""
+    new = {p.id: p.config_hash for p in universe}
+    grows = s.spec.design.schedule is not None
+    old = {r["id"]: r["config_hash"] for r in index.cells()}
+    changed, added, removed = _changes(old, new)
+    if old and (changed or removed or (added and not grows)):
+        _refuse_changed_spec(s.grid_dir, s.grid_file, old, new, force, s.hint, grows)
+        moved = _supersede(s.grid_dir, changed + removed, old)
+        if moved:
+            echo(f"moved {len(moved)} superseded cell(s) to {s.grid_dir / 'superseded'}")
+        index.remove_unplanned(set(new))
+    old_design = index.get_meta("design")
+    _refuse_changed_design(s.grid_dir, s.grid_file, old_design, s.spec.design, force)
+    design_changed = index.get_meta("design_changed") or ""
+    if old_design and Design.from_json(old_design) != s.spec.design and old:
+        design_changed = "1"
+    _archive_spec(s.grid_dir, s.spec.text)
+    index.set_meta({"name": s.spec.name, "description": s.spec.description, "reference": s.spec.reference or "",
+                    "match": s.spec.match, "threads": str(s.threads), "fingerprint": fingerprint(universe),
+                    "grid_file": str(Path(s.grid_file).resolve()), "design": s.spec.design.to_json(),
+                    "design_changed": design_changed})
 
-        gate_many([p.cell.cfg for p in unfinished])
-    prepare_data(unfinished, echo)
-    grid_dir.mkdir(parents=True, exist_ok=True)
-    with grid_lock(grid_dir), open_index(grid_dir) as index:
-        old = {r["id"]: r["config_hash"] for r in index.cells()}
-        changed, added, removed = _changes(old, new)
-        if old and (changed or added or removed):
-            _refuse_changed_spec(grid_dir, grid_file, old, new, force, hint)
-            moved = _supersede(grid_dir, changed + removed, old)
-            if moved:
-                echo(f"moved {len(moved)} superseded cell(s) to {grid_dir / 'superseded'}")
-            index.remove_unplanned(set(new))
-        _archive_spec(grid_dir, spec.text)
-        (grid_dir / "configs").mkdir(exist_ok=True)
-        for p in plan:
-            text = dump_config(p.cell.cfg, _plugin_copies(p, grid_dir))
-            _write_if_changed(grid_dir / "configs" / f"{p.id}.yaml", text)
-        index.plan(_plan_rows(plan))
-        index.set_meta({"name": spec.name, "description": spec.description, "reference": spec.reference or "",
-                        "match": spec.match, "threads": str(threads), "fingerprint": fingerprint(plan),
-                        "grid_file": str(Path(grid_file).resolve()), "cost_note": _cost_note(plan)})
-        todo = _reconcile(grid_dir, index)
-        recorder = _Recorder(grid_dir, index, spec.name, echo, status_every_s)
-        finished = len(plan) - len(todo)
-        echo(f"grid {spec.name}: {len(plan)} cells in {grid_dir} ({finished} already finished, {len(todo)} to run; "
-             f"{executor} executor, {workers or 'auto'} worker(s) x {threads} thread(s))")
-        jobs = [executors.CellJob(id=cid, config_path=(grid_dir / "configs" / f"{cid}.yaml").resolve(),
-                                  out_dir=cell_dir(grid_dir, cid).resolve(),
-                                  log_path=(grid_dir / "logs" / f"{cid}.log").resolve(), threads=threads,
-                                  check=check)
-                for cid in todo]
+
+def current_cells(spec: GridSpec, universe: list[PlannedCell], rows: list[dict[str, Any]]) -> tuple[
+        list[PlannedCell], str | None, bool]:
+    """The cells the grid needs now, a line on its rounds (None for a fixed seed list), and whether it is complete.
+
+    With a seed schedule the rounds are replayed from the recorded outcomes (``blockyard.grid.rounds``).
+    """
+    if spec.design.schedule is None:
+        return universe, None, True
+    # Deciding a round needs the statistics (scipy): loaded only by grids with a seed schedule.
+    from blockyard.grid.rounds import plan_rounds
+    from blockyard.grid.verdicts import group_outcomes
+
+    keys = list(dict.fromkeys((p.cell.variant, p.cell.point) for p in universe))
+    state = plan_rounds(spec.design, keys, spec.reference, spec.seeds, group_outcomes(rows))
+    cells = [p for p in universe if state.needs((p.cell.variant, p.cell.point), p.cell.seed)]
+    return cells, f"round {state.rounds}: {state.reason}", state.complete
+
+
+def _jobs(grid_dir: Path, ids: list[str], threads: int) -> list[executors.CellJob]:
+    return [executors.CellJob(id=cid, config_path=(grid_dir / "configs" / f"{cid}.yaml").resolve(),
+                              out_dir=cell_dir(grid_dir, cid).resolve(),
+                              log_path=(grid_dir / "logs" / f"{cid}.log").resolve(), threads=threads)
+            for cid in ids]
+
+
+def _run_rounds(s: _Setup, index: GridIndex, universe: list[PlannedCell], echo: Callable[[str], None],
+                status_every_s: float) -> bool:
+    """Train the cells of each round until no round adds cells; False when stopped by a signal."""
+    recorder = _Recorder(s.grid_dir, index, s.spec.name, echo, status_every_s)
+    seen: set[str] = set()
+    while True:
+        cells, rounds_line, complete = current_cells(s.spec, universe, index.cells())
+        if {p.id for p in cells} <= seen:  # no new cells: done, or waiting on failed cells
+            return True
+        seen |= {p.id for p in cells}
+        (s.grid_dir / "configs").mkdir(exist_ok=True)
+        for p in cells:
+            _write_if_changed(s.grid_dir / "configs" / f"{p.id}.yaml", dump_config(p.cell.cfg))
+        index.plan(_plan_rows(cells))
+        todo = _reconcile(s.grid_dir, index)
+        echo(f"grid {s.spec.name}: {len(cells)} cells in {s.grid_dir} ({len(cells) - len(todo)} already finished, "
+             f"{len(todo)} to run; {s.executor} executor, {s.workers or 'auto'} worker(s) x {s.threads} thread(s))"
+             + (f"; {rounds_line}" if rounds_line else ""))
+        jobs = _jobs(s.grid_dir, todo, s.threads)
         if jobs:
-            (grid_dir / "cells").mkdir(exist_ok=True)
+            (s.grid_dir / "cells").mkdir(exist_ok=True)
         try:
-            if executor == "ray":
-                executors.run_ray(jobs, workers, recorder, address=address, cores=cores)
+            if s.executor == "ray":
+                executors.run_ray(jobs, s.workers, recorder, address=s.address, cores=s.cores)
             else:
-                executors.run_local(jobs, workers or 1, recorder)
+                executors.run_local(jobs, s.workers or 1, recorder)
         except executors.GridStopped as stop:
             recorder.status()
             echo(f"grid stopped ({stop}); rerun the same command to resume")
-            return 130
+            return False
         if not jobs:
             recorder.status()
+        if complete:
+            return True
+
+
+def run_grid(
+    grid_file: str | Path,
+    *,
+    out: str | Path | None = None,
+    workers: int | None = None,
+    threads: int | None = None,
+    executor: str = "local",
+    address: str | None = None,
+    force: bool = False,
+    dry_run: bool = False,
+    echo: Callable[[str], None] = print,
+    status_every_s: float = STATUS_EVERY_S,
+) -> int:
+    """``blockyard grid``: returns 0 when every cell finished (done or diverged), 1 when some failed,
+    130 when stopped by a signal."""
+    _check_options(workers, threads, executor, address)
+    s = _setup(grid_file, out, workers, threads, executor, address)
+    if executor == "local" and s.workers is not None and s.workers * s.threads > s.cores:
+        echo(f"note: {s.workers} worker(s) x {s.threads} thread(s) exceed the {s.cores} core(s) here; "
+             "cells will share them")
+    universe = plan_cells(s.spec, s.threads)
+    if dry_run:
+        echo(f"grid {s.spec.name}: {len(universe)} cells -> {s.grid_dir}" + (" (exists)" if s.exists else ""))
+        echo(dry_run_text(universe, s.workers or max(1, s.cores // s.threads), s.threads, design=s.spec.design))
+        return 0
+    # Checked before anything is written (a refused command leaves the dir as it was), and again
+    # under the lock in case another process changed the grid in between.
+    new = {p.id: p.config_hash for p in universe}
+    _refuse_changed_spec(s.grid_dir, grid_file, s.old_hashes, new, force, s.hint, s.spec.design.schedule is not None)
+    _refuse_changed_design(s.grid_dir, grid_file, s.old_design, s.spec.design, force)
+    unfinished = [p for p in universe if p.cell.seed in s.spec.seeds[:_first_seeds(s.spec)]
+                  and (read_summary(cell_dir(s.grid_dir, p.id) / "summary.json") or {}).get("status") not in FINISHED]
+    prepare_data(unfinished, echo)
+    s.grid_dir.mkdir(parents=True, exist_ok=True)
+    with grid_lock(s.grid_dir), open_index(s.grid_dir) as index:
+        _sync_index(s, index, universe, force, echo)
+        if not _run_rounds(s, index, universe, echo, status_every_s):
+            return 130
         rows = index.cells()
 
     from blockyard.grid.report import write_report
 
-    report = write_report(grid_dir)
+    report = write_report(s.grid_dir)
     echo(f"report: {report}")
     failed = [r["id"] for r in rows if r["status"] not in FINISHED]
     if failed:
-        echo(f"{len(failed)} cell(s) failed: {', '.join(failed)} (see {grid_dir / 'logs'}); "
+        echo(f"{len(failed)} cell(s) failed: {', '.join(failed)} (see {s.grid_dir / 'logs'}); "
              "rerun the same command to retry them")
         return 1
     return 0
+
+
+def _first_seeds(spec: GridSpec) -> int:
+    """How many of ``spec.seeds`` the first round trains (all of a fixed list)."""
+    return spec.design.schedule.first if spec.design.schedule else len(spec.seeds)

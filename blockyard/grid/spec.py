@@ -11,11 +11,17 @@ A grid file (YAML) holds::
     reference: gate_on               # what every other variant is compared against
     axes:                            # dotted key -> list of values, crossed with each other
       model.width: [64, 96]
-    seeds: [0, 1, 2]                 # each sets train.seed (and so the data seed)
+    seeds: [0, 1, 2]                 # each sets train.seed (init and data); or {first: 3, most: 10}
     match: params                    # none | params | flops (see blockyard.grid.fairness)
+    smallest_effect: 0.01            # nats/token: the smallest difference that matters (verdicts)
+    null_control: false              # true: add the reference again under another init seed
 
 Every cell is (variant, one value per axis, seed). Each cell's config is validated by
 ``blockyard.config``; errors name the variant, axis or cell they come from.
+
+``seeds: {first: F, most: M, step: S}`` runs seeds 0..F-1 first, then adds S seeds per round to
+the reference and every still-undecided variant until all are decided or M is reached (see
+``blockyard.grid.rounds``); the cells of every seed up to M are the grid's potential cells.
 """
 
 from __future__ import annotations
@@ -24,6 +30,7 @@ import copy
 import dataclasses
 import itertools
 import json
+import math
 import re
 from pathlib import Path
 from typing import Any
@@ -32,12 +39,54 @@ from blockyard.config import Config, config_from_dict, read_yaml, resolve_extend
 from blockyard.errors import ConfigError, UserError
 
 MATCH_MODES = ("none", "params", "flops")
-GRID_KEYS = ("name", "description", "base", "variants", "reference", "axes", "seeds", "match")
+GRID_KEYS = ("name", "description", "base", "variants", "reference", "axes", "seeds", "match", "smallest_effect",
+             "null_control")
+SCHEDULE_KEYS = ("first", "most", "step")
+DEFAULT_SMALLEST_EFFECT = 0.01  # nats per token
 # The variant name of a grid that declares no variants.
 BASE_VARIANT = "base"
-# Keys a grid may not override: the seed comes from ``seeds:``, the name is the cell id.
-_RESERVED_KEYS = ("train.seed", "name")
+# The group ``null_control: true`` adds: the reference under init seed NULL_INIT_OFFSET + seed.
+NULL_VARIANT = "null-control"
+NULL_INIT_OFFSET = 1_000_000
+# Keys a grid may not override: the seeds come from ``seeds:`` (the cells of one seed share their
+# init, batches and validation windows: that is what pairs them), the name is the cell id.
+_SEED_KEYS = ("train.seed", "train.data_seed", "train.init_seed")
+_RESERVED_KEYS = (*_SEED_KEYS, "name")
 _NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]*$")
+
+
+@dataclasses.dataclass(frozen=True)
+class SeedSchedule:
+    """``seeds: {first, most, step}``: seeds added in rounds until every comparison is decided."""
+
+    first: int
+    most: int
+    step: int = 1
+
+    def looks(self) -> tuple[int, ...]:
+        """Seeds per group after each round: first, first + step, ..., most."""
+        return (*range(self.first, self.most, self.step), self.most)
+
+
+@dataclasses.dataclass(frozen=True)
+class Design:
+    """How a grid's cells become verdicts (``blockyard.grid.verdicts``); recorded in the grid index."""
+
+    smallest_effect: float = DEFAULT_SMALLEST_EFFECT
+    schedule: SeedSchedule | None = None  # None: a fixed list of seeds, one look
+    null_control: bool = False
+
+    def to_json(self) -> str:
+        return json.dumps(dataclasses.asdict(self), sort_keys=True)
+
+    @classmethod
+    def from_json(cls, text: str | None) -> Design:
+        """The recorded design; a grid dir from before designs were recorded gets the defaults."""
+        if not text:
+            return cls()
+        data = json.loads(text)
+        schedule = SeedSchedule(**data["schedule"]) if data.get("schedule") else None
+        return cls(float(data["smallest_effect"]), schedule, bool(data.get("null_control")))
 
 
 @dataclasses.dataclass(frozen=True)
@@ -51,8 +100,17 @@ class GridSpec:
     variants: dict[str, dict[str, Any]]  # name -> {dotted key: value}; {BASE_VARIANT: {}} if none
     reference: str | None
     axes: dict[str, tuple[Any, ...]]  # dotted key -> values
-    seeds: tuple[int, ...]
+    seeds: tuple[int, ...]  # every seed a cell may get (with a schedule: 0 .. most - 1)
     match: str
+    design: Design = Design()
+
+    @property
+    def groups(self) -> list[str]:
+        """Variant names in plan order, the null control (if any) right after the reference."""
+        names = list(self.variants)
+        if self.design.null_control and self.reference is not None:
+            names.insert(names.index(self.reference) + 1, NULL_VARIANT)
+        return names
 
 
 @dataclasses.dataclass(frozen=True)
@@ -108,7 +166,9 @@ def parse_grid(
     variants = _parse_variants(data.get("variants"))
     reference = _parse_reference(data.get("reference"), variants, declared="variants" in data)
     axes = _parse_axes(data.get("axes"))
-    seeds = _parse_seeds(data.get("seeds"))
+    seeds, schedule = _parse_seeds(data.get("seeds"))
+    design = Design(_parse_smallest_effect(data.get("smallest_effect", DEFAULT_SMALLEST_EFFECT)), schedule,
+                    _parse_null_control(data.get("null_control", False), reference, variants))
     match = data.get("match", "none")
     if match not in MATCH_MODES:
         raise ConfigError("match", f"{match!r} is not allowed (allowed: {', '.join(MATCH_MODES)})")
@@ -128,6 +188,7 @@ def parse_grid(
         axes=axes,
         seeds=seeds,
         match=match,
+        design=design,
     )
     _validate_pieces(spec)
     return spec
@@ -152,7 +213,9 @@ def _check_override_key(path: str, key: Any) -> str:
     if not isinstance(key, str) or not key or any(not part for part in key.split(".")):
         raise ConfigError(path, f"{key!r} is not a dotted config key (e.g. model.width)")
     if key in _RESERVED_KEYS:
-        why = "set by seeds:" if key == "train.seed" else "set to the cell id"
+        why = ("set to the cell id" if key == "name" else
+               "set by seeds: the cells of one seed share init, batches and validation windows, which pairs them"
+               + ("; null_control: true adds the reference under another init seed" if key != "train.seed" else ""))
         raise ConfigError(f"{path}.{key}", f"cannot be overridden in a grid ({why})")
     return key
 
@@ -205,16 +268,55 @@ def _parse_axes(raw: Any) -> dict[str, tuple[Any, ...]]:
     return axes
 
 
-def _parse_seeds(raw: Any) -> tuple[int, ...]:
-    allowed = "expected a list of distinct non-negative integers, e.g. [0, 1]"
+def _parse_seeds(raw: Any) -> tuple[tuple[int, ...], SeedSchedule | None]:
+    """A list of seeds (fixed design), or ``{first, most, step}`` (seeds 0 .. most - 1, added in rounds)."""
+    if isinstance(raw, dict):
+        schedule = _parse_schedule(raw)
+        return tuple(range(schedule.most)), schedule
+    allowed = "expected a list of distinct non-negative integers, e.g. [0, 1, 2], or {first: 3, most: 10}"
     if not isinstance(raw, list) or not raw:
         raise ConfigError("seeds", allowed)
     for s in raw:
-        if not isinstance(s, int) or isinstance(s, bool) or s < 0:
+        if not _is_int(s) or s < 0:
             raise ConfigError("seeds", f"{s!r}: {allowed}")
     if len(set(raw)) != len(raw):
         raise ConfigError("seeds", f"lists a seed twice; {allowed}")
-    return tuple(raw)
+    return tuple(raw), None
+
+
+def _is_int(x: Any) -> bool:
+    return isinstance(x, int) and not isinstance(x, bool)
+
+
+def _parse_schedule(raw: dict[str, Any]) -> SeedSchedule:
+    unknown = sorted(str(k) for k in set(raw) - set(SCHEDULE_KEYS))
+    if unknown:
+        raise ConfigError(f"seeds.{unknown[0]}", f"unknown key (allowed: {', '.join(SCHEDULE_KEYS)})")
+    first, most, step = raw.get("first"), raw.get("most"), raw.get("step", 1)
+    if not _is_int(first) or first < 2:
+        raise ConfigError("seeds.first", f"{first!r}: an integer >= 2 (an interval needs two pairs)")
+    if not _is_int(most) or most < first:
+        raise ConfigError("seeds.most", f"{most!r}: an integer >= seeds.first ({first})")
+    if not _is_int(step) or step < 1:
+        raise ConfigError("seeds.step", f"{step!r}: an integer >= 1 (seeds added per round)")
+    return SeedSchedule(first, most, step)
+
+
+def _parse_smallest_effect(raw: Any) -> float:
+    if isinstance(raw, bool) or not isinstance(raw, (int, float)) or not math.isfinite(raw) or raw <= 0:
+        raise ConfigError("smallest_effect", f"{raw!r}: a number > 0 (nats per token; default "
+                          f"{DEFAULT_SMALLEST_EFFECT})")
+    return float(raw)
+
+
+def _parse_null_control(raw: Any, reference: str | None, variants: dict[str, dict[str, Any]]) -> bool:
+    if not isinstance(raw, bool):
+        raise ConfigError("null_control", f"{raw!r}: true or false")
+    if raw and reference is None:
+        raise ConfigError("null_control", "needs variants and a reference (the null control repeats the reference)")
+    if raw and NULL_VARIANT in variants:
+        raise ConfigError("null_control", f"the grid already has a variant named {NULL_VARIANT}; rename it")
+    return raw
 
 
 # ----------------------------------------------------------------------------- configs
@@ -307,17 +409,17 @@ def cell_id(variant: str, point: tuple[tuple[str, Any], ...], seed: int, labels:
 
 
 def expand_cells(spec: GridSpec) -> list[Cell]:
-    """Every (variant, axis point, seed), its config validated; order: variant, point, seed."""
+    """Every (group, axis point, seed), its config validated; order: group (``spec.groups``), point, seed."""
     keys = list(spec.axes)
     labels = _axis_labels(keys)
     points = [tuple(zip(keys, combo, strict=True)) for combo in itertools.product(*(spec.axes[k] for k in keys))]
     cells: list[Cell] = []
     seen: dict[str, Cell] = {}
-    for vname, voverrides in spec.variants.items():
+    for vname in spec.groups:
         for point in points:
             for seed in spec.seeds:
                 cid = cell_id(vname, point, seed, labels)
-                overrides = {**voverrides, **dict(point), "train.seed": seed, "name": cid}
+                overrides = {**_group_overrides(spec, vname, seed), **dict(point), "train.seed": seed, "name": cid}
                 try:
                     cfg = config_with(spec.base, overrides)
                 except ConfigError as e:
@@ -329,3 +431,10 @@ def expand_cells(spec: GridSpec) -> list[Cell]:
                 seen[cid] = cell
                 cells.append(cell)
     return cells
+
+
+def _group_overrides(spec: GridSpec, name: str, seed: int) -> dict[str, Any]:
+    """A variant's overrides; the null control's are the reference's under another init seed."""
+    if name == NULL_VARIANT and name not in spec.variants:
+        return {**spec.variants[spec.reference or ""], "train.init_seed": NULL_INIT_OFFSET + seed}
+    return spec.variants[name]

@@ -1,40 +1,71 @@
-"""Statistics of a grid: Student-t intervals over seeds, paired differences, verdicts, seeds needed.
+"""Statistics of a grid, as pure functions over numbers: intervals, verdicts, seeds needed, sequential levels.
 
-- Interval of a mean over n seeds: mean +- t_{(1+level)/2, n-1} * sd / sqrt(n), sd with n-1
-  degrees of freedom (Student 1908; any statistics text). n = 1 gives no interval.
+- Interval of a mean over n seeds: mean +- t_{1-a/2, n-1} * sd / sqrt(n), sd with n-1 degrees of
+  freedom (Student 1908; any statistics text). n = 1 gives no interval.
 - Paired difference: per seed, variant - reference (same seed = same batches and validation
-  windows), then the interval of that mean. Pairing removes the seed-to-seed variation the two
-  share, which is usually most of it.
-- Verdict for a loss (lower is better): better when the whole interval is below 0, worse when
-  it is above 0, otherwise no detectable difference at this budget.
-- Seeds needed: the smallest n >= 2 whose two-sided paired t-test at level 0.05 has power >= 0.8
-  against a true difference delta, given the observed paired sd; power from the noncentral t
-  distribution with n - 1 degrees of freedom and noncentrality delta * sqrt(n) / sd (Cohen 1988,
-  ch. 2; scipy.stats.nct).
+  windows), then the interval of that mean.
+- Family: the m comparisons of a grid share one error budget 1 - level. Each comparison's
+  interval is taken at two-sided level a = (1 - level) / m (Bonferroni), so all m intervals cover
+  their true differences at once with probability >= level, whatever the correlation between the
+  comparisons (they share the reference). Every verdict read off covering intervals is right, so
+  the chance of any wrong verdict in the grid is <= 1 - level.
+- Four verdicts against a smallest effect that matters, delta (loss: lower is better): better
+  (interval wholly below 0), worse (wholly above 0), equivalent (wholly inside -delta..+delta),
+  undecided (otherwise). An interval at two-sided level a inside the band is the two one-sided
+  tests of Schuirmann (1987, J. Pharmacokinet. Biopharm. 15:657) each at level a/2.
+- Sequential looks (repeated confidence intervals, Jennison & Turnbull 2000, "Group Sequential
+  Methods with Applications to Clinical Trials", ch. 9): with looks after n_1 < ... < n_K pairs,
+  every look uses one nominal level a_nom (Pocock 1977, Biometrika 64:191, constant nominal level)
+  chosen so that, for normal paired differences, the t intervals of *all* looks cover the true
+  mean at once with probability 1 - a. The t statistics of the looks are pivotal (their joint law
+  depends on neither the mean nor the sd), so a_nom is found exactly up to Monte Carlo error by
+  simulating them (Jennison & Turnbull 2000, ch. 11, apply normal-theory levels to t statistics;
+  simulating the t statistics themselves removes that approximation). Stopping at any look
+  keeps the guarantee, since coverage holds at all looks at once.
+- Seeds needed (planning, Cohen 1988 ch. 2): the paired t test's sample size from statsmodels'
+  power solver, at an upper confidence bound of the paired sd (chi-square bound; a pilot sd is
+  biased low in what it implies for planning, Browne 1995, Stat. Med. 14:1933, from memory),
+  never the observed difference (observed power says nothing beyond the p-value: Hoenig & Heisey
+  2001, Am. Stat. 55:19).
 """
 
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 
-from scipy import stats
+import numpy as np
+from scipy import optimize, stats
 
-LEVEL = 0.95
-POWER = 0.8
+LEVEL = 0.95  # family-wise confidence of a grid's verdicts
+POWER = 0.8  # planning power of "seeds needed"
+SD_BOUND_CONFIDENCE = 0.8  # one-sided confidence of the paired-sd upper bound used for planning
 MAX_SEEDS = 1000
+SEQUENTIAL_SIMULATIONS = 400_000  # Monte Carlo error of the nominal level: ~1.5% of it at a = 0.05
+SEQUENTIAL_SIM_SEED = 20_000_000  # fixed: the same looks always get the same boundary
+
+BETTER = "better"
+WORSE = "worse"
+EQUIVALENT = "equivalent"
+UNDECIDED = "undecided"
+NO_INTERVAL = "n<2: no interval"
+VERDICTS = (BETTER, WORSE, EQUIVALENT, UNDECIDED)
+LOWER_BY_LESS = "lower by less than the smallest effect"
+HIGHER_BY_LESS = "higher by less than the smallest effect"
 
 
 @dataclasses.dataclass(frozen=True)
 class Interval:
-    """A mean over n values with its confidence interval (low/high are None when n < 2)."""
+    """A mean over n values with its confidence interval at ``confidence`` (low/high None when n < 2)."""
 
     n: int
     mean: float
     sd: float | None
     low: float | None
     high: float | None
+    confidence: float = LEVEL
 
     @property
     def half_width(self) -> float | None:
@@ -54,16 +85,16 @@ def t_critical(n: int, level: float = LEVEL) -> float:
 
 
 def mean_interval(values: Sequence[float], level: float = LEVEL) -> Interval:
-    """The mean of ``values`` and its Student-t confidence interval."""
+    """The mean of ``values`` and its two-sided Student-t confidence interval at ``level``."""
     n = len(values)
     if n == 0:
         raise ValueError("no values")
     mean = math.fsum(values) / n
     if n < 2:
-        return Interval(n=1, mean=mean, sd=None, low=None, high=None)
+        return Interval(n=1, mean=mean, sd=None, low=None, high=None, confidence=level)
     sd = math.sqrt(math.fsum((v - mean) ** 2 for v in values) / (n - 1))
     half = t_critical(n, level) * sd / math.sqrt(n)
-    return Interval(n=n, mean=mean, sd=sd, low=mean - half, high=mean + half)
+    return Interval(n=n, mean=mean, sd=sd, low=mean - half, high=mean + half, confidence=level)
 
 
 def paired_differences(variant: dict[int, float], reference: dict[int, float]) -> tuple[list[int], list[float]]:
@@ -72,58 +103,165 @@ def paired_differences(variant: dict[int, float], reference: dict[int, float]) -
     return seeds, [variant[s] - reference[s] for s in seeds]
 
 
-BETTER = "better"
-WORSE = "worse"
-NO_DIFFERENCE = "no detectable difference at this budget"
-NO_INTERVAL = "n=1: no interval"
+def comparison_alpha(m: int, level: float = LEVEL) -> float:
+    """Two-sided error level of one of m comparisons whose intervals hold jointly at ``level`` (Bonferroni)."""
+    if m < 1:
+        raise ValueError("a family has at least one comparison")
+    return (1 - level) / m
 
 
-def verdict(diff: Interval) -> str:
-    """Plain-words verdict on a paired loss difference (variant - reference; lower is better)."""
-    if diff.low is None or diff.high is None:
-        return NO_INTERVAL
-    if diff.high < 0:
-        return BETTER
-    if diff.low > 0:
-        return WORSE
-    return NO_DIFFERENCE
+def decide(iv: Interval, smallest_effect: float) -> tuple[str, str]:
+    """(verdict, note) of a loss difference's interval (variant - reference; lower is better).
+
+    Better / worse when the interval excludes 0; equivalent when it lies strictly inside
+    (-smallest_effect, +smallest_effect), which takes precedence (the note says which side it leans).
+    """
+    if smallest_effect <= 0:
+        raise ValueError("smallest_effect must be > 0")
+    if iv.low is None or iv.high is None:
+        return UNDECIDED, NO_INTERVAL
+    if -smallest_effect < iv.low and iv.high < smallest_effect:
+        note = LOWER_BY_LESS if iv.high < 0 else HIGHER_BY_LESS if iv.low > 0 else ""
+        return EQUIVALENT, note
+    if iv.high < 0:
+        return BETTER, ""
+    if iv.low > 0:
+        return WORSE, ""
+    return UNDECIDED, ""
 
 
-def paired_t_power(n: int, delta: float, sd: float, level: float = LEVEL) -> float:
-    """Power of the two-sided paired t-test with n pairs against a true mean difference delta."""
+# ----------------------------------------------------------------------------- planning
+
+
+def sd_upper_bound(sd: float, n: int, confidence: float = SD_BOUND_CONFIDENCE) -> float:
+    """One-sided upper confidence bound of a normal sd from n values: sd * sqrt((n-1) / chi2_{1-c, n-1})."""
     if n < 2:
-        return 0.0
-    df = n - 1
-    crit = stats.t.ppf((1 + level) / 2, df)
-    if sd == 0:
-        return 1.0 if delta != 0 else 1 - level
-    nc = abs(delta) * math.sqrt(n) / sd
-    upper = float(stats.nct.sf(crit, df, nc))
-    lower = float(stats.nct.cdf(-crit, df, nc))
-    # scipy's noncentral t returns nan far in its tails (large nc); the normal limit is exact enough there.
-    if math.isnan(upper):
-        upper = float(stats.norm.sf(crit - nc))
-    if math.isnan(lower):
-        lower = float(stats.norm.cdf(-crit - nc))
-    return upper + lower
+        raise ValueError("an sd bound needs at least two values")
+    return sd * math.sqrt((n - 1) / float(stats.chi2.ppf(1 - confidence, n - 1)))
 
 
-def seeds_to_detect(delta: float, sd: float | None, power: float = POWER, level: float = LEVEL,
-                    n_max: int = MAX_SEEDS) -> int | None:
-    """Smallest n >= 2 with paired_t_power(n) >= power; None when delta is 0, sd unknown or n > n_max."""
-    if sd is None or delta == 0 or not math.isfinite(delta):
+def t_test_power(effect: float, n: int, alpha: float, alternative: str = "two-sided") -> float:
+    """Power of the one-sample (= paired) t test with n values against effect size mean/sd (statsmodels).
+
+    statsmodels returns nan far in the noncentral t's tail (power ~1 at a large effect and small n);
+    there scipy's noncentral t gives the value (Cohen 1988, ch. 2: the same noncentral t formula).
+    """
+    from statsmodels.stats.power import TTestPower
+
+    value = float(TTestPower().power(effect_size=effect, nobs=n, alpha=alpha, alternative=alternative))
+    if math.isfinite(value):
+        return value
+    df, nc = n - 1, effect * math.sqrt(n)
+    crit = float(stats.t.ppf(1 - (alpha if alternative == "larger" else alpha / 2), df))
+    upper = _finite_or(float(stats.nct.sf(crit, df, nc)), lambda: _finite_or(
+        1 - float(stats.nct.cdf(crit, df, nc)), lambda: float(stats.norm.sf(crit - nc))))
+    if alternative == "larger":
+        return upper
+    # The wrong-side rejection: negligible exactly where scipy cannot compute it (deep in the tail).
+    return upper + _finite_or(float(stats.nct.cdf(-crit, df, nc)), lambda: 0.0)
+
+
+def _finite_or(value: float, fallback: Callable[[], float]) -> float:
+    return value if math.isfinite(value) else fallback()
+
+
+def _solve_nobs(effect: float, alpha: float, power: float, alternative: str, n_max: int) -> int | None:
+    """Smallest whole n >= 2 whose one-sample t test reaches ``power`` (the power function bisected over whole
+    n: statsmodels' own root finder can fail to converge at small n); None past ``n_max``."""
+    if effect == math.inf:
+        return 2
+
+    def reaches(n: int) -> bool:
+        return t_test_power(effect, n, alpha, alternative) >= power
+
+    if not reaches(n_max):
         return None
-    # Power grows with n (both the noncentrality and the degrees of freedom do): double, then bisect.
-    hi = 2
-    while paired_t_power(hi, delta, sd, level) < power:
-        if hi >= n_max:
-            return None
-        hi = min(2 * hi, n_max)
-    lo = max(2, hi // 2)
+    lo, hi = 2, n_max  # power grows with n (noncentrality and degrees of freedom both do)
     while lo < hi:
         mid = (lo + hi) // 2
-        if paired_t_power(mid, delta, sd, level) >= power:
+        if reaches(mid):
             hi = mid
         else:
             lo = mid + 1
     return lo
+
+
+def seeds_for_difference(smallest_effect: float, sd: float, alpha: float, power: float = POWER,
+                         n_max: int = MAX_SEEDS) -> int | None:
+    """Pairs for a two-sided paired t test at ``alpha`` to find a true difference of +-smallest_effect."""
+    effect = math.inf if sd == 0 else smallest_effect / sd
+    return _solve_nobs(effect, alpha, power, "two-sided", n_max)
+
+
+def seeds_for_equivalence(smallest_effect: float, sd: float, alpha: float, power: float = POWER,
+                          n_max: int = MAX_SEEDS) -> int | None:
+    """Pairs for the interval at two-sided ``alpha`` to land inside +-smallest_effect when the true difference is 0.
+
+    Each one-sided test (level alpha/2) must pass; asking each for power 1 - (1 - power)/2 gives
+    both at once with probability >= power (union bound; Chow, Shao & Wang 2008, "Sample Size
+    Calculations in Clinical Research", sec. 3.2, give the normal form of this rule, from memory).
+    """
+    effect = math.inf if sd == 0 else smallest_effect / sd
+    return _solve_nobs(effect, alpha / 2, 1 - (1 - power) / 2, "larger", n_max)
+
+
+def detectable_difference(n: int, sd: float, alpha: float, power: float = POWER) -> float | None:
+    """Smallest true difference a two-sided paired t test with n pairs at ``alpha`` finds with ``power``."""
+    if n < 2:
+        return None
+    if sd == 0:
+        return 0.0
+    def gap(effect: float) -> float:
+        return t_test_power(effect, n, alpha) - power
+
+    # The effect size where power crosses the target (power rises with it); scipy's root finder.
+    hi = 1.0
+    while gap(hi) < 0:
+        hi *= 4
+    effect = optimize.brentq(gap, 0.0, hi, xtol=1e-10)
+    return effect * sd
+
+
+# ----------------------------------------------------------------------------- sequential looks
+
+
+def _look_t_statistics(looks: tuple[int, ...], sims: int, seed: int) -> np.ndarray:
+    """(sims, K) t statistics of the first n_k of the same N(0, 1) values, for each look n_k.
+
+    Drawn from sufficient statistics per block of new values (its sum ~ N(0, g) and its sum of
+    squares about the block mean ~ chi2(g - 1), independent), so the cost does not grow with n.
+    """
+    rng = np.random.default_rng(seed)
+    sizes = np.diff((0,) + looks)
+    block_sum = rng.standard_normal((sims, len(looks))) * np.sqrt(sizes)
+    within = np.where(sizes > 1, rng.chisquare(np.maximum(sizes - 1, 1), (sims, len(looks))), 0.0)
+    total = np.cumsum(block_sum, axis=1)
+    squares = np.cumsum(within + block_sum**2 / sizes, axis=1)  # sum of x^2 over the first n_k values
+    n = np.asarray(looks, dtype=float)
+    ss = np.maximum(squares - total**2 / n, 1e-300)
+    return (total / n) / np.sqrt(ss / (n - 1) / n)
+
+
+@functools.lru_cache(maxsize=64)
+def sequential_alpha(looks: tuple[int, ...], alpha: float, sims: int = SEQUENTIAL_SIMULATIONS,
+                     seed: int = SEQUENTIAL_SIM_SEED) -> float:
+    """Nominal two-sided level of each look so that the t intervals of all looks hold jointly at 1 - alpha.
+
+    ``looks``: the planned numbers of pairs (increasing, each >= 2). One look gives ``alpha``.
+    """
+    if not looks or any(n < 2 for n in looks) or any(b <= a for a, b in zip(looks, looks[1:], strict=False)):
+        raise ValueError(f"looks must be increasing numbers of pairs >= 2, got {looks}")
+    if len(looks) == 1:
+        return alpha
+    t = _look_t_statistics(looks, sims, seed)
+    df = np.asarray(looks) - 1
+    smallest_p = (2 * stats.t.sf(np.abs(t), df)).min(axis=1)
+    return float(np.quantile(smallest_p, alpha))
+
+
+def clopper_pearson(successes: int, trials: int, level: float = LEVEL) -> tuple[float, float]:
+    """Exact binomial interval (Clopper & Pearson 1934), via statsmodels."""
+    from statsmodels.stats.proportion import proportion_confint
+
+    low, high = proportion_confint(successes, trials, alpha=1 - level, method="beta")
+    return float(low), float(high)

@@ -190,7 +190,7 @@ def _build(cfg: Config, cfg_hash: str, runtime: Runtime) -> Setup:
     data = load_data(cfg)
     data.train_batch(0)  # a split too short for the windows fails here, not mid-run
     val_batches = list(data.val_batches())
-    torch.manual_seed(cfg.train.seed)
+    torch.manual_seed(cfg.train.effective_init_seed)
     model = build_model(cfg.model, data.vocab_size, activation_checkpointing=cfg.runtime.activation_checkpointing,
                         scan_backend=runtime.scan_backend)
     model.to(runtime.device)

@@ -1,0 +1,278 @@
+"""From cell outcomes to verdicts: the comparisons of a grid, their family, divergence, sensitivity, planning.
+
+A *group* is one variant at one axis point (``GroupKey = (variant, point)``); a *comparison* is a
+non-reference group against the reference group at the same point, paired by seed. The grid's
+comparisons form one family whose intervals hold jointly at ``stats.LEVEL`` (see
+``blockyard.grid.stats``); the null control (``spec.NULL_VARIANT``) is compared the same way at
+the same per-comparison level but kept out of the family: it measures the design's noise floor.
+
+Pure functions over cell records (dicts with ``variant, point, seed, status, final_val_loss``):
+no I/O, so the report, the round planner (``blockyard.grid.rounds``) and later stages (tuning,
+size ladders: anything that yields groups keyed by variant and point) share them.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from collections.abc import Iterable
+from typing import Any
+
+from blockyard.grid import stats
+from blockyard.grid.spec import NULL_VARIANT, Design
+
+Point = tuple[tuple[str, Any], ...]
+GroupKey = tuple[str, Point]
+
+
+def point_text(point: Point) -> str:
+    """``model.width=64, model.depth=3``; ``-`` without axes."""
+    return ", ".join(f"{k}={value_text(v)}" for k, v in point) or "-"
+
+
+def value_text(v: Any) -> str:
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(value_text(x) for x in v) + "]"
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    return str(v)
+
+
+def _finite(x: Any) -> bool:
+    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
+
+
+@dataclasses.dataclass(frozen=True)
+class GroupOutcomes:
+    """What the cells of one group ended as, by seed."""
+
+    variant: str
+    point: Point
+    losses: dict[int, float]  # done, with a finite final validation loss
+    diverged: tuple[int, ...]  # diverged (or done with a non-finite loss)
+    failed: tuple[int, ...]  # failed: the trainer stopped on an error (a rerun retries them)
+    unfinished: tuple[int, ...]  # pending, running or interrupted
+
+    @property
+    def key(self) -> GroupKey:
+        return (self.variant, self.point)
+
+    @property
+    def finished(self) -> set[int]:
+        """Seeds whose cell ended for good (done or diverged)."""
+        return set(self.losses) | set(self.diverged)
+
+
+def group_outcomes(rows: Iterable[dict[str, Any]]) -> dict[GroupKey, GroupOutcomes]:
+    """Cell records grouped by (variant, point), in the order the rows list them."""
+    parts: dict[GroupKey, dict[str, Any]] = {}
+    for r in rows:
+        key = (r["variant"], tuple(tuple(p) for p in r["point"]))
+        g = parts.setdefault(key, {"losses": {}, "diverged": [], "failed": [], "unfinished": []})
+        status, loss = r["status"], r.get("final_val_loss")
+        if status == "done" and _finite(loss):
+            g["losses"][r["seed"]] = float(loss)
+        elif status in ("done", "diverged"):
+            g["diverged"].append(r["seed"])
+        elif status == "failed":
+            g["failed"].append(r["seed"])
+        else:
+            g["unfinished"].append(r["seed"])
+    return {k: GroupOutcomes(k[0], k[1], v["losses"], tuple(v["diverged"]), tuple(v["failed"]),
+                             tuple(v["unfinished"])) for k, v in parts.items()}
+
+
+def restrict(groups: dict[GroupKey, GroupOutcomes], seeds: dict[GroupKey, Iterable[int]]) -> dict[GroupKey,
+                                                                                                     GroupOutcomes]:
+    """Each group's outcomes on the given seeds only (a look of the sequential design sees so much)."""
+    out = {}
+    for key, g in groups.items():
+        keep = set(seeds.get(key, ()))
+        out[key] = GroupOutcomes(g.variant, g.point, {s: v for s, v in g.losses.items() if s in keep},
+                                 tuple(s for s in g.diverged if s in keep), tuple(s for s in g.failed if s in keep),
+                                 tuple(s for s in g.unfinished if s in keep))
+    return out
+
+
+# ----------------------------------------------------------------------------- comparisons
+
+
+@dataclasses.dataclass(frozen=True)
+class Planning:
+    """What would decide a comparison at the smallest effect (fixed design, per-comparison level)."""
+
+    sd_upper: float | None  # upper confidence bound of the paired sd (stats.SD_BOUND_CONFIDENCE)
+    seeds_for_difference: int | None  # pairs to call better/worse at 80% power if the truth is +-delta
+    seeds_for_equivalence: int | None  # pairs to call equivalent at 80% power if the truth is 0
+    detectable: float | None  # smallest true difference found with 80% power at the pairs run
+
+    @property
+    def seeds_needed(self) -> int | None:
+        """Pairs that decide either way (the larger of the two); None past stats.MAX_SEEDS or unknown."""
+        if self.seeds_for_difference is None or self.seeds_for_equivalence is None:
+            return None
+        return max(self.seeds_for_difference, self.seeds_for_equivalence)
+
+
+@dataclasses.dataclass(frozen=True)
+class Sensitivity:
+    """The comparison again with every diverged cell counted as the worst loss seen at its point."""
+
+    worst_loss: float
+    pairs: int
+    interval: stats.Interval | None
+    verdict: str
+
+
+@dataclasses.dataclass(frozen=True)
+class Comparison:
+    """A group against the reference at the same axis point, paired by seed."""
+
+    variant: str
+    reference: str
+    point: Point
+    in_family: bool  # False for the null control
+    smallest_effect: float
+    seeds: tuple[int, ...]  # seeds both groups finished (done, finite loss)
+    diffs: tuple[float, ...]  # variant - reference per seed (nats per token)
+    interval: stats.Interval | None  # at the family's per-comparison level (simultaneous)
+    unadjusted: stats.Interval | None  # plain 95% t interval
+    verdict: str
+    note: str
+    planning: Planning | None
+    variant_outcomes: GroupOutcomes
+    reference_outcomes: GroupOutcomes
+    sensitivity: Sensitivity | None
+
+    @property
+    def key(self) -> GroupKey:
+        return (self.variant, self.point)
+
+    @property
+    def point_text(self) -> str:
+        return point_text(self.point)
+
+    @property
+    def mean_diff(self) -> float | None:
+        return self.interval.mean if self.interval else None
+
+    @property
+    def decided(self) -> bool:
+        return self.verdict in (stats.BETTER, stats.WORSE, stats.EQUIVALENT)
+
+    @property
+    def divergence_differs(self) -> bool:
+        return set(self.variant_outcomes.diverged) != set(self.reference_outcomes.diverged)
+
+
+@dataclasses.dataclass(frozen=True)
+class Family:
+    """Every comparison of a grid under one design."""
+
+    design: Design
+    size: int  # m: comparisons sharing the family's error budget
+    comparison_alpha: float  # two-sided level of one comparison over the whole design ((1 - LEVEL) / m)
+    look_alpha: float  # two-sided nominal level of one comparison at one look (= comparison_alpha with one look)
+    comparisons: list[Comparison]  # the family, in plan order
+    null: list[Comparison]  # null-control comparisons (outside the family)
+
+    @property
+    def undecided(self) -> list[Comparison]:
+        return [c for c in self.comparisons if not c.decided]
+
+
+def family_size(keys: Iterable[GroupKey], reference: str | None) -> int:
+    """m: the non-reference, non-null groups that have a reference group at their point."""
+    keys = list(keys)
+    ref_points = {p for v, p in keys if v == reference}
+    return sum(1 for v, p in keys if v not in (reference, NULL_VARIANT) and p in ref_points)
+
+
+def look_alpha(design: Design, m: int) -> float:
+    """Nominal two-sided level of each look of one comparison (Bonferroni over m, then the looks)."""
+    alpha = stats.comparison_alpha(max(1, m))
+    if design.schedule is None:
+        return alpha
+    return stats.sequential_alpha(design.schedule.looks(), alpha)
+
+
+def compare_all(groups: dict[GroupKey, GroupOutcomes], reference: str | None, design: Design) -> Family:
+    """Every group against the reference at its point, at the design's levels."""
+    m = family_size(groups, reference)
+    a_look = look_alpha(design, m)
+    refs = {g.point: g for g in groups.values() if g.variant == reference}
+    family, null = [], []
+    for g in groups.values():
+        if g.variant == reference or g.point not in refs:
+            continue
+        c = compare(g, refs[g.point], design.smallest_effect, a_look, stats.comparison_alpha(max(1, m)),
+                    worst_loss(groups.values(), g.point), in_family=g.variant != NULL_VARIANT)
+        (family if c.in_family else null).append(c)
+    return Family(design, m, stats.comparison_alpha(max(1, m)), a_look, family, null)
+
+
+def worst_loss(groups: Iterable[GroupOutcomes], point: Point) -> float | None:
+    """The highest final loss any finished cell reached at ``point``."""
+    losses = [v for g in groups if g.point == point for v in g.losses.values()]
+    return max(losses) if losses else None
+
+
+def compare(group: GroupOutcomes, ref: GroupOutcomes, smallest_effect: float, alpha_look: float,
+            alpha_plan: float, worst: float | None, in_family: bool = True) -> Comparison:
+    """One comparison: paired differences on common seeds, its intervals, verdict, planning and sensitivity."""
+    seeds, diffs = stats.paired_differences(group.losses, ref.losses)
+    interval = unadjusted = planning = None
+    verdict, note = stats.UNDECIDED, "no finished pairs" if not seeds else stats.NO_INTERVAL
+    if seeds:
+        interval = stats.mean_interval(diffs, 1 - alpha_look)
+        unadjusted = stats.mean_interval(diffs, stats.LEVEL)
+        verdict, note = stats.decide(interval, smallest_effect)
+        planning = plan(interval, smallest_effect, alpha_plan)
+    sensitivity = None
+    if set(group.diverged) != set(ref.diverged) and worst is not None:
+        sensitivity = _sensitivity(group, ref, worst, smallest_effect, alpha_look)
+    return Comparison(group.variant, ref.variant, group.point, in_family, smallest_effect, tuple(seeds),
+                      tuple(diffs), interval, unadjusted, verdict, note, planning, group, ref, sensitivity)
+
+
+def plan(interval: stats.Interval, smallest_effect: float, alpha: float) -> Planning | None:
+    """Seeds needed and detectable difference from the sd's upper bound (never from the observed difference)."""
+    if interval.sd is None:
+        return None
+    upper = stats.sd_upper_bound(interval.sd, interval.n)
+    return Planning(upper, stats.seeds_for_difference(smallest_effect, upper, alpha),
+                    stats.seeds_for_equivalence(smallest_effect, upper, alpha),
+                    stats.detectable_difference(interval.n, upper, alpha))
+
+
+def _sensitivity(group: GroupOutcomes, ref: GroupOutcomes, worst: float, smallest_effect: float,
+                 alpha_look: float) -> Sensitivity:
+    """Diverged cells scored as ``worst``; seeds where both diverged carry no information and are left out."""
+    def scored(g: GroupOutcomes) -> dict[int, float]:
+        return {**g.losses, **{s: worst for s in g.diverged}}
+
+    a, b = scored(group), scored(ref)
+    seeds = [s for s in sorted(set(a) & set(b)) if not (s in group.diverged and s in ref.diverged)]
+    diffs = [a[s] - b[s] for s in seeds]
+    if not diffs:
+        return Sensitivity(worst, 0, None, stats.UNDECIDED)
+    iv = stats.mean_interval(diffs, 1 - alpha_look)
+    return Sensitivity(worst, len(seeds), iv, stats.decide(iv, smallest_effect)[0])
+
+
+def common_seed_means(groups: dict[GroupKey, GroupOutcomes]) -> dict[GroupKey, tuple[int, stats.Interval | None]]:
+    """Per group: (pairs, mean interval) over the seeds every group at its point finished.
+
+    The variants table uses these, so the gap between two rows is the mean paired difference on
+    the same seeds, never an artefact of one group losing its worst seeds to divergence.
+    """
+    by_point: dict[Point, list[GroupOutcomes]] = {}
+    for g in groups.values():
+        by_point.setdefault(g.point, []).append(g)
+    out = {}
+    for members in by_point.values():
+        common = set.intersection(*(set(g.losses) for g in members))
+        for g in members:
+            values = [g.losses[s] for s in sorted(common)]
+            out[g.key] = (len(values), stats.mean_interval(values) if values else None)
+    return out
