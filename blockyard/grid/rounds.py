@@ -48,7 +48,7 @@ def plan_rounds(design: Design, keys: Iterable[GroupKey], reference: str | None,
         waiting = _waiting(seeds, outcomes)
         if waiting:
             return RoundState(r, seeds, False, f"round {r}: {waiting} cell(s) to finish")
-        family = compare_all(restrict(outcomes, seeds), reference, design)
+        family = compare_all(restrict(outcomes, seeds), reference, design, with_planning=False)
         open_points = {c.point for c in family.undecided}
         if not family.undecided:
             return RoundState(r, seeds, True, f"every comparison decided after round {r} ({looks[r - 1]} seeds)")

@@ -119,13 +119,16 @@ def dry_run_text(plan: list[PlannedCell], workers: int, threads: int, measure: b
            "start-up are not included.")
     schedule = design.schedule if design else None
     if schedule is None:
-        lines += ["", f"{len(plan)} cells. Estimated time: {_wall_text(list(seconds.values()), workers)}. {how}"]
+        total = list(seconds.values())
+        lines += ["", f"{len(plan)} cells. Estimated time: {_wall_text([total], workers)}. {how}"]
         return "\n".join(lines)
-    first = [seconds[p.id] for p in plan if p.cell.seed < schedule.first]
+    looks = (0, *schedule.looks())
+    rounds = [[seconds[p.id] for p in plan if lo <= p.cell.seed < hi] for lo, hi in zip(looks, looks[1:], strict=False)]
     lines += ["", f"Seeds until decided (first {schedule.first}, most {schedule.most}, {schedule.step} per round):",
-              f"  best case, every comparison decided after round 1: {len(first)} cells, {_wall_text(first, workers)}",
-              f"  worst case, every group to {schedule.most} seeds: {len(plan)} cells, "
-              f"{_wall_text(list(seconds.values()), workers)} (more: each round waits for its slowest cell)",
+              f"  best case, every comparison decided after round 1: {len(rounds[0])} cells, "
+              f"{_wall_text(rounds[:1], workers)}",
+              f"  worst case, {len(rounds)} rounds, every group to {schedule.most} seeds: {len(plan)} cells, "
+              f"{_wall_text(rounds, workers)}",
               how]
     return "\n".join(lines)
 
@@ -147,10 +150,19 @@ def _estimates(plan: list[PlannedCell], threads: int) -> dict[str, float]:
     return out
 
 
-def _wall_text(seconds: list[float], workers: int) -> str:
-    total = sum(seconds)
-    wall = max(total / max(1, workers), max(seconds, default=0.0))
-    return f"{format_duration(wall)} for the grid ({format_duration(total)} of cell time)"
+def _wall_text(rounds: list[list[float]], workers: int) -> str:
+    """Estimated wall time of rounds of cells run one round after the other, each on ``workers`` at once."""
+    wall = sum(makespan(r, workers) for r in rounds)
+    return f"{format_duration(wall)} for the grid ({format_duration(sum(map(sum, rounds)))} of cell time)"
+
+
+def makespan(seconds: list[float], workers: int) -> float:
+    """Wall time of cells handed out in plan order to whichever of ``workers`` frees up first (as the
+    local executor does)."""
+    slots = [0.0] * max(1, workers)
+    for s in seconds:
+        slots[slots.index(min(slots))] += s
+    return max(slots)
 
 
 # ----------------------------------------------------------------------------- the grid dir

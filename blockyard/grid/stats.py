@@ -77,6 +77,7 @@ class Interval:
         return self.low <= x <= self.high
 
 
+@functools.lru_cache(maxsize=4096)
 def t_critical(n: int, level: float = LEVEL) -> float:
     """Two-sided Student-t critical value for a mean of n values: t_{(1+level)/2, n-1}."""
     if n < 2:

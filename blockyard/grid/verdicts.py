@@ -196,8 +196,10 @@ def look_alpha(design: Design, m: int) -> float:
     return stats.sequential_alpha(design.schedule.looks(), alpha)
 
 
-def compare_all(groups: dict[GroupKey, GroupOutcomes], reference: str | None, design: Design) -> Family:
-    """Every group against the reference at its point, at the design's levels."""
+def compare_all(groups: dict[GroupKey, GroupOutcomes], reference: str | None, design: Design,
+                with_planning: bool = True) -> Family:
+    """Every group against the reference at its point, at the design's levels (``with_planning``: seeds
+    needed too, which the round planner and simulations do not need)."""
     m = family_size(groups, reference)
     a_look = look_alpha(design, m)
     refs = {g.point: g for g in groups.values() if g.variant == reference}
@@ -206,7 +208,8 @@ def compare_all(groups: dict[GroupKey, GroupOutcomes], reference: str | None, de
         if g.variant == reference or g.point not in refs:
             continue
         c = compare(g, refs[g.point], design.smallest_effect, a_look, stats.comparison_alpha(max(1, m)),
-                    worst_loss(groups.values(), g.point), in_family=g.variant != NULL_VARIANT)
+                    worst_loss(groups.values(), g.point), in_family=g.variant != NULL_VARIANT,
+                    with_planning=with_planning)
         (family if c.in_family else null).append(c)
     return Family(design, m, stats.comparison_alpha(max(1, m)), a_look, family, null)
 
@@ -218,7 +221,7 @@ def worst_loss(groups: Iterable[GroupOutcomes], point: Point) -> float | None:
 
 
 def compare(group: GroupOutcomes, ref: GroupOutcomes, smallest_effect: float, alpha_look: float,
-            alpha_plan: float, worst: float | None, in_family: bool = True) -> Comparison:
+            alpha_plan: float, worst: float | None, in_family: bool = True, with_planning: bool = True) -> Comparison:
     """One comparison: paired differences on common seeds, its intervals, verdict, planning and sensitivity."""
     seeds, diffs = stats.paired_differences(group.losses, ref.losses)
     interval = unadjusted = planning = None
@@ -227,7 +230,7 @@ def compare(group: GroupOutcomes, ref: GroupOutcomes, smallest_effect: float, al
         interval = stats.mean_interval(diffs, 1 - alpha_look)
         unadjusted = stats.mean_interval(diffs, stats.LEVEL)
         verdict, note = stats.decide(interval, smallest_effect)
-        planning = plan(interval, smallest_effect, alpha_plan)
+        planning = plan(interval, smallest_effect, alpha_plan) if with_planning else None
     sensitivity = None
     if set(group.diverged) != set(ref.diverged) and worst is not None:
         sensitivity = _sensitivity(group, ref, worst, smallest_effect, alpha_look)
