@@ -13,14 +13,15 @@ from scipy import stats as sps
 from blockyard.cli import main
 from blockyard.errors import UserError
 from blockyard.grid.index import open_index
-from blockyard.grid.report import CAUTION, write_report
+from blockyard.grid.report import CAUTION, VERDICT_COLUMNS, write_report
+from blockyard.grid.spec import Design, SeedSchedule
 from blockyard.grid.status import grid_progress, status_text
 
 TOKENS_PER_STEP = 128
 
 
 def make_grid(grid_dir: Path, results: dict[str, dict[int, float | str]], reference: str | None = "ref",
-              steps: int = 20, point: list | None = None) -> None:
+              steps: int = 20, point: list | None = None, design: Design | None = None) -> None:
     """A grid dir whose cells ended as given: variant -> seed -> final val loss, or a status string."""
     rows = []
     for variant, seeds in results.items():
@@ -32,7 +33,7 @@ def make_grid(grid_dir: Path, results: dict[str, dict[int, float | str]], refere
     with open_index(grid_dir) as index:
         index.plan(rows)
         index.set_meta({"name": "synthetic", "description": "a made-up grid", "reference": reference or "",
-                        "match": "none"})
+                        "match": "none", "design": (design or Design()).to_json()})
         for variant, seeds in results.items():
             for seed, outcome in seeds.items():
                 cid = f"{variant}-seed{seed}"
@@ -55,24 +56,30 @@ def make_grid(grid_dir: Path, results: dict[str, dict[int, float | str]], refere
                 index.mark_finished(cid, "done", summary=summary, exit_code=0)
 
 
-def verdict_rows(report: str) -> dict[str, list[str]]:
-    section = report.split("## Verdicts")[1].split("## Variants")[0]
-    rows = [ln.strip("|").split(" | ") for ln in section.splitlines() if ln.startswith("| ") and "---" not in ln]
+def verdict_rows(report: str, section: str = "## Verdicts") -> dict[str, list[str]]:
+    body = report.split(section)[1].split("\n## ")[0]
+    rows = [ln.strip("|").split(" | ") for ln in body.splitlines() if ln.startswith("| ") and "---" not in ln]
     return {r[0].strip(): [c.strip() for c in r] for r in rows[1:]}
 
 
-def test_identical_variants_give_no_detectable_difference(tmp_path):
+def read_verdicts_csv(grid_dir: Path) -> dict[str, dict[str, str]]:
+    with open(grid_dir / "verdicts.csv") as f:
+        return {r["variant"]: r for r in csv.DictReader(f)}
+
+
+def test_identical_variants_are_equivalent(tmp_path):
     finals = {0: 2.31, 1: 2.45, 2: 2.38}
     make_grid(tmp_path, {"ref": dict(finals), "same": dict(finals)})
     report = write_report(tmp_path).read_text()
     row = verdict_rows(report)["same"]
     assert row[3] == "+0.0000"
-    assert row[4] == "[+0.0000, +0.0000]"  # the interval [0, 0] contains 0
-    assert row[5] == "**no detectable difference at this budget**"
-    assert row[6] == "-"  # nothing to detect
+    assert row[4] == "[+0.0000, +0.0000]"  # the interval [0, 0] lies inside +-0.01
+    assert row[5] == "**equivalent**"
+    assert row[7] == "2"  # sd 0: two pairs decide anything
+    assert "**1 of 1 comparison(s) decided**: 1 equivalent." in report
 
 
-def test_clear_difference_is_a_verdict_with_scipy_interval(tmp_path):
+def test_clear_differences_get_simultaneous_scipy_intervals(tmp_path):
     ref = {0: 2.30, 1: 2.50, 2: 2.40, 3: 2.35}
     better = {0: 2.21, 1: 2.42, 2: 2.29, 3: 2.27}
     worse = {0: 2.36, 1: 2.56, 2: 2.49, 3: 2.40}
@@ -80,35 +87,69 @@ def test_clear_difference_is_a_verdict_with_scipy_interval(tmp_path):
     report = write_report(tmp_path).read_text()
     rows = verdict_rows(report)
     assert rows["better"][5] == "**better**" and rows["worse"][5] == "**worse**"
-    # The printed interval is scipy's paired t interval (scipy.stats.ttest_rel, independent code).
-    ci = sps.ttest_rel(list(better.values()), list(ref.values())).confidence_interval(0.95)
-    low, high = (float(x) for x in re.findall(r"[+-]\d\.\d+", rows["better"][4]))
-    assert low == pytest.approx(ci.low, abs=5e-5) and high == pytest.approx(ci.high, abs=5e-5)
-    assert high < 0
-    assert int(rows["better"][6]) >= 2
+    # Two comparisons: each simultaneous interval is scipy's paired t interval (scipy.stats.ttest_rel,
+    # independent code) at 1 - 0.05 / 2 (Bonferroni); the unadjusted column is its 95% interval.
+    test = sps.ttest_rel(list(better.values()), list(ref.values()))
+    for column, level in ((4, 0.975), (6, 0.95)):
+        ci = test.confidence_interval(level)
+        low, high = (float(x) for x in re.findall(r"[+-]\d\.\d+", rows["better"][column]))
+        assert low == pytest.approx(ci.low, abs=5e-5) and high == pytest.approx(ci.high, abs=5e-5)
+    assert "97.5% paired t interval" in report
+    assert int(rows["better"][7]) >= 2
     # The group mean and its interval (scipy.stats.ttest_1samp) in the variants table.
     ref_ci = sps.ttest_1samp(list(ref.values()), 0).confidence_interval(0.95)
     assert f"[{ref_ci.low:.4f}, {ref_ci.high:.4f}]" in report
+    csv_rows = read_verdicts_csv(tmp_path)
+    assert set(VERDICT_COLUMNS) >= {"variant", "point", "pairs", "mean_diff", "low", "high", "low_unadjusted",
+                                    "high_unadjusted", "paired_sd", "smallest_effect", "verdict", "seeds_needed",
+                                    "diverged_variant", "diverged_reference"}
+    b = csv_rows["better"]
+    ci = test.confidence_interval(0.975)
+    assert float(b["low"]) == pytest.approx(ci.low, rel=1e-9) and float(b["high"]) == pytest.approx(ci.high, rel=1e-9)
+    assert (b["verdict"], b["pairs"], b["smallest_effect"], b["family_size"]) == ("better", "4", "0.01", "2")
+
+
+def test_a_difference_below_the_smallest_effect_is_equivalent_with_a_note(tmp_path):
+    ref = {0: 2.30, 1: 2.50, 2: 2.40, 3: 2.35, 4: 2.45}
+    slightly = {s: v - 0.003 + 0.0005 * (s % 2) for s, v in ref.items()}  # lower by ~0.003, very steady
+    make_grid(tmp_path, {"ref": ref, "slightly": slightly})
+    row = verdict_rows(write_report(tmp_path).read_text())["slightly"]
+    assert row[5] == "**equivalent** (lower by less than the smallest effect)"
+
+
+def test_undecided_says_what_would_decide_it(tmp_path):
+    make_grid(tmp_path, {"ref": {0: 2.0, 1: 2.1, 2: 2.2}, "noisy": {0: 2.05, 1: 2.06, 2: 2.21}})
+    report = write_report(tmp_path).read_text()
+    assert verdict_rows(report)["noisy"][5] == "**undecided**"
+    note = next(ln for ln in report.splitlines() if ln.startswith("- noisy is undecided at 3 pairs"))
+    needed = read_verdicts_csv(tmp_path)["noisy"]
+    assert f"about {needed['seeds_needed']} seeds per group would decide it" in note
 
 
 def test_one_seed_reports_no_interval(tmp_path):
     make_grid(tmp_path, {"ref": {0: 2.0}, "other": {0: 1.9}})
     report = write_report(tmp_path).read_text()
     row = verdict_rows(report)["other"]
-    assert row[4] == "n=1: no interval" and row[5] == "**n=1: no interval**"
-    assert "n=1: no interval" in report.split("## Variants")[1]
+    assert row[4] == "n<2: no interval" and row[5] == "**undecided** (n<2: no interval)"
+    assert "n<2: no interval" in report.split("## Variants")[1]
 
 
-def test_diverged_cells_are_listed_and_left_out(tmp_path):
-    make_grid(tmp_path, {"ref": {0: 2.0, 1: 2.2}, "hot": {0: 1.8, 1: "diverged"}})
+def test_diverged_cells_are_outcomes_with_a_sensitivity_result(tmp_path):
+    make_grid(tmp_path, {"ref": {0: 2.0, 1: 2.2, 2: 2.1}, "hot": {0: 1.8, 1: "diverged", 2: 1.9}})
     report = write_report(tmp_path).read_text()
-    excluded = report.split("## Cells left out of the statistics")[1].split("##")[0]
+    excluded = report.split("## Cells without a final loss")[1].split("##")[0]
     assert "| hot-seed1 | diverged | 3 | loss blew up |" in excluded
     assert "ref-seed" not in excluded
     variants = report.split("## Variants")[1].split("##")[0]
     hot = next(ln for ln in variants.splitlines() if ln.startswith("| hot"))
-    assert "| 1/2 | 1.8000 | n=1: no interval |" in hot  # the diverged seed is not averaged in
-    assert verdict_rows(report)["hot"][2] == "1"  # one finished pair
+    ref = next(ln for ln in variants.splitlines() if ln.startswith("| ref"))
+    # Both rows average the seeds both finished (0 and 2), so the gap is the paired one.
+    assert "| 2 / 1 / 0 | 2 | 1.8500 |" in hot and "| 3 / 0 / 0 | 2 | 2.0500 |" in ref
+    row = verdict_rows(report)["hot"]
+    assert row[2] == "2" and row[9] == "1 / 0"
+    note = next(ln for ln in report.splitlines() if ln.startswith("- hot: diverged on 1 seed(s)"))
+    assert "worst loss seen at this point (2.2000): 3 pairs" in note
+    assert read_verdicts_csv(tmp_path)["hot"]["diverged_variant"] == "1"
 
 
 def test_report_files_csv_html_and_caution(tmp_path, capsys):
@@ -117,9 +158,11 @@ def test_report_files_csv_html_and_caution(tmp_path, capsys):
     assert capsys.readouterr().out.strip() == f"wrote {tmp_path / 'report.md'}"
     md = (tmp_path / "report.md").read_text()
     assert md.rstrip().endswith(CAUTION)
-    for png in ("val_loss_vs_tokens.png", "val_loss_vs_wall.png", "final_loss_vs_params.png"):
+    for png in ("val_loss_vs_tokens.png", "val_loss_vs_wall.png"):
         assert (tmp_path / png).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
         assert f"]({png})" in md
+    # Every group has the same size: no params plot (x would span nothing).
+    assert not (tmp_path / "final_loss_vs_params.png").exists() and "](verdicts.png)" in md
     html = (tmp_path / "report.html").read_text()
     assert html.count("src='data:image/png;base64,") == 3
     assert CAUTION in html and "<table>" in html
@@ -128,6 +171,55 @@ def test_report_files_csv_html_and_caution(tmp_path, capsys):
     assert [r["id"] for r in rows] == ["ref-seed0", "ref-seed1", "b-seed0", "b-seed1"]
     assert [r["status"] for r in rows] == ["done", "done", "done", "failed"]
     assert float(rows[2]["final_val_loss"]) == 1.9 and rows[3]["final_val_loss"] == ""
+    assert read_verdicts_csv(tmp_path)["b"]["failed_variant"] == "1"
+
+
+def test_forest_plot_leads_the_plots_and_the_null_control_stands_apart(tmp_path):
+    ref = {0: 2.30, 1: 2.50, 2: 2.40}
+    make_grid(tmp_path, {"ref": ref, "b": {s: v - 0.1 for s, v in ref.items()},
+                         "null-control": {0: 2.25, 1: 2.46, 2: 2.33}})
+    report = write_report(tmp_path).read_text()
+    plots = report.split("## Plots")[1]
+    assert plots.lstrip().startswith("![Paired differences to the reference")
+    assert "](verdicts.png)" in plots.split("\n\n")[1]
+    assert (tmp_path / "verdicts.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    # One comparison in the family: the null control is outside it and gets its own section.
+    assert "**1 of 1 comparison(s) decided**: 1 better." in report
+    assert list(verdict_rows(report)) == ["b"]
+    null = verdict_rows(report, "## Noise floor (null control)")
+    assert null["null-control"][5] == "**better**"  # 2.25 < 2.30 etc.: a false positive here
+    assert "**Flagged:** the null control came out **better**" in report
+    assert read_verdicts_csv(tmp_path)["null-control"]["in_family"] == "False"
+
+
+def test_sequential_report_says_how_many_rounds_ran_and_why_it_stopped(tmp_path):
+    ref = {s: 2.0 + 0.05 * s for s in range(5)}
+    design = Design(0.01, SeedSchedule(first=3, most=5, step=2))
+    clear = {s: v + 0.3 for s, v in ref.items() if s < 3}
+    noisy = {s: v + (0.05 if s % 2 else -0.04) for s, v in ref.items()}
+    make_grid(tmp_path, {"ref": ref, "clear": clear, "noisy": noisy}, design=design)
+    report = write_report(tmp_path).read_text()
+    assert "Rounds: 2 round(s) ran; reached seeds.most = 5 seeds with 1 comparison(s) undecided." in report
+    assert "seeds until decided (first 3, most 5, 2 per round" in report
+    assert "Seeds until decided: round 1 trains 3 seeds per group" in report
+    rows = verdict_rows(report)
+    assert rows["clear"][2] == "3" and rows["clear"][5] == "**worse**"
+    assert rows["noisy"][2] == "5"
+
+
+def test_params_plot_only_when_an_axis_varies_size(tmp_path):
+    with open_index(tmp_path) as index:
+        rows = [{"id": f"{v}-w{w}-s{s}", "variant": v, "seed": s, "point": [["model.width", w]],
+                 "config_hash": "h", "adjustments": {}, "planned_tokens": 100, "flops_per_token": 1.0,
+                 "params_total": w * w * 20, "params_non_embedding": w * w * 10}
+                for v in ("ref", "b") for w in (32, 64) for s in (0, 1)]
+        index.plan(rows)
+        index.set_meta({"name": "sizes", "reference": "ref", "match": "none"})
+        for r in rows:
+            index.mark_finished(r["id"], "done", summary={"final_val_loss": 2.0 - r["seed"] * 0.01 - r["point"][0][1]
+                                                          / 1000, "tokens_per_s": 1.0, "wall_s": 1.0})
+    report = write_report(tmp_path).read_text()
+    assert "](final_loss_vs_params.png)" in report
 
 
 def test_report_of_a_dir_without_grid_is_a_user_error(tmp_path, capsys):
@@ -209,5 +301,6 @@ def test_comparisons_pair_cells_at_the_same_axis_point(tmp_path):
     section = report.split("## Verdicts")[1].split("## Variants")[0]
     lines = [ln for ln in section.splitlines() if ln.startswith("| var |")]
     assert len(lines) == 2
-    assert "| model.width=32 | 3 | +0.0033 |" in lines[0] and "no detectable difference" in lines[0]
-    assert "| model.width=64 | 3 | -0.0967 |" in lines[1] and "**better**" in lines[1]
+    # Two comparisons (one variant at two points): 97.5% intervals, t(0.9875, 2) = 6.205.
+    assert "| model.width=32 | 3 | +0.0033 | [-0.0380, +0.0447] | **undecided** |" in lines[0]
+    assert "| model.width=64 | 3 | -0.0967 | [-0.1174, -0.0760] | **better** |" in lines[1]

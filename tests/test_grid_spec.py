@@ -84,6 +84,15 @@ BAD_SPECS = [
     ("variants: {a: {}, b: {}}\nreference: c", "reference: 'c' is not a variant"),
     ("variants: {a: {}, b: {}}", "reference: required with variants"),
     ("variants: {a: {train.seed: 3}}\nreference: a", "variants.a.train.seed: cannot be overridden"),
+    # Pairing guard (issue 15, item 7): the data and init seeds are reserved like train.seed.
+    ("variants: {a: {}, b: {train.data_seed: 3}}\nreference: a", "variants.b.train.data_seed: cannot be overridden"),
+    ("variants: {a: {}}\nreference: a\naxes: {train.init_seed: [1, 2]}", "axes.train.init_seed: cannot be overridden"),
+    ("smallest_effect: 0", "smallest_effect: 0: a number > 0"),
+    ("smallest_effect: -0.01", "smallest_effect: -0.01: a number > 0"),
+    ("smallest_effect: yes", "smallest_effect: True: a number > 0"),
+    ("null_control: true", "null_control: needs variants and a reference"),
+    ("null_control: 1\nvariants: {a: {}}\nreference: a", "null_control: 1: true or false"),
+    ("null_control: true\nvariants: {a: {}, null-control: {}}\nreference: a", "null_control: the grid already has"),
     ("match: params", "match: match: params needs variants and a reference"),
     ("match: tokens\nvariants: {a: {}}\nreference: a", "match: 'tokens' is not allowed"),
     ("variants: {a: {model.width: 64}}\nreference: a\naxes: {model.width: [32]}", "axes.model.width: also set by"),
@@ -142,6 +151,49 @@ def test_bad_spec_exit_code_of_the_real_command(tmp_path, existing_grid_dir):
     expected = "error: axes.model.width: expected a list of values\n"
     assert (proc.returncode, proc.stdout, proc.stderr) == (2, "", expected)
     assert _tree_snapshot(existing_grid_dir) == before
+
+
+@pytest.mark.parametrize("seeds, message", [
+    ("{first: 1, most: 5}", "seeds.first: 1: an integer >= 2"),
+    ("{first: 3, most: 2}", "seeds.most: 2: an integer >= seeds.first (3)"),
+    ("{first: 3}", "seeds.most: None: an integer >= seeds.first"),
+    ("{first: 3, most: 6, step: 0}", "seeds.step: 0: an integer >= 1"),
+    ("{first: 3, most: 6, every: 2}", "seeds.every: unknown key (allowed: first, most, step)"),
+])
+def test_bad_seed_schedules_exit_2_and_leave_the_grid_dir(tmp_path, existing_grid_dir, capsys, seeds, message):
+    path = tmp_path / "bad.yaml"
+    path.write_text(f"base: {{model: {{width: 32, depth: 1}}, data: {{seq_len: 32}}}}\nseeds: {seeds}\n")
+    before = _tree_snapshot(existing_grid_dir)
+    assert main(["grid", str(path), "--out", str(existing_grid_dir)]) == 2
+    out, errors = capsys.readouterr()
+    assert errors.startswith(f"error: {message}") and errors.count("\n") == 1 and out == ""
+    assert _tree_snapshot(existing_grid_dir) == before
+
+
+def test_seed_schedule_and_null_control_expand_into_cells(tmp_path):
+    path = write_grid(tmp_path, """
+        base: {model: {width: 32, depth: 1, pattern: [global_attention]}, data: {corpus: pydoc, seq_len: 32}}
+        variants: {ref: {}, wide: {model.mlp_expansion: 3.0}}
+        reference: ref
+        seeds: {first: 2, most: 4}
+        smallest_effect: 0.02
+        null_control: true
+        match: params
+    """)
+    spec = load_grid(path)
+    assert spec.seeds == (0, 1, 2, 3)  # every seed a round may add
+    assert spec.design.schedule.looks() == (2, 3, 4)
+    assert (spec.design.smallest_effect, spec.design.null_control) == (0.02, True)
+    assert spec.groups == ["ref", "null-control", "wide"]
+    plan = {p.id: p.cell for p in plan_cells(spec, threads=1)}
+    assert len(plan) == 3 * 4
+    ref, null = plan["ref-seed2"].cfg, plan["null-control-seed2"].cfg
+    # The null control is the reference under another init seed, the same data seed, and no matching.
+    assert null.train.effective_init_seed == 1_000_002 != ref.train.effective_init_seed == 2
+    assert null.train.effective_data_seed == ref.train.effective_data_seed == 2
+    assert to_dict(null) | {"name": "", "train": {}} == to_dict(ref) | {"name": "", "train": {}}
+    assert plan["null-control-seed2"].adjustments == {} and plan["wide-seed2"].adjustments
+    assert spec.design == type(spec.design).from_json(spec.design.to_json())
 
 
 def test_bad_seeds_and_base(tmp_path):
@@ -326,16 +378,18 @@ def test_dry_run_lists_costs_and_trains_nothing(tmp_path, capsys):
 CONFIGS = Path(__file__).resolve().parent.parent / "configs" / "grids"
 
 
-@pytest.mark.parametrize("name, variants, seeds", [
-    ("default", ["global-attention", "recurrence-only", "hybrid-2r1l"], 2),
-    ("gate-ablation", ["gated", "no-gate"], 3),
+@pytest.mark.parametrize("name, variants, seeds, groups", [
+    ("default", ["global-attention", "recurrence-only", "hybrid-2r1l"], 5, 3),
+    ("gate-ablation", ["gated", "no-gate"], 3, 3),
 ])
-def test_demo_grids_expand_and_match_parameters(name, variants, seeds):
+def test_demo_grids_expand_and_match_parameters(name, variants, seeds, groups):
     spec = load_grid(CONFIGS / f"{name}.yaml")
     assert spec.name == name and list(spec.variants) == variants and len(spec.seeds) == seeds
     assert spec.match == "params" and spec.reference == variants[0]
+    first = spec.design.schedule.first if spec.design.schedule else seeds
+    assert first >= 3  # issue 15: at least 3 seeds
     plan = plan_cells(spec, threads=1)
-    assert len(plan) == len(variants) * seeds
+    assert len(plan) == groups * seeds
     ref = plan[0].cost.params_non_embedding
     for p in plan:
         assert abs(p.cost.params_non_embedding - ref) <= MATCH_TOLERANCE * ref
@@ -346,7 +400,7 @@ def test_demo_grids_expand_and_match_parameters(name, variants, seeds):
                             "hybrid-2r1l": ("recurrence", "recurrence", "local_attention")}
     else:
         gates = {p.cell.variant: p.cell.cfg.model.mixers["recurrence"].options.gate for p in plan}
-        assert gates == {"gated": True, "no-gate": False}
+        assert gates == {"gated": True, "no-gate": False, "null-control": True}
 
 
 def test_planning_a_grid_builds_no_model_and_loads_no_report_libraries():
@@ -366,7 +420,7 @@ def test_planning_a_grid_builds_no_model_and_loads_no_report_libraries():
         "from blockyard.grid.run import plan_cells\n"
         "from blockyard.grid.spec import load_grid\n"
         f"plan = plan_cells(load_grid({str(CONFIGS / 'default.yaml')!r}), 1)\n"
-        "assert len(plan) == 6 and plan[0].cost.params_total > 0, plan\n"
+        "assert len(plan) == 15 and plan[0].cost.params_total > 0, plan\n"
         "assert not built, built[:5]\n"
         "assert 'scipy' not in sys.modules and 'matplotlib' not in sys.modules\n"
     )
