@@ -4,7 +4,9 @@
 - ``fairness``: params / FLOPs per cell, and matching variants on parameters or FLOPs.
 - ``run``: the grid dir, resume, the index updates; ``executors``: local processes or Ray tasks.
 - ``index``: the SQLite record of every cell; ``status``: the progress line.
-- ``stats`` and ``report``: intervals, paired differences, verdicts, plots, report.md / .html / .csv.
+- ``stats``: pure statistics (intervals, verdict rule, power, sequential levels); ``verdicts``: the
+  comparisons of a grid and their family; ``rounds``: seeds added until decided.
+- ``report``: verdicts, forest plot, plots, report.md / .html, verdicts.csv, results.csv.
 """
 
 from typing import Any
