@@ -17,7 +17,7 @@ from blockyard.cost.analytic import flops_per_token
 from blockyard.errors import UserError
 from blockyard.grid.fairness import MATCH_TOLERANCE, apply_matching, count_params, planned_tokens
 from blockyard.grid.index import open_index
-from blockyard.grid.run import _plan_rows, plan_cells
+from blockyard.grid.run import _plan_rows, makespan, plan_cells, run_grid
 from blockyard.grid.spec import expand_cells, load_grid
 from blockyard.model import build_model
 
@@ -373,6 +373,52 @@ def test_dry_run_lists_costs_and_trains_nothing(tmp_path, capsys):
         assert " 10 " in line and " 1,280 " in line  # steps, tokens = 10 x 4 x 32
     assert "model.mlp_expansion=" in out
     assert "from a measured micro-benchmark" in out and "Estimated time:" in out
+
+
+def test_dry_run_of_seed_rounds_shows_best_and_worst_case(tmp_path, monkeypatch):
+    # Every cell at 1000 tokens/s: a cell of 10 steps x 4 x 32 = 1280 tokens takes 1.28 s. Round 1:
+    # 3 groups x 2 seeds on 2 workers = 3 cells each = 3.84 s; rounds 2 and 3 add 3 cells each
+    # (2 slots of 1.28 s): worst case 3.84 + 2 x 2.56 = 8.96 s, i.e. "9s".
+    import blockyard.grid.estimate as estimate
+
+    monkeypatch.setattr(estimate, "measure_tokens_per_s", lambda cfg, threads: 1000.0)
+    path = write_grid(tmp_path, """
+        base: {model: {width: 32, depth: 1, pattern: [global_attention]}, data: {corpus: pydoc, seq_len: 32},
+               train: {steps: 10, batch_size: 4}}
+        variants: {a: {}, b: {train.lr: 0.001}}
+        reference: a
+        seeds: {first: 2, most: 4}
+        null_control: true
+    """)
+    lines: list[str] = []
+    assert run_grid(path, out=tmp_path / "never", workers=2, threads=1, dry_run=True, echo=lines.append) == 0
+    text = "\n".join(lines)
+    assert "best case, every comparison decided after round 1: 6 cells, 4s for the grid (8s of cell time)" in text
+    assert "worst case, 3 rounds, every group to 4 seeds: 12 cells, 9s for the grid (15s of cell time)" in text
+    assert not (tmp_path / "never").exists()
+    assert makespan([3.0, 1.0, 1.0, 1.0], 2) == 3.0 and makespan([1.0] * 3, 2) == 2.0
+
+
+def test_changed_verdict_rules_are_refused_without_force(tmp_path, capsys):
+    text = """
+        base: {model: {width: 32, depth: 1}, data: {seq_len: 32}}
+        variants: {a: {}, b: {train.lr: 0.001}}
+        reference: a
+        seeds: [0]
+        smallest_effect: %s
+    """
+    grid_dir = tmp_path / "grid_dir"
+    grid_dir.mkdir()
+    spec = load_grid(write_grid(tmp_path, text % "0.01", "first.yaml"))
+    with open_index(grid_dir) as index:
+        index.plan(_plan_rows(plan_cells(spec, threads=1)))
+        index.set_meta({"design": spec.design.to_json(), "threads": "1"})
+    before = _tree_snapshot(grid_dir)
+    changed = write_grid(tmp_path, text % "0.05", "changed.yaml")
+    assert main(["grid", str(changed), "--out", str(grid_dir)]) == 2
+    errors = capsys.readouterr().err
+    assert "its verdict rules (smallest_effect, seeds schedule, null_control) differ" in errors
+    assert errors.count("\n") == 1 and _tree_snapshot(grid_dir) == before
 
 
 CONFIGS = Path(__file__).resolve().parent.parent / "configs" / "grids"

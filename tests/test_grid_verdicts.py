@@ -136,7 +136,7 @@ def test_rounds_grow_only_the_undecided_and_wait_for_unfinished_cells():
     keys = list(outcomes(6, null=True))
     state = plan_rounds(design, keys, "ref", tuple(range(6)), outcomes(2, null=True))
     assert (state.rounds, state.complete) == (1, False)
-    assert state.reason == "round 1: 4 cell(s) to finish"  # seed 2 of each of the 4 groups
+    assert state.reason == "4 cell(s) to finish"  # seed 2 of each of the 4 groups
     state = plan_rounds(design, keys, "ref", tuple(range(6)), outcomes(6, null=True))
     assert state.seeds[("clear", point)] == (0, 1, 2)
     assert state.seeds[("noisy", point)] == state.seeds[("ref", point)] == (0, 1, 2, 3, 4, 5)

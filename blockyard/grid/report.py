@@ -137,7 +137,8 @@ def grid_results(rows: list[dict[str, Any]], meta: dict[str, str | None], defaul
     rounds = None
     if design.schedule is not None:
         state = plan_rounds(design, list(outcomes), reference, tuple(range(design.schedule.most)), outcomes)
-        rounds = f"{state.rounds} round(s) ran; {state.reason}" if state.complete else f"still running: {state.reason}"
+        rounds = (f"{state.rounds} round(s) ran; {state.reason}" if state.complete
+                  else f"round {state.rounds} still running, {state.reason}")
     return GridResults(meta.get("name") or default_name, meta.get("description") or "", reference,
                        meta.get("match") or "none", design, meta.get("design_changed") == "1", rows,
                        group_cells(rows), family, rounds)

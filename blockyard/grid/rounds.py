@@ -47,7 +47,7 @@ def plan_rounds(design: Design, keys: Iterable[GroupKey], reference: str | None,
     for r in range(1, len(looks) + 1):
         waiting = _waiting(seeds, outcomes)
         if waiting:
-            return RoundState(r, seeds, False, f"round {r}: {waiting} cell(s) to finish")
+            return RoundState(r, seeds, False, f"{waiting} cell(s) to finish")
         family = compare_all(restrict(outcomes, seeds), reference, design, with_planning=False)
         open_points = {c.point for c in family.undecided}
         if not family.undecided:
