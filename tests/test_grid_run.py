@@ -149,6 +149,8 @@ def test_seed_rounds_with_a_null_control_end_to_end(tmp_path):
     with open_index(out, readonly=True) as index:
         cells = {c["id"]: c for c in index.cells()}
     assert {f"{g}-seed{s}" for g in ("ref", "null-control", "wider") for s in (0, 1)} <= set(cells)
+    # train.init_seed changes the initialisation only: same data seed, another final loss.
+    assert cells["null-control-seed0"]["final_val_loss"] != cells["ref-seed0"]["final_val_loss"]
     with open(out / "verdicts.csv") as f:
         verdicts = {r["variant"]: r for r in csv.DictReader(f)}
     wider, null = verdicts["wider"], verdicts["null-control"]

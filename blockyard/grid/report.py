@@ -21,7 +21,7 @@ from typing import Any
 
 from blockyard.errors import UserError
 from blockyard.grid import stats
-from blockyard.grid.fairness import PARAMS_TOLERANCE
+from blockyard.grid.fairness import MATCH_TOLERANCE
 from blockyard.grid.index import INDEX_NAME, open_index
 from blockyard.grid.rounds import plan_rounds
 from blockyard.grid.spec import NULL_INIT_OFFSET, Design
@@ -255,7 +255,7 @@ def axis_varies_size(groups: list[Group]) -> bool:
         if params:
             by_point.setdefault(g.point, []).append(params)
     means = [sum(v) / len(v) for v in by_point.values()]
-    return len(means) > 1 and max(means) > (1 + PARAMS_TOLERANCE) * min(means)
+    return len(means) > 1 and max(means) > (1 + MATCH_TOLERANCE) * min(means)
 
 
 def _params_plot(plt: Any, path: Path, groups: list[Group]) -> bool:
@@ -634,7 +634,7 @@ def _variants_section(doc: Doc, res: GridResults) -> None:
                "wall s per cell", "fairness adjustment"], table)
     if res.match == "params":
         doc.p("Parameter matching changed `model.mlp_expansion` (the MLP hidden size) of every non-reference "
-              f"variant so that its non-embedding parameters are within {PARAMS_TOLERANCE:.0%} of the reference's; "
+              f"variant so that its non-embedding parameters are within {MATCH_TOLERANCE:.0%} of the reference's; "
               "the column 'fairness adjustment' gives the value used.")
     elif res.match == "flops":
         doc.p("FLOP matching changed `train.tokens` (the token budget) of every non-reference variant so that "
@@ -712,7 +712,7 @@ def _match_text(match: str) -> str:
     return {
         "none": "none (variants as configured)",
         "params": f"parameters matched by adjusting model.mlp_expansion (non-embedding params within "
-                  f"{PARAMS_TOLERANCE:.0%})",
+                  f"{MATCH_TOLERANCE:.0%})",
         "flops": "training FLOPs matched by adjusting train.tokens",
     }.get(match, match)
 
