@@ -11,6 +11,11 @@ it at or below 5%.
     PYTHONPATH=. .venv/bin/python scripts/calibrate_verdicts.py --comparisons 20 --seeds 3 --workers 2
 
 Cells are ordinary run dirs under ``--out`` (default: a temporary folder, removed at the end).
+
+Measured with ``--comparisons 40 --seeds 3 --steps 60 --workers 1`` (240 runs, 167 s of training
+on the project's 2-core machine, shared with other jobs): 1 better, 39 undecided; false-positive
+rate 1/40 = 0.025, 95% Clopper-Pearson interval [0.001, 0.132]; median paired sd of two runs of
+the same model 0.0133 nats/token (so at 3 seeds nothing is called equivalent at 0.01).
 """
 
 from __future__ import annotations
