@@ -26,7 +26,15 @@ from blockyard.grid.index import INDEX_NAME, open_index
 from blockyard.grid.rounds import plan_rounds
 from blockyard.grid.spec import NULL_INIT_OFFSET, Design
 from blockyard.grid.status import cell_dir, read_jsonl
-from blockyard.grid.verdicts import Comparison, Family, common_seed_means, compare_all, group_outcomes, point_text
+from blockyard.grid.verdicts import (
+    Comparison,
+    Family,
+    common_seed_means,
+    compare_all,
+    group_outcomes,
+    point_text,
+    value_text,
+)
 
 CAUTION = (
     "These verdicts hold for this model size, this data and this training budget only. Effects seen in tiny "
@@ -425,7 +433,7 @@ def write_csv(path: Path, rows: list[dict[str, Any]]) -> None:
 
 
 def _point_items(point: Any) -> list[tuple[str, str]]:
-    return [(k, point_text(((k, v),)).split("=", 1)[1]) for k, v in point]
+    return [(k, value_text(v)) for k, v in point]
 
 
 def verdict_table(family: Family) -> list[list[Any]]:
@@ -606,8 +614,8 @@ def _null_section(doc: Doc, fam: Family) -> None:
 
 
 def _variants_section(doc: Doc, res: GridResults) -> None:
-    means = common_seed_means(group_outcomes(res.rows))
     outcomes = group_outcomes(res.rows)
+    means = common_seed_means(outcomes)
     table = []
     for g in res.groups:
         o = outcomes[g.key]
