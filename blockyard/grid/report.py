@@ -131,6 +131,7 @@ class GridResults:
     match: str
     design: Design
     design_changed: bool
+    cost_note: str  # which cost figures were measured rather than computed (plugin mixers)
     rows: list[dict[str, Any]]
     groups: list[Group]
     family: Family
@@ -148,7 +149,8 @@ def grid_results(rows: list[dict[str, Any]], meta: dict[str, str | None], defaul
         rounds = (f"{state.rounds} round(s) ran; {state.reason}" if state.complete
                   else f"round {state.rounds} still running, {state.reason}")
     return GridResults(meta.get("name") or default_name, meta.get("description") or "", reference,
-                       meta.get("match") or "none", design, meta.get("design_changed") == "1", rows,
+                       meta.get("match") or "none", design, meta.get("design_changed") == "1",
+                       meta.get("cost_note") or "", rows,
                        group_cells(rows), family, rounds)
 
 
@@ -648,6 +650,8 @@ def _variants_section(doc: Doc, res: GridResults) -> None:
         doc.p("FLOP matching changed `train.tokens` (the token budget) of every non-reference variant so that "
               "FLOPs/token x tokens equals the reference's training FLOPs (up to whole optimizer steps); the "
               "column 'fairness adjustment' gives the budget used.")
+    if res.cost_note:
+        doc.p(res.cost_note)
 
 
 def _excluded_section(doc: Doc, rows: list[dict[str, Any]]) -> None:
@@ -733,7 +737,7 @@ def write_report(grid_dir: str | Path) -> Path:
     with open_index(grid_dir, readonly=True) as index:
         rows = index.cells()
         meta = {k: index.get_meta(k) for k in ("name", "description", "reference", "match", "design",
-                                               "design_changed")}
+                                               "design_changed", "cost_note")}
     if not rows:
         raise UserError(f"{grid_dir}: the grid index holds no cells")
     res = grid_results(rows, meta, grid_dir.name)

@@ -5,6 +5,7 @@ Grid dir layout::
     GRID_DIR/grid.yaml          the grid spec as given (earlier versions kept as grid.<n>.yaml)
     GRID_DIR/index.sqlite       every cell: variant, seed, axis point, config hash, status, timings, metrics
     GRID_DIR/configs/<cell>.yaml  each cell's resolved config (what ``blockyard train`` is given)
+    GRID_DIR/plugins/           copies of the plugin files the cells load (a config's ``plugins``)
     GRID_DIR/cells/<cell>/      each cell's run dir (config.yaml, metrics.jsonl, summary.json, ...)
     GRID_DIR/logs/<cell>.log    each cell's trainer output
     GRID_DIR/report.md, report.html, results.csv, *.png
@@ -35,6 +36,7 @@ from blockyard.grid.fairness import CellCost, apply_matching, cell_cost, planned
 from blockyard.grid.index import FINISHED, INDEX_NAME, GridIndex, open_index
 from blockyard.grid.spec import NULL_VARIANT, Cell, Design, GridSpec, expand_cells, load_grid
 from blockyard.grid.status import LOCK_NAME, cell_dir, format_duration, grid_progress, lock_holder, read_summary
+from blockyard.mixers.plugins import copy_plugins
 from blockyard.schema import to_dict
 
 DEFAULT_ROOT = Path("runs") / "grids"
@@ -271,6 +273,21 @@ def _supersede(grid_dir: Path, ids: list[str], old_hashes: dict[str, str]) -> li
     return moved
 
 
+def _plugin_copies(p: PlannedCell, grid_dir: Path) -> list[str] | None:
+    """Copy the cell's plugin files into GRID_DIR/plugins; the entries its config names them by
+    (relative to GRID_DIR/configs), or None without plugins."""
+    if not p.cell.cfg.plugins:
+        return None
+    return [f"../plugins/{c.name}" for c in copy_plugins(p.cell.cfg.plugins, grid_dir / "plugins")]
+
+
+def _cost_note(plan: list[PlannedCell]) -> str:
+    """Which cost figures were measured (plugin mixers without formulas), for the report."""
+    from blockyard.cost.analytic import measured_note
+
+    return " ".join(dict.fromkeys(note for p in plan if (note := measured_note(p.cell.cfg.model))))
+
+
 def _plan_rows(plan: list[PlannedCell]) -> list[dict[str, Any]]:
     return [{
         "id": p.id, "variant": p.cell.variant, "seed": p.cell.seed, "point": [list(kv) for kv in p.cell.point],
@@ -404,6 +421,7 @@ class _Setup:
     recorded_threads: int | None
     old_hashes: dict[str, str]
     old_design: str | None
+    check: bool = True  # run the mixer contract gate on plugin mixers (``blockyard.check``)
 
     @property
     def hint(self) -> str:
@@ -475,7 +493,7 @@ def _sync_index(s: _Setup, index: GridIndex, universe: list[PlannedCell], force:
     index.set_meta({"name": s.spec.name, "description": s.spec.description, "reference": s.spec.reference or "",
                     "match": s.spec.match, "threads": str(s.threads), "fingerprint": fingerprint(universe),
                     "grid_file": str(Path(s.grid_file).resolve()), "design": s.spec.design.to_json(),
-                    "design_changed": design_changed})
+                    "design_changed": design_changed, "cost_note": _cost_note(universe)})
 
 
 def current_cells(spec: GridSpec, universe: list[PlannedCell], rows: list[dict[str, Any]]) -> tuple[
@@ -496,10 +514,10 @@ def current_cells(spec: GridSpec, universe: list[PlannedCell], rows: list[dict[s
     return cells, f"round {state.rounds}: {state.reason}", state.complete
 
 
-def _jobs(grid_dir: Path, ids: list[str], threads: int) -> list[executors.CellJob]:
+def _jobs(grid_dir: Path, ids: list[str], threads: int, check: bool) -> list[executors.CellJob]:
     return [executors.CellJob(id=cid, config_path=(grid_dir / "configs" / f"{cid}.yaml").resolve(),
                               out_dir=cell_dir(grid_dir, cid).resolve(),
-                              log_path=(grid_dir / "logs" / f"{cid}.log").resolve(), threads=threads)
+                              log_path=(grid_dir / "logs" / f"{cid}.log").resolve(), threads=threads, check=check)
             for cid in ids]
 
 
@@ -515,13 +533,14 @@ def _run_rounds(s: _Setup, index: GridIndex, universe: list[PlannedCell], echo: 
         seen |= {p.id for p in cells}
         (s.grid_dir / "configs").mkdir(exist_ok=True)
         for p in cells:
-            _write_if_changed(s.grid_dir / "configs" / f"{p.id}.yaml", dump_config(p.cell.cfg))
+            text = dump_config(p.cell.cfg, _plugin_copies(p, s.grid_dir))
+            _write_if_changed(s.grid_dir / "configs" / f"{p.id}.yaml", text)
         index.plan(_plan_rows(cells))
         todo = _reconcile(s.grid_dir, index)
         echo(f"grid {s.spec.name}: {len(cells)} cells in {s.grid_dir} ({len(cells) - len(todo)} already finished, "
              f"{len(todo)} to run; {s.executor} executor, {s.workers or 'auto'} worker(s) x {s.threads} thread(s))"
              + (f"; {rounds_line}" if rounds_line else ""))
-        jobs = _jobs(s.grid_dir, todo, s.threads)
+        jobs = _jobs(s.grid_dir, todo, s.threads, s.check)
         if jobs:
             (s.grid_dir / "cells").mkdir(exist_ok=True)
         try:
@@ -549,13 +568,14 @@ def run_grid(
     address: str | None = None,
     force: bool = False,
     dry_run: bool = False,
+    check: bool = True,
     echo: Callable[[str], None] = print,
     status_every_s: float = STATUS_EVERY_S,
 ) -> int:
     """``blockyard grid``: returns 0 when every cell finished (done or diverged), 1 when some failed,
     130 when stopped by a signal."""
     _check_options(workers, threads, executor, address)
-    s = _setup(grid_file, out, workers, threads, executor, address)
+    s = dataclasses.replace(_setup(grid_file, out, workers, threads, executor, address), check=check)
     if executor == "local" and s.workers is not None and s.workers * s.threads > s.cores:
         echo(f"note: {s.workers} worker(s) x {s.threads} thread(s) exceed the {s.cores} core(s) here; "
              "cells will share them")
@@ -571,6 +591,10 @@ def run_grid(
     _refuse_changed_design(s.grid_dir, grid_file, s.old_design, s.spec.design, force)
     unfinished = [p for p in universe if p.cell.seed in s.spec.seeds[:_first_seeds(s.spec)]
                   and (read_summary(cell_dir(s.grid_dir, p.id) / "summary.json") or {}).get("status") not in FINISHED]
+    if check:  # a plugin mixer that leaks is refused before any cell starts (and each cell checks again)
+        from blockyard.check import gate_many
+
+        gate_many([p.cell.cfg for p in unfinished])
     prepare_data(unfinished, echo)
     s.grid_dir.mkdir(parents=True, exist_ok=True)
     with grid_lock(s.grid_dir), open_index(s.grid_dir) as index:
