@@ -20,7 +20,7 @@ from typing import Any
 
 from blockyard.config import Config
 from blockyard.errors import UserError
-from blockyard.grid.spec import Cell, GridSpec, config_with
+from blockyard.grid.spec import MATCHED_KEYS, Cell, GridSpec, config_with
 
 # Non-embedding parameter counts of matched variants must be this close to the reference's (relative).
 MATCH_TOLERANCE = 0.02
@@ -155,7 +155,7 @@ def _solve(spec: GridSpec, cell: Cell, ref: CellCost) -> dict[str, Any]:
     if spec.match == "params":
         width = cell.cfg.model.width
         hidden = match_params_hidden(spec.base, cell.overrides, width, ref.params_non_embedding, who)
-        return {"model.mlp_expansion": hidden / width}
+        return {MATCHED_KEYS["params"]: hidden / width}
     from blockyard.cost.analytic import flops_per_token
 
-    return {"train.tokens": max(1, round(ref.train_flops / flops_per_token(cell.cfg)))}
+    return {MATCHED_KEYS["flops"]: max(1, round(ref.train_flops / flops_per_token(cell.cfg)))}

@@ -24,8 +24,9 @@ from blockyard.grid import stats
 from blockyard.grid.fairness import MATCH_TOLERANCE
 from blockyard.grid.index import INDEX_NAME, open_index
 from blockyard.grid.rounds import plan_rounds
-from blockyard.grid.spec import NULL_INIT_OFFSET, Design
+from blockyard.grid.spec import NULL_INIT_OFFSET, NULL_VARIANT, Design
 from blockyard.grid.status import cell_dir, read_jsonl
+from blockyard.grid.tuning import TUNING_DIR, TunedGroup, Tuning, shared_value_differences, split_point, tuned_groups
 from blockyard.grid.verdicts import (
     Comparison,
     Family,
@@ -42,6 +43,7 @@ CAUTION = (
 )
 BAND = "line: mean over seeds; band: min to max over seeds"
 FOREST = "verdicts.png"
+TUNING_PLOT = "tuning.png"
 
 
 @dataclasses.dataclass
@@ -136,11 +138,31 @@ class GridResults:
     groups: list[Group]
     family: Family
     rounds: str | None  # "N rounds ran; <why it stopped>" with a seed schedule
+    tuning: TuningResults | None = None  # stage 1 of a grid with a ``tune`` block
 
 
-def grid_results(rows: list[dict[str, Any]], meta: dict[str, str | None], default_name: str) -> GridResults:
+@dataclasses.dataclass(frozen=True)
+class TuningResults:
+    """Stage 1: the block, its cells' records, and each (variant, point)'s choice (None while cells may train)."""
+
+    tuning: Tuning
+    rows: list[dict[str, Any]]
+    groups: list[TunedGroup] | None
+
+    def chosen(self, variant: str, point: tuple) -> float | None:
+        return next((g.chosen for g in self.groups or () if g.variant == variant
+                     and g.point == self.tuning.tuned_point(point)), None)
+
+
+def grid_results(rows: list[dict[str, Any]], meta: dict[str, str | None], default_name: str,
+                 tuning_rows: list[dict[str, Any]] | None = None) -> GridResults:
     reference = meta.get("reference") or None
     design = Design.from_json(meta.get("design"))
+    tuning = Tuning.from_json(meta.get("tuning"))
+    tuned = None
+    if tuning is not None:
+        tuned = TuningResults(tuning, tuning_rows or [], tuned_groups(tuning_rows or [], tuning,
+                                                                      design.smallest_effect))
     outcomes = group_outcomes(rows)
     family = compare_all(outcomes, reference, design)
     rounds = None
@@ -151,7 +173,7 @@ def grid_results(rows: list[dict[str, Any]], meta: dict[str, str | None], defaul
     return GridResults(meta.get("name") or default_name, meta.get("description") or "", reference,
                        meta.get("match") or "none", design, meta.get("design_changed") == "1",
                        meta.get("cost_note") or "", rows,
-                       group_cells(rows), family, rounds)
+                       group_cells(rows), family, rounds, tuned)
 
 
 # ----------------------------------------------------------------------------- curves and plots
@@ -199,6 +221,8 @@ def write_plots(grid_dir: Path, res: GridResults) -> list[tuple[str, str]]:
     written: list[tuple[str, str]] = []
     if forest_plot(plt, grid_dir / FOREST, res.family):
         written.append((FOREST, _forest_caption(res.family)))
+    if res.tuning and res.tuning.groups and tuning_plot(plt, grid_dir / TUNING_PLOT, res.tuning):
+        written.append((TUNING_PLOT, _tuning_caption(res.tuning.tuning)))
     written += _curve_plots(plt, grid_dir, res.groups)
     if axis_varies_size(res.groups) and _params_plot(plt, grid_dir / "final_loss_vs_params.png", res.groups):
         written.append(("final_loss_vs_params.png",
@@ -244,6 +268,43 @@ def forest_plot(plt: Any, path: Path, family: Family) -> bool:
     fig.savefig(path, dpi=110)
     plt.close(fig)
     return True
+
+
+def tuning_plot(plt: Any, path: Path, tuned: TuningResults) -> bool:
+    """Final validation loss (mean over tuning seeds) against the tuned value, one line per variant and point,
+    each chosen value starred; values where a cell diverged or failed marked x at the top."""
+    groups = tuned.groups or []
+    fig, ax = plt.subplots(figsize=(6.4, 4.2))
+    finite = [m for g in groups for m in g.means.values() if math.isfinite(m)]
+    if not finite:
+        plt.close(fig)
+        return False
+    top = max(finite) + 0.05 * (max(finite) - min(finite) or 1.0)
+    for g in groups:
+        label = g.variant if not g.point else f"{g.variant} ({point_text(g.point)})"
+        xs = [v for v, m in g.means.items() if math.isfinite(m)]
+        (line,) = ax.plot(xs, [g.means[v] for v in xs], marker="o", ms=3.5, label=label)
+        bad = [v for v, m in g.means.items() if not math.isfinite(m)]
+        if bad:
+            ax.plot(bad, [top] * len(bad), "x", color=line.get_color(), ms=7)
+        if math.isfinite(g.means[g.chosen]):
+            ax.plot([g.chosen], [g.means[g.chosen]], "*", color=line.get_color(), ms=15, markeredgecolor="black")
+    if all(v > 0 for g in groups for v in g.scores):
+        ax.set_xscale("log")
+    ax.set_xlabel(f"{tuned.tuning.key} (searched values)")
+    ax.set_ylabel("final validation loss (nats/token)")
+    ax.grid(True, alpha=0.3, which="both")
+    ax.legend(fontsize=7)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return True
+
+
+def _tuning_caption(tuning: Tuning) -> str:
+    return (f"Stage 1: final validation loss against {tuning.key} (mean over the tuning seeds "
+            f"{', '.join(map(str, tuning.seeds))}); star: the value chosen for each variant; x at the top: a cell "
+            "diverged or failed at that value.")
 
 
 def family_reference(family: Family) -> str:
@@ -491,8 +552,10 @@ def build_report(grid_dir: Path, res: GridResults, plots: list[tuple[str, str]])
     _summary_section(doc, res)
     _verdicts_section(doc, res)
     _null_section(doc, res.family)
+    _tuning_section(doc, res, plots)
     _variants_section(doc, res)
     _excluded_section(doc, res.rows)
+    plots = [p for p in plots if p[0] != TUNING_PLOT]  # shown in the Tuning section
     if plots:
         doc.h(2, "Plots")
         for name, caption in plots:
@@ -615,6 +678,83 @@ def _null_section(doc: Doc, fam: Family) -> None:
         doc.p(line)
 
 
+def _tuning_section(doc: Doc, res: GridResults, plots: list[tuple[str, str]]) -> None:
+    """Stage 1: each variant's chosen value, the loss-vs-value plot, edge and basin, and the exploratory
+    comparison at shared values."""
+    if res.tuning is None:
+        return
+    t, groups = res.tuning.tuning, res.tuning.groups
+    delta = res.design.smallest_effect
+    doc.h(2, "Tuning")
+    doc.p(f"Stage 1 trained every variant at {len(t.values)} values of `{t.key}` with tuning seeds "
+          f"{', '.join(map(str, t.seeds))} ({_pct(t.budget)} of the verdict cells' token budget) and chose, for "
+          "each variant and axis point, the value with the lowest mean final validation loss over the tuning seeds "
+          "(a diverged or failed cell counts as +infinity; ties go to the smaller value). The verdict cells above "
+          "ran at these values on seeds disjoint from the tuning seeds, so the verdicts are not measured on the "
+          "noise the choice used.")
+    if groups is None:
+        doc.p("Stage 1 has not finished: no value is chosen yet.")
+        return
+    header = ["variant", "axis point", f"chosen {t.key}", f"basin (within {delta:g} of the best)"]
+    header += [f"loss at {v:g}" for v in t.values]
+    table = []
+    for g in groups:
+        means = g.means
+        table.append([g.variant + (" (reference)" if g.variant == res.reference else ""), point_text(g.point),
+                      f"{g.chosen:g}", _basin_text(g)]
+                     + [("**" if v == g.chosen else "") + (_fmt(means.get(v)) if math.isfinite(means.get(v, math.inf))
+                                                           else "diverged/failed") + ("**" if v == g.chosen else "")
+                        for v in t.values])
+    doc.table(header, table)
+    warnings = [w for g in groups for w in _tuning_warnings(g, t)]
+    if warnings:
+        doc.ul(warnings)
+    for name, caption in plots:
+        if name == TUNING_PLOT:
+            doc.img(name, caption)
+    if len(t.seeds) >= 2 and res.reference is not None:
+        _shared_value_table(doc, res, groups)
+
+
+def _basin_text(g: TunedGroup) -> str:
+    low, high = g.basin
+    if not math.isfinite(g.means[g.chosen]):
+        return "-"
+    if low == high:
+        return f"{low:g} only (narrower than the spacing of the values)"
+    factor = f"; a factor {high / low:.3g}" if low > 0 else ""
+    return f"{low:g} to {high:g}{factor}"
+
+
+def _tuning_warnings(g: TunedGroup, t: Tuning) -> list[str]:
+    who = g.variant + (f" at {point_text(g.point)}" if g.point else "")
+    if g.all_failed:
+        return [f"**{who}**: every searched value diverged or failed; the verdict cells ran at the smallest "
+                f"({g.chosen:g}): search smaller values of `{t.key}`."]
+    if g.at_edge:
+        side = "smallest" if g.chosen == min(g.scores) else "largest"
+        return [f"**{who}**: the chosen {t.key} {g.chosen:g} is the {side} value searched: the optimum may lie "
+                "outside: widen `values`."]
+    return []
+
+
+def _shared_value_table(doc: Doc, res: GridResults, groups: list[TunedGroup]) -> None:
+    assert res.tuning is not None and res.reference is not None
+    t = res.tuning.tuning
+    doc.h(3, "At a shared value (exploratory)")
+    doc.p(f"Each variant against **{res.reference}** with both at the same `{t.key}`, paired by tuning seed "
+          "(variant minus reference; negative is better). **Exploratory**: measured on the tuning seeds, the same "
+          "noise the choice used; plain 95% intervals, not adjusted for the many values; not part of the verdict "
+          "family. It shows whether the verdict depends on the tuning: a sign that flips across values means the "
+          "comparison at any one shared value would depend on which value was picked.")
+    rows = []
+    for d in shared_value_differences(groups, res.reference):
+        iv = stats.mean_interval(list(d.diffs)) if d.diffs else None
+        rows.append([d.variant, point_text(d.point), f"{d.value:g}", str(len(d.seeds)),
+                     _signed(iv.mean) if iv else "-", _ci_text(iv, signed=True)])
+    doc.table(["variant", "axis point", t.key, "pairs", "difference (mean)", "95% CI (unadjusted)"], rows)
+
+
 def _variants_section(doc: Doc, res: GridResults) -> None:
     outcomes = group_outcomes(res.rows)
     means = common_seed_means(outcomes)
@@ -700,6 +840,14 @@ def _method_section(doc: Doc, res: GridResults) -> None:
             "looks hold at once (repeated confidence intervals, Jennison & Turnbull 2000, ch. 9); it is computed by "
             "simulating the looks' t statistics, whose joint law under normal differences depends on neither mean "
             "nor sd. A comparison's verdict is final once decided: it gets no more seeds.")
+    if res.tuning is not None:
+        t = res.tuning.tuning
+        items.append(
+            f"Tuning (grid key `tune`): each variant's `{t.key}` was chosen in stage 1 (see Tuning) on tuning seeds "
+            f"{', '.join(map(str, t.seeds))}, disjoint from the verdict seeds: choosing and measuring on the same "
+            "seeds would bias the verdict towards the variant whose noise flattered it (the winner's curse). "
+            "Fairness matching was done before tuning, on the untuned configs. The verdicts compare each variant "
+            "at its own chosen value; the exploratory table at shared values is outside the family.")
     items += [
         f"Seeds needed: the pairs at which a paired t test at {_pct(fam.comparison_alpha)} reaches 80% power, both to "
         "call better/worse if the true difference is ±δ and to call equivalent if it is 0 (the larger is shown), "
@@ -737,14 +885,52 @@ def write_report(grid_dir: str | Path) -> Path:
     with open_index(grid_dir, readonly=True) as index:
         rows = index.cells()
         meta = {k: index.get_meta(k) for k in ("name", "description", "reference", "match", "design",
-                                               "design_changed", "cost_note")}
+                                               "design_changed", "cost_note", "tuning")}
     if not rows:
         raise UserError(f"{grid_dir}: the grid index holds no cells")
-    res = grid_results(rows, meta, grid_dir.name)
+    tuning_rows = None
+    if (grid_dir / TUNING_DIR / INDEX_NAME).exists():
+        with open_index(grid_dir / TUNING_DIR, readonly=True) as index:
+            tuning_rows = index.cells()
+    res = grid_results(rows, meta, grid_dir.name, tuning_rows)
     plots = write_plots(grid_dir, res)
     doc = build_report(grid_dir, res, plots)
     _atomic_write(grid_dir / "report.md", doc.markdown())
     _atomic_write(grid_dir / "report.html", doc.html(grid_dir, f"Grid {res.name}"))
     write_csv(grid_dir / "results.csv", rows)
-    _write_table(grid_dir / "verdicts.csv", VERDICT_COLUMNS, verdict_table(res.family))
+    columns, table = VERDICT_COLUMNS, verdict_table(res.family)
+    if res.tuning is not None:
+        columns, table = (*columns, *TUNED_COLUMNS), [row + _tuned_values(res.tuning, c, res.reference)
+                                                      for row, c in zip(table, res.family.comparisons + res.family.null,
+                                                                        strict=True)]
+        write_tuning_csv(grid_dir / "tuning.csv", res.tuning)
+    _write_table(grid_dir / "verdicts.csv", columns, table)
     return grid_dir / "report.md"
+
+
+TUNED_COLUMNS = ("tuned_key", "tuned_value", "reference_tuned_value")
+TUNING_CSV_COLUMNS = ("id", "variant", "point", "key", "value", "seed", "status", "final_val_loss", "score",
+                      "mean_score", "chosen", "planned_tokens", "tokens_seen", "wall_s", "config_hash", "message")
+
+
+def _tuned_values(tuned: TuningResults, c: Comparison, reference: str | None) -> list[Any]:
+    """verdicts.csv: the tuned key, the variant's chosen value (the null control's is the reference's) and the
+    reference's."""
+    ref = tuned.chosen(reference or "", c.point)
+    own = ref if c.variant == NULL_VARIANT else tuned.chosen(c.variant, c.point)
+    return [tuned.tuning.key, own, ref]
+
+
+def write_tuning_csv(path: Path, tuned: TuningResults) -> None:
+    """tuning.csv: one row per tuning cell, with its selection score and whether its value was chosen."""
+    groups = {g.key: g for g in tuned.groups or ()}
+    table = []
+    for r in tuned.rows:
+        point, value = split_point(r, tuned.tuning.key)
+        g = groups.get((r["variant"], point))
+        score = g.scores[value].get(r["seed"]) if g else None
+        table.append([r["id"], r["variant"], "; ".join(f"{k}={v}" for k, v in _point_items(point)), tuned.tuning.key,
+                      value, r["seed"], r["status"], r["final_val_loss"], score, g.means[value] if g else None,
+                      (g.chosen == value) if g else None, r["planned_tokens"], r["tokens_seen"], r["wall_s"],
+                      r["config_hash"], r["message"]])
+    _write_table(path, TUNING_CSV_COLUMNS, table)

@@ -9,6 +9,14 @@ Grid dir layout::
     GRID_DIR/cells/<cell>/      each cell's run dir (config.yaml, metrics.jsonl, summary.json, ...)
     GRID_DIR/logs/<cell>.log    each cell's trainer output
     GRID_DIR/report.md, report.html, results.csv, *.png
+    GRID_DIR/tuning/            with a ``tune`` block: stage 1, a grid dir of its own (index, configs, cells,
+                                logs); GRID_DIR/tuning.csv one row per tuning cell
+
+With a ``tune`` block (``blockyard.grid.tuning``) the grid runs in two stages: stage 1 trains the
+tuning cells, then each variant's value is chosen from their records and stage 2 trains the
+verdict cells at it. The choice is a pure function of the tuning records, so a rerun after any
+interruption resumes either stage with the same choice; failed tuning cells are retried only
+until stage 2 has started (after that the choice stays as made, with them counted as +inf).
 
 Rerunning the same grid resumes it: finished (done or diverged) cells are skipped, the others
 are (re)started, and the trainer resumes interrupted ones from their checkpoints. A grid dir
@@ -34,8 +42,9 @@ from blockyard.errors import UserError
 from blockyard.grid import executors
 from blockyard.grid.fairness import CellCost, apply_matching, cell_cost, planned_steps
 from blockyard.grid.index import FINISHED, INDEX_NAME, GridIndex, open_index
-from blockyard.grid.spec import NULL_VARIANT, Cell, Design, GridSpec, expand_cells, load_grid
+from blockyard.grid.spec import NULL_VARIANT, Cell, Design, GridSpec, expand_cells, load_grid, tuned_cells, tuning_cells
 from blockyard.grid.status import LOCK_NAME, cell_dir, format_duration, grid_progress, lock_holder, read_summary
+from blockyard.grid.tuning import TUNING_DIR, chosen_values, tuned_groups
 from blockyard.mixers.plugins import copy_plugins
 from blockyard.schema import to_dict
 
@@ -64,16 +73,33 @@ class PlannedCell:
         return self.cell.id
 
 
-def plan_cells(spec: GridSpec, threads: int) -> list[PlannedCell]:
+def plan_cells(spec: GridSpec, threads: int, chosen: dict[tuple, float] | None = None) -> list[PlannedCell]:
     """Every potential cell with fairness adjustments and ``runtime.threads`` applied, its cost and config hash.
 
     The null control is the reference under another init seed: it is not matched (the reference
     is the target), so its config differs from the reference's in ``train.init_seed`` only.
+    With a ``tune`` block, ``chosen`` ((variant, point) -> value, from stage 1) sets each verdict cell's
+    tuned key; without it the cells keep the base config's value (what a dry run shows before tuning).
     """
+    cells = _matched_cells(spec)
+    if chosen is not None:
+        cells = tuned_cells(spec, cells, chosen)
+    return _planned(cells, threads)
+
+
+def plan_tuning(spec: GridSpec, threads: int) -> list[PlannedCell]:
+    """Stage 1's cells (none without a ``tune`` block): matched before tuning, as the verdict cells are."""
+    return _planned(tuning_cells(spec, _matched_cells(spec)), threads)
+
+
+def _matched_cells(spec: GridSpec) -> list[Cell]:
     cells = expand_cells(spec)
     matched = apply_matching(spec, [c for c in cells if c.variant != NULL_VARIANT])
     by_id = {c.id: c for c in matched}
-    cells = [by_id.get(c.id, c) for c in cells]
+    return [by_id.get(c.id, c) for c in cells]
+
+
+def _planned(cells: list[Cell], threads: int) -> list[PlannedCell]:
     costs: dict[tuple, CellCost] = {}
     planned = []
     for cell in cells:
@@ -95,10 +121,12 @@ def fingerprint(plan: list[PlannedCell]) -> str:
 
 
 def dry_run_text(plan: list[PlannedCell], workers: int, threads: int, measure: bool = True,
-                 design: Design | None = None) -> str:
+                 design: Design | None = None, estimates: dict[str, float] | None = None) -> str:
     """The cells with params, FLOPs/token, tokens and (measured-speed) estimated time; with a seed
-    schedule, the best case (every comparison decided after round 1) and the worst (all to ``most``)."""
-    estimates = _estimates(plan, threads) if measure else {}
+    schedule, the best case (every comparison decided after round 1) and the worst (all to ``most``).
+    ``estimates``: tokens/s per cell id, measured already (else measured here)."""
+    if estimates is None:
+        estimates = _estimates(plan, threads) if measure else {}
     header = ["cell", "adjustment", "params (non-emb)", "FLOPs/token", "steps", "tokens", "tokens/s", "est. time"]
     rows = []
     for p in plan:
@@ -132,6 +160,38 @@ def dry_run_text(plan: list[PlannedCell], workers: int, threads: int, measure: b
               f"  worst case, {len(rounds)} rounds, every group to {schedule.most} seeds: {len(plan)} cells, "
               f"{_wall_text(rounds, workers)}",
               how]
+    return "\n".join(lines)
+
+
+def two_stage_dry_run(spec: GridSpec, tuning_plan: list[PlannedCell], plan: list[PlannedCell], workers: int,
+                      threads: int, tuned: bool) -> str:
+    """Both stages of a tuned grid, each with its cells and estimated time, then the total (``tuned``:
+    stage 1 has finished, so ``plan`` holds the chosen values)."""
+    assert spec.tuning is not None
+    t = spec.tuning
+    estimates = _estimates(tuning_plan + plan, threads)
+    where = ("at each variant's chosen value" if tuned else
+             f"at each variant's value chosen in stage 1 (shown at the base config's {t.key}; the cost does not "
+             "depend on it unless the key changes the model or the budget)")
+    lines = [f"stage 1 of 2, tuning {t.key} over {len(t.values)} values x {len(t.seeds)} tuning seed(s) "
+             f"({', '.join(map(str, t.seeds))}), budget {t.budget:g} x the verdict cells': {len(tuning_plan)} cells "
+             f"under {TUNING_DIR}/",
+             dry_run_text(tuning_plan, workers, threads, estimates=estimates), "",
+             f"stage 2 of 2, verdict cells {where}: {len(plan)} cells",
+             dry_run_text(plan, workers, threads, design=spec.design, estimates=estimates), ""]
+    stage1 = makespan([p.cost.tokens / estimates[p.id] for p in tuning_plan], workers)
+    seconds = {p.id: p.cost.tokens / estimates[p.id] for p in plan}
+    schedule = spec.design.schedule
+    if schedule is None:
+        stage2 = {"": makespan(list(seconds.values()), workers)}
+    else:
+        looks = (0, *schedule.looks())
+        rounds = [[seconds[p.id] for p in plan if lo <= p.cell.seed < hi] for lo, hi in zip(looks, looks[1:],
+                                                                                          strict=False)]
+        stage2 = {" best case": makespan(rounds[0], workers),
+                  " worst case": sum(makespan(r, workers) for r in rounds)}
+    lines += [f"Both stages{case}: {format_duration(stage1)} + {format_duration(wall)} = "
+              f"{format_duration(stage1 + wall)} (estimate)" for case, wall in stage2.items()]
     return "\n".join(lines)
 
 
@@ -225,6 +285,17 @@ def _refuse_changed_spec(grid_dir: Path, grid_file: str | Path, old: dict[str, s
         f"{grid_dir}: holds a grid whose cells differ from {grid_file} ({what}; e.g. {example}){hint}; pass --out "
         "for a new grid dir, or --force to run the new cells here (changed and removed cells are moved to "
         "superseded/, nothing is deleted)")
+
+
+def _refuse_changed_tuning(grid_dir: Path, grid_file: str | Path, old: str | None, new: str, has_cells: bool,
+                           force: bool) -> None:
+    """A changed (added, removed) ``tune`` block changes the verdict cells' values: like a changed grid."""
+    if force or not has_cells or (old or "") == new:
+        return
+    raise UserError(
+        f"{grid_dir}: holds a grid whose tune block differs from {grid_file}'s (it decides each variant's "
+        "value, so the verdict cells would change); pass --out for a new grid dir, or --force to run it here "
+        "(changed cells are moved to superseded/, nothing is deleted)")
 
 
 def _refuse_changed_design(grid_dir: Path, grid_file: str | Path, old: str | None, new: Design, force: bool) -> None:
@@ -422,6 +493,8 @@ class _Setup:
     old_hashes: dict[str, str]
     old_design: str | None
     check: bool = True  # run the mixer contract gate on plugin mixers (``blockyard.check``)
+    old_tuning: str | None = None  # the recorded tune block (JSON; "" or None: none)
+    old_tuning_hashes: dict[str, str] = dataclasses.field(default_factory=dict)  # stage 1's cells
 
     @property
     def hint(self) -> str:
@@ -448,14 +521,19 @@ def _setup(grid_file: str | Path, out: str | Path | None, workers: int | None, t
     grid_dir = Path(out) if out else DEFAULT_ROOT / spec.name
     exists = _check_grid_dir(grid_dir)
     cores = available_cores()
-    recorded_threads, old_design = None, None
+    recorded_threads, old_design, old_tuning = None, None, None
     old_hashes: dict[str, str] = {}
+    old_tuning_hashes: dict[str, str] = {}
     if exists:
         with open_index(grid_dir, readonly=True) as index:
             value = index.get_meta("threads")
             recorded_threads = int(value) if value else None
             old_design = index.get_meta("design")
+            old_tuning = index.get_meta("tuning")
             old_hashes = {r["id"]: r["config_hash"] for r in index.cells()}
+        if (grid_dir / TUNING_DIR / INDEX_NAME).exists():
+            with open_index(grid_dir / TUNING_DIR, readonly=True) as tindex:
+                old_tuning_hashes = {r["id"]: r["config_hash"] for r in tindex.cells()}
     if threads is None:
         # A grid keeps the thread count it started with: it is part of each cell's config (and the
         # trainer resumes a run dir only under the same config).
@@ -468,7 +546,7 @@ def _setup(grid_file: str | Path, out: str | Path | None, workers: int | None, t
     if workers is None and executor == "local":
         workers = max(1, cores // threads)
     return _Setup(spec, grid_file, grid_dir, exists, executor, address, workers, threads, cores, recorded_threads,
-                  old_hashes, old_design)
+                  old_hashes, old_design, old_tuning, old_tuning_hashes)
 
 
 def _sync_index(s: _Setup, index: GridIndex, universe: list[PlannedCell], force: bool,
@@ -493,7 +571,12 @@ def _sync_index(s: _Setup, index: GridIndex, universe: list[PlannedCell], force:
     index.set_meta({"name": s.spec.name, "description": s.spec.description, "reference": s.spec.reference or "",
                     "match": s.spec.match, "threads": str(s.threads), "fingerprint": fingerprint(universe),
                     "grid_file": str(Path(s.grid_file).resolve()), "design": s.spec.design.to_json(),
-                    "design_changed": design_changed, "cost_note": _cost_note(universe)})
+                    "design_changed": design_changed, "cost_note": _cost_note(universe),
+                    "tuning": _tuning_json(s.spec), "stage": "verdicts"})
+
+
+def _tuning_json(spec: GridSpec) -> str:
+    return spec.tuning.to_json() if spec.tuning else ""
 
 
 def current_cells(spec: GridSpec, universe: list[PlannedCell], rows: list[dict[str, Any]]) -> tuple[
@@ -531,31 +614,88 @@ def _run_rounds(s: _Setup, index: GridIndex, universe: list[PlannedCell], echo: 
         if {p.id for p in cells} <= seen:  # no new cells: done, or waiting on failed cells
             return True
         seen |= {p.id for p in cells}
-        (s.grid_dir / "configs").mkdir(exist_ok=True)
-        for p in cells:
-            text = dump_config(p.cell.cfg, _plugin_copies(p, s.grid_dir))
-            _write_if_changed(s.grid_dir / "configs" / f"{p.id}.yaml", text)
-        index.plan(_plan_rows(cells))
-        todo = _reconcile(s.grid_dir, index)
-        echo(f"grid {s.spec.name}: {len(cells)} cells in {s.grid_dir} ({len(cells) - len(todo)} already finished, "
-             f"{len(todo)} to run; {s.executor} executor, {s.workers or 'auto'} worker(s) x {s.threads} thread(s))"
-             + (f"; {rounds_line}" if rounds_line else ""))
-        jobs = _jobs(s.grid_dir, todo, s.threads, s.check)
-        if jobs:
-            (s.grid_dir / "cells").mkdir(exist_ok=True)
-        try:
-            if s.executor == "ray":
-                executors.run_ray(jobs, s.workers, recorder, address=s.address, cores=s.cores)
-            else:
-                executors.run_local(jobs, s.workers or 1, recorder)
-        except executors.GridStopped as stop:
-            recorder.status()
-            echo(f"grid stopped ({stop}); rerun the same command to resume")
+        if not _train(s, s.grid_dir, index, cells, recorder, echo, f"grid {s.spec.name}",
+                      f"; {rounds_line}" if rounds_line else ""):
             return False
-        if not jobs:
-            recorder.status()
         if complete:
             return True
+
+
+def _train(s: _Setup, grid_dir: Path, index: GridIndex, cells: list[PlannedCell], recorder: _Recorder,
+           echo: Callable[[str], None], title: str, note: str = "", retry_failed: bool = True) -> bool:
+    """Write the cells' configs, record them in the index, train those not finished; False when stopped."""
+    (grid_dir / "configs").mkdir(exist_ok=True)
+    for p in cells:
+        _write_if_changed(grid_dir / "configs" / f"{p.id}.yaml", dump_config(p.cell.cfg, _plugin_copies(p, grid_dir)))
+    index.plan(_plan_rows(cells))
+    todo = _reconcile(grid_dir, index)
+    if not retry_failed:
+        failed = {r["id"] for r in index.cells() if r["status"] == "failed"}
+        todo = [i for i in todo if i not in failed]
+    echo(f"{title}: {len(cells)} cells in {grid_dir} ({len(cells) - len(todo)} already finished, "
+         f"{len(todo)} to run; {s.executor} executor, {s.workers or 'auto'} worker(s) x {s.threads} thread(s))"
+         + note)
+    jobs = _jobs(grid_dir, todo, s.threads, s.check)
+    if jobs:
+        (grid_dir / "cells").mkdir(exist_ok=True)
+    try:
+        if s.executor == "ray":
+            executors.run_ray(jobs, s.workers, recorder, address=s.address, cores=s.cores)
+        else:
+            executors.run_local(jobs, s.workers or 1, recorder)
+    except executors.GridStopped as stop:
+        recorder.status()
+        echo(f"grid stopped ({stop}); rerun the same command to resume")
+        return False
+    if not jobs:
+        recorder.status()
+    return True
+
+
+def _tuning_stage(s: _Setup, index: GridIndex, tuning_plan: list[PlannedCell], force: bool,
+                  echo: Callable[[str], None], status_every_s: float) -> dict[tuple, float] | None:
+    """Stage 1 in GRID_DIR/tuning/: train the tuning cells, return each (variant, point)'s chosen value
+    (None when stopped by a signal). Failed tuning cells are retried only while stage 2 has not started."""
+    assert s.spec.tuning is not None
+    tdir = s.grid_dir / TUNING_DIR
+    tdir.mkdir(exist_ok=True)
+    stage2_started = bool(index.cells())
+    index.set_meta({"stage": "tuning", "tuning": _tuning_json(s.spec), "name": s.spec.name})
+    with open_index(tdir) as tindex:
+        new = {p.id: p.config_hash for p in tuning_plan}
+        old = {r["id"]: r["config_hash"] for r in tindex.cells()}
+        changed, _added, removed = _changes(old, new)
+        if changed or removed:  # only with --force: checked before anything was written
+            moved = _supersede(tdir, changed + removed, old)
+            if moved:
+                echo(f"moved {len(moved)} superseded tuning cell(s) to {tdir / 'superseded'}")
+            tindex.remove_unplanned(set(new))
+        tindex.set_meta({"name": f"{s.spec.name} tuning", "threads": str(s.threads)})
+        recorder = _Recorder(tdir, tindex, f"{s.spec.name} tuning", echo, status_every_s)
+        t = s.spec.tuning
+        if not _train(s, tdir, tindex, tuning_plan, recorder, echo, f"stage 1 of 2, tuning {t.key}",
+                      retry_failed=not stage2_started):
+            return None
+        groups = tuned_groups(tindex.cells(), t, s.spec.design.smallest_effect)
+    assert groups is not None, "every tuning cell ended"
+    for g in groups:
+        where = " at " + ", ".join(f"{k}={v}" for k, v in g.point) if g.point else ""
+        echo(f"chosen {t.key} for {g.variant}{where}: {g.chosen:g}" + (" (at the edge of the searched values)"
+                                                                      if g.at_edge else ""))
+    return chosen_values(groups)
+
+
+def _stage_one_result(s: _Setup, tuning_plan: list[PlannedCell]) -> dict[tuple, float] | None:
+    """The chosen values when the grid dir's tuning cells are exactly ``tuning_plan``'s and all ended; else None."""
+    tdir = s.grid_dir / TUNING_DIR
+    if s.spec.tuning is None or not (tdir / INDEX_NAME).exists():
+        return None
+    with open_index(tdir, readonly=True) as tindex:
+        rows = tindex.cells()
+    if {r["id"]: r["config_hash"] for r in rows} != {p.id: p.config_hash for p in tuning_plan}:
+        return None
+    groups = tuned_groups(rows, s.spec.tuning, s.spec.design.smallest_effect)
+    return None if groups is None else chosen_values(groups)
 
 
 def run_grid(
@@ -579,18 +719,32 @@ def run_grid(
     if executor == "local" and s.workers is not None and s.workers * s.threads > s.cores:
         echo(f"note: {s.workers} worker(s) x {s.threads} thread(s) exceed the {s.cores} core(s) here; "
              "cells will share them")
-    universe = plan_cells(s.spec, s.threads)
+    tuning_plan = plan_tuning(s.spec, s.threads)
+    chosen = _stage_one_result(s, tuning_plan) if s.exists else None
+    universe = plan_cells(s.spec, s.threads, chosen)
     if dry_run:
-        echo(f"grid {s.spec.name}: {len(universe)} cells -> {s.grid_dir}" + (" (exists)" if s.exists else ""))
-        echo(dry_run_text(universe, s.workers or max(1, s.cores // s.threads), s.threads, design=s.spec.design))
+        workers = s.workers or max(1, s.cores // s.threads)
+        echo(f"grid {s.spec.name}: {len(tuning_plan) + len(universe)} cells -> {s.grid_dir}"
+             + (" (exists)" if s.exists else ""))
+        echo(two_stage_dry_run(s.spec, tuning_plan, universe, workers, s.threads, chosen is not None) if tuning_plan
+             else dry_run_text(universe, workers, s.threads, design=s.spec.design))
         return 0
     # Checked before anything is written (a refused command leaves the dir as it was), and again
-    # under the lock in case another process changed the grid in between.
-    new = {p.id: p.config_hash for p in universe}
-    _refuse_changed_spec(s.grid_dir, grid_file, s.old_hashes, new, force, s.hint, s.spec.design.schedule is not None)
+    # under the lock in case another process changed the grid in between. The verdict cells of a
+    # tuned grid are known here only once stage 1 has ended; else they are checked after it.
+    _refuse_changed_tuning(s.grid_dir, grid_file, s.old_tuning, _tuning_json(s.spec), bool(s.old_hashes), force)
+    if tuning_plan:
+        _refuse_changed_spec(s.grid_dir / TUNING_DIR, grid_file, s.old_tuning_hashes,
+                             {p.id: p.config_hash for p in tuning_plan}, force, s.hint)
+    if not tuning_plan or chosen is not None:
+        new = {p.id: p.config_hash for p in universe}
+        _refuse_changed_spec(s.grid_dir, grid_file, s.old_hashes, new, force, s.hint,
+                             s.spec.design.schedule is not None)
     _refuse_changed_design(s.grid_dir, grid_file, s.old_design, s.spec.design, force)
     unfinished = [p for p in universe if p.cell.seed in s.spec.seeds[:_first_seeds(s.spec)]
                   and (read_summary(cell_dir(s.grid_dir, p.id) / "summary.json") or {}).get("status") not in FINISHED]
+    unfinished += [p for p in tuning_plan if (read_summary(cell_dir(s.grid_dir / TUNING_DIR, p.id) / "summary.json")
+                                             or {}).get("status") not in FINISHED]
     if check:  # a plugin mixer that leaks is refused before any cell starts (and each cell checks again)
         from blockyard.check import gate_many
 
@@ -598,10 +752,19 @@ def run_grid(
     prepare_data(unfinished, echo)
     s.grid_dir.mkdir(parents=True, exist_ok=True)
     with grid_lock(s.grid_dir), open_index(s.grid_dir) as index:
+        if tuning_plan:
+            chosen = _tuning_stage(s, index, tuning_plan, force, echo, status_every_s)
+            if chosen is None:
+                return 130
+            universe = plan_cells(s.spec, s.threads, chosen)
+            echo(f"stage 2 of 2: verdict cells, each variant at its chosen {s.spec.tuning.key}")
         _sync_index(s, index, universe, force, echo)
         if not _run_rounds(s, index, universe, echo, status_every_s):
             return 130
         rows = index.cells()
+    if tuning_plan:
+        with open_index(s.grid_dir / TUNING_DIR, readonly=True) as tindex:
+            rows = rows + tindex.cells()
 
     from blockyard.grid.report import write_report
 

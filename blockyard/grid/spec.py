@@ -15,6 +15,7 @@ A grid file (YAML) holds::
     match: params                    # none | params | flops (see blockyard.grid.fairness)
     smallest_effect: 0.01            # nats/token: the smallest difference that matters (verdicts)
     null_control: false              # true: add the reference again under another init seed
+    tune: {key: train.lr, values: [...], seeds: [100]}  # each variant at its own value (blockyard.grid.tuning)
 
 Every cell is (variant, one value per axis, seed). Each cell's config is validated by
 ``blockyard.config``; errors name the variant, axis or cell they come from.
@@ -37,10 +38,13 @@ from typing import Any
 
 from blockyard.config import Config, config_from_dict, read_yaml, resolve_extends
 from blockyard.errors import ConfigError, UserError
+from blockyard.grid.tuning import Tuning, check_tuned_key, parse_tuning, value_for
 
 MATCH_MODES = ("none", "params", "flops")
+# The key each match mode adjusts (blockyard.grid.fairness); a tuning may not search it.
+MATCHED_KEYS = {"params": "model.mlp_expansion", "flops": "train.tokens"}
 GRID_KEYS = ("name", "description", "base", "variants", "reference", "axes", "seeds", "match", "smallest_effect",
-             "null_control")
+             "null_control", "tune")
 SCHEDULE_KEYS = ("first", "most", "step")
 DEFAULT_SMALLEST_EFFECT = 0.01  # nats per token
 # The variant name of a grid that declares no variants.
@@ -103,6 +107,7 @@ class GridSpec:
     seeds: tuple[int, ...]  # every seed a cell may get (with a schedule: 0 .. most - 1)
     match: str
     design: Design = Design()
+    tuning: Tuning | None = None  # the ``tune`` block: stage 1 chooses each variant's value
 
     @property
     def groups(self) -> list[str]:
@@ -178,6 +183,9 @@ def parse_grid(
         for vname, overrides in variants.items():
             if key in overrides:
                 raise ConfigError(f"axes.{key}", f"also set by variants.{vname}; set each key in one place")
+    set_by = {**{k: f"variants.{v}" for v, o in variants.items() for k in o}, **{k: "axes" for k in axes}}
+    tuning = parse_tuning(data.get("tune"), seeds=seeds, reserved=_RESERVED_KEYS, matched_key=MATCHED_KEYS.get(match),
+                          set_by=set_by)
     spec = GridSpec(
         name=name,
         description=description.strip(),
@@ -189,6 +197,7 @@ def parse_grid(
         seeds=seeds,
         match=match,
         design=design,
+        tuning=tuning,
     )
     _validate_pieces(spec)
     return spec
@@ -380,6 +389,19 @@ def _validate_pieces(spec: GridSpec) -> None:
             except ConfigError as e:
                 detail = str(e).removeprefix(f"{key}: ")
                 raise ConfigError(f"axes.{key}", f"value {_value_text(value)}: {detail}") from None
+    if spec.tuning is not None:
+        _validate_tuning(spec, spec.tuning)
+
+
+def _validate_tuning(spec: GridSpec, tuning: Tuning) -> None:
+    """The tuned key is a number in every variant; each value is valid there."""
+    check_tuned_key(tuning, {v: config_with(spec.base, o) for v, o in spec.variants.items()})
+    for value in tuning.values:
+        try:
+            config_with(spec.base, {tuning.key: value})
+        except ConfigError as e:
+            detail = str(e).removeprefix(f"{tuning.key}: ")
+            raise ConfigError("tune.values", f"value {_value_text(value)}: {detail}") from None
 
 
 def _value_text(value: Any) -> str:
@@ -438,3 +460,53 @@ def _group_overrides(spec: GridSpec, name: str, seed: int) -> dict[str, Any]:
     if name == NULL_VARIANT and name not in spec.variants:
         return {**spec.variants[spec.reference or ""], "train.init_seed": NULL_INIT_OFFSET + seed}
     return spec.variants[name]
+
+
+# ----------------------------------------------------------------------------- tuning (two stages)
+
+
+def tuning_cells(spec: GridSpec, cells: list[Cell]) -> list[Cell]:
+    """Stage 1: every tuned (variant, point) of ``cells`` (the verdict cells, matched, untuned) at each value and
+    tuning seed, with the verdict cell's fairness adjustments and ``tune.budget`` x its budget.
+
+    A tuning cell's point is the verdict point with ``(tune.key, value)`` appended; the null control
+    is not tuned (it follows the reference).
+    """
+    tuning = spec.tuning
+    if tuning is None:
+        return []
+    templates: dict[tuple, Cell] = {}
+    for c in cells:
+        if c.variant != NULL_VARIANT:
+            templates.setdefault((c.variant, c.point), c)
+    labels = _axis_labels([*spec.axes, tuning.key])
+    out = []
+    for point in tuning.tuned_points(p for _, p in templates):
+        for (variant, _), template in ((k, t) for k, t in templates.items() if k[1] == point):
+            fixed = {**template.overrides, **template.adjustments, **tuning.budget_overrides(template.cfg)}
+            for value in tuning.values:
+                tpoint = (*point, (tuning.key, value))
+                for seed in tuning.seeds:
+                    cid = cell_id(variant, tpoint, seed, labels)
+                    overrides = {**fixed, tuning.key: value, "train.seed": seed, "name": cid}
+                    try:
+                        cfg = config_with(spec.base, overrides)
+                    except ConfigError as e:
+                        raise ConfigError(f"tuning cell {cid}", str(e)) from None
+                    out.append(Cell(cid, variant, tpoint, seed, overrides, cfg, dict(template.adjustments)))
+    return out
+
+
+def tuned_cells(spec: GridSpec, cells: list[Cell], chosen: dict[tuple, float]) -> list[Cell]:
+    """Stage 2: the verdict cells, each at its variant's chosen value (the null control at the reference's)."""
+    tuning = spec.tuning
+    if tuning is None:
+        return cells
+    out = []
+    for c in cells:
+        owner = spec.reference if c.variant == NULL_VARIANT and NULL_VARIANT not in spec.variants else c.variant
+        value = value_for(tuning, chosen, owner or c.variant, c.point)
+        overrides = {**c.overrides, tuning.key: value}
+        out.append(dataclasses.replace(c, overrides=overrides, cfg=config_with(spec.base, {**overrides,
+                                                                                             **c.adjustments})))
+    return out

@@ -20,6 +20,7 @@ from typing import Any
 
 from blockyard.errors import UserError
 from blockyard.grid.index import INDEX_NAME, open_index
+from blockyard.grid.tuning import TUNING_DIR, Tuning
 
 LOCK_NAME = "grid.lock"
 
@@ -90,6 +91,10 @@ class GridProgress:
         return self.done + self.diverged + self.running + self.failed + self.left
 
     def line(self) -> str:
+        return f"grid {self.name}: " + self.counts()
+
+    def counts(self) -> str:
+        """Cells done / running / failed / left and the ETA, without the grid's name."""
         parts = [f"{self.done + self.diverged}/{self.total} done"]
         if self.diverged:
             parts[0] += f" ({self.diverged} diverged)"
@@ -101,7 +106,7 @@ class GridProgress:
             eta = "ETA unknown (no speed measured yet)"
         else:
             eta = f"ETA {format_duration(self.eta_s)}"
-        return f"grid {self.name}: " + ", ".join(parts) + f" | {eta}"
+        return ", ".join(parts) + f" | {eta}"
 
 
 def _running_progress(grid_dir: Path, row: dict[str, Any]) -> CellProgress:
@@ -172,14 +177,33 @@ def lock_holder(grid_dir: Path) -> int | None:
         os.close(fd)
 
 
+def _stage_lines(grid_dir: Path, progress: GridProgress) -> tuple[list[str], GridProgress]:
+    """A tuned grid's lines: which stage runs, then each stage's counts; and stage 1's progress."""
+    with open_index(grid_dir, readonly=True) as index:
+        stage = index.get_meta("stage")
+        tuning = Tuning.from_json(index.get_meta("tuning"))
+    tuning_progress = grid_progress(grid_dir / TUNING_DIR)
+    key = f" {tuning.key}" if tuning else ""
+    now = (f"stage 2 of 2 (verdict cells at each variant's chosen{key})" if stage == "verdicts"
+           else f"stage 1 of 2 (tuning{key})")
+    return [f"grid {progress.name}: {now}", f"  stage 1, tuning: {tuning_progress.counts()}",
+            "  stage 2, verdict cells: " + (progress.counts() if progress.total else
+                                            "not started (they wait for the tuning stage)")], tuning_progress
+
+
 def status_text(grid_dir: str | Path) -> str:
     """What ``blockyard grid --status DIR`` prints: the grid line, then one line per running cell."""
     grid_dir = Path(grid_dir)
     if not (grid_dir / INDEX_NAME).exists():
         raise UserError(f"{grid_dir}: no grid here (no {INDEX_NAME}); pass the dir a grid was run in")
     progress = grid_progress(grid_dir)
-    lines = [progress.line()]
-    for c in progress.cells:
+    lines, running = [progress.line()], list(progress.cells)
+    if (grid_dir / TUNING_DIR / INDEX_NAME).exists():
+        lines, tuning = _stage_lines(grid_dir, progress)
+        running = tuning.cells + running
+        progress = dataclasses.replace(progress, running=progress.running + tuning.running,
+                                       left=progress.left + tuning.left)
+    for c in running:
         speed = f"{c.tokens_per_s:,.0f} tok/s" if c.tokens_per_s else "starting"
         share = f"{100 * c.tokens_done / c.tokens_planned:.0f}%" if c.tokens_planned else "?"
         lines.append(f"  running {c.id}: step {c.step or 0}, {share} of {c.tokens_planned:,d} tokens, {speed}")
