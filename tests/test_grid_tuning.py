@@ -364,6 +364,8 @@ def test_kills_in_either_stage_resume_to_the_same_report(tuned_grid, tmp_path):
     assert run_grid(path, out=grid_dir, workers=1, threads=1, echo=lines.append) == 0
     assert any("stage 1 of 2, tuning train.lr: 6 cells" in ln and "(6 already finished, 0 to run;" in ln
                for ln in lines)
+    for logs in (grid_dir / "tuning" / "logs", grid_dir / "logs"):  # each kill left a cell to resume
+        assert any("from the checkpoint at step" in p.read_text() for p in logs.glob("*.log")), logs
     assert _lrs(grid_dir) == _lrs(reference)
     for name in ("tuning.csv", "verdicts.csv"):
         with open(grid_dir / name) as f, open(reference / name) as g:
