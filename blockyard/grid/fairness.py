@@ -7,6 +7,9 @@ non-reference variant's token budget (``train.tokens``) so that flops_per_token 
 the reference's training FLOPs.
 Either way the adjusted value and the resulting params / FLOPs are reported.
 
+A ladder's ``tokens_per_param`` sets every cell's ``train.tokens`` at a rung from the reference's
+non-embedding parameters there (``apply_budgets``), before any matching.
+
 Parameters and FLOPs per token are the cost model's analytic counts (``blockyard.cost.analytic``,
 checked against built models by ``tests/test_cost.py``): no model is built.
 """
@@ -20,6 +23,7 @@ from typing import Any
 
 from blockyard.config import Config
 from blockyard.errors import UserError
+from blockyard.grid import ladder as ladders
 from blockyard.grid.spec import MATCHED_KEYS, Cell, GridSpec, config_with
 
 # Non-embedding parameter counts of matched variants must be this close to the reference's (relative).
@@ -88,6 +92,30 @@ def cell_cost(cfg: Config) -> CellCost:
 
     params = count_params(cfg)
     return CellCost(params["total"], params["non_embedding"], flops_per_token(cfg), planned_tokens(cfg))
+
+
+# ----------------------------------------------------------------------------- ladder budgets
+
+
+def apply_budgets(spec: GridSpec, cells: list[Cell]) -> list[Cell]:
+    """Cells with each rung's token budget set (``tokens_per_param``); checks that the rungs grow and the target.
+
+    The budget of a rung is the reference's (the only group's, without variants) non-embedding
+    parameters there x ``tokens_per_param``, the same for every variant at that rung.
+    """
+    if spec.ladder is None:
+        return cells
+    reference = spec.reference or spec.groups[0]
+    ref_n = {c.point: count_params(c.cfg)["non_embedding"] for c in cells if c.variant == reference and
+             c.seed == spec.seeds[0]}
+    ladders.check_sizes(spec.ladder, ref_n)
+    if spec.ladder.tokens_per_param is None:
+        return cells
+    out = []
+    for cell in cells:
+        overrides = {**cell.overrides, ladders.BUDGET_KEY: ladders.budget(spec.ladder, ref_n[cell.point])}
+        out.append(dataclasses.replace(cell, overrides=overrides, cfg=config_with(spec.base, overrides)))
+    return out
 
 
 # ----------------------------------------------------------------------------- matching

@@ -5,6 +5,8 @@ cell's ``metrics.jsonl`` (for the curves). The statistics come from ``blockyard.
 (comparisons, family, divergence) and ``blockyard.grid.stats`` (pure numbers); this module only
 lays them out: the verdicts and their forest plot first, then the noise floor (null control),
 the variants with their costs, the cells left out, the curves, and the method in plain words.
+A grid with a ladder of sizes also gets a Ladder section (``blockyard.grid.ladder``: a loss fit per
+variant, the trend of each gap), trend.csv, fits.csv and two plots.
 """
 
 from __future__ import annotations
@@ -23,6 +25,16 @@ from blockyard.errors import UserError
 from blockyard.grid import stats
 from blockyard.grid.fairness import MATCH_TOLERANCE
 from blockyard.grid.index import INDEX_NAME, open_index
+from blockyard.grid.ladder import (
+    FIT_COLUMNS,
+    TREND_COLUMNS,
+    Ladder,
+    LadderTrends,
+    fit_rows,
+    ladder_trends,
+    series_label,
+    trend_rows,
+)
 from blockyard.grid.rounds import plan_rounds
 from blockyard.grid.spec import NULL_INIT_OFFSET, NULL_VARIANT, Design
 from blockyard.grid.status import cell_dir, read_jsonl
@@ -44,6 +56,8 @@ CAUTION = (
 BAND = "line: mean over seeds; band: min to max over seeds"
 FOREST = "verdicts.png"
 TUNING_PLOT = "tuning.png"
+LOSS_VS_N = "ladder_loss_vs_params.png"
+GAP_VS_N = "ladder_gap_vs_params.png"
 
 
 @dataclasses.dataclass
@@ -139,6 +153,8 @@ class GridResults:
     family: Family
     rounds: str | None  # "N rounds ran; <why it stopped>" with a seed schedule
     tuning: TuningResults | None = None  # stage 1 of a grid with a ``tune`` block
+    ladder: Ladder | None = None
+    trends: LadderTrends | None = None  # with a ladder
 
 
 @dataclasses.dataclass(frozen=True)
@@ -170,10 +186,18 @@ def grid_results(rows: list[dict[str, Any]], meta: dict[str, str | None], defaul
         state = plan_rounds(design, list(outcomes), reference, tuple(range(design.schedule.most)), outcomes)
         rounds = (f"{state.rounds} round(s) ran; {state.reason}" if state.complete
                   else f"round {state.rounds} still running, {state.reason}")
+    groups = group_cells(rows)
+    ladder = Ladder.from_json(meta.get("ladder"))
+    trends = None
+    if ladder is not None:
+        params = {g.key: p for g in groups if (p := _mean([r["params_non_embedding"] for r in g.rows
+                                                           if r.get("params_non_embedding")])) is not None}
+        trends = ladder_trends(ladder, reference, {k: g.losses for k, g in outcomes.items()}, params,
+                               skip=(NULL_VARIANT,))
     return GridResults(meta.get("name") or default_name, meta.get("description") or "", reference,
                        meta.get("match") or "none", design, meta.get("design_changed") == "1",
                        meta.get("cost_note") or "", rows,
-                       group_cells(rows), family, rounds, tuned)
+                       groups, family, rounds, tuned, ladder, trends)
 
 
 # ----------------------------------------------------------------------------- curves and plots
@@ -224,7 +248,9 @@ def write_plots(grid_dir: Path, res: GridResults) -> list[tuple[str, str]]:
     if res.tuning and res.tuning.groups and tuning_plot(plt, grid_dir / TUNING_PLOT, res.tuning):
         written.append((TUNING_PLOT, _tuning_caption(res.tuning.tuning)))
     written += _curve_plots(plt, grid_dir, res.groups)
-    if axis_varies_size(res.groups) and _params_plot(plt, grid_dir / "final_loss_vs_params.png", res.groups):
+    written += _ladder_plots(grid_dir, res)
+    if res.ladder is None and axis_varies_size(res.groups) and _params_plot(plt, grid_dir / "final_loss_vs_params.png",
+                                                                            res.groups):
         written.append(("final_loss_vs_params.png",
                         "Final validation loss vs non-embedding parameters (mean over seeds; bars: 95% t interval "
                         "of each group's own seeds)."))
@@ -233,6 +259,30 @@ def write_plots(grid_dir: Path, res: GridResults) -> list[tuple[str, str]]:
     )
 
     written += report_figures(grid_dir, {g.label: [cell_dir(grid_dir, r["id"]) for r in g.done] for g in res.groups})
+    return written
+
+
+def _ladder_plots(grid_dir: Path, res: GridResults) -> list[tuple[str, str]]:
+    """Loss against N per variant with its fit, and each gap against N with its line (blockyard.grid.trend_plots)."""
+    lt = res.trends
+    if lt is None:
+        return []
+    from blockyard.grid.trend_plots import plot_gap_vs_params, plot_loss_vs_params
+
+    target = res.ladder.target if res.ladder else None
+    written = []
+    if lt.fits:
+        points = {series_label(k): (s.n, s.per_rung()) for k, s in lt.loss_points.items()}
+        fits = {series_label(k): f for k, f in lt.fits.items()}
+        plot_loss_vs_params(fits, points, grid_dir / LOSS_VS_N, target=target)
+        written.append((LOSS_VS_N, "Final validation loss against non-embedding parameters N (log axes), per "
+                        "variant: dots are seeds, circles rung means, lines the fitted L(N) (see Ladder)."))
+    if lt.trends:
+        trends = {f"{series_label(k)} - {res.reference}": t for k, t in lt.trends.items()}
+        plot_gap_vs_params(trends, grid_dir / GAP_VS_N)
+        written.append((GAP_VS_N, "Paired gap (variant minus reference, nats/token) against the reference's N: rung "
+                        "means, the least-squares line on log2 N, its 95% band (dark: mean gap; light: one new "
+                        "pair), the 0 line; square: the gap at ladder_target with its prediction interval."))
     return written
 
 
@@ -553,6 +603,7 @@ def build_report(grid_dir: Path, res: GridResults, plots: list[tuple[str, str]])
     _verdicts_section(doc, res)
     _null_section(doc, res.family)
     _tuning_section(doc, res, plots)
+    _ladder_section(doc, res)
     _variants_section(doc, res)
     _excluded_section(doc, res.rows)
     plots = [p for p in plots if p[0] != TUNING_PLOT]  # shown in the Tuning section
@@ -562,7 +613,9 @@ def build_report(grid_dir: Path, res: GridResults, plots: list[tuple[str, str]])
             doc.img(name, caption)
     _method_section(doc, res)
     doc.h(2, "Caution")
-    doc.p(CAUTION)
+    doc.p(CAUTION if res.ladder is None else CAUTION + " The Ladder section measures how each gap moved over the "
+          "rungs run; a trend is a line through a few small sizes, and the further past the largest rung, the "
+          "more it is a guess.")
     return doc
 
 
@@ -753,6 +806,52 @@ def _shared_value_table(doc: Doc, res: GridResults, groups: list[TunedGroup]) ->
         rows.append([d.variant, point_text(d.point), f"{d.value:g}", str(len(d.seeds)),
                      _signed(iv.mean) if iv else "-", _ci_text(iv, signed=True)])
     doc.table(["variant", "axis point", t.key, "pairs", "difference (mean)", "95% CI (unadjusted)"], rows)
+def _ladder_section(doc: Doc, res: GridResults) -> None:
+    """Does the gap close with size: each variant's fit over the rungs, each gap's trend in one sentence."""
+    lad, lt = res.ladder, res.trends
+    if lad is None or lt is None:
+        return
+    from blockyard.grid.trend import describe
+
+    doc.h(2, "Ladder: does the gap close with size?")
+    budget = (f"each rung trains on {lad.tokens_per_param:g} tokens per non-embedding parameter of the reference"
+              if lad.tokens_per_param is not None else "every rung keeps the base's training budget")
+    doc.p(f"{len(lad.rungs)} rungs of model size, {budget}; every rung is an axis point of the verdicts above. "
+          "N is a group's non-embedding parameter count.")
+    by_rung: dict[int, list[str]] = {}
+    for g in res.groups:
+        k = next((v for key, v in g.point if key == "rung"), None)
+        n = _mean([r["params_non_embedding"] for r in g.rows if r.get("params_non_embedding")])
+        if k is not None and g.variant != NULL_VARIANT:
+            by_rung.setdefault(int(k), []).append(f"{g.variant} {_count(n)}")
+    tokens = {int(v): r["planned_tokens"] for r in res.rows if r["variant"] == res.reference
+              for key, v in r["point"] if key == "rung"}
+    doc.table(["rung", "overrides", "N per variant", "tokens (reference)"],
+              [[str(k), lad.overrides_text(k), ", ".join(dict.fromkeys(by_rung.get(k, []))),
+                _count(tokens.get(k))] for k in range(1, len(lad.rungs) + 1)])
+    if lt.fits:
+        doc.p("Loss against size, per variant (fits.csv): L(N) = E + A·N^-alpha by least squares over every seed "
+              "with 4 or more rungs; with fewer, log L on log N without E (3 parameters from 3 sizes would fit any "
+              "noise). Intervals: percentile bootstrap over seeds within each rung.")
+        doc.table(["variant", "form", "alpha", "interval", "E", "interval", "A", "rungs", "note"],
+                  [[series_label(k), f.form, f"{f.alpha:.4f}", _pair(f.alpha_low, f.alpha_high),
+                    "-" if f.E is None else f"{f.E:.4f}", "-" if f.E is None else _pair(f.E_low, f.E_high),
+                    f"{f.A:.4g}", str(f.n_rungs), f.note or "-"] for k, f in lt.fits.items()])
+    if lt.trends:
+        doc.p(f"Trend of each gap to {res.reference} (trend.csv): the per-seed paired differences at every rung "
+              "regressed on log2 of the reference's N (ordinary least squares); the slope is the change of the gap "
+              "per doubling of parameters, with its 95% interval (per comparison, not simultaneous). Shrinking / "
+              "growing: the interval excludes 0 and |gap| falls / rises with N; a positive gap means the variant is "
+              "worse.")
+        doc.ul([f"**{series_label(k)}** vs {res.reference}: {describe(t)}." for k, t in lt.trends.items()])
+    if lt.notes:
+        doc.ul(lt.notes)
+
+
+def _pair(low: float | None, high: float | None) -> str:
+    if low is None or high is None or not (math.isfinite(low) and math.isfinite(high)):
+        return "-"
+    return f"[{low:.4g}, {high:.4g}]"
 
 
 def _variants_section(doc: Doc, res: GridResults) -> None:
@@ -885,7 +984,7 @@ def write_report(grid_dir: str | Path) -> Path:
     with open_index(grid_dir, readonly=True) as index:
         rows = index.cells()
         meta = {k: index.get_meta(k) for k in ("name", "description", "reference", "match", "design",
-                                               "design_changed", "cost_note", "tuning")}
+                                               "design_changed", "cost_note", "tuning", "ladder")}
     if not rows:
         raise UserError(f"{grid_dir}: the grid index holds no cells")
     tuning_rows = None
@@ -905,6 +1004,9 @@ def write_report(grid_dir: str | Path) -> Path:
                                                                         strict=True)]
         write_tuning_csv(grid_dir / "tuning.csv", res.tuning)
     _write_table(grid_dir / "verdicts.csv", columns, table)
+    if res.trends is not None:
+        _write_table(grid_dir / "fits.csv", FIT_COLUMNS, fit_rows(res.trends))
+        _write_table(grid_dir / "trend.csv", TREND_COLUMNS, trend_rows(res.trends))
     return grid_dir / "report.md"
 
 

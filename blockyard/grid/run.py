@@ -40,8 +40,9 @@ from typing import Any
 from blockyard.config import config_hash, dump_config, replace
 from blockyard.errors import UserError
 from blockyard.grid import executors
-from blockyard.grid.fairness import CellCost, apply_matching, cell_cost, planned_steps
+from blockyard.grid.fairness import CellCost, apply_budgets, apply_matching, cell_cost, planned_steps
 from blockyard.grid.index import FINISHED, INDEX_NAME, GridIndex, open_index
+from blockyard.grid.ladder import Ladder, RungCell, rung_summary
 from blockyard.grid.spec import NULL_VARIANT, Cell, Design, GridSpec, expand_cells, load_grid, tuned_cells, tuning_cells
 from blockyard.grid.status import LOCK_NAME, cell_dir, format_duration, grid_progress, lock_holder, read_summary
 from blockyard.grid.tuning import TUNING_DIR, chosen_values, tuned_groups
@@ -93,7 +94,7 @@ def plan_tuning(spec: GridSpec, threads: int) -> list[PlannedCell]:
 
 
 def _matched_cells(spec: GridSpec) -> list[Cell]:
-    cells = expand_cells(spec)
+    cells = apply_budgets(spec, expand_cells(spec))
     matched = apply_matching(spec, [c for c in cells if c.variant != NULL_VARIANT])
     by_id = {c.id: c for c in matched}
     return [by_id.get(c.id, c) for c in cells]
@@ -121,9 +122,11 @@ def fingerprint(plan: list[PlannedCell]) -> str:
 
 
 def dry_run_text(plan: list[PlannedCell], workers: int, threads: int, measure: bool = True,
-                 design: Design | None = None, estimates: dict[str, float] | None = None) -> str:
+                 design: Design | None = None, estimates: dict[str, float] | None = None,
+                 ladder: Ladder | None = None, reference: str | None = None) -> str:
     """The cells with params, FLOPs/token, tokens and (measured-speed) estimated time; with a seed
-    schedule, the best case (every comparison decided after round 1) and the worst (all to ``most``).
+    schedule, the best case (every comparison decided after round 1) and the worst (all to ``most``);
+    with a ladder, each rung's parameters, tokens and cell time.
     ``estimates``: tokens/s per cell id, measured already (else measured here)."""
     if estimates is None:
         estimates = _estimates(plan, threads) if measure else {}
@@ -141,9 +144,13 @@ def dry_run_text(plan: list[PlannedCell], workers: int, threads: int, measure: b
         ])
     widths = [max(len(str(c)) for c in col) for col in zip(header, *rows, strict=True)]
     lines = ["  ".join(str(c).ljust(w) for c, w in zip(r, widths, strict=True)).rstrip() for r in [header, *rows]]
+    seconds = {p.id: p.cost.tokens / estimates[p.id] for p in plan if p.id in estimates}
+    if ladder is not None:
+        lines += ["", *rung_summary(ladder, reference, [
+            RungCell(p.cell.point, p.cell.variant, p.cost.params_non_embedding, p.cost.tokens, seconds.get(p.id))
+            for p in plan])]
     if not measure:
         return "\n".join(lines)
-    seconds = {p.id: p.cost.tokens / estimates[p.id] for p in plan}
     how = (f"{workers} worker(s) x {threads} thread(s); from a measured micro-benchmark (forward + backward + "
            "AdamW steps on random tokens, here, at each cell's thread count); evaluation, checkpoints and "
            "start-up are not included.")
@@ -572,7 +579,8 @@ def _sync_index(s: _Setup, index: GridIndex, universe: list[PlannedCell], force:
                     "match": s.spec.match, "threads": str(s.threads), "fingerprint": fingerprint(universe),
                     "grid_file": str(Path(s.grid_file).resolve()), "design": s.spec.design.to_json(),
                     "design_changed": design_changed, "cost_note": _cost_note(universe),
-                    "tuning": _tuning_json(s.spec), "stage": "verdicts"})
+                    "tuning": _tuning_json(s.spec), "stage": "verdicts",
+                    "ladder": s.spec.ladder.to_json() if s.spec.ladder else ""})
 
 
 def _tuning_json(spec: GridSpec) -> str:
@@ -727,7 +735,8 @@ def run_grid(
         echo(f"grid {s.spec.name}: {len(tuning_plan) + len(universe)} cells -> {s.grid_dir}"
              + (" (exists)" if s.exists else ""))
         echo(two_stage_dry_run(s.spec, tuning_plan, universe, workers, s.threads, chosen is not None) if tuning_plan
-             else dry_run_text(universe, workers, s.threads, design=s.spec.design))
+             else dry_run_text(universe, workers, s.threads, design=s.spec.design, ladder=s.spec.ladder,
+                               reference=s.spec.reference))
         return 0
     # Checked before anything is written (a refused command leaves the dir as it was), and again
     # under the lock in case another process changed the grid in between. The verdict cells of a

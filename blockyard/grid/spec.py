@@ -16,8 +16,11 @@ A grid file (YAML) holds::
     smallest_effect: 0.01            # nats/token: the smallest difference that matters (verdicts)
     null_control: false              # true: add the reference again under another init seed
     tune: {key: train.lr, values: [...], seeds: [100]}  # each variant at its own value (blockyard.grid.tuning)
+    ladder: [{model.width: 32}, ...] # optional: rungs of model size (see blockyard.grid.ladder), with
+    tokens_per_param: 20             #   each rung's budget and a size to extrapolate to
+    ladder_target: 1.0e7
 
-Every cell is (variant, one value per axis, seed). Each cell's config is validated by
+Every cell is (variant, rung, one value per axis, seed). Each cell's config is validated by
 ``blockyard.config``; errors name the variant, axis or cell they come from.
 
 ``seeds: {first: F, most: M, step: S}`` runs seeds 0..F-1 first, then adds S seeds per round to
@@ -38,13 +41,14 @@ from typing import Any
 
 from blockyard.config import Config, config_from_dict, read_yaml, resolve_extends
 from blockyard.errors import ConfigError, UserError
+from blockyard.grid.ladder import LADDER_KEYS, RUNG, Ladder, check_conflicts, parse_ladder, rung_overrides, rung_points
 from blockyard.grid.tuning import Tuning, check_tuned_key, parse_tuning, value_for
 
 MATCH_MODES = ("none", "params", "flops")
 # The key each match mode adjusts (blockyard.grid.fairness); a tuning may not search it.
 MATCHED_KEYS = {"params": "model.mlp_expansion", "flops": "train.tokens"}
 GRID_KEYS = ("name", "description", "base", "variants", "reference", "axes", "seeds", "match", "smallest_effect",
-             "null_control", "tune")
+             "null_control", "tune", *LADDER_KEYS)
 SCHEDULE_KEYS = ("first", "most", "step")
 DEFAULT_SMALLEST_EFFECT = 0.01  # nats per token
 # The variant name of a grid that declares no variants.
@@ -108,6 +112,7 @@ class GridSpec:
     match: str
     design: Design = Design()
     tuning: Tuning | None = None  # the ``tune`` block: stage 1 chooses each variant's value
+    ladder: Ladder | None = None  # rungs of model size: the first part of every point
 
     @property
     def groups(self) -> list[str]:
@@ -124,7 +129,7 @@ class Cell:
 
     id: str
     variant: str
-    point: tuple[tuple[str, Any], ...]  # ((dotted axis key, value), ...) in axis order
+    point: tuple[tuple[str, Any], ...]  # (("rung", k) with a ladder, (dotted axis key, value), ...) in axis order
     seed: int
     overrides: dict[str, Any]  # every dotted-key override applied to the base, in order
     cfg: Config
@@ -186,6 +191,9 @@ def parse_grid(
     set_by = {**{k: f"variants.{v}" for v, o in variants.items() for k in o}, **{k: "axes" for k in axes}}
     tuning = parse_tuning(data.get("tune"), seeds=seeds, reserved=_RESERVED_KEYS, matched_key=MATCHED_KEYS.get(match),
                           set_by=set_by)
+    ladder = parse_ladder(data, _check_override_key)
+    if ladder is not None:
+        check_conflicts(ladder, axes, variants)
     spec = GridSpec(
         name=name,
         description=description.strip(),
@@ -198,6 +206,7 @@ def parse_grid(
         match=match,
         design=design,
         tuning=tuning,
+        ladder=ladder,
     )
     _validate_pieces(spec)
     return spec
@@ -389,6 +398,11 @@ def _validate_pieces(spec: GridSpec) -> None:
             except ConfigError as e:
                 detail = str(e).removeprefix(f"{key}: ")
                 raise ConfigError(f"axes.{key}", f"value {_value_text(value)}: {detail}") from None
+    for k, rung in enumerate(spec.ladder.rungs if spec.ladder else (), start=1):
+        try:
+            config_with(spec.base, rung)
+        except ConfigError as e:
+            raise ConfigError(spec.ladder.rung_path(k), str(e)) from None
     if spec.tuning is not None:
         _validate_tuning(spec, spec.tuning)
 
@@ -431,17 +445,20 @@ def cell_id(variant: str, point: tuple[tuple[str, Any], ...], seed: int, labels:
 
 
 def expand_cells(spec: GridSpec) -> list[Cell]:
-    """Every (group, axis point, seed), its config validated; order: group (``spec.groups``), point, seed."""
+    """Every (group, rung, axis point, seed), its config validated; order: group (``spec.groups``), point, seed."""
     keys = list(spec.axes)
-    labels = _axis_labels(keys)
-    points = [tuple(zip(keys, combo, strict=True)) for combo in itertools.product(*(spec.axes[k] for k in keys))]
+    labels = {RUNG: RUNG, **_axis_labels(keys)}
+    points = [rung + tuple(zip(keys, combo, strict=True))
+              for rung in rung_points(spec.ladder)
+              for combo in itertools.product(*(spec.axes[k] for k in keys))]
     cells: list[Cell] = []
     seen: dict[str, Cell] = {}
     for vname in spec.groups:
         for point in points:
             for seed in spec.seeds:
                 cid = cell_id(vname, point, seed, labels)
-                overrides = {**_group_overrides(spec, vname, seed), **dict(point), "train.seed": seed, "name": cid}
+                overrides = {**_group_overrides(spec, vname, seed), **rung_overrides(spec.ladder, point),
+                             **{k: v for k, v in point if k != RUNG}, "train.seed": seed, "name": cid}
                 try:
                     cfg = config_with(spec.base, overrides)
                 except ConfigError as e:
