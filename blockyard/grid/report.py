@@ -32,6 +32,7 @@ from blockyard.grid.ladder import (
     LadderTrends,
     fit_rows,
     ladder_trends,
+    rung_of,
     series_label,
     trend_rows,
 )
@@ -820,12 +821,12 @@ def _ladder_section(doc: Doc, res: GridResults) -> None:
           "N is a group's non-embedding parameter count.")
     by_rung: dict[int, list[str]] = {}
     for g in res.groups:
-        k = next((v for key, v in g.point if key == "rung"), None)
+        k = rung_of(g.point)
         n = _mean([r["params_non_embedding"] for r in g.rows if r.get("params_non_embedding")])
         if k is not None and g.variant != NULL_VARIANT:
-            by_rung.setdefault(int(k), []).append(f"{g.variant} {_count(n)}")
-    tokens = {int(v): r["planned_tokens"] for r in res.rows if r["variant"] == res.reference
-              for key, v in r["point"] if key == "rung"}
+            by_rung.setdefault(k, []).append(f"{g.variant} {_count(n)}")
+    tokens = {rung_of(tuple(tuple(p) for p in r["point"])): r["planned_tokens"] for r in res.rows
+              if r["variant"] == res.reference}
     doc.table(["rung", "overrides", "N per variant", "tokens (reference)"],
               [[str(k), lad.overrides_text(k), ", ".join(dict.fromkeys(by_rung.get(k, []))),
                 _count(tokens.get(k))] for k in range(1, len(lad.rungs) + 1)])
