@@ -14,7 +14,8 @@ import yaml
 
 from blockyard.cli import main
 from blockyard.config import config_from_dict, load_config
-from blockyard.data.tasks import KEY_SENTENCE, PROBE_TASKS, QUESTION, TASKS, SymbolTokenizer, passkey_symbols
+from blockyard.data.task_options import PROBE_TASKS
+from blockyard.data.tasks import KEY_SENTENCE, QUESTION, TASKS, SymbolTokenizer, passkey_symbols
 from blockyard.errors import ConfigError, UserError
 from blockyard.eval import extrapolation as evaluate
 from blockyard.eval import probes
@@ -244,7 +245,7 @@ def test_probes_that_cannot_run_are_config_errors():
 
 
 def test_the_config_accepts_exactly_the_probes_that_exist():
-    # config.py validates eval.probes against data.tasks.PROBE_TASKS so that it need not import the
+    # config.py validates eval.probes against data.task_options.PROBE_TASKS so that it need not import the
     # evaluation code (no import cycle); the two lists must agree.
     assert tuple(probes.PROBES) == PROBE_TASKS
     for name in PROBE_TASKS:
