@@ -119,7 +119,7 @@ def test_training_killed_20_times_resumes_to_the_uninterrupted_metrics(tmp_path)
                  "cache_dir": str(tmp_path / "cache")},
         "train": {"steps": 150, "batch_size": 4, "warmup_steps": 5, "log_every": 1, "eval_every": 10,
                   "checkpoint_every": 1, "keep_checkpoints": 2, "eval_windows": 2},
-        "runtime": {"threads": 1},
+        "runtime": {"threads": 1, "scan": "chunked"},  # no kernel build in every process
     }
     (tmp_path / "run.yaml").write_text(yaml.safe_dump(config))
     run_training(load_config(tmp_path / "run.yaml"), tmp_path / "reference", progress="silent")
@@ -159,6 +159,7 @@ name: killed
 description: an overnight grid whose process is killed again and again
 base:
   model: {width: 32, depth: 1, pattern: [global_attention]}
+  runtime: {scan: chunked}
   data: {corpus: CORPUS, tokenizer: bytes, seq_len: 32}
   train: {steps: 1500, batch_size: 4, eval_every: 500, eval_windows: 2, log_every: 25, warmup_steps: 10,
           checkpoint_every: 100}

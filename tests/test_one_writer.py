@@ -48,7 +48,7 @@ def root(tmp_path_factory) -> Path:
                  "cache_dir": str(root / "cache")},
         "train": {"steps": 600, "batch_size": 4, "warmup_steps": 2, "log_every": 5, "eval_every": 200,
                   "checkpoint_every": 200, "eval_windows": 2},
-        "runtime": {"threads": 1},
+        "runtime": {"threads": 1, "scan": "chunked"},  # no kernel build in every process
     }
     (root / "run.yaml").write_text(yaml.safe_dump(config))
     return root
@@ -148,6 +148,7 @@ name: crash
 description: a cell left running by a grid process that died
 base:
   model: {width: 32, depth: 1, pattern: [global_attention]}
+  runtime: {scan: chunked}
   data: {corpus: CORPUS, tokenizer: bytes, seq_len: 32}
   train: {steps: 5000, batch_size: 4, eval_every: 200, eval_windows: 2, log_every: 5, warmup_steps: 2,
           checkpoint_every: 20}

@@ -55,7 +55,7 @@ def root(tmp_path_factory) -> Path:
                  "cache_dir": str(root / "cache")},
         "train": {"steps": 20, "batch_size": 4, "warmup_steps": 2, "log_every": 2, "eval_every": 5,
                   "checkpoint_every": 5, "eval_windows": 2, "keep_checkpoints": 1},
-        "runtime": {"threads": 1},
+        "runtime": {"threads": 1, "scan": "chunked"},  # no kernel build in every process
     }
     (root / "run.yaml").write_text(yaml.safe_dump(config))
     return root
