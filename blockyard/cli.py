@@ -1,9 +1,9 @@
 """The ``blockyard`` command: argparse subcommands, each parsing, calling one function, printing.
 
 User errors (``blockyard.errors.UserError``) are caught once here: one line ``error: ...`` on
-stderr, exit code 2, no traceback. Each subcommand has an ``_add_<name>`` function that declares
-its arguments and a ``_cmd_<name>`` function that runs it; heavy imports happen inside the
-latter so that ``--help`` stays fast.
+stderr, exit code 2 (4 for a file that cannot be written: ``WriteFailed``), no traceback. Each
+subcommand has an ``_add_<name>`` function that declares its arguments and a ``_cmd_<name>``
+function that runs it; heavy imports happen inside the latter so that ``--help`` stays fast.
 """
 
 from __future__ import annotations
@@ -28,9 +28,11 @@ class _Parser(argparse.ArgumentParser):
 def _add_train(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser("train", help="train one model from a config file", description=(
         "Train one model. Rerunning the same command on an interrupted run dir resumes it; "
-        "a finished run dir is left alone unless --force. Ctrl-C or SIGTERM finishes the current "
-        "step and writes a checkpoint. Exit codes: 0 done (or already done), 2 bad config or input, "
-        "3 diverged, 130 / 143 stopped by SIGINT / SIGTERM."))
+        "a finished run dir is left alone unless --force. One process writes a run dir at a time. Ctrl-C or "
+        "SIGTERM finishes the current step and writes a checkpoint. Exit codes: 0 done (or already done), "
+        "2 bad config or input, or another process is writing the run dir, 3 diverged, 4 a file could not be "
+        "written (disk full, quota, read-only, permission, I/O error; rerun to resume once fixed), "
+        "130 / 143 stopped by SIGINT / SIGTERM."))
     p.add_argument("config", help="YAML config file")
     p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
                    help="override a config key (dotted path, value parsed as YAML); repeatable")
@@ -38,6 +40,9 @@ def _add_train(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--force", action="store_true", help="retrain a finished dir or replace a dir of another config")
     p.add_argument("--no-check", dest="check", action="store_false",
                    help="skip the mixer contract gate on plugin mixers (env.json records that it was skipped)")
+    p.add_argument("--wait", type=float, default=0.0, metavar="SECONDS",
+                   help="if another process is writing the run dir, wait up to this long for it to end "
+                        "(default 0: refuse at once, exit 2)")
     p.set_defaults(func=_cmd_train)
 
 
@@ -45,8 +50,10 @@ def _cmd_train(args: argparse.Namespace) -> int:
     from blockyard.config import load_config
     from blockyard.train import train_from_cli
 
+    if args.wait < 0:
+        raise UserError(f"--wait {args.wait:g}: must be >= 0 seconds")
     cfg = load_config(args.config, args.overrides)
-    return train_from_cli(cfg, out=args.out, force=args.force, check=args.check)
+    return train_from_cli(cfg, out=args.out, force=args.force, check=args.check, wait_s=args.wait)
 
 
 # ----------------------------------------------------------------------------- blocks
@@ -77,7 +84,8 @@ def _add_grid(sub: argparse._SubParsersAction) -> None:
         "Train every cell of a grid file as an ordinary run dir under GRID_DIR/cells/, recording them in "
         "GRID_DIR/index.sqlite, then write GRID_DIR/report.md. Rerunning resumes: finished cells are skipped, "
         "interrupted ones resume from their checkpoints. Exit code 0: every cell finished (done or diverged); "
-        "1: some cells failed; 2: bad input; 130: stopped by a signal."))
+        "1: some cells failed; 2: bad input, or another grid process runs this grid; 4: a grid file (index, "
+        "config, report) could not be written; 130: stopped by a signal."))
     p.add_argument("grid", nargs="?", help="grid YAML file")
     p.add_argument("--out", default=None, help="grid dir (default: runs/grids/<grid name>)")
     p.add_argument("--workers", type=int, default=None, help="cells trained at once (default: cores / threads)")

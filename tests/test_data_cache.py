@@ -6,7 +6,6 @@ from __future__ import annotations
 import hashlib
 import json
 import multiprocessing
-import time
 from pathlib import Path
 
 import numpy as np
@@ -96,16 +95,24 @@ def test_cache_is_reused_without_reading_the_source(tmp_path, monkeypatch):
     assert len(list((tmp_path / "cache" / "tokens").iterdir())) == 2  # the folder and its lock file
 
 
-def _prepare_in_child(corpus: str, cache: str, queue) -> None:
+def _prepare_in_child(corpus: str, cache: str, queue, second_waits) -> None:
     import blockyard.data.cache as cache_mod
 
-    original = cache_mod.build
+    original_build, original_announce = cache_mod.build, cache_mod.announce_wait
 
-    def slow_build(*args, **kwargs):
-        time.sleep(1.0)  # keep the first preparer busy while the second arrives
-        return original(*args, **kwargs)
+    def build_once_the_other_waits(*args, **kwargs):
+        # A barrier: whoever builds first goes on only once the other preparer is blocked on the lock,
+        # so the two overlap for sure (not by timing).
+        if not second_waits.wait(timeout=120):
+            raise AssertionError("the second preparer never waited on the lock")
+        return original_build(*args, **kwargs)
 
-    cache_mod.build = slow_build
+    def announce_and_signal(*args, **kwargs):
+        original_announce(*args, **kwargs)
+        second_waits.set()
+
+    cache_mod.build = build_once_the_other_waits
+    cache_mod.announce_wait = announce_and_signal
     data = load_data(cfg_for(corpus, Path(cache), tokenizer="bpe", bpe_vocab=300))
     digest = hashlib.sha256(bytes(data.train_tokens) + bytes(data.val_tokens) + bytes(data.test_tokens)).hexdigest()
     queue.put((digest, data.prepared.manifest["prepared_by"]["pid"], str(data.prepared.path)))
@@ -114,15 +121,17 @@ def _prepare_in_child(corpus: str, cache: str, queue) -> None:
 def test_two_concurrent_preparers_get_one_identical_cache(tmp_path):
     make_docs(tmp_path / "c", 30)
     ctx = multiprocessing.get_context("spawn")
-    queue = ctx.Queue()
-    procs = [ctx.Process(target=_prepare_in_child, args=(str(tmp_path / "c"), str(tmp_path / "cache"), queue))
+    queue, second_waits = ctx.Queue(), ctx.Event()
+    procs = [ctx.Process(target=_prepare_in_child,
+                         args=(str(tmp_path / "c"), str(tmp_path / "cache"), queue, second_waits))
              for _ in range(2)]
     for p in procs:
         p.start()
-    results = [queue.get(timeout=120) for _ in procs]
+    results = [queue.get(timeout=180) for _ in procs]
     for p in procs:
         p.join(timeout=60)
         assert p.exitcode == 0
+    assert second_waits.is_set()  # they did overlap: one waited for the other's lock
     assert results[0] == results[1]  # same arrays, same folder, and one preparer (same pid)
     tokens_dir = tmp_path / "cache" / "tokens"
     assert sorted(p.name for p in tokens_dir.iterdir()) == sorted([Path(results[0][2]).name,

@@ -1,15 +1,10 @@
 """Streamed reading of large .txt files: the same text as the datasets text builder, the same pieces
-as the whole-string rule, the same token cache for bytes / chars / bpe, data.errors alike, and a
-peak-memory check on a generated 200 MB file."""
+as the whole-string rule, the same token cache for bytes / chars / bpe, data.errors alike, and what bounds the memory of
+preparing a large file (its peak RSS is a benchmark: scripts/bench_memory.py)."""
 
 from __future__ import annotations
 
-import json
-import os
 import random
-import shutil
-import subprocess
-import sys
 from pathlib import Path
 
 import numpy as np
@@ -208,20 +203,7 @@ def test_errors_strict_and_replace_on_a_streamed_file(tmp_path, monkeypatch):
     assert bytes(np.array(whole["train"] + whole["val"], dtype=np.uint8)).count("\ufffd".encode()) == 2
 
 
-# ----------------------------------------------------------------------------- memory
-
-_MEMORY_CHILD = r"""
-import json, resource, sys
-import datasets, tokenizers  # imported before the baseline: the reading path may use either
-from blockyard.config import config_from_dict
-from blockyard.data import load_data
-
-baseline = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-data = load_data(config_from_dict({"data": {"corpus": sys.argv[1], "cache_dir": sys.argv[2], "tokenizer": "bytes"}}))
-peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-tokens = sum(len(a) for a in (data.train_tokens, data.val_tokens, data.test_tokens))
-print(json.dumps({"baseline_kib": baseline, "peak_kib": peak, "tokens": tokens}))
-"""
+# ----------------------------------------------------------------------------- what bounds memory
 
 
 def write_generated_file(path: Path, nbytes: int) -> None:
@@ -234,23 +216,28 @@ def write_generated_file(path: Path, nbytes: int) -> None:
             written += f.write(part + b" " * (min(len(slab), nbytes - written) - len(part)))
 
 
-def test_preparing_a_200_mb_file_holds_a_small_fraction_of_it(tmp_path):
-    # ru_maxrss is the process's high-water mark in KiB on Linux (getrusage(2)); the child measures
-    # itself after its imports. Held whole, this text would be ~190 M characters, in 2 bytes each
-    # (it has non-Latin-1 characters): ~380 MB as one str, before any copy.
-    if not sys.platform.startswith("linux"):
-        pytest.skip("ru_maxrss is in KiB on Linux only")
-    nbytes = 200 * 10**6
-    path, cache = tmp_path / "big.txt", tmp_path / "cache"
-    try:
-        write_generated_file(path, nbytes)
-        proc = subprocess.run([sys.executable, "-c", _MEMORY_CHILD, str(path), str(cache)], capture_output=True,
-                              text=True, timeout=600, env={**os.environ, "OMP_NUM_THREADS": "1"})
-        assert proc.returncode == 0, proc.stderr[-2000:]
-        result = json.loads(proc.stdout.strip().splitlines()[-1])
-    finally:
-        path.unlink(missing_ok=True)
-        shutil.rmtree(cache, ignore_errors=True)
-    assert result["tokens"] == nbytes  # bytes tokenizer: one id per byte of the file
-    grown_mb = (result["peak_kib"] - result["baseline_kib"]) * 1024 / 1e6
-    assert grown_mb < 150, f"preparing grew the peak RSS by {grown_mb:.0f} MB"
+def test_preparing_a_large_file_never_holds_it_whole(tmp_path, monkeypatch):
+    # What keeps preparing's memory small: the file is read a chunk at a time and encoded a piece
+    # at a time, so no string ever holds more than one piece of it. The peak RSS this buys is
+    # measured by scripts/bench_memory.py (section "corpus": a 1 GB file), not timed here.
+    from blockyard.data import cache
+
+    stream_everything(monkeypatch)
+    nbytes = 3 * PIECE_CHARS
+    path = tmp_path / "big.txt"
+    write_generated_file(path, nbytes)
+    longest = {"chunk": 0, "piece": 0}
+
+    def measured(name, inner):
+        def wrapper(*args, **kwargs):
+            for text in inner(*args, **kwargs):
+                longest[name] = max(longest[name], len(text))
+                yield text
+        return wrapper
+
+    monkeypatch.setattr(cache, "document_chunks", measured("chunk", cache.document_chunks))
+    monkeypatch.setattr(cache, "stream_pieces", measured("piece", cache.stream_pieces))
+    data = load_data(cfg_for(str(path), tmp_path / "cache", tokenizer="bytes"))
+    assert sum(len(a) for a in (data.train_tokens, data.val_tokens, data.test_tokens)) == nbytes  # all of it
+    assert 0 < longest["chunk"] <= TINY_CHUNK
+    assert 0 < longest["piece"] <= PIECE_CHARS + 2 < nbytes / 2

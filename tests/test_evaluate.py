@@ -20,8 +20,8 @@ from blockyard.errors import ConfigError, UserError
 from blockyard.eval import extrapolation as evaluate
 from blockyard.eval import probes
 from blockyard.eval.generate import load_run
+from blockyard.rundir import read_metrics
 from blockyard.train import run_training
-from blockyard.train.records import read_metrics
 
 # ----------------------------------------------------------------------------- position buckets
 

@@ -21,8 +21,8 @@ from blockyard.grid.ladder import TREND_COLUMNS, Ladder
 from blockyard.grid.report import GAP_VS_N, LOSS_VS_N, write_report
 from blockyard.grid.run import _plan_rows, plan_cells, run_grid
 from blockyard.grid.spec import Design, load_grid
-from blockyard.grid.status import format_duration
 from blockyard.model import build_model
+from blockyard.rundir import format_duration
 
 # Tiny cells on the pydoc corpus (ships with Python), byte tokens.
 BASE = """

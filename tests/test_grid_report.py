@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import json
 import re
@@ -14,8 +15,10 @@ from blockyard.cli import main
 from blockyard.errors import UserError
 from blockyard.grid.index import open_index
 from blockyard.grid.report import CAUTION, VERDICT_COLUMNS, write_report
+from blockyard.grid.run import grid_lock
 from blockyard.grid.spec import Design, SeedSchedule
 from blockyard.grid.status import grid_progress, status_text
+from blockyard.rundir import writing
 
 TOKENS_PER_STEP = 128
 
@@ -239,15 +242,18 @@ def test_status_line_counts_and_eta(tmp_path):
         assert len(index_rows) == 3
         index.mark_running("run-a")
         index.mark_running("run-b")
+    writers = contextlib.ExitStack()  # each running cell's trainer holds its run dir's lock
     for cid, tokens, speed in (("run-a", 4000, 500.0), ("run-b", 1000, 1500.0)):
         (tmp_path / "cells" / cid).mkdir(parents=True)
         line = {"step": 1, "split": "train", "loss": 3.0, "tokens": tokens, "tokens_per_s": speed}
         (tmp_path / "cells" / cid / "metrics.jsonl").write_text(json.dumps(line) + "\n" + '{"step": 2, "spl')
-    progress = grid_progress(tmp_path)
+        writers.enter_context(writing(tmp_path / "cells" / cid))
+    with writers:
+        progress = grid_progress(tmp_path)
+        text = status_text(tmp_path)
     assert (progress.done, progress.diverged, progress.running, progress.failed, progress.left) == (2, 1, 2, 0, 1)
     # Left: (10000 - 4000) + (10000 - 1000) + 10000 tokens at 500 + 1500 tokens/s.
     assert progress.eta_s == pytest.approx(25_000 / 2000)
-    text = status_text(tmp_path)
     assert text.splitlines()[0] == "grid synthetic: 3/6 done (1 diverged), 2 running, 0 failed, 1 left | ETA 12s"
     assert "running run-a: step 1, 40% of 10,000 tokens, 500 tok/s" in text
     assert "no grid process holds this dir" in text
@@ -259,7 +265,8 @@ def test_eta_counts_a_cell_without_speed_at_the_finished_cells_speed(tmp_path):
         index.plan([{"id": "new", "variant": "c", "seed": 0, "point": [], "config_hash": "x", "adjustments": {},
                      "planned_tokens": 5000, "flops_per_token": None, "params_total": 1, "params_non_embedding": 1}])
         index.mark_running("new")
-    assert grid_progress(tmp_path).eta_s == pytest.approx(5000 / 1000.0)
+    with grid_lock(tmp_path):  # the grid process lives; its new cell has not written a line yet
+        assert grid_progress(tmp_path).eta_s == pytest.approx(5000 / 1000.0)
 
 
 def test_status_line_between_cells_says_no_cell_is_running(tmp_path):

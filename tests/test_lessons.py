@@ -94,8 +94,8 @@ def test_global_attention_solves_mqar_with_few_pairs_at_small_width(tmp_path):
     # above the ~0.3 of the plateau where a model copies some value of the context without
     # binding it to its key (about 1/4 for 4 pairs, plus repeated values).
     from blockyard.config import replace
+    from blockyard.rundir import read_metrics
     from blockyard.train import run_training
-    from blockyard.train.records import read_metrics
 
     cell = next(c for c in expand_cells(load_grid(LESSONS / "mqar.yaml"))
                 if c.seed == 0 and c.variant == "global-attention")

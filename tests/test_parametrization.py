@@ -197,9 +197,9 @@ def test_config_keys_are_validated():
 
 def test_a_mup_run_trains_end_to_end_and_logs_the_peak_lr(tmp_path):
     """Through the trainer (run_training): the extra lr groups reach the optimizer, resume state and log."""
+    from blockyard.rundir import read_metrics
     from blockyard.train import run_training
     from blockyard.train.optim import lr_factor
-    from blockyard.train.records import read_metrics
 
     corpus = tmp_path / "corpus.txt"
     corpus.write_text("the quick brown fox jumps over the lazy dog. " * 400)

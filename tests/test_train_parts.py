@@ -13,10 +13,10 @@ import torch.nn.functional as F
 from torch import nn
 
 from blockyard.errors import ConfigError
+from blockyard.rundir import parse_metrics
 from blockyard.train import checkpoint as ckpt
 from blockyard.train.loop import divergence, evaluate
 from blockyard.train.memory import PeakRSS, current_rss_bytes
-from blockyard.train.records import parse_metrics
 from blockyard.train.runtime import Runtime, resolve_device, resolve_threads
 
 CPU = Runtime(device=torch.device("cpu"), threads=1, precision="fp32", precision_reason="test", scan_backend="auto",

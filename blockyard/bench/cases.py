@@ -77,8 +77,8 @@ def loop_tokens_per_s(metrics: list[dict[str, Any]], warmup: int) -> float:
 def blockyard_run(case: BenchCase, steps: int, warmup: int, cache_dir: Path, threads: int = 0,
                 **train: Any) -> dict[str, Any]:
     """Train ``case`` with ``blockyard.train.run_training`` in a temp run dir; its loop tokens/s and summary."""
+    from blockyard.rundir import read_metrics
     from blockyard.train import run_training
-    from blockyard.train.records import read_metrics
 
     cfg = blockyard_config(case, steps, cache_dir, threads, **train)
     with tempfile.TemporaryDirectory(prefix="blockyard-bench-") as tmp:

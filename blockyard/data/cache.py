@@ -5,7 +5,7 @@ smallest unsigned dtype that holds the vocabulary), ``doc_split.npy`` (split of 
 the tokenizer file (chars, bpe) and ``manifest.json``. The key hashes the corpus fingerprint, the
 tokenizer (and BPE vocab size), the split fractions, text field, error mode and FORMAT_VERSION.
 
-Preparation is safe under concurrency: an exclusive ``fcntl.flock`` on ``<key>.lock``, the build
+Preparation is safe under concurrency: an exclusive OS lock on ``<key>.lock`` (``fs.hold_lock``), the build
 in a temporary sibling folder, the manifest written last, then one atomic ``rename``. A folder
 that exists under its final name is therefore complete; a crashed build leaves only a temporary
 folder, removed by the next preparer. Memory stays bounded: documents are read one at a time (a
@@ -25,6 +25,7 @@ import operator
 import os
 import shutil
 import socket
+import sys
 import tempfile
 import time
 from collections.abc import Iterator
@@ -33,6 +34,7 @@ from typing import Any
 
 import numpy as np
 
+from blockyard import fs
 from blockyard.data.sources import Corpus, Document, document_chunks
 from blockyard.data.tokenizers import (
     Tokenizer,
@@ -43,7 +45,6 @@ from blockyard.data.tokenizers import (
     stream_pieces,
 )
 from blockyard.errors import ConfigError, UserError
-from blockyard.fs import exclusive_lock
 
 FORMAT_VERSION = 1
 SPLITS = ("train", "val", "test")
@@ -75,6 +76,11 @@ def cache_key(corpus: Corpus, spec: CacheSpec) -> str:
                       sort_keys=True)
     slug = "".join(c if c.isalnum() else "_" for c in corpus.name.split("/")[-1])[:32] or "corpus"
     return f"{slug}-{spec.tokenizer}-{hashlib.sha256(blob.encode()).hexdigest()[:16]}"
+
+
+def announce_wait(lock: Path, holder: int) -> None:
+    """Say why a preparer waits (another process is building the same cache)."""
+    print(f"waiting for process {holder} to finish {lock.stem} ...", file=sys.stderr)
 
 
 # ----------------------------------------------------------------------------- split plan
@@ -192,18 +198,24 @@ def prepare(corpus: Corpus, spec: CacheSpec, root: Path) -> PreparedCorpus:
     final = root / "tokens" / cache_key(corpus, spec)
     if is_ready(final):
         return open_prepared(final)
-    with exclusive_lock(final.parent / f"{final.name}.lock"):
+    final.parent.mkdir(parents=True, exist_ok=True)
+    lock = final.parent / f"{final.name}.lock"
+    with fs.hold_lock(lock, wait_s=None, on_wait=lambda pid: announce_wait(lock, pid)):
         if is_ready(final):  # another process built it while we waited
             return open_prepared(final)
         for stale in final.parent.glob(f".tmp-{final.name}-*"):
             shutil.rmtree(stale, ignore_errors=True)  # left by a crashed preparer (we hold the lock)
-        tmp = Path(tempfile.mkdtemp(prefix=f".tmp-{final.name}-", dir=final.parent))
+        tmp = None
         try:
-            build(corpus, spec, tmp)
-            if final.exists():
-                shutil.rmtree(final)  # an old-format or manifest-less folder: never read
-            os.rename(tmp, final)
+            with fs.reporting(final, "the token cache"):
+                tmp = Path(tempfile.mkdtemp(prefix=f".tmp-{final.name}-", dir=final.parent))
+                build(corpus, spec, tmp)
+                if final.exists():
+                    shutil.rmtree(final)  # an old-format or manifest-less folder: never read
+                os.rename(tmp, final)
         except BaseException:
+            if tmp is None:
+                raise
             shutil.rmtree(tmp, ignore_errors=True)
             raise
     return open_prepared(final)
@@ -233,20 +245,14 @@ def build(corpus: Corpus, spec: CacheSpec, folder: Path) -> None:
     dtype = storage_dtype(tok.vocab_size)
     counts = dict.fromkeys(SPLITS, 0)
     docs = dict.fromkeys(SPLITS, 0)
-    files = {name: open(folder / f"{name}.bin", "wb") for name in SPLITS}  # noqa: SIM115 - closed below
+    # Tokens never outnumber the text's UTF-8 bytes (<= 4 per character): the most the arrays can need.
+    most = int(lengths.sum()) * 4 * dtype.itemsize
+    files: dict[str, Any] = {}
     try:
-        for split_id, part in split_texts(corpus.documents(), plan):
-            name = SPLITS[split_id]
-            docs[name] += 1
-            for piece in stream_pieces(part):
-                ids = tok.encode(piece)
-                if ids.size and int(ids.max()) >= tok.vocab_size:
-                    raise RuntimeError(f"tokenizer produced id {int(ids.max())} >= vocab {tok.vocab_size}")
-                files[name].write(ids.astype(dtype).tobytes())
-                counts[name] += int(ids.size)
-        for fh in files.values():
-            fh.flush()
-            os.fsync(fh.fileno())
+        with fs.reporting(folder, "the token cache being prepared", most):
+            for name in SPLITS:
+                files[name] = open(folder / f"{name}.bin", "wb")  # noqa: SIM115 - closed below
+            _write_splits(corpus, plan, tok, dtype, files, counts, docs)
     finally:
         for fh in files.values():
             fh.close()
@@ -272,6 +278,21 @@ def build(corpus: Corpus, spec: CacheSpec, folder: Path) -> None:
         "prepared_by": {"host": socket.gethostname(), "pid": os.getpid()},
         "prepare_s": round(time.time() - started, 3),
     }
-    tmp_manifest = folder / (MANIFEST + ".part")
-    tmp_manifest.write_text(json.dumps(manifest, indent=1))
-    os.replace(tmp_manifest, folder / MANIFEST)
+    fs.atomic_write_text(folder / MANIFEST, json.dumps(manifest, indent=1), what="the token cache's manifest")
+
+
+def _write_splits(corpus: Corpus, plan: SplitPlan, tok: Tokenizer, dtype: np.dtype, files: dict[str, Any],
+                  counts: dict[str, int], docs: dict[str, int]) -> None:
+    """Encode the corpus piece by piece, appending each split's ids to its file; counts as it goes."""
+    for split_id, part in split_texts(corpus.documents(), plan):
+        name = SPLITS[split_id]
+        docs[name] += 1
+        for piece in stream_pieces(part):
+            ids = tok.encode(piece)
+            if ids.size and int(ids.max()) >= tok.vocab_size:
+                raise RuntimeError(f"tokenizer produced id {int(ids.max())} >= vocab {tok.vocab_size}")
+            files[name].write(ids.astype(dtype).tobytes())
+            counts[name] += int(ids.size)
+    for fh in files.values():
+        fh.flush()
+        os.fsync(fh.fileno())

@@ -45,9 +45,9 @@ from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
+from blockyard import fs
 from blockyard.data.tasks import TASKS
 from blockyard.errors import ConfigError, UserError
-from blockyard.fs import exclusive_lock
 
 CORPUS_KEY = "data.corpus"
 LOCAL_BUILDERS = {".txt": "text", ".jsonl": "json", ".parquet": "parquet"}
@@ -474,7 +474,9 @@ def fetch_plays(root: Path, quiet: bool = False) -> Path:
     if plays_fetched(root):
         return folder
     folder.parent.mkdir(parents=True, exist_ok=True)
-    with exclusive_lock(folder.parent / "plays.lock"):
+    lock = folder.parent / "plays.lock"
+    with fs.hold_lock(lock, wait_s=None, on_wait=lambda pid: print(f"waiting for process {pid} to fetch the plays ...",
+                                                                   file=sys.stderr)):
         if plays_fetched(root):
             return folder
         if not quiet:

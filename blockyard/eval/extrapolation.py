@@ -26,9 +26,10 @@ from typing import Any
 import torch
 import torch.nn.functional as F
 
+from blockyard import fs
 from blockyard.data.batches import IGNORE_INDEX
 from blockyard.errors import UserError
-from blockyard.train.records import EVAL_FILE
+from blockyard.rundir import EVAL_FILE, read_json, read_metrics, writing
 
 Batches = list[tuple[torch.Tensor, torch.Tensor]]
 
@@ -181,12 +182,17 @@ def merge_eval(old: dict[str, Any] | None, new: dict[str, Any]) -> dict[str, Any
 
 def eval_command(run_dir: str | Path, lengths: str, *, buckets: int = 8, probes: str = "") -> str:
     """``blockyard eval``: length extrapolation (and probes) of a trained run; writes RUN_DIR/eval.json."""
-    from blockyard.config import config_hash
-    from blockyard.eval.generate import load_run
-    from blockyard.train.records import read_json, write_json
-
     if buckets < 1:
         raise UserError(f"--buckets {buckets}: must be >= 1")
+    with writing(Path(run_dir)):  # one writer per run dir: no trainer replaces the checkpoint meanwhile
+        return _evaluate_run_dir(Path(run_dir), lengths, buckets, probes)
+
+
+def _evaluate_run_dir(run_dir: Path, lengths: str, buckets: int, probes: str) -> str:
+    from blockyard.config import config_hash
+    from blockyard.eval.generate import load_run
+    from blockyard.train.records import write_json
+
     run = load_run(run_dir)
     rows = length_extrapolation(run, parse_lengths(lengths, run.cfg.data.seq_len), buckets) if lengths else []
     probe_names = tuple(p.strip() for p in probes.split(",") if p.strip())
@@ -201,7 +207,7 @@ def eval_command(run_dir: str | Path, lengths: str, *, buckets: int = 8, probes:
               "seq_len": run.cfg.data.seq_len, "eval_windows": run.cfg.train.eval_windows,
               "lengths": rows, "probes": probe_results}
     path = Path(run_dir) / EVAL_FILE
-    write_json(path, merge_eval(read_json(path), result))
+    write_json(path, merge_eval(read_json(path), result), what="the evaluation results")
     parts = [f"{run.path} at step {run.step} (trained at seq_len {run.cfg.data.seq_len}); loss in nats/token"]
     if rows:
         parts.append(format_table(rows))
@@ -216,8 +222,6 @@ def eval_command(run_dir: str | Path, lengths: str, *, buckets: int = 8, probes:
 
 def read_eval(run_dir: str | Path) -> dict[str, Any] | None:
     """A run dir's eval.json if it holds length rows, else None (never evaluated, or unreadable)."""
-    from blockyard.train.records import read_json
-
     data = read_json(Path(run_dir) / EVAL_FILE)
     return data if data and data.get("lengths") else None
 
@@ -244,7 +248,7 @@ def save_figure(fig: Any, path: str | Path) -> Path:
 
     out = Path(path)
     out.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(out, dpi=120)
+    fs.atomic_write(out, lambda f: fig.savefig(f, format="png", dpi=120), what="a report plot")
     plt.close(fig)
     return out
 
@@ -331,8 +335,6 @@ def report_figures(out_dir: str | Path, run_dirs: dict[str, list[Path]]) -> list
     """The extra PNGs of a grid report, for the runs of each variant label: length extrapolation (from
     the cells' eval.json, where ``blockyard eval`` was run) and probe accuracy (from the final val line of
     their metrics.jsonl, where ``eval.probes`` was set). Returns (file name, caption) of those written."""
-    from blockyard.train.records import read_metrics
-
     out_dir = Path(out_dir)
     written = []
     evals = {label: [e for e in (read_eval(d) for d in dirs) if e] for label, dirs in run_dirs.items()}

@@ -2,10 +2,12 @@
 
 Every cell is the same command whichever executor runs it::
 
-    python -m blockyard train GRID_DIR/configs/<cell>.yaml --out GRID_DIR/cells/<cell>
+    python -m blockyard train GRID_DIR/configs/<cell>.yaml --out GRID_DIR/cells/<cell> --wait 120
 
-so a cell dir is an ordinary run dir, and rerunning the command resumes an interrupted cell
-from its checkpoint (the trainer does that). Its stdout/stderr go to ``GRID_DIR/logs/<cell>.log``.
+so a cell dir is an ordinary run dir, and rerunning the command resumes an interrupted cell from
+its checkpoint (the trainer does that). One process writes a run dir at a time: ``--wait`` lets a
+cell of a grid process that was just killed write its last checkpoint before the rerun's cell
+takes over, instead of refusing it. Its stdout/stderr go to ``GRID_DIR/logs/<cell>.log``.
 
 The local executor keeps up to ``workers`` such subprocesses running from the grid process's
 main thread. On Linux each child asks the kernel for SIGTERM when the grid process dies
@@ -45,7 +47,7 @@ class CellJob:
 
     def command(self) -> list[str]:
         return [sys.executable, "-m", "blockyard", "train", str(self.config_path), "--out", str(self.out_dir),
-                *([] if self.check else ["--no-check"])]
+                "--wait", f"{STOP_GRACE_S:g}", *([] if self.check else ["--no-check"])]
 
 
 class Events(Protocol):

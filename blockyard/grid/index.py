@@ -4,18 +4,22 @@ Writes are transactions opened with ``BEGIN IMMEDIATE`` (the write lock is taken
 two writers never deadlock upgrading a read lock) under a busy timeout, so concurrent writers
 (the grid process, Ray result handlers, a second terminal's ``--status`` reads) are safe.
 The rollback journal (SQLite's default) is kept rather than WAL, which needs shared memory that
-network filesystems do not provide.
+network filesystems do not provide. A write that fails for lack of space (or a read-only
+filesystem, permissions, I/O) is rolled back by SQLite and raised as the one-line ``WriteFailed``.
 """
 
 from __future__ import annotations
 
 import contextlib
+import errno
 import json
 import sqlite3
 import time
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
+
+from blockyard import fs
 
 INDEX_NAME = "index.sqlite"
 BUSY_TIMEOUT_S = 60.0
@@ -54,6 +58,9 @@ CREATE TABLE IF NOT EXISTS cells (
 );
 """
 
+# SQLite's primary result codes (sqlite.org/rescode.html) for storage failures, as the errno they stand for.
+_SQLITE_STORAGE = {13: errno.ENOSPC, 10: errno.EIO, 8: errno.EROFS, 3: errno.EACCES, 14: errno.EACCES}
+
 _SUMMARY_COLUMNS = ("final_val_loss", "best_val_loss", "tokens_seen", "steps", "wall_s", "tokens_per_s",
                     "peak_rss_bytes")
 
@@ -66,9 +73,10 @@ class GridIndex:
         self.path = Path(path)
         # isolation_level=None: no implicit transactions; we open them explicitly.
         target = f"file:{self.path.resolve()}?mode=ro" if readonly else str(self.path)
-        self._db = sqlite3.connect(target, timeout=BUSY_TIMEOUT_S, isolation_level=None, uri=readonly)
-        self._db.row_factory = sqlite3.Row
-        self._db.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_S * 1000)}")
+        with self._reporting():
+            self._db = sqlite3.connect(target, timeout=BUSY_TIMEOUT_S, isolation_level=None, uri=readonly)
+            self._db.row_factory = sqlite3.Row
+            self._db.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_S * 1000)}")
         if readonly:
             return
         with self.transaction() as db:
@@ -86,15 +94,30 @@ class GridIndex:
         self.close()
 
     @contextlib.contextmanager
+    def _reporting(self) -> Iterator[None]:
+        """SQLite's storage failures (disk full, read-only, I/O) as ``WriteFailed``; other errors unchanged."""
+        try:
+            yield
+        except sqlite3.Error as e:
+            code = getattr(e, "sqlite_errorcode", None)
+            number = None if code is None else _SQLITE_STORAGE.get(code & 0xFF)
+            if number is None:
+                raise
+            raise fs.write_failure(OSError(number, str(e)), self.path, "the grid index") from None
+
+    @contextlib.contextmanager
     def transaction(self) -> Iterator[sqlite3.Connection]:
         """BEGIN IMMEDIATE ... COMMIT (ROLLBACK on error)."""
-        self._db.execute("BEGIN IMMEDIATE")
-        try:
-            yield self._db
-        except BaseException:
-            self._db.execute("ROLLBACK")
-            raise
-        self._db.execute("COMMIT")
+        with self._reporting():
+            self._db.execute("BEGIN IMMEDIATE")
+            try:
+                yield self._db
+                self._db.execute("COMMIT")
+            except BaseException:
+                if self._db.in_transaction:  # SQLite may have rolled back by itself (e.g. disk full)
+                    with contextlib.suppress(sqlite3.Error):
+                        self._db.execute("ROLLBACK")
+                raise
 
     # ----- meta
 

@@ -31,7 +31,7 @@ from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 from blockyard.errors import ConfigError
-from blockyard.grid.status import format_duration
+from blockyard.rundir import format_duration
 
 RUNG = "rung"  # the point key of a rung
 LADDER_KEYS = ("ladder", "tokens_per_param", "ladder_target")

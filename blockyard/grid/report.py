@@ -21,6 +21,7 @@ import re
 from pathlib import Path
 from typing import Any
 
+from blockyard import fs
 from blockyard.errors import UserError
 from blockyard.grid import stats
 from blockyard.grid.fairness import MATCH_TOLERANCE
@@ -38,7 +39,7 @@ from blockyard.grid.ladder import (
 )
 from blockyard.grid.rounds import plan_rounds
 from blockyard.grid.spec import NULL_INIT_OFFSET, NULL_VARIANT, Design
-from blockyard.grid.status import cell_dir, read_jsonl
+from blockyard.grid.status import cell_dir
 from blockyard.grid.tuning import TUNING_DIR, TunedGroup, Tuning, shared_value_differences, split_point, tuned_groups
 from blockyard.grid.verdicts import (
     Comparison,
@@ -49,6 +50,7 @@ from blockyard.grid.verdicts import (
     point_text,
     value_text,
 )
+from blockyard.rundir import METRICS_FILE, read_metrics
 
 CAUTION = (
     "These verdicts hold for this model size, this data and this training budget only. Effects seen in tiny "
@@ -206,7 +208,7 @@ def grid_results(rows: list[dict[str, Any]], meta: dict[str, str | None], defaul
 
 def _val_curve(grid_dir: Path, row: dict[str, Any]) -> list[tuple[float, float, float]]:
     """(tokens, wall_s, val loss) per validation line of a cell."""
-    lines = read_jsonl(cell_dir(grid_dir, row["id"]) / "metrics.jsonl")
+    lines = read_metrics(cell_dir(grid_dir, row["id"]) / METRICS_FILE)
     per_step = None
     for ln in lines:
         if ln.get("split") == "train" and ln.get("tokens") and ln.get("step"):
@@ -316,7 +318,7 @@ def forest_plot(plt: Any, path: Path, family: Family) -> bool:
     ax.grid(True, axis="x", alpha=0.3)
     ax.legend(fontsize=7, loc="lower right")
     fig.tight_layout()
-    fig.savefig(path, dpi=110)
+    save_png(fig, path)
     plt.close(fig)
     return True
 
@@ -347,7 +349,7 @@ def tuning_plot(plt: Any, path: Path, tuned: TuningResults) -> bool:
     ax.grid(True, alpha=0.3, which="both")
     ax.legend(fontsize=7)
     fig.tight_layout()
-    fig.savefig(path, dpi=110)
+    save_png(fig, path)
     plt.close(fig)
     return True
 
@@ -399,7 +401,7 @@ def _params_plot(plt: Any, path: Path, groups: list[Group]) -> bool:
         ax.grid(True, alpha=0.3)
         ax.legend(fontsize=7)
         fig.tight_layout()
-        fig.savefig(path, dpi=110)
+        save_png(fig, path)
     plt.close(fig)
     return plotted
 
@@ -435,7 +437,7 @@ def _curve_plots(plt: Any, grid_dir: Path, groups: list[Group]) -> list[tuple[st
             ax.grid(True, alpha=0.3)
             ax.legend(fontsize=7)
             fig.tight_layout()
-            fig.savefig(grid_dir / name, dpi=110)
+            save_png(fig, grid_dir / name)
             written.append((name, caption))
         plt.close(fig)
     return written
@@ -575,13 +577,12 @@ def _write_table(path: Path, header: tuple[str, ...], rows: list[list[Any]]) -> 
     writer.writerow(header)
     for row in rows:
         writer.writerow(["" if v is None else repr(v) if isinstance(v, float) else v for v in row])
-    _atomic_write(path, buf.getvalue())
+    fs.atomic_write_text(path, buf.getvalue(), what="a report table")
 
 
-def _atomic_write(path: Path, text: str) -> None:
-    tmp = path.with_name(f".{path.name}.tmp")
-    tmp.write_text(text)
-    tmp.replace(path)
+def save_png(fig: Any, path: Path) -> None:
+    """A matplotlib figure as a PNG, written atomically (a full disk leaves the old plot, not half a new one)."""
+    fs.atomic_write(path, lambda f: fig.savefig(f, format="png", dpi=110), what="a report plot")
 
 
 def _adjust_text(adjustments: dict[str, Any]) -> str:
@@ -995,8 +996,8 @@ def write_report(grid_dir: str | Path) -> Path:
     res = grid_results(rows, meta, grid_dir.name, tuning_rows)
     plots = write_plots(grid_dir, res)
     doc = build_report(grid_dir, res, plots)
-    _atomic_write(grid_dir / "report.md", doc.markdown())
-    _atomic_write(grid_dir / "report.html", doc.html(grid_dir, f"Grid {res.name}"))
+    fs.atomic_write_text(grid_dir / "report.md", doc.markdown(), what="the report")
+    fs.atomic_write_text(grid_dir / "report.html", doc.html(grid_dir, f"Grid {res.name}"), what="the report")
     write_csv(grid_dir / "results.csv", rows)
     columns, table = VERDICT_COLUMNS, verdict_table(res.family)
     if res.tuning is not None:

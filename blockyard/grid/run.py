@@ -28,7 +28,6 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
-import fcntl
 import hashlib
 import json
 import os
@@ -37,6 +36,7 @@ from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
+from blockyard import fs
 from blockyard.config import config_hash, dump_config, replace
 from blockyard.errors import UserError
 from blockyard.grid import executors
@@ -44,9 +44,9 @@ from blockyard.grid.fairness import CellCost, apply_budgets, apply_matching, cel
 from blockyard.grid.index import FINISHED, INDEX_NAME, GridIndex, open_index
 from blockyard.grid.ladder import Ladder, RungCell, rung_summary
 from blockyard.grid.spec import NULL_VARIANT, Cell, Design, GridSpec, expand_cells, load_grid, tuned_cells, tuning_cells
-from blockyard.grid.status import LOCK_NAME, cell_dir, format_duration, grid_progress, lock_holder, read_summary
+from blockyard.grid.status import LOCK_NAME, cell_dir, grid_progress
 from blockyard.grid.tuning import TUNING_DIR, chosen_values, tuned_groups
-from blockyard.mixers.plugins import copy_plugins
+from blockyard.rundir import format_duration, read_summary
 from blockyard.schema import to_dict
 
 DEFAULT_ROOT = Path("runs") / "grids"
@@ -239,24 +239,17 @@ def makespan(seconds: list[float], workers: int) -> float:
 
 @contextlib.contextmanager
 def grid_lock(grid_dir: Path) -> Iterator[None]:
-    """Hold ``GRID_DIR/grid.lock`` (flock: released by the kernel even after kill -9)."""
-    path = grid_dir / LOCK_NAME
-    fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    """Hold ``GRID_DIR/grid.lock`` (an OS lock: released by the kernel even after kill -9)."""
     try:
-        try:
-            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except BlockingIOError:
-            holder = lock_holder(grid_dir)
-            raise UserError(f"{grid_dir}: another grid process{f' ({holder})' if holder else ''} is running this "
-                            f"grid; watch it with: blockyard grid --status {grid_dir}") from None
-        os.ftruncate(fd, 0)
-        os.write(fd, f"{os.getpid()}\n".encode())
-        try:
-            yield
-        finally:
-            os.ftruncate(fd, 0)
-    finally:
-        os.close(fd)
+        with fs.reporting(grid_dir / LOCK_NAME, "the grid's lock"), contextlib.ExitStack() as held:
+            held.enter_context(fs.hold_lock(grid_dir / LOCK_NAME))
+            lock = held.pop_all()
+    except fs.LockBusy as busy:
+        holder = f"pid {busy.holder}" if busy.holder > 0 else ""
+        raise UserError(f"{grid_dir}: another grid process{f' ({holder})' if holder else ''} is running this "
+                        f"grid; watch it with: blockyard grid --status {grid_dir}") from None
+    with lock:
+        yield
 
 
 def _check_grid_dir(grid_dir: Path) -> bool:
@@ -333,7 +326,7 @@ def _archive_spec(grid_dir: Path, text: str) -> None:
             n += 1
         current.rename(grid_dir / f"grid.{n}.yaml")
     if not current.exists():
-        current.write_text(text)
+        fs.atomic_write_text(current, text, what="the grid spec")
 
 
 def _supersede(grid_dir: Path, ids: list[str], old_hashes: dict[str, str]) -> list[str]:
@@ -356,6 +349,8 @@ def _plugin_copies(p: PlannedCell, grid_dir: Path) -> list[str] | None:
     (relative to GRID_DIR/configs), or None without plugins."""
     if not p.cell.cfg.plugins:
         return None
+    from blockyard.mixers.plugins import copy_plugins  # imports torch: not at module level, or `grid --status` would
+
     return [f"../plugins/{c.name}" for c in copy_plugins(p.cell.cfg.plugins, grid_dir / "plugins")]
 
 
@@ -377,9 +372,7 @@ def _plan_rows(plan: list[PlannedCell]) -> list[dict[str, Any]]:
 
 def _write_if_changed(path: Path, text: str) -> None:
     if not path.exists() or path.read_text() != text:
-        tmp = path.with_name(f".{path.name}.tmp")
-        tmp.write_text(text)
-        tmp.replace(path)
+        fs.atomic_write_text(path, text, what="a cell's config")
 
 
 def prepare_data(plan: list[PlannedCell], echo: Callable[[str], None]) -> None:
@@ -439,7 +432,7 @@ class _Recorder:
         self.echo(f"start {job.id}")
 
     def finished(self, job: executors.CellJob, exit_code: int | None, message: str | None) -> None:
-        summary = read_summary(job.out_dir / "summary.json")
+        summary = read_summary(job.out_dir)
         status = outcome(exit_code, summary)
         if status not in ("done", "interrupted") and message is None:
             message = last_log_line(job.log_path)
@@ -467,7 +460,7 @@ def _reconcile(grid_dir: Path, index: GridIndex) -> list[str]:
     """Sync the index with the cell dirs (after a kill); returns the ids still to train, in order."""
     todo = []
     for row in index.cells():
-        summary = read_summary(cell_dir(grid_dir, row["id"]) / "summary.json")
+        summary = read_summary(cell_dir(grid_dir, row["id"]))
         status = (summary or {}).get("status")
         if status in FINISHED:
             if row["status"] != status:
@@ -751,8 +744,8 @@ def run_grid(
                              s.spec.design.schedule is not None)
     _refuse_changed_design(s.grid_dir, grid_file, s.old_design, s.spec.design, force)
     unfinished = [p for p in universe if p.cell.seed in s.spec.seeds[:_first_seeds(s.spec)]
-                  and (read_summary(cell_dir(s.grid_dir, p.id) / "summary.json") or {}).get("status") not in FINISHED]
-    unfinished += [p for p in tuning_plan if (read_summary(cell_dir(s.grid_dir / TUNING_DIR, p.id) / "summary.json")
+                  and (read_summary(cell_dir(s.grid_dir, p.id)) or {}).get("status") not in FINISHED]
+    unfinished += [p for p in tuning_plan if (read_summary(cell_dir(s.grid_dir / TUNING_DIR, p.id))
                                              or {}).get("status") not in FINISHED]
     if check:  # a plugin mixer that leaks is refused before any cell starts (and each cell checks again)
         from blockyard.check import gate_many

@@ -7,7 +7,7 @@ source, the flags, the torch version and the machine, so a changed kernel never 
 build and two builds never share a folder.
 
 Concurrent first builds (several training processes of one grid) are serialised by an OS file
-lock (``fcntl.flock``): the first process compiles, the others wait and then load the result.
+lock (``blockyard.fs.hold_lock``): the first process compiles, the others wait and then load the result.
 The kernel of the OS releases that lock when its holder dies, unlike torch's own lock file, which
 a killed build leaves behind and every later build would wait on forever; under our lock such a
 leftover file is stale by construction and is removed.
@@ -33,6 +33,8 @@ from pathlib import Path
 from typing import Any
 
 import torch
+
+from blockyard import fs
 
 SOURCES = (Path(__file__).with_name("scan_cpu.cpp"), Path(__file__).with_name("rglru_cpu.cpp"))
 # -O3: the inner loops vectorise; -ffp-contract=off: a * h + b rounds twice (no fused multiply-add),
@@ -96,30 +98,6 @@ def _path_with(directory: str) -> Iterator[None]:
         yield
     finally:
         os.environ["PATH"] = old
-
-
-@contextlib.contextmanager
-def _exclusive_lock(path: Path, timeout_s: float) -> Iterator[None]:
-    """An OS file lock (released if the holder dies); waits up to ``timeout_s``, then raises TimeoutError."""
-    try:
-        import fcntl
-    except ImportError:  # not POSIX: torch's own lock file is all there is
-        yield
-        return
-    with open(path, "a+") as handle:
-        deadline = time.monotonic() + timeout_s
-        while True:
-            try:
-                fcntl.flock(handle.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
-                break
-            except BlockingIOError:
-                if time.monotonic() > deadline:
-                    raise TimeoutError(f"waited {timeout_s:.0f} s for the build lock {path}") from None
-                time.sleep(0.2)
-        try:
-            yield
-        finally:
-            fcntl.flock(handle.fileno(), fcntl.LOCK_UN)
 
 
 def _compile(name: str, build_dir: Path) -> None:
@@ -195,7 +173,13 @@ def load_scan_ops() -> Any:
 def _build_and_load(name: str, build_dir: Path) -> None:
     """Compile under the OS lock (or find the build up to date) and load it."""
     build_dir.mkdir(parents=True, exist_ok=True)
-    with _exclusive_lock(build_dir / "blockyard.flock", LOCK_TIMEOUT_S):
+    lock = build_dir / "blockyard.flock"
+    held = contextlib.ExitStack()
+    try:
+        held.enter_context(fs.hold_lock(lock, wait_s=LOCK_TIMEOUT_S))
+    except fs.LockBusy:
+        raise TimeoutError(f"waited {LOCK_TIMEOUT_S:.0f} s for the build lock {lock}") from None
+    with held:
         # Under our lock nobody else is building here: a torch lock file is a leftover.
         (build_dir / "lock").unlink(missing_ok=True)
         _compile(name, build_dir)

@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 import torch
 
-from blockyard.train.records import atomic_write
+from blockyard import fs
 
 FORMAT = 1
 _NAME = re.compile(r"^step_(\d+)\.pt$")
@@ -124,10 +124,30 @@ def save_checkpoint(
         "loop": dict(loop),
     }
     path = checkpoint_path(folder, step)
-    atomic_write(path, lambda f: torch.save(state, f))
+    fs.atomic_write(path, lambda f: torch.save(state, f), what=f"the checkpoint of step {step}",
+                    needed_bytes=tensor_bytes(state))
     for _old_step, old in list_checkpoints(folder)[:-keep]:
         old.unlink(missing_ok=True)
     return path
+
+
+def tensor_bytes(tree: Any) -> int:
+    """Bytes of the tensors in a nested dict / list (what dominates a checkpoint file's size)."""
+    if isinstance(tree, torch.Tensor):
+        return tree.numel() * tree.element_size()
+    if isinstance(tree, dict):
+        return sum(tensor_bytes(v) for v in tree.values())
+    if isinstance(tree, (list, tuple)):
+        return sum(tensor_bytes(v) for v in tree)
+    return 0
+
+
+def estimate_checkpoint_bytes(model: torch.nn.Module, optimizer_slots: int = 2) -> int:
+    """A checkpoint's size before training: the weights plus ``optimizer_slots`` same-sized optimizer
+    states (AdamW keeps two moments per parameter) plus the buffers."""
+    params = sum(p.numel() * p.element_size() for p in model.parameters())
+    buffers = sum(b.numel() * b.element_size() for b in model.buffers())
+    return (1 + optimizer_slots) * params + buffers
 
 
 def read_checkpoint(path: Path, config_hash: str) -> Checkpoint:

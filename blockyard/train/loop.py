@@ -11,10 +11,15 @@ Order of work, chosen so that bad input never damages earlier results:
 4. train: step s (1-based) uses micro-batches ``data.train_batch((s - 1) * grad_accum + i)``,
    so the data position is the step itself; log, evaluate, checkpoint, check divergence;
 5. write summary.json: done, diverged, interrupted (SIGINT/SIGTERM) or failed.
+
+All of it under the run dir's writer lock (``rundir.writing``): one process writes a dir at a time.
+A file that cannot be written (full disk, ...) stops the run with one line (``WriteFailed``, exit 4);
+every write is atomic or cut back, so the newest checkpoint on disk stays the resume point.
 """
 
 from __future__ import annotations
 
+import contextlib
 import math
 import statistics
 import time
@@ -28,14 +33,25 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
+from blockyard import fs
 from blockyard.config import Config, config_hash, dump_config
 from blockyard.data.batches import IGNORE_INDEX, count_correct
+from blockyard.errors import WriteFailed
+from blockyard.rundir import (
+    CHECKPOINT_DIR,
+    CONFIG_FILE,
+    ENV_FILE,
+    METRICS_FILE,
+    SUMMARY_FILE,
+    TENSORBOARD_DIR,
+    writing,
+)
 from blockyard.train import checkpoint as ckpt
+from blockyard.train.dirstate import clear_records, inspect_run_dir, keep_plugin_copies, plan_run_dir
 from blockyard.train.memory import PeakRSS
 from blockyard.train.optim import build_optimizer, build_scheduler, tokens_per_step, total_steps
 from blockyard.train.progress import Progress, make_progress
-from blockyard.train.records import MetricsLog, TensorBoardLog, atomic_write_text, environment, write_json
-from blockyard.train.rundir import clear_records, inspect_run_dir, keep_plugin_copies, plan_run_dir, remove_temp_files
+from blockyard.train.records import MetricsLog, TensorBoardLog, environment, write_json
 from blockyard.train.runtime import Runtime, resolve_runtime
 from blockyard.train.signals import StopRequest
 
@@ -249,171 +265,269 @@ def run_training(
     progress: str | Progress | None = None,
     eval_hooks: Sequence[EvalHook] = (),
     check: bool = True,
+    wait_s: float = 0.0,
 ) -> dict[str, Any]:
     """Train ``cfg`` into ``out_dir`` (fresh, resumed, or not at all when done); the summary.
 
     ``progress``: None/"auto" (tqdm bar on a TTY, log lines otherwise), "log", "bar",
     "silent", "warnings", or a :class:`Progress`. ``check``: run the mixer contract gate on
-    plugin mixers first (``blockyard.check.gate``). Raises UserError for bad input (the dir untouched).
+    plugin mixers first (``blockyard.check.gate``). The run holds the dir's writer lock throughout;
+    another live writer is waited for up to ``wait_s`` seconds. Raises UserError for bad input or
+    a busy dir (the dir untouched), WriteFailed when a file cannot be written (nothing earlier lost).
     """
     out = Path(out_dir)
     cfg_hash = config_hash(cfg)
     show = make_progress(progress)
     runtime, warnings = resolve_runtime(cfg.runtime)
-    state = inspect_run_dir(out, cfg_hash)
-    action = plan_run_dir(state, out, cfg_hash, force)
-    if action == "finished":
-        summary = state.summary or {}
-        if summary.get("status") == "diverged":
-            show.message(f"{out}: diverged earlier, at step {summary.get('steps')}; not retraining "
-                         "(lower train.lr, or use --force to retrain)")
-        else:
-            loss = summary.get("final_val_loss")
-            show.message(f"{out}: already done ({summary.get('steps')} steps, val loss "
-                         f"{'?' if loss is None else f'{loss:.4f}'}); not retraining (use --force to retrain)")
-        return summary
-    for warning in warnings:
-        show.message(f"warning: {warning}")
+    with writing(out, wait_s=wait_s):
+        state = inspect_run_dir(out, cfg_hash)
+        action = plan_run_dir(state, out, cfg_hash, force)
+        if action == "finished":
+            return _report_finished(out, state.summary or {}, show)
+        for warning in warnings:
+            show.message(f"warning: {warning}")
+        threads_before = torch.get_num_threads()
+        torch.set_num_threads(runtime.threads)
+        try:
+            from blockyard.check import SKIPPED, gate  # a plugin mixer that leaks is refused before anything is written
 
-    threads_before = torch.get_num_threads()
-    torch.set_num_threads(runtime.threads)
-    try:
-        from blockyard.check import SKIPPED, gate  # a plugin mixer that leaks is refused before anything is written
+            mixer_check = gate(cfg) if check else SKIPPED
+            s = _build(cfg, cfg_hash, runtime)
+            s.mixer_check = mixer_check
+            from blockyard.cost.memory import warn_if_too_large  # activations that will not fit: say so first
 
-        mixer_check = gate(cfg) if check else SKIPPED
-        s = _build(cfg, cfg_hash, runtime)
-        s.mixer_check = mixer_check
-        from blockyard.cost.memory import warn_if_too_large  # activations that will not fit: say so first
+            warn_if_too_large(cfg, s.data.vocab_size, lambda m: show.message(f"warning: {m}"))
+            _warn_if_disk_short(out, s, show)
+            from blockyard.eval.probes import make_eval_hook  # eval.probes; builds (and checks) the probes first
 
-        warn_if_too_large(cfg, s.data.vocab_size, lambda m: show.message(f"warning: {m}"))
-        from blockyard.eval.probes import make_eval_hook  # eval.probes; builds (and checks) the probes before training
+            probes = make_eval_hook(cfg, s.data)
+            return _train(s, out, action, show, (*eval_hooks, probes) if probes else tuple(eval_hooks))
+        finally:
+            torch.set_num_threads(threads_before)
 
-        probes = make_eval_hook(cfg, s.data)
-        return _train(s, out, action, show, (*eval_hooks, probes) if probes else tuple(eval_hooks))
-    finally:
-        torch.set_num_threads(threads_before)
+
+def _report_finished(out: Path, summary: dict[str, Any], show: Progress) -> dict[str, Any]:
+    if summary.get("status") == "diverged":
+        show.message(f"{out}: diverged earlier, at step {summary.get('steps')}; not retraining "
+                     "(lower train.lr, or use --force to retrain)")
+    else:
+        loss = summary.get("final_val_loss")
+        show.message(f"{out}: already done ({summary.get('steps')} steps, val loss "
+                     f"{'?' if loss is None else f'{loss:.4f}'}); not retraining (use --force to retrain)")
+    return summary
+
+
+def _warn_if_disk_short(out: Path, s: Setup, show: Progress) -> None:
+    """Warn before training when the dir's filesystem cannot hold ``keep_checkpoints`` checkpoints
+    (plus the one being written before the oldest is deleted)."""
+    each = ckpt.estimate_checkpoint_bytes(s.model)
+    need = (s.cfg.train.keep_checkpoints + 1) * each
+    free = fs.free_bytes(out)
+    if free is not None and free < need:
+        show.message(f"warning: {out}: {fs.format_bytes(free)} free, but train.keep_checkpoints "
+                     f"{s.cfg.train.keep_checkpoints} checkpoints of about {fs.format_bytes(each)} (+1 being "
+                     f"written) need {fs.format_bytes(need)}; the run will stop with exit code 4 when the disk "
+                     "is full (free space, then rerun the same command to resume)")
 
 
 def _start(s: Setup, out: Path, action: str, show: Progress) -> tuple[int, LoopState, MetricsLog, TensorBoardLog]:
     """Open the dir for writing: resume from the newest readable checkpoint, or start fresh."""
     found = None
     if action == "resume":
-        remove_temp_files(out)
-        remove_temp_files(out / "checkpoints")
-        found = ckpt.latest_valid_checkpoint(out / "checkpoints", s.cfg_hash,
+        fs.remove_temp_files(out)
+        fs.remove_temp_files(out / CHECKPOINT_DIR)
+        found = ckpt.latest_valid_checkpoint(out / CHECKPOINT_DIR, s.cfg_hash,
                                              warn=lambda m: show.message(f"warning: {m}"))
     if found is None:
         out.mkdir(parents=True, exist_ok=True)
         clear_records(out)
-        atomic_write_text(out / "config.yaml", dump_config(s.cfg, keep_plugin_copies(s.cfg, out)))
-        metrics = MetricsLog(out / "metrics.jsonl")
-        return 0, LoopState(), metrics, TensorBoardLog(out / "tb")
+        fs.atomic_write_text(out / CONFIG_FILE, dump_config(s.cfg, keep_plugin_copies(s.cfg, out)),
+                             what="the run's config")
+        metrics = MetricsLog(out / METRICS_FILE)
+        return 0, LoopState(), metrics, TensorBoardLog(out / TENSORBOARD_DIR)
     loop = LoopState(**ckpt.restore(found, s.model, s.optimizer, s.scheduler))
     show.message(f"resuming {out} from the checkpoint at step {found.step}/{s.total}")
-    metrics = MetricsLog.resume(out / "metrics.jsonl", found.step)
-    return found.step, loop, metrics, TensorBoardLog(out / "tb", purge_step=found.step + 1)
+    metrics = MetricsLog.resume(out / METRICS_FILE, found.step)
+    return found.step, loop, metrics, TensorBoardLog(out / TENSORBOARD_DIR, purge_step=found.step + 1)
+
+
+class _Segment:
+    """One process's stretch of a run: the step counter, records, timers and the pieces of a step.
+
+    ``_train`` drives it; each method is one job (train a step, log it, validate, checkpoint,
+    write the summary), so the loop itself reads as the order of work.
+    """
+
+    def __init__(self, s: Setup, out: Path, show: Progress, eval_hooks: Sequence[EvalHook]) -> None:
+        self.s, self.out, self.show, self.eval_hooks = s, out, show, eval_hooks
+        self.cfg = s.cfg.train
+        self.step, self.loop, self.metrics, self.tb = 0, LoopState(), None, None
+        self.saved_step: int | None = None  # the newest checkpoint this run has on disk
+        self.rss = PeakRSS(0)
+        self.t_start = time.perf_counter()
+        self.window_tokens, self.window_time = 0, 0.0
+
+    def open(self, action: str) -> None:
+        """Resume or start fresh, write env.json and a first "running" summary."""
+        s = self.s
+        self.step, self.loop, self.metrics, self.tb = _start(s, self.out, action, self.show)
+        self.saved_step = self.step or None
+        self.rss = PeakRSS(self.loop.peak_rss_bytes)
+        self.t_start = time.perf_counter()
+        write_json(self.out / ENV_FILE, environment(**s.runtime.facts(), start_time=_now(),
+                                                    resumed_from_step=self.step or None, data=s.data.describe(),
+                                                    mixer_check=s.mixer_check),
+                   what="the run's environment")
+        if self.step == 0:
+            params = _param_counts(s.model)
+            self.show.message(
+                f"training {s.cfg.name or 'run'} ({s.cfg_hash}) into {self.out}: {params['total']:,} params "
+                f"({params['non_embedding']:,} non-embedding), {s.total} steps x {s.tokens_per_step:,} tokens, "
+                f"{s.runtime.device} x{s.runtime.threads} threads, {s.runtime.precision}")
+        self.finish("running")
+
+    def wall(self) -> float:
+        return self.loop.wall_s + time.perf_counter() - self.t_start
+
+    def finish(self, status: str, **extra: Any) -> dict[str, Any]:
+        self.loop.peak_rss_bytes = self.rss.sample()
+        summary = build_summary(status, self.s, self.metrics, self.loop, self.step, self.wall(), **extra)
+        write_json(self.out / SUMMARY_FILE, summary, what="the run summary")
+        return summary
+
+    def save(self) -> None:
+        self.loop.peak_rss_bytes = self.rss.sample()
+        self.metrics.sync()
+        self.tb.flush()
+        state = asdict(self.loop) | {"wall_s": self.wall()}
+        s = self.s
+        ckpt.save_checkpoint(self.out / CHECKPOINT_DIR, step=self.step, config_hash=s.cfg_hash, model=s.model,
+                             optimizer=s.optimizer, scheduler=s.scheduler, loop=state,
+                             keep=self.cfg.keep_checkpoints)
+        self.saved_step = self.step
+
+    def log(self, line: dict[str, Any]) -> None:
+        self.metrics.append(line)
+        self.tb.log(line)
+
+    def train_one_step(self) -> StepStats:
+        """Step ``self.step + 1`` on micro-batches ``(step - 1) * grad_accum + i`` (the data position is the step)."""
+        s, cfg = self.s, self.cfg
+        self.step += 1
+        micro = [s.data.train_batch((self.step - 1) * cfg.grad_accum + i) for i in range(cfg.grad_accum)]
+        t0 = time.perf_counter()
+        stats = train_step(s.model, s.optimizer, s.scheduler, micro, s.runtime, cfg.grad_clip)
+        self.window_time += time.perf_counter() - t0
+        self.window_tokens += s.tokens_per_step
+        self.rss.sample()
+        self.show.advance(self.step)
+        if self.loop.first_loss is None:
+            self.loop.first_loss = stats.loss
+        return stats
+
+    def log_train(self, stats: StepStats) -> None:
+        line = {"step": self.step, "split": "train", "loss": stats.loss, "lr": stats.lr,
+                "grad_norm": stats.grad_norm, "tokens": self.step * self.s.tokens_per_step,
+                "tokens_per_s": self.window_tokens / self.window_time if self.window_time > 0 else 0.0,
+                "wall_s": self.wall()}
+        self.log(line)
+        self.show.step(line)
+        self.window_tokens, self.window_time = 0, 0.0
+
+    def validate(self) -> None:
+        s = self.s
+        result = evaluate(s.model, s.val_batches, s.runtime, is_task=bool(s.data.is_task), hooks=self.eval_hooks)
+        self.loop.last_val_loss = result["loss"]
+        if self.loop.best_val_loss is None or result["loss"] < self.loop.best_val_loss:
+            self.loop.best_val_loss = result["loss"]
+        line = {"step": self.step, "split": "val", **result, "wall_s": self.wall()}
+        self.log(line)
+        self.show.val(line)
+
+    def run(self, stop: StopRequest) -> dict[str, Any]:
+        """Steps until the budget is spent, the loss diverges or a stop is requested; the summary."""
+        cfg, total = self.cfg, self.s.total
+        while self.step < total and not stop.requested:
+            stats = self.train_one_step()
+            step = self.step
+            why = divergence(stats.loss, self.loop.first_loss, cfg.diverge_factor)
+            if why or step == 1 or step % cfg.log_every == 0 or step == total:
+                self.log_train(stats)
+            if why:
+                self.show.close()
+                self.show.message(f"diverged at step {step}: {why}; try a lower train.lr (now {cfg.lr:g})")
+                return self.finish("diverged", diverged={"step": step, "loss": stats.loss, "reason": why})
+            if step % cfg.eval_every == 0 or step == total:
+                self.validate()
+            if step % cfg.checkpoint_every == 0 or step == total or stop.requested:
+                self.save()
+                if step < total:
+                    self.finish("running")
+        self.show.close()
+        if stop.requested and self.step < total:
+            self.show.message(f"stopped at step {self.step}/{total} by {stop.name}; rerun the same command to resume")
+            return self.finish("interrupted", interrupted_by=stop.name)
+        summary = self.finish("done")
+        self.show.message(f"done: {self.out}  val loss {summary['final_val_loss']:.4f} "
+                          f"({summary['final_val_bits_per_token']:.3f} bits/token) after {self.step} steps "
+                          f"in {self.wall():.1f}s")
+        return summary
+
+    def resume_hint(self) -> str:
+        if self.saved_step is None:
+            return "no checkpoint was written yet; fix that, then rerun the same command"
+        return (f"the checkpoint of step {self.saved_step} stays the resume point; fix that (e.g. free space), "
+                "then rerun the same command to resume")
+
+    def record_failure(self, status: str, **extra: Any) -> None:
+        """A last summary on the way out; if even that cannot be written (full disk), the older one stays."""
+        if self.metrics is None:
+            return
+        try:
+            self.finish(status, **extra)
+        except (WriteFailed, OSError):
+            pass
+
+    def close(self) -> None:
+        if self.metrics is not None:
+            self.metrics.close()
+        if self.tb is not None:
+            self.tb.close()
 
 
 def _train(s: Setup, out: Path, action: str, show: Progress, eval_hooks: Sequence[EvalHook]) -> dict[str, Any]:
-    cfg = s.cfg.train
-    step, loop, metrics, tb = _start(s, out, action, show)
-    write_json(out / "env.json", environment(**s.runtime.facts(), start_time=_now(),
-                                              resumed_from_step=step if step else None, data=s.data.describe(),
-                                              mixer_check=s.mixer_check))
-    params = _param_counts(s.model)
-    if step == 0:
-        show.message(f"training {s.cfg.name or 'run'} ({s.cfg_hash}) into {out}: {params['total']:,} params "
-                     f"({params['non_embedding']:,} non-embedding), {s.total} steps x {s.tokens_per_step:,} tokens, "
-                     f"{s.runtime.device} x{s.runtime.threads} threads, {s.runtime.precision}")
-    rss = PeakRSS(loop.peak_rss_bytes)
-    t_start = time.perf_counter()
-    window_tokens, window_time = 0, 0.0
-
-    def wall() -> float:
-        return loop.wall_s + time.perf_counter() - t_start
-
-    def finish(status: str, **extra: Any) -> dict[str, Any]:
-        loop.peak_rss_bytes = rss.sample()
-        summary = build_summary(status, s, metrics, loop, step, wall(), **extra)
-        write_json(out / "summary.json", summary)
-        return summary
-
-    def save() -> None:
-        loop.peak_rss_bytes = rss.sample()
-        metrics.sync()
-        tb.flush()
-        state = asdict(loop) | {"wall_s": wall()}
-        ckpt.save_checkpoint(out / "checkpoints", step=step, config_hash=s.cfg_hash, model=s.model,
-                             optimizer=s.optimizer, scheduler=s.scheduler, loop=state, keep=cfg.keep_checkpoints)
-
-    def log(line: dict[str, Any]) -> None:
-        metrics.append(line)
-        tb.log(line)
-
-    finish("running")
-    show.start(s.total, step)
+    segment = _Segment(s, out, show, eval_hooks)
     try:
+        segment.open(action)
+        show.start(s.total, segment.step)
         with StopRequest(notify=show.message) as stop:
-            while step < s.total and not stop.requested:
-                step += 1
-                micro = [s.data.train_batch((step - 1) * cfg.grad_accum + i) for i in range(cfg.grad_accum)]
-                t0 = time.perf_counter()
-                stats = train_step(s.model, s.optimizer, s.scheduler, micro, s.runtime, cfg.grad_clip)
-                window_time += time.perf_counter() - t0
-                window_tokens += s.tokens_per_step
-                rss.sample()
-                show.advance(step)
-                if loop.first_loss is None:
-                    loop.first_loss = stats.loss
-                why = divergence(stats.loss, loop.first_loss, cfg.diverge_factor)
-                if why or step == 1 or step % cfg.log_every == 0 or step == s.total:
-                    line = {"step": step, "split": "train", "loss": stats.loss, "lr": stats.lr,
-                            "grad_norm": stats.grad_norm, "tokens": step * s.tokens_per_step,
-                            "tokens_per_s": window_tokens / window_time if window_time > 0 else 0.0,
-                            "wall_s": wall()}
-                    log(line)
-                    show.step(line)
-                    window_tokens, window_time = 0, 0.0
-                if why:
-                    show.close()
-                    show.message(f"diverged at step {step}: {why}; try a lower train.lr (now {cfg.lr:g})")
-                    return finish("diverged", diverged={"step": step, "loss": stats.loss, "reason": why})
-                if step % cfg.eval_every == 0 or step == s.total:
-                    result = evaluate(s.model, s.val_batches, s.runtime, is_task=bool(s.data.is_task),
-                                      hooks=eval_hooks)
-                    loop.last_val_loss = result["loss"]
-                    if loop.best_val_loss is None or result["loss"] < loop.best_val_loss:
-                        loop.best_val_loss = result["loss"]
-                    line = {"step": step, "split": "val", **result, "wall_s": wall()}
-                    log(line)
-                    show.val(line)
-                if step % cfg.checkpoint_every == 0 or step == s.total or stop.requested:
-                    save()
-                    if step < s.total:
-                        finish("running")
-            show.close()
-            if stop.requested and step < s.total:
-                show.message(f"stopped at step {step}/{s.total} by {stop.name}; rerun the same command to resume")
-                return finish("interrupted", interrupted_by=stop.name)
-        summary = finish("done")
-        show.message(f"done: {out}  val loss {summary['final_val_loss']:.4f} "
-                     f"({summary['final_val_bits_per_token']:.3f} bits/token) after {step} steps in {wall():.1f}s")
-        return summary
+            summary = segment.run(stop)
     except KeyboardInterrupt:
         show.close()
-        finish("interrupted", interrupted_by="SIGINT")
+        segment.record_failure("interrupted", interrupted_by="SIGINT")
+        segment.close()
         raise
+    except WriteFailed as e:
+        show.close()
+        segment.record_failure("failed", error=str(e))
+        with contextlib.suppress(WriteFailed, OSError):
+            segment.close()
+        raise e.with_hint(segment.resume_hint()) from None
     except BaseException as e:
         show.close()
-        finish("failed", error=f"{e.__class__.__name__}: {e}")
+        segment.record_failure("failed", error=f"{e.__class__.__name__}: {e}")
+        segment.close()
         raise
-    finally:
-        metrics.close()
-        tb.close()
+    segment.close()
+    return summary
 
 
 def exit_code(summary: dict[str, Any]) -> int:
-    """0 done, 3 diverged, 128 + signal number when interrupted (130 SIGINT, 143 SIGTERM)."""
+    """0 done, 3 diverged, 128 + signal number when interrupted (130 SIGINT, 143 SIGTERM).
+
+    Raised, not returned: 2 bad input or a busy run dir (UserError), 4 a file could not be written
+    (WriteFailed).
+    """
     status = summary.get("status")
     if status == "done":
         return 0
@@ -424,6 +538,8 @@ def exit_code(summary: dict[str, Any]) -> int:
     return 1
 
 
-def train_from_cli(cfg: Config, out: str | Path | None = None, force: bool = False, check: bool = True) -> int:
+def train_from_cli(cfg: Config, out: str | Path | None = None, force: bool = False, check: bool = True,
+                   wait_s: float = 0.0) -> int:
     """``blockyard train``: run into ``out`` (default :func:`default_run_dir`); the exit code."""
-    return exit_code(run_training(cfg, Path(out) if out else default_run_dir(cfg), force=force, check=check))
+    return exit_code(run_training(cfg, Path(out) if out else default_run_dir(cfg), force=force, check=check,
+                                  wait_s=wait_s))

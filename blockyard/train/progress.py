@@ -11,15 +11,7 @@ import sys
 import time
 from typing import Any, TextIO
 
-
-def format_duration(seconds: float) -> str:
-    """``75.2`` -> ``1m15s``; ``3725`` -> ``1h02m``."""
-    s = max(0, int(round(seconds)))
-    if s < 60:
-        return f"{s}s"
-    if s < 3600:
-        return f"{s // 60}m{s % 60:02d}s"
-    return f"{s // 3600}h{(s % 3600) // 60:02d}m"
+from blockyard.rundir import format_duration
 
 
 class Progress:

@@ -8,9 +8,9 @@
   ``step, split="val", loss, bits_per_token`` and ``accuracy`` on synthetic tasks, ``wall_s``
 
 ``loss`` is in nats per target token. Non-finite numbers are written as ``null`` (strict JSON).
-The timing fields (:data:`TIMING_FIELDS`) differ between two runs of the same config; every other
+The timing fields (``rundir.TIMING_FIELDS``) differ between two runs of the same config; every other
 field is a deterministic function of the config (same machine and thread count), which is what
-exact resume promises.
+exact resume promises. Reading a run dir back (without torch) is ``blockyard.rundir``'s job.
 """
 
 from __future__ import annotations
@@ -22,62 +22,16 @@ import platform
 import socket
 import subprocess
 import sys
-import tempfile
+import threading
 from pathlib import Path
 from typing import Any
 
 import torch
 
-#: ``blockyard eval``'s results inside a run dir (they describe one checkpoint of one config).
-EVAL_FILE = "eval.json"
+from blockyard import fs
+from blockyard.rundir import read_metrics
 
-#: Files and folders a run owns inside its dir; ``--force`` removes these and nothing else.
-RECORD_NAMES = ("config.yaml", "metrics.jsonl", "summary.json", "env.json", "checkpoints", "tb", EVAL_FILE,
-                "plugins")
-
-#: Fields that measure time and so differ between otherwise identical runs.
-TIMING_FIELDS = ("tokens_per_s", "wall_s")
-
-
-# ----------------------------------------------------------------------------- atomic files
-
-
-def fsync_dir(path: Path) -> None:
-    """Make a rename inside ``path`` durable (POSIX: the directory entry lives in the dir)."""
-    try:
-        fd = os.open(path, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
-
-
-def atomic_write(path: Path, write: Any) -> None:
-    """Write ``path`` via ``write(fileobj)`` into a temp file of the same dir, fsync, then rename.
-
-    A reader (or a later resume) sees either the old file or the complete new one, never a
-    partial write, even after a crash or ``kill -9``.
-    """
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as f:
-            write(f)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    fsync_dir(path.parent)
-
-
-def atomic_write_text(path: Path, text: str) -> None:
-    atomic_write(path, lambda f: f.write(text.encode()))
+# ----------------------------------------------------------------------------- json records
 
 
 def json_safe(value: Any) -> Any:
@@ -91,48 +45,12 @@ def json_safe(value: Any) -> Any:
     return value
 
 
-def write_json(path: Path, data: dict[str, Any]) -> None:
-    atomic_write_text(path, json.dumps(json_safe(data), indent=2) + "\n")
-
-
-def read_json(path: Path) -> dict[str, Any] | None:
-    """The JSON object in ``path``, or None when missing or unreadable."""
-    try:
-        data = json.loads(Path(path).read_text())
-    except (OSError, ValueError):
-        return None
-    return data if isinstance(data, dict) else None
+def write_json(path: Path, data: dict[str, Any], *, what: str = "") -> None:
+    """``data`` as indented JSON, written atomically (``what`` names it in a write-failure message)."""
+    fs.atomic_write_text(path, json.dumps(json_safe(data), indent=2) + "\n", what=what or Path(path).name)
 
 
 # ----------------------------------------------------------------------------- metrics.jsonl
-
-
-def parse_metrics(text: str) -> list[dict[str, Any]]:
-    """The metric lines of ``text``, stopping at the first unparseable line (a write cut by a kill)."""
-    lines = []
-    for raw in text.splitlines():
-        if not raw.strip():
-            continue
-        try:
-            line = json.loads(raw)
-        except ValueError:
-            break
-        if not isinstance(line, dict) or "step" not in line:
-            break
-        lines.append(line)
-    return lines
-
-
-def read_metrics(path: Path) -> list[dict[str, Any]]:
-    try:
-        return parse_metrics(Path(path).read_text())
-    except FileNotFoundError:
-        return []
-
-
-def without_timing(line: dict[str, Any]) -> dict[str, Any]:
-    """A metric line minus :data:`TIMING_FIELDS`: what two identical runs agree on exactly."""
-    return {k: v for k, v in line.items() if k not in TIMING_FIELDS}
 
 
 def format_line(line: dict[str, Any]) -> str:
@@ -140,12 +58,16 @@ def format_line(line: dict[str, Any]) -> str:
 
 
 class MetricsLog:
-    """Appends lines to ``metrics.jsonl`` and keeps them in memory for the summary."""
+    """Appends lines to ``metrics.jsonl`` and keeps them in memory for the summary.
+
+    Each line is appended whole or not at all (``fs.append_all``): a full disk leaves no half line.
+    """
 
     def __init__(self, path: Path, lines: list[dict[str, Any]] | None = None) -> None:
         self.path = Path(path)
         self.lines: list[dict[str, Any]] = list(lines or [])
-        self._file = open(self.path, "a", encoding="utf-8")  # noqa: SIM115 - closed in close()
+        with fs.reporting(self.path, "the metrics"):
+            self._fd: int | None = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
 
     @classmethod
     def resume(cls, path: Path, step: int) -> MetricsLog:
@@ -155,23 +77,24 @@ class MetricsLog:
         the resumed run, so they are dropped; the file is rewritten atomically.
         """
         kept = [line for line in read_metrics(path) if line["step"] <= step]
-        atomic_write_text(path, "".join(format_line(line) for line in kept))
+        fs.atomic_write_text(path, "".join(format_line(line) for line in kept), what="the metrics")
         return cls(path, kept)
 
     def append(self, line: dict[str, Any]) -> None:
-        self._file.write(format_line(line))
-        self._file.flush()
+        assert self._fd is not None, "append after close"
+        fs.append_all(self._fd, format_line(line).encode(), self.path, f"the metrics line of step {line['step']}")
         self.lines.append(line)
 
     def sync(self) -> None:
         """Make the lines written so far durable (called with each checkpoint)."""
-        self._file.flush()
-        os.fsync(self._file.fileno())
+        if self._fd is not None:
+            with fs.reporting(self.path, "the metrics"):
+                os.fsync(self._fd)
 
     def close(self) -> None:
-        if not self._file.closed:
-            self._file.flush()
-            self._file.close()
+        if self._fd is not None:
+            os.close(self._fd)
+            self._fd = None
 
     def of_split(self, split: str) -> list[dict[str, Any]]:
         return [line for line in self.lines if line.get("split") == split]
@@ -190,22 +113,51 @@ class TensorBoardLog:
     def __init__(self, log_dir: Path, purge_step: int | None = None) -> None:
         from torch.utils.tensorboard import SummaryWriter
 
-        self.writer = SummaryWriter(log_dir=str(log_dir), purge_step=purge_step)
+        _quiet_event_thread_errors()
+        self.log_dir = Path(log_dir)
+        with self._reporting():
+            self.writer = SummaryWriter(log_dir=str(log_dir), purge_step=purge_step)
+
+    def _reporting(self) -> Any:
+        return fs.reporting(self.log_dir, "TensorBoard events")
 
     def log(self, line: dict[str, Any]) -> None:
         step, split = line["step"], line["split"]
-        for key, value in line.items():
-            if key in ("step", "split") or isinstance(value, bool) or not isinstance(value, (int, float)):
-                continue
-            if isinstance(value, float) and not math.isfinite(value):
-                continue
-            self.writer.add_scalar(f"{split}/{key}", value, global_step=step)
+        with self._reporting():
+            for key, value in line.items():
+                if key in ("step", "split") or isinstance(value, bool) or not isinstance(value, (int, float)):
+                    continue
+                if isinstance(value, float) and not math.isfinite(value):
+                    continue
+                self.writer.add_scalar(f"{split}/{key}", value, global_step=step)
 
     def flush(self) -> None:
-        self.writer.flush()
+        with self._reporting():
+            self.writer.flush()
 
     def close(self) -> None:
-        self.writer.close()
+        with self._reporting():
+            self.writer.close()
+
+
+def _quiet_event_thread_errors() -> None:
+    """Keep an OSError of TensorBoard's writer thread from printing a thread traceback.
+
+    TensorBoard writes events from a background thread, which stores the error and re-raises it at
+    the next ``add_scalar`` / ``flush`` in the main thread; there :class:`TensorBoardLog` turns it
+    into the one-line write failure. Other threads' errors still reach the previous hook.
+    """
+    previous = threading.excepthook
+    if getattr(previous, "blockyard_quiet_events", False):
+        return
+
+    def hook(args: Any) -> None:
+        if isinstance(args.exc_value, OSError) and type(args.thread).__name__ == "_AsyncWriterThread":
+            return
+        previous(args)
+
+    hook.blockyard_quiet_events = True  # type: ignore[attr-defined]
+    threading.excepthook = hook
 
 
 # ----------------------------------------------------------------------------- env.json

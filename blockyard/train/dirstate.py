@@ -2,7 +2,8 @@
 
 The decision reads the dir only; nothing is removed until the caller has validated the new
 config, data and model (:func:`clear_records`), so a refused or failing command leaves the dir
-exactly as it was. ``--force`` removes only the run's own records (``records.RECORD_NAMES``).
+exactly as it was. ``--force`` removes only the run's own records (``rundir.RECORD_NAMES``).
+The caller holds the run dir's writer lock (``rundir.writing``) around all of this.
 """
 
 from __future__ import annotations
@@ -17,7 +18,7 @@ import yaml
 from blockyard.config import Config, config_from_dict, config_hash, dict_hash
 from blockyard.errors import UserError
 from blockyard.mixers.plugins import copy_plugins, is_loaded, resolve_plugin_paths
-from blockyard.train.records import RECORD_NAMES, read_json
+from blockyard.rundir import CONFIG_FILE, RECORD_NAMES, is_empty, read_summary
 
 
 @dataclass(frozen=True)
@@ -48,15 +49,15 @@ def stored_config_hash(path: Path) -> str | None:
 
 
 def inspect_run_dir(out: Path, cfg_hash: str) -> DirState:
-    if not out.exists() or (out.is_dir() and not any(out.iterdir())):
-        return DirState("new")
-    if not out.is_dir():
+    if out.exists() and not out.is_dir():
         raise UserError(f"{out}: exists and is not a directory (pass another --out)")
-    config_file = out / "config.yaml"
+    if is_empty(out):
+        return DirState("new")
+    config_file = out / CONFIG_FILE
     if not config_file.exists():
         return DirState("foreign")
     stored = stored_config_hash(config_file)
-    summary = read_json(out / "summary.json")
+    summary = read_summary(out)
     return DirState("same" if stored == cfg_hash else "other", summary=summary, stored_hash=stored)
 
 
@@ -101,9 +102,3 @@ def clear_records(out: Path) -> None:
         for tmp in out.glob(f".{name}.*.tmp"):
             tmp.unlink(missing_ok=True)
 
-
-def remove_temp_files(folder: Path) -> None:
-    """Drop temp files an interrupted atomic write left behind (``.NAME.XXXX.tmp``)."""
-    if folder.is_dir():
-        for tmp in folder.glob(".*.tmp"):
-            tmp.unlink(missing_ok=True)
