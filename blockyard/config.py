@@ -292,20 +292,32 @@ def parse_override(item: str) -> tuple[list[str], Any]:
     return key.split("."), value
 
 
+def set_dotted(data: dict[str, Any], key: str, value: Any) -> None:
+    """``data[a][b][c] = value`` for ``key = 'a.b.c'``, creating sections on the way (values as given).
+
+    The one walk down a dotted key path, shared by ``--set`` and the grid's overrides.
+    """
+    parts = key.split(".")
+    node = data
+    for i, part in enumerate(parts[:-1]):
+        nxt = node.get(part)
+        if nxt is None:
+            nxt = node[part] = {}
+        if not isinstance(nxt, dict):
+            raise ConfigError(key, f"{'.'.join(parts[: i + 1])} is a value, not a section")
+        node = nxt
+    node[parts[-1]] = copy.deepcopy(value)
+
+
 def apply_overrides(data: dict[str, Any], overrides: list[str] | tuple[str, ...]) -> dict[str, Any]:
     """Set each ``key.path=value`` into a copy of ``data``, creating mappings on the way."""
     out = copy.deepcopy(data)
     for item in overrides:
         keys, value = parse_override(item)
-        node = out
-        for i, k in enumerate(keys[:-1]):
-            nxt = node.get(k)
-            if nxt is None:
-                nxt = node[k] = {}
-            if not isinstance(nxt, dict):
-                raise UserError(f"--set {item!r}: {'.'.join(keys[: i + 1])} is not a section")
-            node = nxt
-        node[keys[-1]] = value
+        try:
+            set_dotted(out, ".".join(keys), value)
+        except ConfigError as e:
+            raise UserError(f"--set {item!r}: {str(e).removeprefix(e.path + ': ')}") from None
     return out
 
 

@@ -39,7 +39,7 @@ import re
 from pathlib import Path
 from typing import Any
 
-from blockyard.config import Config, config_from_dict, read_yaml, resolve_extends
+from blockyard.config import Config, config_from_dict, read_yaml, resolve_extends, set_dotted
 from blockyard.errors import ConfigError, UserError
 from blockyard.grid.ladder import LADDER_KEYS, RUNG, Ladder, check_conflicts, parse_ladder, rung_overrides, rung_points
 from blockyard.grid.tuning import Tuning, check_tuned_key, parse_tuning, value_for
@@ -347,20 +347,6 @@ def config_with(base: dict[str, Any], overrides: dict[str, Any]) -> Config:
         set_dotted(data, key, value)
     _default_mixer_kinds(data)
     return config_from_dict(data)
-
-
-def set_dotted(data: dict[str, Any], key: str, value: Any) -> None:
-    """``data[a][b][c] = value`` for ``key = 'a.b.c'``, creating sections on the way (values as given)."""
-    parts = key.split(".")
-    node = data
-    for i, part in enumerate(parts[:-1]):
-        nxt = node.get(part)
-        if nxt is None:
-            nxt = node[part] = {}
-        if not isinstance(nxt, dict):
-            raise ConfigError(key, f"{'.'.join(parts[: i + 1])} is a value, not a section")
-        node = nxt
-    node[parts[-1]] = copy.deepcopy(value)
 
 
 def _default_mixer_kinds(data: dict[str, Any]) -> None:
