@@ -19,6 +19,7 @@ from pathlib import Path
 
 import pytest
 import torch
+from torch.utils._python_dispatch import TorchDispatchMode
 
 from blockyard.bench import quality as bench_quality
 from blockyard.bench import speed as bench_speed
@@ -96,6 +97,61 @@ def test_plain_train_step_decreases_the_loss_on_a_repeated_batch():
     assert last < 0.5 * first  # memorising one batch: a broken backward or optimizer would not
 
 
+class _OpLog(TorchDispatchMode):
+    """Records the name of every aten op dispatched (forward, backward and optimizer alike)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.ops: list[str] = []
+
+    def __torch_dispatch__(self, func, types, args=(), kwargs=None):
+        self.ops.append(str(func))
+        return func(*args, **(kwargs or {}))
+
+
+@pytest.mark.parametrize("bf16", [False, True])
+def test_plain_train_step_does_exactly_what_a_hand_written_step_does(bf16):
+    # The honest reference: the benchmark's plain step dispatches the very ops of the textbook loop
+    # (forward, cross-entropy, backward, optimizer.step(), zero_grad(); common practice, no source),
+    # one by one in the same order, and ends with the same weights. Any extra pass (a copy, a norm,
+    # a sync) would show up as an extra op. bf16: the ops of autocast, whether or not this CPU is fast at them.
+    shape = PlainShape(vocab=64, width=32, depth=2, heads=2, mlp_hidden=64)
+    x, y = random_batches(64, 2, 16, 1)[0]
+    logs, models = [], []
+    for hand_written in (False, True):
+        torch.manual_seed(0)
+        model = PlainTransformer(shape, 16)
+        opt = plain_optimizer(model)
+        plain_train_step(model, opt, x, y, bf16=bf16)  # AdamW's state exists from here on: a steady step
+        with _OpLog() as log:
+            if hand_written:
+                with torch.autocast("cpu", dtype=torch.bfloat16, enabled=bf16):
+                    logits = model(x)
+                loss = torch.nn.functional.cross_entropy(logits.float().flatten(0, 1), y.flatten())
+                loss.backward()
+                opt.step()
+                opt.zero_grad()
+            else:
+                plain_train_step(model, opt, x, y, bf16=bf16)
+        logs.append(log.ops)
+        models.append(model)
+    assert len(logs[0]) > 100 and logs[0] == logs[1]
+    for a, b in zip(models[0].parameters(), models[1].parameters(), strict=True):
+        assert torch.equal(a, b)
+
+
+def test_median_ratio_brackets_each_blockyard_figure_by_the_plain_ones_around_it():
+    # Rounds plain, blockyard, plain, blockyard, plain: a load that slows everything by the same
+    # factor within a round cancels. Round 1: 90 / mean(100, 80) = 1.0; round 2: 72 / mean(80, 60)
+    # = 1.0286; the closing pass holds the plain figure only. Other ratios stay within one round.
+    rounds = [{"plain-fp32": 100.0, "attention-fp32": 90.0, "recurrence-fp32": 45.0},
+              {"plain-fp32": 80.0, "attention-fp32": 72.0, "recurrence-fp32": 40.0},
+              {"plain-fp32": 60.0}]
+    assert bench_speed._median_ratio(rounds, "attention-fp32", "plain-fp32") == pytest.approx((1.0 + 72 / 70) / 2)
+    assert bench_speed._median_ratio(rounds, "recurrence-fp32", "attention-fp32") == pytest.approx(
+        (0.5 + 40 / 72) / 2)
+
+
 def test_loop_tokens_per_s_reads_wall_clock_between_log_lines():
     lines = [{"split": "train", "step": 1, "tokens": 100, "wall_s": 1.0},
              {"split": "train", "step": 10, "tokens": 1000, "wall_s": 5.0},
@@ -138,7 +194,7 @@ def test_bench_json_has_the_fields_a_comparison_reads(tmp_path, monkeypatch):
     assert result["ratios"]["blockyard_over_plain_fp32"] > 0
     assert result["ratios"]["recurrence_over_attention_s256"] > 0
     assert result["ratios"]["bf16_over_fp32_attention"] is None  # not measured in this run
-    assert {t["name"] for t in result["targets"]} >= {"blockyard / plain loop tokens/s, global attention fp32"}
+    assert {t["name"] for t in result["targets"]} >= {"blockyard train / plain loop tokens/s, global attention fp32"}
     assert "chunked" in result["scan"]["backends"]
     shares = result["profile"]["attention-fp32"]["share"]
     assert sum(shares.values()) == pytest.approx(1.0)
@@ -462,7 +518,7 @@ def test_without_bf16_units_the_speed_benchmark_skips_bf16_cases(tmp_path, monke
              BenchCase("attention-bf16", "global_attention", 32, 2, "bf16", width=32, depth=1))
     result = run_bench(steps=11, warmup=1, rounds=1, profile=False, cases=cases, log=lambda s: None,
                              gemm_n=64, copy_bytes=2**20, scan_shape=(2, 32, 16))
-    assert plain_calls == [False]
+    assert plain_calls == [False, False]  # the round's fp32 twin and the closing plain pass
     assert {row["name"] for row in result["configs"]} == {"plain-fp32", "attention-fp32"}
     assert "gemm_bf16_gflops" not in result["peaks"]
     assert result["skipped"] == {"cases": ["attention-bf16"], "reason": "simulated AVX2 CPU"}

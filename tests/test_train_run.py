@@ -568,3 +568,74 @@ def test_token_budget_sets_the_number_of_steps(workdir):
     summary = run_training(cfg, workdir / "budget_run", progress="silent")
     # ceil(1000 / (batch 4 x accum 1 x seq 32)) = ceil(7.8) = 8 steps
     assert summary["steps"] == summary["total_steps"] == 8 and summary["tokens_seen"] == 8 * 128
+
+
+# ----------------------------------------------------------------------------- runtime.compile
+
+COMPILED = {"model": {"width": 32, "depth": 2, "pattern": ["recurrence", "global_attention"]},
+            "train": {"steps": 6, "log_every": 1, "eval_every": 3, "checkpoint_every": 3},
+            "runtime": {"compile": True}}
+
+
+@pytest.mark.slow
+def test_compiled_run_trains_resumes_exactly_and_its_checkpoint_loads_eagerly(workdir, capsys):
+    """A compiled run (recurrence: the fused op's fake kernel traced; attention: SDPA) trains, resumes
+    exactly, and its checkpoint loads into an uncompiled model that computes the same val loss."""
+    import torch
+
+    from blockyard.data import load_data
+    from blockyard.model import build_model
+    from blockyard.train import evaluate
+    from blockyard.train.checkpoint import latest_valid_checkpoint
+
+    cfg = load_config(write_config(workdir, "compiled", **COMPILED))
+    whole, parts = workdir / "compiled_whole", workdir / "compiled_parts"
+    assert run_training(cfg, whole, progress="silent")["status"] == "done"
+    env = json.loads((whole / "env.json").read_text())
+    assert env["compile"]["requested"] and env["compile"]["active"], env["compile"]
+    assert "warning: runtime.compile" not in capsys.readouterr().err
+    assert run_training(cfg, parts, progress=SignalAt(3))["status"] == "interrupted"
+    assert run_training(cfg, parts, progress="silent")["status"] == "done"
+    assert comparable(parts) == comparable(whole)
+
+    found = latest_valid_checkpoint(whole / "checkpoints", config_hash(cfg))
+    assert not any(k.startswith("_orig_mod.") for k in found.state["model"])
+    runtime, _ = runtime_mod.resolve_runtime(cfg.runtime)
+    data = load_data(cfg)
+    eager = build_model(cfg.model, data.vocab_size, scan_backend=runtime.scan_backend)
+    eager.load_state_dict(found.state["model"])  # strict: the same keys as the eager module's
+    assert "forward" not in vars(eager)
+    with torch.no_grad():
+        loss = evaluate(eager, data.val_batches(), runtime, is_task=False)["loss"]
+    # Compiled kernels fuse elementwise ops, so the last bits may differ from eager (fp32).
+    assert loss == pytest.approx(read_metrics(whole / "metrics.jsonl")[-1]["loss"], rel=1e-5)
+
+
+def test_compile_failure_trains_eagerly_with_a_warning(workdir, monkeypatch, capsys):
+    """Where torch.compile fails (here: a simulated compiler error at the first call), the run warns,
+    records why in env.json and trains exactly as an eager run (the trial step leaves no trace)."""
+    import torch
+
+    from blockyard.train import compile as compile_mod
+
+    def failing_compile(fn):
+        def compiled(*args, **kwargs):
+            raise RuntimeError("simulated: no C++ compiler\nfound")
+        return compiled
+
+    monkeypatch.setattr(compile_mod.torch, "compile", failing_compile)
+    small = {"train": {"steps": 4}}
+    eager = run_training(load_config(write_config(workdir, "eager", **small)), workdir / "eager_run",
+                         progress="silent")
+    cfg = load_config(write_config(workdir, "nocompile", **small, runtime={"compile": True}))
+    out = workdir / "nocompile_run"
+    summary = run_training(cfg, out, progress="silent")
+    err = capsys.readouterr().err
+    assert ("warning: runtime.compile: torch.compile failed, training eagerly (RuntimeError: simulated: no C++ "
+            "compiler found)") in err, err
+    env = json.loads((out / "env.json").read_text())
+    assert env["compile"] == {"requested": True, "active": False,
+                              "reason": "RuntimeError: simulated: no C++ compiler found"}
+    assert summary["final_val_loss"] == eager["final_val_loss"]
+    assert comparable(out) == comparable(workdir / "eager_run")
+    assert torch.compile is failing_compile  # the monkeypatch reached the module that compiles

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import dataclasses
 import itertools
+import json
 import tempfile
 from pathlib import Path
 from typing import Any
@@ -24,6 +25,7 @@ class BenchCase:
     precision: str = "fp32"
     width: int = 256
     depth: int = 4
+    compile: bool = False  # runtime.compile (its warm-up runs before the loop's clock starts)
 
     @property
     def tokens_per_step(self) -> int:
@@ -39,6 +41,8 @@ CASES = (
     BenchCase("recurrence-bf16", "recurrence", 256, 16, "bf16"),
     BenchCase("attention-fp32-s2048", "global_attention", 2048, 2),
     BenchCase("recurrence-fp32-s2048", "recurrence", 2048, 2),
+    BenchCase("attention-fp32-compiled", "global_attention", 256, 16, compile=True),
+    BenchCase("recurrence-fp32-compiled", "recurrence", 256, 16, compile=True),
 )
 # Plain-loop twins of blockyard's cases (same shapes, same precision).
 PLAIN_TWINS = {"attention-fp32": "plain-fp32", "attention-bf16": "plain-bf16"}
@@ -57,7 +61,7 @@ def blockyard_config(case: BenchCase, steps: int, cache_dir: str | Path, threads
         "data": {"corpus": "pydoc", "tokenizer": "bytes", "seq_len": case.seq_len, "cache_dir": str(cache_dir)},
         "train": {"steps": steps, "batch_size": case.batch, "eval_every": steps, "checkpoint_every": steps,
                   "eval_windows": 2, "log_every": 10, **train},
-        "runtime": {"precision": case.precision, "threads": threads},
+        "runtime": {"precision": case.precision, "threads": threads, "compile": case.compile},
     })
 
 
@@ -84,6 +88,10 @@ def blockyard_run(case: BenchCase, steps: int, warmup: int, cache_dir: Path, thr
     with tempfile.TemporaryDirectory(prefix="blockyard-bench-") as tmp:
         summary = run_training(cfg, Path(tmp) / "run", progress="warnings")
         metrics = read_metrics(Path(tmp) / "run" / "metrics.jsonl")
+        compiled = json.loads((Path(tmp) / "run" / "env.json").read_text())["compile"]
     if summary.get("status") != "done":  # e.g. stopped by SIGTERM: its speed is no measurement
         raise RuntimeError(f"bench run {case.name} ended {summary.get('status')!r}, not 'done'")
-    return {"tokens_per_s": loop_tokens_per_s(metrics, warmup), "summary": summary, "config": cfg}
+    if case.compile and not compiled["active"]:  # an eager figure under a compiled name would mislead
+        raise RuntimeError(f"bench run {case.name}: torch.compile failed ({compiled.get('reason')})")
+    return {"tokens_per_s": loop_tokens_per_s(metrics, warmup), "summary": summary, "config": cfg,
+            "compile": compiled}

@@ -40,6 +40,8 @@ RATIO_PAIRS = {
     "bf16_over_fp32_plain": ("plain-bf16", "plain-fp32"),
     "recurrence_over_attention_s256": ("recurrence-fp32", "attention-fp32"),
     "recurrence_over_attention_s2048": ("recurrence-fp32-s2048", "attention-fp32-s2048"),
+    "compiled_over_eager_attention": ("attention-fp32-compiled", "attention-fp32"),
+    "compiled_over_eager_recurrence": ("recurrence-fp32-compiled", "recurrence-fp32"),
 }
 
 
@@ -76,6 +78,10 @@ def _run_bench(steps: int, warmup: int, rounds: int, profile: bool, cases: tuple
             peaks.append(_peaks(result["machine"]["bf16"], gemm_n, copy_bytes))
             speeds, runs = _round(cases, steps, warmup, cache_dir, threads, log)
             per_round.append(speeds)
+        # A closing pass of the plain loop alone: each blockyard figure then sits between two plain
+        # ones (plain, blockyard, plain, blockyard, plain), and _median_ratio compares it with both.
+        log("closing plain pass ...")
+        per_round.append(_plain_pass(cases, steps, warmup, log))
         # A peak is a ceiling: the best round's measurement is the least disturbed one.
         result["peaks"] = {key: max(p[key] for p in peaks) for key in peaks[0]}
         result["peaks_per_round"] = peaks
@@ -117,17 +123,32 @@ def _peaks(bf16: bool, gemm_n: int, copy_bytes: int) -> dict[str, float]:
     return peak | {"copy_gbytes_per_s": copy_gbytes_per_s(copy_bytes)}
 
 
+def _plain_twin(case: BenchCase, steps: int, warmup: int) -> float:
+    """Tokens/s of the plain reference loop at ``case``'s shape and precision."""
+    shape = PlainShape(width=case.width, depth=case.depth, mlp_hidden=3 * case.width)
+    return plain_tokens_per_s(shape, case.batch, case.seq_len, steps - warmup, warmup,
+                              bf16=case.precision == "bf16")
+
+
+def _plain_pass(cases: tuple[BenchCase, ...], steps: int, warmup: int,
+                log: Callable[[str], None]) -> dict[str, float]:
+    """The plain twins alone, once each."""
+    speeds = {}
+    for case in cases:
+        if twin := PLAIN_TWINS.get(case.name):
+            speeds[twin] = _plain_twin(case, steps, warmup)
+            log(f"  {twin:<24} {speeds[twin]:>9.0f} tokens/s")
+    return speeds
+
+
 def _round(cases: tuple[BenchCase, ...], steps: int, warmup: int, cache_dir: Path, threads: int,
            log: Callable[[str], None]) -> tuple[dict[str, float], dict[str, Any]]:
     """One pass over the plain loop and every case: tokens/s by name, and blockyard's summaries."""
     speeds: dict[str, float] = {}
     summaries: dict[str, Any] = {}
     for case in cases:
-        twin = PLAIN_TWINS.get(case.name)
-        if twin:
-            shape = PlainShape(width=case.width, depth=case.depth, mlp_hidden=3 * case.width)
-            speeds[twin] = plain_tokens_per_s(shape, case.batch, case.seq_len, steps - warmup, warmup,
-                                              bf16=case.precision == "bf16")
+        if twin := PLAIN_TWINS.get(case.name):
+            speeds[twin] = _plain_twin(case, steps, warmup)
             log(f"  {twin:<24} {speeds[twin]:>9.0f} tokens/s")
         run = blockyard_run(case, steps, warmup, cache_dir, threads)
         speeds[case.name] = run["tokens_per_s"]
@@ -138,11 +159,11 @@ def _round(cases: tuple[BenchCase, ...], steps: int, warmup: int, cache_dir: Pat
 
 def _profiles(cases: tuple[BenchCase, ...], cache_dir: Path, threads: int,
               log: Callable[[str], None]) -> dict[str, Any]:
-    """A profiled step of each fp32 case at the shortest sequence length."""
+    """A profiled (eager) step of each case at the shortest sequence length, fp32 and bf16."""
     out = {}
     shortest = min(c.seq_len for c in cases)
     for case in cases:
-        if case.seq_len == shortest and case.precision == "fp32":
+        if case.seq_len == shortest and not case.compile:
             log(f"profile {case.name} ...")
             out[case.name] = profile_step(case, cache_dir, threads=threads)
     return out
@@ -160,8 +181,17 @@ def _ratio(rounds: list[dict[str, float]], num: str, den: str) -> float | None:
 
 
 def _median_ratio(rounds: list[dict[str, float]], num: str, den: str) -> float | None:
-    """Median over rounds of num/den measured in the same round (the better figure under steady load)."""
-    values = [r[num] / r[den] for r in rounds if num in r and den in r]
+    """Median over rounds of num/den measured in the same round (the better figure under steady load).
+
+    Where ``den`` is the plain loop (measured before each round's blockyard case and once more at
+    the end), ``num`` is compared with the mean of the ``den`` before and after
+    it, so a drift of the load during the round cancels to first order.
+    """
+    values = []
+    for i, r in enumerate(rounds):
+        if num in r and den in r:
+            after = rounds[i + 1].get(den) if i + 1 < len(rounds) and den.startswith("plain") else None
+            values.append(r[num] / (r[den] if after is None else (r[den] + after) / 2))
     return statistics.median(values) if values else None
 
 

@@ -48,6 +48,7 @@ from blockyard.rundir import (
 )
 from blockyard.train import checkpoint as ckpt
 from blockyard.train.dirstate import clear_records, inspect_run_dir, keep_plugin_copies, plan_run_dir
+from blockyard.train.compile import compile_for_training, compile_warning
 from blockyard.train.memory import PeakRSS
 from blockyard.train.optim import build_optimizer, build_scheduler, tokens_per_step, total_steps
 from blockyard.train.progress import Progress, make_progress
@@ -191,6 +192,7 @@ class Setup:
     scheduler: Any
     total: int
     tokens_per_step: int
+    compiled: dict[str, Any]  # runtime.compile: requested, active, warm-up or why not (env.json)
     mixer_check: str = ""  # what the contract gate on plugin mixers found (env.json)
 
 
@@ -211,11 +213,12 @@ def _build(cfg: Config, cfg_hash: str, runtime: Runtime) -> Setup:
                         scan_backend=runtime.scan_backend)
     model.to(runtime.device)
     model.train()
+    compiled = compile_for_training(model, runtime, data.train_batch(0))
     optimizer = build_optimizer(model, cfg.train)
     total = total_steps(cfg.train, cfg.data.seq_len)
     scheduler = build_scheduler(optimizer, cfg.train, total)
     return Setup(cfg, cfg_hash, runtime, data, val_batches, model, optimizer, scheduler, total,
-                 tokens_per_step(cfg.train, cfg.data.seq_len))
+                 tokens_per_step(cfg.train, cfg.data.seq_len), compiled)
 
 
 def _param_counts(model: nn.Module) -> dict[str, int]:
@@ -297,6 +300,8 @@ def run_training(
             from blockyard.cost.memory import warn_if_too_large  # activations that will not fit: say so first
 
             warn_if_too_large(cfg, s.data.vocab_size, lambda m: show.message(f"warning: {m}"))
+            if warning := compile_warning(s.compiled):
+                show.message(f"warning: {warning}")
             _warn_if_disk_short(out, s, show)
             from blockyard.eval.probes import make_eval_hook  # eval.probes; builds (and checks) the probes first
 
@@ -374,7 +379,7 @@ class _Segment:
         self.saved_step = self.step or None
         self.rss = PeakRSS(self.loop.peak_rss_bytes)
         self.t_start = time.perf_counter()
-        write_json(self.out / ENV_FILE, environment(**s.runtime.facts(), start_time=_now(),
+        write_json(self.out / ENV_FILE, environment(**s.runtime.facts(), compile=s.compiled, start_time=_now(),
                                                     resumed_from_step=self.step or None, data=s.data.describe(),
                                                     mixer_check=s.mixer_check),
                    what="the run's environment")

@@ -28,6 +28,7 @@ class Runtime:
     precision_reason: str
     scan_backend: str  # runtime.scan as requested; passed to build_model (no process-wide default)
     scan: dict[str, Any]  # what it resolves to and the kernels' build status, for env.json
+    compile: bool = False  # runtime.compile: torch.compile the model for training (blockyard.train.compile)
 
     @contextlib.contextmanager
     def autocast(self) -> Iterator[None]:
@@ -154,5 +155,6 @@ def resolve_runtime(cfg: RuntimeConfig) -> tuple[Runtime, list[str]]:
     device = resolve_device(cfg.device)
     precision, reason, warning = resolve_precision(cfg.precision, device)
     runtime = Runtime(device=device, threads=resolve_threads(cfg.threads), precision=precision,
-                      precision_reason=reason, scan_backend=cfg.scan, scan=describe_scan(cfg.scan))
+                      precision_reason=reason, scan_backend=cfg.scan, scan=describe_scan(cfg.scan),
+                      compile=cfg.compile)
     return runtime, [warning] if warning else []
