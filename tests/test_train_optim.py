@@ -173,6 +173,25 @@ def test_grad_clip_reports_norm_before_clipping():
     assert step_norm == pytest.approx(clip, rel=1e-4)
 
 
+@pytest.mark.parametrize("fraction", [0.1, 0.9999999, 1.0, 10.0])
+def test_grad_clip_equals_torchs_clip_grad_norm_bit_for_bit(fraction):
+    # The trainer skips torch's multiply by a factor of exactly 1 (no clipping); everywhere else it
+    # must leave the very gradients torch.nn.utils.clip_grad_norm_ leaves, to the last bit.
+    cfg = _cfg()
+    torch.manual_seed(0)
+    model = build_model(cfg.model, 40)
+    x = torch.randint(0, 40, (4, 16), generator=torch.Generator().manual_seed(2))
+    ref = copy.deepcopy(model)
+    ref_loss, n = token_loss_sum(ref(x), x.roll(1, 1))
+    (ref_loss / n).backward()
+    norm = torch.nn.utils.get_total_norm([p.grad for p in ref.parameters()])
+    torch.nn.utils.clip_grad_norm_(ref.parameters(), float(norm) * fraction)
+    opt = torch.optim.SGD(model.parameters(), lr=0.0)  # plain SGD leaves the gradients as the step saw them
+    train_step(model, opt, torch.optim.lr_scheduler.LambdaLR(opt, lambda _: 1.0), [(x, x.roll(1, 1))], CPU,
+               grad_clip=float(norm) * fraction)
+    assert all(torch.equal(p.grad, r.grad) for p, r in zip(model.parameters(), ref.parameters(), strict=True))
+
+
 def test_optimizer_reads_betas_lr_and_decay():
     cfg = _cfg(lr=0.004, beta1=0.8, beta2=0.99, weight_decay=0.05)
     opt = build_optimizer(build_model(cfg.model, 30), cfg.train)

@@ -105,10 +105,10 @@ def train_step(
             (loss / denom).backward()
         loss_sum += loss.item()
     params = [p for p in model.parameters() if p.grad is not None]
-    if grad_clip > 0:
-        norm = torch.nn.utils.clip_grad_norm_(params, grad_clip)
-    else:
-        norm = torch.nn.utils.get_total_norm([p.grad for p in params])
+    norm = torch.nn.utils.get_total_norm([p.grad for p in params])
+    # torch's clip_grad_norm_, minus its pass over every gradient where its factor is exactly 1.0
+    if grad_clip > 0 and not grad_clip / (norm + 1e-6) >= 1.0:
+        torch.nn.utils.clip_grads_with_norm_(params, grad_clip, norm)
     lr = optimizer.param_groups[0]["lr"]
     optimizer.step()
     scheduler.step()
