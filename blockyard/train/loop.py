@@ -206,14 +206,14 @@ def _build(cfg: Config, cfg_hash: str, runtime: Runtime) -> Setup:
     from blockyard.model import build_model
 
     data = load_data(cfg)
-    data.train_batch(0)  # a split too short for the windows fails here, not mid-run
+    first_batch = data.train_batch(0)  # a split too short for the windows fails here, not mid-run
     val_batches = list(data.val_batches())
     torch.manual_seed(cfg.train.effective_init_seed)
     model = build_model(cfg.model, data.vocab_size, activation_checkpointing=cfg.runtime.activation_checkpointing,
                         scan_backend=runtime.scan_backend)
     model.to(runtime.device)
     model.train()
-    compiled = compile_for_training(model, runtime, data.train_batch(0))
+    compiled = compile_for_training(model, runtime, first_batch)
     optimizer = build_optimizer(model, cfg.train)
     total = total_steps(cfg.train, cfg.data.seq_len)
     scheduler = build_scheduler(optimizer, cfg.train, total)
