@@ -190,8 +190,8 @@ class RuntimeConfig:
     scan: str = opt("auto", "recurrence kernels: compiled = C++ (the fused RG-LRU op, the C++ scan), "
                     "chunked / reference = PyTorch ops; auto = compiled where it builds, else chunked",
                     choices=("auto", "reference", "chunked", "compiled"))
-    compile: bool = opt(False, "torch.compile the model for training (measured here: about 1.35x eager at width 256 "
-                        "after a 20-40 s warm-up); eager with a warning where compilation fails")
+    compile: bool = opt(False, "torch.compile the model for training after a 15-40 s warm-up; its gain depends on "
+                        "the CPU (blockyard bench prints compiled/eager); eager with a warning where it fails")
 
 
 @dataclasses.dataclass(frozen=True)

@@ -5,7 +5,8 @@ Everything is measured side by side in one process, so the figures that matter a
 * **peaks**: fp32 and bf16 GEMM GFLOP/s and memory-copy GB/s of this machine, now;
 * **configs**: tokens/s of blockyard's trainer (``blockyard.train``'s own loop, with its records,
   batching, schedule and clipping) for a global-attention and a recurrence model, fp32 and bf16,
-  at seq 256 and 2048, and of the plain reference loop at the same shapes; model FLOPs
+  at seq 256 and 2048, compiled (``runtime.compile``) at seq 256, and of the plain reference loop at
+  the same shapes (plain, blockyard, plain, ...: a closing plain pass ends the rounds); model FLOPs
   utilisation = tokens/s x training FLOPs per token (``blockyard.cost``) / GEMM peak;
 * **scan**: the linear scan fwd+bwd against one elementwise multiply-add fwd+bwd;
 * **profile**: one training step under ``torch.profiler``, its time split by block kind.
