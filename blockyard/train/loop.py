@@ -47,8 +47,8 @@ from blockyard.rundir import (
     writing,
 )
 from blockyard.train import checkpoint as ckpt
-from blockyard.train.dirstate import clear_records, inspect_run_dir, keep_plugin_copies, plan_run_dir
 from blockyard.train.compile import compile_for_training, compile_warning
+from blockyard.train.dirstate import clear_records, inspect_run_dir, keep_plugin_copies, plan_run_dir
 from blockyard.train.memory import PeakRSS
 from blockyard.train.optim import build_optimizer, build_scheduler, tokens_per_step, total_steps
 from blockyard.train.progress import Progress, make_progress
