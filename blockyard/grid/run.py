@@ -492,9 +492,9 @@ class _Setup:
     recorded_threads: int | None
     old_hashes: dict[str, str]
     old_design: str | None
-    check: bool = True  # run the mixer contract gate on plugin mixers (``blockyard.check``)
     old_tuning: str | None = None  # the recorded tune block (JSON; "" or None: none)
     old_tuning_hashes: dict[str, str] = dataclasses.field(default_factory=dict)  # stage 1's cells
+    check: bool = True  # run the mixer contract gate on plugin mixers (``blockyard.check``)
 
     @property
     def hint(self) -> str:
@@ -546,7 +546,7 @@ def _setup(grid_file: str | Path, out: str | Path | None, workers: int | None, t
     if workers is None and executor == "local":
         workers = max(1, cores // threads)
     return _Setup(spec, grid_file, grid_dir, exists, executor, address, workers, threads, cores, recorded_threads,
-                  old_hashes, old_design, old_tuning, old_tuning_hashes)
+                  old_hashes, old_design, old_tuning=old_tuning, old_tuning_hashes=old_tuning_hashes)
 
 
 def _sync_index(s: _Setup, index: GridIndex, universe: list[PlannedCell], force: bool,
