@@ -62,7 +62,7 @@ def test_each_lesson_is_documented(path):
 def test_selective_copying_needs_the_input_dependent_gate(tmp_path):
     # Gu & Dao 2023 (arXiv:2312.00752, sec. 3.1 and table 1): a linear time-invariant recurrence cannot
     # solve selective copying (its response to a token is the same whatever the token, so it
-    # cannot skip the blanks), a selective (input-gated) one can. The lesson-gate grid's 3 seeds,
+    # cannot skip the blanks), a selective (input-gated) one can. The lesson-gate grid's 6 seeds,
     # shortened to 700 steps: the LTI model stays at chance (ln copy_vocab nats per answer) while
     # the gated one is clearly below it, and the grid's verdict rules (simultaneous intervals at
     # the smallest effect, blockyard.grid.verdicts) call the fixed-decay variant "worse".
@@ -71,6 +71,7 @@ def test_selective_copying_needs_the_input_dependent_gate(tmp_path):
     from blockyard.train import run_training
 
     spec = load_grid(LESSONS / "gate.yaml")
+    assert spec.seeds == tuple(range(6))
     rows = []
     for cell in expand_cells(spec):
         cfg = replace(cell.cfg, {"train.steps": 700, "train.eval_every": 700, "train.checkpoint_every": 700,
