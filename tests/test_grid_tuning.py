@@ -381,6 +381,48 @@ def test_kills_in_either_stage_resume_to_the_same_report(tuned_grid, tmp_path):
             assert _section(ours, start, end) == _section(theirs, start, end)
 
 
+@pytest.mark.slow
+def test_a_changed_tune_block_is_refused_then_forced_and_only_what_changed_reruns(tuned_grid, tmp_path, capsys):
+    """Dropping the value narrow chose (0.1): refused without --force; with it, the 0.1 tuning cells and
+    narrow's verdict cells move to superseded/, narrow gets the best remaining value from the kept
+    tuning cells (no tuning cell retrains) and wide's verdict cells, whose value holds, are kept as they were."""
+    import shutil
+
+    _path, reference, _ = tuned_grid
+    grid_dir = tmp_path / "changed"
+    shutil.copytree(reference, grid_dir)
+    path = write(tmp_path, E2E.replace("values: [0.003, 0.01, 0.1]", "values: [0.003, 0.01]"), "changed.yaml")
+    before = _tree_snapshot(grid_dir)
+    capsys.readouterr()
+    assert main(["grid", str(path), "--out", str(grid_dir), "--threads", "1"]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith(f"error: {grid_dir}: holds a grid whose tune block differs") and err.count("\n") == 1
+    assert _tree_snapshot(grid_dir) == before
+
+    wide_summaries = {p: p.stat().st_mtime_ns for p in (grid_dir / "cells").glob("wide-seed*/summary.json")}
+    tuning_summaries = {p: p.stat().st_mtime_ns for p in (grid_dir / "tuning" / "cells").glob("*/summary.json")}
+    lines: list[str] = []
+    assert run_grid(path, out=grid_dir, workers=1, threads=1, force=True, echo=lines.append) == 0, lines
+    moved = sorted(p.name.rsplit(".", 1)[0] for p in (grid_dir / "tuning" / "superseded").iterdir())
+    assert moved == ["narrow-lr0.1-seed100", "wide-lr0.1-seed100"], moved
+    assert sorted(p.name.rsplit(".", 1)[0] for p in (grid_dir / "superseded").iterdir()
+                  if p.is_dir()) == ["narrow-seed0", "narrow-seed1"]
+    with open(grid_dir / "tuning.csv") as f:
+        tuning = list(csv.DictReader(f))
+    assert len(tuning) == 4 and {r["value"] for r in tuning} == {"0.003", "0.01"}
+    narrow = {r["value"]: float(r["final_val_loss"]) for r in tuning if r["variant"] == "narrow"}
+    best = min(narrow, key=lambda v: (narrow[v], float(v)))  # the selection rule, by hand
+    assert {(r["variant"], r["value"]) for r in tuning if r["chosen"] == "True"} == {("narrow", best),
+                                                                                    ("wide", "0.01")}
+    assert _lrs(grid_dir) == {"narrow-seed0": float(best), "narrow-seed1": float(best), "wide-seed0": 0.01,
+                              "wide-seed1": 0.01}
+    # Nothing that kept its config was trained again.
+    assert {p: p.stat().st_mtime_ns for p in wide_summaries} == wide_summaries
+    kept = {p: t for p, t in tuning_summaries.items() if "lr0.1-" not in p.parent.name}
+    assert len(kept) == 4 and {p: p.stat().st_mtime_ns for p in kept} == kept
+    assert "| narrow (reference) | - | 0.1 |" not in (grid_dir / "report.md").read_text()
+
+
 def test_matched_key_and_seed_overlap_are_checked_with_schedules(tmp_path):
     # A seed schedule's potential seeds (0 .. most - 1) count as verdict seeds.
     path = write(tmp_path, SPEC.replace("seeds: [0, 1]", "seeds: {first: 2, most: 101}"))
