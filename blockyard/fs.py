@@ -132,6 +132,19 @@ def fsync_dir(path: Path) -> None:
         os.close(fd)
 
 
+def _umask() -> int:
+    """The process's umask: from /proc on Linux, else by setting and restoring it (POSIX has no read-only call)."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("Umask:"):
+                return int(line.split()[1], 8)
+    except (OSError, ValueError, IndexError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 def atomic_write(path: Path, write: Callable[[Any], Any], *, what: str = "file",
                  needed_bytes: int | None = None) -> None:
     """Write ``path`` via ``write(fileobj)`` into a temp file of the same dir, fsync, then rename.
@@ -145,6 +158,9 @@ def atomic_write(path: Path, write: Callable[[Any], Any], *, what: str = "file",
     try:
         with reporting(path, what, needed_bytes):
             fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+            # mkstemp makes the file 0600; give it the mode a plain open() would (0666 less the umask),
+            # so reports and records stay readable by whoever could read them before.
+            os.fchmod(fd, 0o666 & ~_umask())
             with os.fdopen(fd, "wb") as raw:
                 f = _RecordingFile(raw)
                 try:

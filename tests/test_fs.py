@@ -242,3 +242,16 @@ def test_metric_lines_and_summary_are_read_as_the_trainer_wrote_them(tmp_path):
     assert rundir.summary_status(tmp_path) == "running"
     assert rundir.read_summary(tmp_path / "missing") is None
     assert [rundir.format_duration(s) for s in (59.6, 75.2, 3725)] == ["1m00s", "1m15s", "1h02m"]
+
+
+@pytest.mark.parametrize("mask", [0o022, 0o077, 0o002])
+def test_atomic_writes_get_the_mode_a_plain_open_would(tmp_path, mask):
+    """POSIX open(2) with O_CREAT gives 0666 & ~umask (POSIX.1-2017, open()); mkstemp's 0600 must not leak."""
+    old = os.umask(mask)
+    try:
+        fs.atomic_write_text(tmp_path / "report.md", "x")
+        (tmp_path / "plain.md").write_text("x")
+    finally:
+        os.umask(old)
+    assert (tmp_path / "report.md").stat().st_mode & 0o777 == (tmp_path / "plain.md").stat().st_mode & 0o777 \
+        == 0o666 & ~mask
