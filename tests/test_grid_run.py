@@ -160,6 +160,11 @@ def test_seed_rounds_with_a_null_control_end_to_end(tmp_path):
         assert any("round 2:" in ln for ln in lines)
     else:  # decided at round 1: nothing more trained
         assert len(cells) == 6 and "Rounds: 1 round(s) ran; every comparison decided" in report
+    # Between rounds the grid is not called finished; once no round can add seeds, it is.
+    round_one_end = [ln for ln in lines if ln.startswith("grid rounds: 6/6 done")]
+    assert round_one_end[-1].endswith("| round ended: checking whether a comparison needs more seeds"), lines
+    assert status_text(out).splitlines()[0].endswith(f"{len(cells)}/{len(cells)} done, 0 running, 0 failed, "
+                                                     "0 left | finished")
     # The null control (reference under init seed 1,000,000 + seed, same data) is no false positive.
     assert null["in_family"] == "False" and null["verdict"] not in ("better", "worse")
     assert "## Noise floor (null control)" in report

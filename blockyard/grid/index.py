@@ -26,6 +26,8 @@ BUSY_TIMEOUT_S = 60.0
 
 # Cell statuses: pending (planned, never started), running, and the trainer's outcomes
 # (done, diverged, failed, interrupted).
+# Meta key a grid with seeds until decided keeps: "open" while a later round may add seeds, else "complete".
+ROUNDS_META, ROUNDS_OPEN, ROUNDS_COMPLETE = "rounds", "open", "complete"
 FINISHED = ("done", "diverged")
 
 _SCHEMA = """

@@ -41,7 +41,7 @@ from blockyard.config import config_hash, dump_config, replace
 from blockyard.errors import UserError
 from blockyard.grid import executors
 from blockyard.grid.fairness import CellCost, apply_budgets, apply_matching, cell_cost, planned_steps
-from blockyard.grid.index import FINISHED, INDEX_NAME, GridIndex, open_index
+from blockyard.grid.index import FINISHED, INDEX_NAME, ROUNDS_COMPLETE, ROUNDS_META, ROUNDS_OPEN, GridIndex, open_index
 from blockyard.grid.ladder import Ladder, RungCell, rung_summary
 from blockyard.grid.spec import NULL_VARIANT, Cell, Design, GridSpec, expand_cells, load_grid, tuned_cells, tuning_cells
 from blockyard.grid.status import LOCK_NAME, cell_dir, grid_progress
@@ -426,6 +426,7 @@ class _Recorder:
         self.grid_dir, self.index, self.name, self.echo = grid_dir, index, name, echo
         self.status_every_s = status_every_s
         self._last_status = time.monotonic()
+        self.more_rounds = False  # whether a later round of seeds may follow the cells now running
 
     def started(self, job: executors.CellJob) -> None:
         self.index.mark_running(job.id)
@@ -453,7 +454,7 @@ class _Recorder:
 
     def status(self) -> None:
         self._last_status = time.monotonic()
-        self.echo(grid_progress(self.grid_dir, self.index.cells(), self.name).line())
+        self.echo(grid_progress(self.grid_dir, self.index.cells(), self.name, more_rounds=self.more_rounds).line())
 
 
 def _reconcile(grid_dir: Path, index: GridIndex) -> list[str]:
@@ -613,8 +614,12 @@ def _run_rounds(s: _Setup, index: GridIndex, universe: list[PlannedCell], echo: 
     while True:
         cells, rounds_line, complete = current_cells(s.spec, universe, index.cells())
         if {p.id for p in cells} <= seen:  # no new cells: done, or waiting on failed cells
+            index.set_meta({ROUNDS_META: ROUNDS_COMPLETE})
             return True
         seen |= {p.id for p in cells}
+        # Recorded so that progress lines and `grid --status` do not call a grid finished between rounds.
+        recorder.more_rounds = not complete
+        index.set_meta({ROUNDS_META: ROUNDS_COMPLETE if complete else ROUNDS_OPEN})
         if not _train(s, s.grid_dir, index, cells, recorder, echo, f"grid {s.spec.name}",
                       f"; {rounds_line}" if rounds_line else ""):
             return False

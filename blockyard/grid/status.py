@@ -22,7 +22,7 @@ from typing import Any
 
 from blockyard import fs
 from blockyard.errors import UserError
-from blockyard.grid.index import FINISHED, INDEX_NAME, open_index
+from blockyard.grid.index import FINISHED, INDEX_NAME, ROUNDS_META, ROUNDS_OPEN, open_index
 from blockyard.grid.tuning import TUNING_DIR, Tuning
 from blockyard.rundir import format_duration, last_train_line, summary_status, writer_pid
 
@@ -54,6 +54,7 @@ class GridProgress:
     left: int
     eta_s: float | None
     cells: list[CellProgress]
+    more_rounds: bool = False  # seeds until decided: the rounds so far may not be the last
 
     @property
     def total(self) -> int:
@@ -73,7 +74,12 @@ class GridProgress:
         parts += [f"{self.failed} failed", f"{self.left} left"]
         if self.running == 0:
             # Said between two cells of a running grid too, and of a stopped one (status_text adds which).
-            eta = "finished" if self.left == 0 and self.stopped == 0 else "no cell running"
+            if self.left or self.stopped:
+                eta = "no cell running"
+            elif self.more_rounds:
+                eta = "round ended: checking whether a comparison needs more seeds"
+            else:
+                eta = "finished"
         elif self.eta_s is None:
             eta = "ETA unknown (no speed measured yet)"
         else:
@@ -111,16 +117,20 @@ def _cell_progress(grid_dir: Path, row: dict[str, Any], status: str) -> CellProg
 
 
 def grid_progress(grid_dir: str | Path, rows: list[dict[str, Any]] | None = None,
-                  name: str | None = None, grid_alive: bool | None = None) -> GridProgress:
+                  name: str | None = None, grid_alive: bool | None = None,
+                  more_rounds: bool | None = None) -> GridProgress:
     """Counts and ETA from the index rows (read from ``grid_dir`` when not given) and the cells' run dirs.
 
-    ``grid_alive``: whether a grid process runs these cells (default: whether one holds ``grid_dir``).
+    ``grid_alive``: whether a grid process runs these cells (default: whether one holds ``grid_dir``);
+    ``more_rounds``: whether a later round of seeds may follow (default: as the index records it).
     """
     grid_dir = Path(grid_dir)
-    if rows is None or name is None:
+    if rows is None or name is None or more_rounds is None:
         with open_index(grid_dir, readonly=True) as index:
             rows = index.cells() if rows is None else rows
             name = name or index.get_meta("name") or grid_dir.name
+            if more_rounds is None:
+                more_rounds = index.get_meta(ROUNDS_META) == ROUNDS_OPEN
     if grid_alive is None:
         grid_alive = lock_holder(grid_dir) is not None
     counts = {"done": 0, "diverged": 0, "running": 0, "stopped": 0, "failed": 0, "left": 0}
@@ -142,7 +152,7 @@ def grid_progress(grid_dir: str | Path, rows: list[dict[str, Any]] | None = None
     fallback = sum(finished_rates) / len(finished_rates) if finished_rates else None
     rates = [c.tokens_per_s or fallback for c in cells if c.status == "running"]
     eta = tokens_left / sum(rates) if rates and all(rates) else None
-    return GridProgress(name=name, eta_s=eta, cells=cells, **counts)
+    return GridProgress(name=name, eta_s=eta, cells=cells, more_rounds=more_rounds, **counts)
 
 
 def lock_holder(grid_dir: Path) -> int | None:
