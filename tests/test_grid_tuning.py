@@ -208,7 +208,13 @@ BAD_TUNE = [
     ("{key: train.lr, values: [1.0e-3, 2.0e-3], seeds: [0, 100]}", "tune.seeds: 0 also among the grid's seeds"),
     ("{key: train.lr, values: [1.0e-3, 2.0e-3], seeds: [100], budget: 0}", "tune.budget: 0: a number in (0, 1]"),
     ("{key: train.lr, values: [1.0e-3, 2.0e-3], seeds: [100], budget: 1.5}", "tune.budget: 1.5: a number in (0, 1]"),
-    ("{key: train.lr, values: [1.0e-3, 2.0e-3], seeds: [100], rungs: first}", "tune.rungs: unknown key"),
+    ("{key: train.lr, values: [1.0e-3, 2.0e-3], seeds: [100], rung: first}", "tune.rung: unknown key"),
+    ("{key: train.lr, values: [1.0e-3, 2.0e-3], seeds: [100], rungs: every}",
+     "tune.rungs: 'every': all (each rung of the ladder tuned on its own; the default) or first"),
+    ("{key: train.lr, values: [1.0e-3, 2.0e-3], seeds: [100], rungs: [first]}", "tune.rungs: ['first']: all"),
+    ("{key: train.lr, values: [1.0e-3, 2.0e-3], seeds: [100], rungs: first}", "tune.rungs: first needs a ladder"),
+    ("{key: model.width, values: [16, 24], seeds: [100]}\nladder: [{model.width: 16}, {model.width: 32}]",
+     "tune.key: model.width is also set by ladder.rung1"),
     ("{key: model.width, values: [32, 48], seeds: [100]}\naxes: {model.width: [32, 64]}",
      "tune.key: model.width is also set by axes"),
     ("{key: model.width, values: [32, 33], seeds: [100]}", "tune.values: value 33:"),
@@ -439,3 +445,217 @@ def test_shipped_tuned_grid_tunes_the_default_grids_mixers():
     assert set(tuned.tuning.seeds).isdisjoint(tuned.seeds)
     cells = plan_tuning(tuned, threads=1)
     assert len(cells) == len(tuned.variants) * len(tuned.tuning.values) * len(tuned.tuning.seeds)
+
+
+# ----------------------------------------------------------------------------- tune.rungs: first (issue 17)
+
+# Two rungs, two variants, an axis: tiny cells (seconds each). The rule under test is issue 17's
+# definition of `tune.rungs: first` (tune on rung 1, carry each variant's value up the ladder); the
+# choice itself is checked against numpy's argmin of the mean losses.
+LADDER_TUNED = """
+    name: carried
+    description: a team tuning each mixer's lr on the smallest model only
+    base:
+      model: {width: 16, depth: 1, pattern: [global_attention], mlp_expansion: 2.0}
+      data: {corpus: pydoc, seq_len: 16}
+      train: {steps: 6, batch_size: 2, eval_every: 3, eval_windows: 2, log_every: 3, warmup_steps: 1,
+              checkpoint_every: 100}
+    variants:
+      attention: {}
+      recurrence: {model.pattern: [recurrence]}
+    reference: attention
+    ladder:
+      - {model.width: 16}
+      - {model.width: 32}
+    seeds: [0]
+    tune:
+      key: train.lr
+      values: [1.0e-3, 1.0e-2]
+      seeds: [100]
+      rungs: first
+"""
+
+
+def _ladder_spec(tmp_path: Path, rungs: str | None = "first", extra: str = "", name: str = "carried.yaml"):
+    text = LADDER_TUNED if rungs == "first" else LADDER_TUNED.replace(
+        "      rungs: first\n", "" if rungs is None else f"      rungs: {rungs}\n")
+    return write(tmp_path, text + textwrap.indent(textwrap.dedent(extra), "    "), name)
+
+
+def test_tune_rungs_parses_and_defaults_to_all_also_for_records_from_before_the_key(tmp_path):
+    from blockyard.grid.tuning import Tuning
+
+    first = load_grid(_ladder_spec(tmp_path)).tuning
+    assert first.rungs == "first" and first.carried
+    default = load_grid(_ladder_spec(tmp_path, rungs=None, name="default.yaml")).tuning
+    assert default.rungs == "all" and not default.carried
+    assert Tuning.from_json(first.to_json()) == first
+    # A tune block recorded before `rungs` existed: the same block, tuned at every rung.
+    old = '{"budget": 1.0, "key": "train.lr", "seeds": [100], "values": [0.001, 0.01]}'
+    assert Tuning.from_json(old) == default
+
+
+def test_under_first_stage_1_is_the_rung_1_cells_of_all(tmp_path):
+    every = {p.id: p.config_hash for p in plan_tuning(load_grid(_ladder_spec(tmp_path, "all", name="all.yaml")), 1)}
+    first = {p.id: p.config_hash for p in plan_tuning(load_grid(_ladder_spec(tmp_path)), 1)}
+    assert len(every) == 2 * 2 * 2 * 1  # variants x rungs x values x tuning seeds
+    # The same cells, configs included, minus every rung but the first.
+    assert first == {cid: h for cid, h in every.items() if "-rung1-" in cid} and len(first) == 4
+
+
+def test_verdict_cells_at_every_rung_carry_their_variants_rung_1_value(tmp_path):
+    # With an axis too: the value comes from rung 1 at the same axis point.
+    spec = load_grid(_ladder_spec(tmp_path, extra="axes: {train.batch_size: [2, 4]}\n"))
+    tuned = {(p.cell.variant, p.cell.point[:-1]) for p in plan_tuning(spec, 1)}  # less the tuned key
+    assert {dict(point)["rung"] for _, point in tuned} == {1}
+    chosen = {("attention", (("rung", 1), ("train.batch_size", 2))): 1e-3,
+              ("attention", (("rung", 1), ("train.batch_size", 4))): 1e-2,
+              ("recurrence", (("rung", 1), ("train.batch_size", 2))): 1e-2,
+              ("recurrence", (("rung", 1), ("train.batch_size", 4))): 1e-3}
+    assert set(chosen) == tuned
+    cells = [p.cell for p in plan_cells(spec, threads=1, chosen=chosen)]
+    assert len(cells) == 2 * 2 * 2  # variants x rungs x batch sizes, one seed
+    for c in cells:
+        rung, batch = dict(c.point)["rung"], c.cfg.train.batch_size
+        assert c.cfg.train.lr == chosen[(c.variant, (("rung", 1), ("train.batch_size", batch)))], c.id
+        assert c.cfg.model.width == (16, 32)[rung - 1]
+    # Under `all` the same choice lacks rung 2: every rung needs its own.
+    with pytest.raises(KeyError):
+        plan_cells(load_grid(_ladder_spec(tmp_path, "all", "axes: {train.batch_size: [2, 4]}\n", "all.yaml")), 1,
+                   chosen)
+
+
+def test_dry_run_says_stage_1_runs_on_rung_1_only(tmp_path, capsys, monkeypatch):
+    from blockyard.grid import estimate
+
+    monkeypatch.setattr(estimate, "measure_tokens_per_s", lambda cfg, threads: 1000.0)
+    assert main(["grid", str(_ladder_spec(tmp_path)), "--out", str(tmp_path / "out"), "--dry-run",
+                 "--workers", "1", "--threads", "1"]) == 0
+    out = capsys.readouterr().out
+    assert ("budget 1 x the verdict cells', on rung 1 only (tune.rungs: first; each variant's value is carried up "
+            "the ladder): 4 cells under tuning/") in out
+    assert "rung 1's value at every rung: 4 cells" in out and "-rung2-lr" not in out
+
+
+def _planned_grid_dir(grid_dir: Path, spec, chosen: dict) -> None:
+    from blockyard.grid.run import _plan_rows, _tuning_json
+
+    grid_dir.mkdir()
+    with open_index(grid_dir) as index:
+        index.plan(_plan_rows(plan_cells(spec, threads=1, chosen=chosen)))
+        index.set_meta({"name": spec.name, "tuning": _tuning_json(spec), "stage": "verdicts", "threads": "1"})
+
+
+def test_changing_tune_rungs_in_a_grid_dir_is_refused_without_force(tmp_path, capsys):
+    from blockyard.grid.run import _refuse_changed_tuning
+
+    grid_dir = tmp_path / "out"
+    _planned_grid_dir(grid_dir, load_grid(_ladder_spec(tmp_path)),
+                      {("attention", (("rung", 1),)): 1e-3, ("recurrence", (("rung", 1),)): 1e-2})
+    before = _tree_snapshot(grid_dir)
+    assert main(["grid", str(_ladder_spec(tmp_path, "all", name="all.yaml")), "--out", str(grid_dir),
+                 "--threads", "1"]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith(f"error: {grid_dir}: holds a grid whose tune block differs") and err.count("\n") == 1
+    assert _tree_snapshot(grid_dir) == before
+    # A record from before `rungs` existed is the same block as today's default, not a change.
+    spec = load_grid(_ladder_spec(tmp_path, rungs=None, name="default.yaml"))
+    old = '{"budget": 1.0, "key": "train.lr", "seeds": [100], "values": [0.001, 0.01]}'
+    _refuse_changed_tuning(grid_dir, "default.yaml", old, spec.tuning.to_json(), True, False)
+    with pytest.raises(UserError, match="tune block differs"):
+        _refuse_changed_tuning(grid_dir, "carried.yaml", old, load_grid(_ladder_spec(tmp_path)).tuning.to_json(),
+                               True, False)
+
+
+def _finish(index, rows: list[dict], loss: dict[str, float]) -> None:
+    for r in rows:
+        index.mark_running(r["id"])
+        index.mark_finished(r["id"], "done", exit_code=0, summary={
+            "status": "done", "final_val_loss": loss[r["id"]], "best_val_loss": loss[r["id"]],
+            "tokens_seen": r["planned_tokens"], "steps": 6, "wall_s": 1.0, "tokens_per_s": 1000.0})
+
+
+@pytest.mark.parametrize("parametrization", ["standard", "mup"])
+def test_report_says_rung_1_was_tuned_and_the_value_carried(tmp_path, parametrization):
+    from blockyard.config import dump_config
+    from blockyard.grid.report import write_report
+    from blockyard.grid.run import _plan_rows, _tuning_json
+
+    extra = "" if parametrization == "standard" else "{model.parametrization: mup, model.base_width: 16}"
+    text = LADDER_TUNED if not extra else LADDER_TUNED.replace(
+        "    variants:\n      attention: {}\n      recurrence: {model.pattern: [recurrence]}",
+        f"    variants:\n      attention: {extra}\n      recurrence: {{model.pattern: [recurrence], "
+        f"{extra[1:-1]}}}")
+    spec = load_grid(write(tmp_path, text))
+    grid_dir = tmp_path / "out"
+    tuning_plan = plan_tuning(spec, threads=1)
+    # Synthetic tuning losses: attention is best at 1e-3, recurrence at 1e-2.
+    rng = np.random.default_rng(3)
+    loss = {p.id: 3.0 + (0.2 if (p.cell.variant == "attention") == (p.cell.cfg.train.lr == 1e-2) else 0.0)
+            + rng.normal(0, 0.01) for p in tuning_plan}
+    expected = {}
+    for variant in ("attention", "recurrence"):
+        ids = [p for p in tuning_plan if p.cell.variant == variant]
+        means = [np.mean([loss[p.id] for p in ids if p.cell.cfg.train.lr == v]) for v in spec.tuning.values]
+        expected[variant] = spec.tuning.values[int(np.argmin(means))]  # numpy's argmin: the lowest mean
+    assert expected == {"attention": 1e-3, "recurrence": 1e-2}
+    (grid_dir / "tuning").mkdir(parents=True)
+    with open_index(grid_dir / "tuning") as tindex:
+        tindex.plan(_plan_rows(tuning_plan))
+        _finish(tindex, tindex.cells(), loss)
+    plan = plan_cells(spec, threads=1, chosen={(v, (("rung", 1),)): x for v, x in expected.items()})
+    (grid_dir / "configs").mkdir()
+    for p in plan:
+        (grid_dir / "configs" / f"{p.id}.yaml").write_text(dump_config(p.cell.cfg))
+    with open_index(grid_dir) as index:
+        index.plan(_plan_rows(plan))
+        index.set_meta({"name": spec.name, "reference": "attention", "match": "none",
+                        "design": spec.design.to_json(), "tuning": _tuning_json(spec), "ladder": spec.ladder.to_json()})
+        _finish(index, index.cells(), {p.id: 3.0 - 0.1 * dict(p.cell.point)["rung"] for p in plan})
+    report = write_report(grid_dir).read_text()
+    section = _section(report, "## Tuning", "## Variants")
+    assert "**Tuned on rung 1 only** (grid key `tune.rungs: first`): stage 1 ran on the smallest rung of the " \
+           "ladder (model.width=16) alone, and each variant's chosen `train.lr` was carried up the ladder" in section
+    assert "| attention (reference) | 1 | model.width=16 | - | 0.001 | tuned on rung 1 |" in section
+    assert "| attention (reference) | 2 | model.width=32 | - | 0.001 | carried from rung 1 |" in section
+    assert "| recurrence | 2 | model.width=32 | - | 0.01 | carried from rung 1 |" in section
+    # Yang et al. 2022 (arXiv:2203.03466): an lr transfers across width under muP, not under the standard
+    # parametrization; the caution appears only where it may not.
+    caution = "**Caution:** no variant ran under `model.parametrization: mup`"
+    assert (caution in section) == (parametrization == "standard")
+    assert "was tuned on rung 1 only and carried up the ladder (`tune.rungs: first`)" in _section(
+        report, "## Ladder", "## Variants")
+    with open(grid_dir / "tuning.csv") as f:
+        rows = list(csv.DictReader(f))
+    assert len(rows) == 4 and {r["point"] for r in rows} == {"rung=1"}
+    assert {(r["variant"], float(r["value"])) for r in rows if r["chosen"] == "True"} == set(expected.items())
+    with open(grid_dir / "verdicts.csv") as f:
+        verdicts = {r["point"]: r for r in csv.DictReader(f)}
+    for point in ("rung=1", "rung=2"):
+        assert (float(verdicts[point]["tuned_value"]), float(verdicts[point]["reference_tuned_value"])) == (1e-2, 1e-3)
+
+
+@pytest.mark.slow
+def test_a_tiny_ladder_tuned_on_rung_1_runs_end_to_end(tmp_path):
+    path = _ladder_spec(tmp_path)
+    lines: list[str] = []
+    assert run_grid(path, out=tmp_path / "out", workers=2, threads=1, check=False, echo=lines.append) == 0, lines
+    grid_dir = tmp_path / "out"
+    chosen = {ln.split(" for ")[1].split(" at ")[0]: float(ln.split(": ")[1].split(",")[0]) for ln in lines
+              if ln.startswith("chosen train.lr for ")}
+    assert set(chosen) == {"attention", "recurrence"} and all(", carried to every rung" in ln for ln in lines
+                                                              if ln.startswith("chosen "))
+    assert sorted(p.name for p in (grid_dir / "tuning" / "cells").iterdir()) == [
+        f"{v}-rung1-lr{x}-seed100" for v in ("attention", "recurrence") for x in ("0.001", "0.01")]
+    assert _lrs(grid_dir) == {f"{v}-rung{k}-seed0": chosen[v] for v in chosen for k in (1, 2)}
+    with open(grid_dir / "tuning.csv") as f:
+        rows = list(csv.DictReader(f))
+    assert len(rows) == 4 and {r["point"] for r in rows} == {"rung=1"}
+    report = (grid_dir / "report.md").read_text()
+    assert "**Tuned on rung 1 only** (grid key `tune.rungs: first`)" in report
+    assert "**Caution:** no variant ran under `model.parametrization: mup`" in report
+    assert status_text(grid_dir).splitlines()[:3] == [
+        "grid carried: stage 2 of 2 (verdict cells at each variant's chosen train.lr, tuned on rung 1 and carried "
+        "up the ladder)",
+        "  stage 1, tuning: 4/4 done, 0 running, 0 failed, 0 left | finished",
+        "  stage 2, verdict cells: 4/4 done, 0 running, 0 failed, 0 left | finished"]

@@ -37,6 +37,7 @@ from blockyard.grid.ladder import (
     series_label,
     trend_rows,
 )
+from blockyard.grid.ladder import split_point as split_rung
 from blockyard.grid.rounds import plan_rounds
 from blockyard.grid.spec import NULL_INIT_OFFSET, NULL_VARIANT, Design
 from blockyard.grid.status import cell_dir
@@ -158,6 +159,8 @@ class GridResults:
     tuning: TuningResults | None = None  # stage 1 of a grid with a ``tune`` block
     ladder: Ladder | None = None
     trends: LadderTrends | None = None  # with a ladder
+    # variant -> model.parametrization of its cells ("mixed" when they differ); read only under tune.rungs: first
+    parametrizations: dict[str, str] = dataclasses.field(default_factory=dict)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -174,7 +177,8 @@ class TuningResults:
 
 
 def grid_results(rows: list[dict[str, Any]], meta: dict[str, str | None], default_name: str,
-                 tuning_rows: list[dict[str, Any]] | None = None) -> GridResults:
+                 tuning_rows: list[dict[str, Any]] | None = None,
+                 parametrizations: dict[str, str] | None = None) -> GridResults:
     reference = meta.get("reference") or None
     design = Design.from_json(meta.get("design"))
     tuning = Tuning.from_json(meta.get("tuning"))
@@ -200,7 +204,22 @@ def grid_results(rows: list[dict[str, Any]], meta: dict[str, str | None], defaul
     return GridResults(meta.get("name") or default_name, meta.get("description") or "", reference,
                        meta.get("match") or "none", design, meta.get("design_changed") == "1",
                        meta.get("cost_note") or "", rows,
-                       groups, family, rounds, tuned, ladder, trends)
+                       groups, family, rounds, tuned, ladder, trends, parametrizations or {})
+
+
+def read_parametrizations(grid_dir: Path, rows: list[dict[str, Any]]) -> dict[str, str]:
+    """Variant -> ``model.parametrization`` of its cells' configs (GRID_DIR/configs/), one config read per group;
+    "mixed" when its groups differ; a variant with no readable config is left out."""
+    from blockyard.config import read_yaml
+
+    seen: dict[str, set[str]] = {}
+    for g in group_cells(rows):
+        try:
+            model = read_yaml(grid_dir / "configs" / f"{g.rows[0]['id']}.yaml").get("model") or {}
+        except UserError:
+            continue
+        seen.setdefault(g.variant, set()).add(str(model.get("parametrization", "standard")))
+    return {v: next(iter(p)) if len(p) == 1 else "mixed" for v, p in seen.items()}
 
 
 # ----------------------------------------------------------------------------- curves and plots
@@ -747,6 +766,8 @@ def _tuning_section(doc: Doc, res: GridResults, plots: list[tuple[str, str]]) ->
           "(a diverged or failed cell counts as +infinity; ties go to the smaller value). The verdict cells above "
           "ran at these values on seeds disjoint from the tuning seeds, so the verdicts are not measured on the "
           "noise the choice used.")
+    if t.carried:
+        _carried_text(doc, res, t)
     if groups is None:
         doc.p("Stage 1 has not finished: no value is chosen yet.")
         return
@@ -761,6 +782,8 @@ def _tuning_section(doc: Doc, res: GridResults, plots: list[tuple[str, str]]) ->
                                                            else "diverged/failed") + ("**" if v == g.chosen else "")
                         for v in t.values])
     doc.table(header, table)
+    if t.carried and res.ladder is not None:
+        _carried_table(doc, res.ladder, groups, t, res.reference)
     warnings = [w for g in groups for w in _tuning_warnings(g, t)]
     if warnings:
         doc.ul(warnings)
@@ -769,6 +792,36 @@ def _tuning_section(doc: Doc, res: GridResults, plots: list[tuple[str, str]]) ->
             doc.img(name, caption)
     if len(t.seeds) >= 2 and res.reference is not None:
         _shared_value_table(doc, res, groups)
+
+
+def _carried_text(doc: Doc, res: GridResults, t: Tuning) -> None:
+    """``tune.rungs: first``: where the values were tuned, and whether the parametrization lets them transfer."""
+    rung1 = f" ({res.ladder.overrides_text(1)})" if res.ladder is not None else ""
+    doc.p(f"**Tuned on rung 1 only** (grid key `tune.rungs: first`): stage 1 ran on the smallest rung of the "
+          f"ladder{rung1} alone, and each variant's chosen `{t.key}` was carried up the ladder: its verdict cells "
+          "at every rung ran at the value chosen on rung 1, not at a value tuned at that rung.")
+    variants = [v for v in dict.fromkeys(g.variant for g in res.groups) if v != NULL_VARIANT]
+    standard = [v for v in variants if res.parametrizations.get(v) != "mup"]
+    if standard:
+        who = "no variant ran" if len(standard) == len(variants) else f"{', '.join(standard)} did not run"
+        doc.p(f"**Caution:** {who} under `model.parametrization: mup`. A learning rate tuned at one width need not "
+              "transfer to other widths under the standard parametrization: its best value drifts with width, "
+              "which muP is built to prevent (Yang et al. 2022, arXiv:2203.03466). At the larger rungs a variant "
+              f"may have trained far from its best `{t.key}`, and unequally so for different variants, which bends "
+              "the gaps and trends of the Ladder section.")
+
+
+def _carried_table(doc: Doc, ladder: Ladder, groups: list[TunedGroup], t: Tuning, reference: str | None) -> None:
+    """Each variant's value at every rung under ``tune.rungs: first``: chosen on rung 1, carried to the others."""
+    rows = []
+    for g in groups:
+        _, rest = split_rung(g.point)
+        for k in range(1, len(ladder.rungs) + 1):
+            rows.append([g.variant + (" (reference)" if g.variant == reference else ""), str(k),
+                         ladder.overrides_text(k), point_text(rest) or "-", f"{g.chosen:g}",
+                         "tuned on rung 1" if k == 1 else "carried from rung 1"])
+    doc.p(f"`{t.key}` used at each rung:")
+    doc.table(["variant", "rung", "overrides", "other axes", t.key, "how"], rows)
 
 
 def _basin_text(g: TunedGroup) -> str:
@@ -819,7 +872,7 @@ def _ladder_section(doc: Doc, res: GridResults) -> None:
     budget = (f"each rung trains on {lad.tokens_per_param:g} tokens per non-embedding parameter of the reference"
               if lad.tokens_per_param is not None else "every rung keeps the base's training budget")
     doc.p(f"{len(lad.rungs)} rungs of model size, {budget}; every rung is an axis point of the verdicts above. "
-          "N is a group's non-embedding parameter count.")
+          f"N is a group's non-embedding parameter count. {_ladder_tuning_text(res.tuning)}")
     by_rung: dict[int, list[str]] = {}
     for g in res.groups:
         k = rung_of(g.point)
@@ -848,6 +901,19 @@ def _ladder_section(doc: Doc, res: GridResults) -> None:
         doc.ul([f"**{series_label(k)}** vs {res.reference}: {describe(t)}." for k, t in lt.trends.items()])
     if lt.notes:
         doc.ul(lt.notes)
+
+
+def _ladder_tuning_text(tuned: TuningResults | None) -> str:
+    """Which tuning the fits and trends below rest on."""
+    if tuned is None:
+        return "No tuning: every variant ran at its configured values at every rung."
+    key = tuned.tuning.key
+    if tuned.tuning.carried:
+        return (f"Tuning: each variant's `{key}` was tuned on rung 1 only and carried up the ladder "
+                "(`tune.rungs: first`), so the fits and trends compare the variants at their rung-1 values at "
+                "every rung.")
+    return (f"Tuning: each variant's `{key}` was tuned at every rung on its own (`tune.rungs: all`), so the fits "
+            "and trends compare each variant at its best searched value at each size.")
 
 
 def _pair(low: float | None, high: float | None) -> str:
@@ -948,7 +1014,9 @@ def _method_section(doc: Doc, res: GridResults) -> None:
             f"{', '.join(map(str, t.seeds))}, disjoint from the verdict seeds: choosing and measuring on the same "
             "seeds would bias the verdict towards the variant whose noise flattered it (the winner's curse). "
             "Fairness matching was done before tuning, on the untuned configs. The verdicts compare each variant "
-            "at its own chosen value; the exploratory table at shared values is outside the family.")
+            "at its own chosen value; the exploratory table at shared values is outside the family."
+            + (" With `tune.rungs: first` only rung 1 was tuned; every other rung ran at its variant's rung-1 "
+               "value." if t.carried else ""))
     items += [
         f"Seeds needed: the pairs at which a paired t test at {_pct(fam.comparison_alpha)} reaches 80% power, both to "
         "call better/worse if the true difference is ±δ and to call equivalent if it is 0 (the larger is shown), "
@@ -993,7 +1061,9 @@ def write_report(grid_dir: str | Path) -> Path:
     if (grid_dir / TUNING_DIR / INDEX_NAME).exists():
         with open_index(grid_dir / TUNING_DIR, readonly=True) as index:
             tuning_rows = index.cells()
-    res = grid_results(rows, meta, grid_dir.name, tuning_rows)
+    tuning = Tuning.from_json(meta.get("tuning"))
+    parametrizations = read_parametrizations(grid_dir, rows) if tuning is not None and tuning.carried else None
+    res = grid_results(rows, meta, grid_dir.name, tuning_rows, parametrizations)
     plots = write_plots(grid_dir, res)
     doc = build_report(grid_dir, res, plots)
     fs.atomic_write_text(grid_dir / "report.md", doc.markdown(), what="the report")

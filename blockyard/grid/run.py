@@ -45,7 +45,7 @@ from blockyard.grid.index import FINISHED, INDEX_NAME, ROUNDS_COMPLETE, ROUNDS_M
 from blockyard.grid.ladder import Ladder, RungCell, rung_summary
 from blockyard.grid.spec import NULL_VARIANT, Cell, Design, GridSpec, expand_cells, load_grid, tuned_cells, tuning_cells
 from blockyard.grid.status import LOCK_NAME, cell_dir, grid_progress
-from blockyard.grid.tuning import TUNING_DIR, chosen_values, tuned_groups
+from blockyard.grid.tuning import TUNING_DIR, Tuning, chosen_values, tuned_groups
 from blockyard.rundir import format_duration, read_summary
 from blockyard.schema import to_dict
 
@@ -180,9 +180,12 @@ def two_stage_dry_run(spec: GridSpec, tuning_plan: list[PlannedCell], plan: list
     where = ("at each variant's chosen value" if tuned else
              f"at each variant's value chosen in stage 1 (shown at the base config's {t.key}; the cost does not "
              "depend on it unless the key changes the model or the budget)")
+    if t.carried:
+        where += ", rung 1's value at every rung"
     lines = [f"stage 1 of 2, tuning {t.key} over {len(t.values)} values x {len(t.seeds)} tuning seed(s) "
-             f"({', '.join(map(str, t.seeds))}), budget {t.budget:g} x the verdict cells': {len(tuning_plan)} cells "
-             f"under {TUNING_DIR}/",
+             f"({', '.join(map(str, t.seeds))}), budget {t.budget:g} x the verdict cells'"
+             + (", on rung 1 only (tune.rungs: first; each variant's value is carried up the ladder)"
+                if t.carried else "") + f": {len(tuning_plan)} cells under {TUNING_DIR}/",
              dry_run_text(tuning_plan, workers, threads, estimates=estimates), "",
              f"stage 2 of 2, verdict cells {where}: {len(plan)} cells",
              dry_run_text(plan, workers, threads, design=spec.design, estimates=estimates), ""]
@@ -289,8 +292,9 @@ def _refuse_changed_spec(grid_dir: Path, grid_file: str | Path, old: dict[str, s
 
 def _refuse_changed_tuning(grid_dir: Path, grid_file: str | Path, old: str | None, new: str, has_cells: bool,
                            force: bool) -> None:
-    """A changed (added, removed) ``tune`` block changes the verdict cells' values: like a changed grid."""
-    if force or not has_cells or (old or "") == new:
+    """A changed (added, removed) ``tune`` block changes the verdict cells' values: like a changed grid.
+    Compared as parsed blocks, so a block recorded before a key existed equals one with its default."""
+    if force or not has_cells or Tuning.from_json(old) == Tuning.from_json(new):
         return
     raise UserError(
         f"{grid_dir}: holds a grid whose tune block differs from {grid_file}'s (it decides each variant's "
@@ -686,8 +690,8 @@ def _tuning_stage(s: _Setup, index: GridIndex, tuning_plan: list[PlannedCell], f
     assert groups is not None, "every tuning cell ended"
     for g in groups:
         where = " at " + ", ".join(f"{k}={v}" for k, v in g.point) if g.point else ""
-        echo(f"chosen {t.key} for {g.variant}{where}: {g.chosen:g}" + (" (at the edge of the searched values)"
-                                                                      if g.at_edge else ""))
+        echo(f"chosen {t.key} for {g.variant}{where}: {g.chosen:g}" + (", carried to every rung" if t.carried else "")
+             + (" (at the edge of the searched values)" if g.at_edge else ""))
     return chosen_values(groups)
 
 
@@ -764,7 +768,8 @@ def run_grid(
             if chosen is None:
                 return 130
             universe = plan_cells(s.spec, s.threads, chosen)
-            echo(f"stage 2 of 2: verdict cells, each variant at its chosen {s.spec.tuning.key}")
+            echo(f"stage 2 of 2: verdict cells, each variant at its chosen {s.spec.tuning.key}"
+                 + (" (rung 1's, at every rung)" if s.spec.tuning.carried else ""))
         _sync_index(s, index, universe, force, echo)
         if not _run_rounds(s, index, universe, echo, status_every_s):
             return 130

@@ -15,7 +15,8 @@ A grid file (YAML) holds::
     match: params                    # none | params | flops (see blockyard.grid.fairness)
     smallest_effect: 0.01            # nats/token: the smallest difference that matters (verdicts)
     null_control: false              # true: add the reference again under another init seed
-    tune: {key: train.lr, values: [...], seeds: [100]}  # each variant at its own value (blockyard.grid.tuning)
+    tune: {key: train.lr, values: [...], seeds: [100]}  # each variant at its own value (blockyard.grid.tuning);
+                                     #   with a ladder, rungs: first tunes rung 1 and carries the value up
     ladder: [{model.width: 32}, ...] # optional: rungs of model size (see blockyard.grid.ladder), with
     tokens_per_param: 20             #   each rung's budget and a size to extrapolate to
     ladder_target: 1.0e7
@@ -189,11 +190,14 @@ def parse_grid(
             if key in overrides:
                 raise ConfigError(f"axes.{key}", f"also set by variants.{vname}; set each key in one place")
     set_by = {**{k: f"variants.{v}" for v, o in variants.items() for k in o}, **{k: "axes" for k in axes}}
-    tuning = parse_tuning(data.get("tune"), seeds=seeds, reserved=_RESERVED_KEYS, matched_key=MATCHED_KEYS.get(match),
-                          set_by=set_by)
     ladder = parse_ladder(data, _check_override_key)
     if ladder is not None:
         check_conflicts(ladder, axes, variants)
+        for i, rung in enumerate(ladder.rungs, start=1):
+            for k in rung:
+                set_by.setdefault(k, ladder.rung_path(i))
+    tuning = parse_tuning(data.get("tune"), seeds=seeds, reserved=_RESERVED_KEYS, matched_key=MATCHED_KEYS.get(match),
+                          set_by=set_by, has_ladder=ladder is not None)
     spec = GridSpec(
         name=name,
         description=description.strip(),
@@ -482,7 +486,7 @@ def tuning_cells(spec: GridSpec, cells: list[Cell]) -> list[Cell]:
     for c in cells:
         if c.variant != NULL_VARIANT:
             templates.setdefault((c.variant, c.point), c)
-    labels = _axis_labels([*spec.axes, tuning.key])
+    labels = {RUNG: RUNG, **_axis_labels([*spec.axes, tuning.key])}
     out = []
     for point in tuning.tuned_points(p for _, p in templates):
         for (variant, _), template in ((k, t) for k, t in templates.items() if k[1] == point):

@@ -168,8 +168,12 @@ def _stage_lines(grid_dir: Path, progress: GridProgress) -> tuple[list[str], Gri
     # Stage 1's cells are run by the same grid process, which holds GRID_DIR's lock.
     tuning_progress = grid_progress(grid_dir / TUNING_DIR, grid_alive=lock_holder(grid_dir) is not None)
     key = f" {tuning.key}" if tuning else ""
-    now = (f"stage 2 of 2 (verdict cells at each variant's chosen{key})" if stage == "verdicts"
-           else f"stage 1 of 2 (tuning{key})")
+    carried = tuning is not None and tuning.carried  # tune.rungs: first
+    if stage == "verdicts":
+        now = (f"stage 2 of 2 (verdict cells at each variant's chosen{key}"
+               + (", tuned on rung 1 and carried up the ladder)" if carried else ")"))
+    else:
+        now = f"stage 1 of 2 (tuning{key}" + (" on rung 1 only)" if carried else ")")
     return [f"grid {progress.name}: {now}", f"  stage 1, tuning: {tuning_progress.counts()}",
             "  stage 2, verdict cells: " + (progress.counts() if progress.total else
                                             "not started (they wait for the tuning stage)")], tuning_progress

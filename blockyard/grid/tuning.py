@@ -7,6 +7,7 @@ A grid file may hold::
       values: [1.0e-3, 2.0e-3, 4.0e-3, 8.0e-3]    # or {low: 5.0e-4, high: 8.0e-3, count: 5} (log-spaced)
       seeds: [100]                                # tuning seeds: disjoint from the grid's seeds
       budget: 1.0                                 # tuning cells' token budget / the verdict cells' (0 < b <= 1)
+      rungs: all                                  # with a ladder: all (each rung tuned on its own) or first
 
 Stage 1 trains every (variant, point, value, tuning seed) under ``GRID_DIR/tuning/`` (a grid dir of
 its own: index, cells, configs, logs); a tuning cell's point is the verdict point with the tuned
@@ -19,8 +20,16 @@ the chosen value's tuning loss is biased low).
 
 This module is the block's schema and the pure rules on cell records (no I/O, no statistics
 libraries: the grid's parent process imports it). A *point* is whatever the grid expands its
-groups over (axis values today, a size-ladder rung later): ``Tuning.tuned_point`` is the hook
-through which a point may take its value from another one (issue 17's ``tune.rungs: first``).
+groups over (a ladder rung, then axis values): ``Tuning.tuned_point`` maps a verdict point to the
+point whose tuning gives it its value.
+
+``rungs: first`` (grids with a ``ladder`` only) tunes on rung 1 alone and carries each variant's
+chosen value up the ladder: the verdict cell at ("rung", k) and any axis point trains at the value
+chosen at ("rung", 1) and the same axis point. Stage 1 then holds rung-1 cells only, so tuning
+costs what the smallest model costs. This is what a learning rate under ``model.parametrization:
+mup`` is for (Yang et al. 2022, arXiv:2203.03466: tuned at a small width, it transfers to larger
+ones); under the standard parametrization the best learning rate drifts with width, and the
+report says so. ``rungs: all`` (the default) tunes every rung on its own.
 """
 
 from __future__ import annotations
@@ -33,9 +42,13 @@ from typing import Any
 
 from blockyard.config import Config
 from blockyard.errors import ConfigError
+from blockyard.grid.ladder import RUNG
 from blockyard.schema import to_dict
 
-TUNE_KEYS = ("key", "values", "seeds", "budget")
+TUNE_KEYS = ("key", "values", "seeds", "budget", "rungs")
+# tune.rungs: which rungs of a ladder stage 1 tunes (the others take rung 1's value under "first").
+RUNGS_ALL, RUNGS_FIRST = "all", "first"
+TUNE_RUNGS = (RUNGS_ALL, RUNGS_FIRST)
 RANGE_KEYS = ("low", "high", "count")
 # Stage 1's grid dir, inside the grid dir.
 TUNING_DIR = "tuning"
@@ -48,23 +61,31 @@ GroupKey = tuple[str, Point]
 
 @dataclasses.dataclass(frozen=True)
 class Tuning:
-    """A parsed ``tune`` block: the key searched, its values (ascending), the tuning seeds and budget."""
+    """A parsed ``tune`` block: the key searched, its values (ascending), the tuning seeds, budget and rungs."""
 
     key: str
     values: tuple[float, ...]
     seeds: tuple[int, ...]
     budget: float = 1.0
+    rungs: str = RUNGS_ALL  # RUNGS_FIRST: tune on rung 1 only and carry each variant's value up the ladder
 
     def to_json(self) -> str:
         return json.dumps(dataclasses.asdict(self), sort_keys=True)
 
     @classmethod
     def from_json(cls, text: str | None) -> Tuning | None:
-        """The recorded block; None for a grid without one (or one recorded before tuning existed)."""
+        """The recorded block; None for a grid without one (or one recorded before tuning existed).
+        A block recorded before ``rungs`` existed tuned every rung: ``all``."""
         if not text:
             return None
         data = json.loads(text)
-        return cls(data["key"], tuple(data["values"]), tuple(data["seeds"]), float(data["budget"]))
+        return cls(data["key"], tuple(data["values"]), tuple(data["seeds"]), float(data["budget"]),
+                   str(data.get("rungs", RUNGS_ALL)))
+
+    @property
+    def carried(self) -> bool:
+        """Rung 1's chosen values are carried up the ladder (``rungs: first``)."""
+        return self.rungs == RUNGS_FIRST
 
     def budget_overrides(self, cfg: Config) -> dict[str, int]:
         """Overrides that give a tuning cell ``budget`` x the verdict cell's budget (``cfg``: the verdict cell's)."""
@@ -84,8 +105,11 @@ class Tuning:
         return out
 
     def tuned_point(self, point: Point) -> Point:
-        """The point whose tuning gives ``point`` its value: itself (hook for tuning one rung of a ladder)."""
-        return point
+        """The point whose tuning gives ``point`` its value: itself, or under ``rungs: first`` the same point
+        at rung 1 (the rest of the point, other axes, unchanged)."""
+        if not self.carried:
+            return point
+        return tuple((RUNG, 1) if key == RUNG else (key, v) for key, v in point)
 
     def tuned_points(self, points: Iterable[Point]) -> list[Point]:
         """The points stage 1 tunes: every point some verdict point takes its value from."""
@@ -101,10 +125,11 @@ def is_learning_rate(key: str) -> bool:
 
 
 def parse_tuning(raw: Any, *, seeds: tuple[int, ...], reserved: tuple[str, ...], matched_key: str | None,
-                 set_by: dict[str, str]) -> Tuning | None:
+                 set_by: dict[str, str], has_ladder: bool = False) -> Tuning | None:
     """Validate a ``tune`` block's shape. ``set_by``: dotted key -> where the grid sets it (variants, axes),
-    keys a tuning may not search; ``matched_key``: the key ``match:`` adjusts. The key's type and each
-    value are checked against the configs by ``check_tuned_key`` and the grid's piece validation."""
+    keys a tuning may not search; ``matched_key``: the key ``match:`` adjusts; ``has_ladder``: the grid has a
+    ``ladder`` (``rungs: first`` needs one). The key's type and each value are checked against the configs
+    by ``check_tuned_key`` and the grid's piece validation."""
     if raw is None:
         return None
     if not isinstance(raw, dict):
@@ -114,7 +139,7 @@ def parse_tuning(raw: Any, *, seeds: tuple[int, ...], reserved: tuple[str, ...],
         raise ConfigError(f"tune.{unknown[0]}", f"unknown key (allowed: {', '.join(TUNE_KEYS)})")
     key = _parse_key(raw.get("key"), reserved, matched_key, set_by)
     return Tuning(key, _parse_values(raw.get("values"), key), _parse_seeds(raw.get("seeds"), seeds),
-                  _parse_budget(raw.get("budget", 1.0)))
+                  _parse_budget(raw.get("budget", 1.0)), _parse_rungs(raw.get("rungs", RUNGS_ALL), has_ladder))
 
 
 def _parse_key(key: Any, reserved: tuple[str, ...], matched_key: str | None, set_by: dict[str, str]) -> str:
@@ -186,6 +211,17 @@ def _parse_budget(raw: Any) -> float:
         raise ConfigError("tune.budget", f"{raw!r}: a number in (0, 1], the tuning cells' token budget as a "
                           "fraction of the verdict cells'")
     return float(raw)
+
+
+def _parse_rungs(raw: Any, has_ladder: bool) -> str:
+    allowed = (f"{RUNGS_ALL} (each rung of the ladder tuned on its own; the default) or {RUNGS_FIRST} (tuned on "
+               "rung 1 only, each variant's chosen value carried up the ladder)")
+    if raw not in TUNE_RUNGS:
+        raise ConfigError("tune.rungs", f"{raw!r}: {allowed}")
+    if raw == RUNGS_FIRST and not has_ladder:
+        raise ConfigError("tune.rungs", f"{RUNGS_FIRST} needs a ladder (grid key `ladder`: rungs of model size); "
+                          f"without one use {RUNGS_ALL} or leave the key out")
+    return str(raw)
 
 
 def _is_number(x: Any) -> bool:
