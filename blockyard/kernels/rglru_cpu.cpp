@@ -521,6 +521,7 @@ BLOCKYARD_RGLRU_CLONES void conv_backward_item(const S* __restrict__ gy, const I
   std::fill(acc, acc + (K + 1) * n, S(0));
   std::vector<S> buf(n);
   S* __restrict__ sum = buf.data();
+  // One pass over time (the rows it reads stay in cache: K rows of dy and of u around s).
   for (int64_t s = -(K - 1); s < T; ++s) {
     if (s < 0 && dtail == nullptr) continue;
     for (int64_t j = 0; j < n; ++j) sum[j] = S(0);
@@ -533,13 +534,12 @@ BLOCKYARD_RGLRU_CLONES void conv_backward_item(const S* __restrict__ gy, const I
     }
     I* __restrict__ d = s >= 0 ? dx + (row * T + s) * C + c0 : dtail + (row * (K - 1) + K - 1 + s) * C + c0;
     for (int64_t j = 0; j < n; ++j) store(d, j, sum[j]);
-  }
-  for (int64_t t = 0; t < T; ++t) {
-    const S* __restrict__ g = gy + (row * T + t) * C + c0;
+    if (s < 0) continue;
+    const S* __restrict__ g = gy + (row * T + s) * C + c0;  // dL/dw and dL/dbias from output s
     S* __restrict__ db = acc + K * n;
     for (int64_t j = 0; j < n; ++j) db[j] += g[j];
     for (int64_t k = 0; k < K; ++k) {
-      const I* __restrict__ src = conv_input(x, tail, row, t - K + 1 + k, a);
+      const I* __restrict__ src = conv_input(x, tail, row, s - K + 1 + k, a);
       if (src == nullptr) continue;
       src += c0;
       S* __restrict__ dw = acc + k * n;
