@@ -17,7 +17,9 @@ bf16 autocast. Two implementations of the same math: ``rg_lru_reference`` compos
 around ``blockyard.kernels.linear_scan`` (the reference, and the fallback without a compiler);
 the fused C++ op ``blockyard.kernels.ops.rg_lru_fused`` does decay, input normalisation, input
 gate and scan in one pass. ``rg_lru(..., backend=)`` picks one: the scan backend (config key
-``runtime.scan``) is handed to the block by the model builder, never read from a global.
+``runtime.scan``) is handed to the block by the model builder, never read from a global. The same
+backend picks the causal depthwise conv: ``causal_depthwise_conv`` (torch's grouped conv1d, the
+reference) or the C++ op ``blockyard.kernels.ops.causal_conv_fused`` (``causal_conv`` chooses).
 
 Ablation knobs (``RecurrenceOptions``): ``gate: false`` is a fixed-decay diagonal recurrence in the
 style of S4D (Gu et al. 2022): a = sigmoid(Lambda), constant over time, and no input gate either,
