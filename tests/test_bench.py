@@ -282,6 +282,7 @@ def test_profile_splits_the_scan_out_of_the_recurrence():
     assert _is_scan("autograd::engine::evaluate_function: _ChunkedScanBackward")
     assert _is_scan("blockyard::rg_lru") and _is_scan("GeneratedBackwardFor_blockyard_rg_lru_defaultBackward")
     assert not _is_scan("aten::mm")
+    assert not _is_scan("blockyard::causal_conv") and not _is_scan("GeneratedBackwardFor_blockyard_causal_conv_default")
 
 
 def test_bench_command_rejects_bad_arguments(tmp_path):

@@ -13,8 +13,15 @@ import pytest
 import torch
 
 from blockyard.kernels import build, scan_backend_info, scan_reference
-from blockyard.kernels.ops import rg_lru_backward_op, rg_lru_fused, rg_lru_op
-from blockyard.mixers.recurrence import rg_lru, rg_lru_reference, uses_fused_op
+from blockyard.kernels.ops import (
+    causal_conv_backward_op,
+    causal_conv_fused,
+    causal_conv_op,
+    rg_lru_backward_op,
+    rg_lru_fused,
+    rg_lru_op,
+)
+from blockyard.mixers.recurrence import causal_depthwise_conv, rg_lru, rg_lru_reference, uses_fused_op
 
 # bf16 keeps 8 significant bits: one round-to-nearest is off by at most 2^-9 relative (IEEE-754
 # rounding, common practice, no source); gradients that leave the op in bf16 are rounded once.
@@ -194,3 +201,107 @@ def test_fused_step_equals_the_composed_step_and_leaves_the_state_alone(kernels,
             torch.testing.assert_close(y1, y2, atol=1e-5, rtol=1e-5)
             torch.testing.assert_close(s_fused.h, s_comp.h, atol=1e-5, rtol=1e-5)
             torch.testing.assert_close(s_fused.conv_tail, s_comp.conv_tail, atol=0, rtol=0)
+
+
+# ----------------------------------------------------------------------------- causal depthwise conv
+# The C++ conv (rglru_cpu.cpp, causal_conv_*) against the block's reference ``causal_depthwise_conv``,
+# which is torch's grouped F.conv1d over (tail, x): y_t = bias + sum_k w[:, k] x_{t-K+1+k}
+# (De et al. 2024, fig. 2: a causal depthwise Conv1D).
+
+
+def conv_inputs(shape, taps, *, tail=False, dtype=torch.float32, seed=0):
+    """x as the strided recurrent half of a (B, T, 2C) projection (as in the block), weight, bias, tail."""
+    gen = torch.Generator().manual_seed(seed)
+    batch, steps, channels = shape
+    sdt = torch.promote_types(dtype, torch.float32)
+    both = torch.randn(batch, steps, 2 * channels, generator=gen).to(dtype).requires_grad_()
+    weight = torch.randn(channels, taps, generator=gen).to(sdt).requires_grad_()
+    bias = torch.randn(channels, generator=gen).to(sdt).requires_grad_()
+    before = torch.randn(batch, taps - 1, channels, generator=gen).to(dtype).requires_grad_() if tail else None
+    return both, weight, bias, before
+
+
+def conv_values_and_grads(fn, both, weight, bias, tail, seed=1):
+    channels = weight.shape[0]
+    y = fn(both[..., channels:], weight, bias, tail)
+    grad_y = torch.randn(y.shape, generator=torch.Generator().manual_seed(seed)).to(y.dtype)
+    leaves = [t for t in (both, weight, bias, tail) if t is not None]
+    return [y.detach(), *torch.autograd.grad((y * grad_y).sum(), leaves)]
+
+
+def conv_reference(x, weight, bias, tail):
+    return causal_depthwise_conv(x, weight, bias, tail)[0]
+
+
+CONV_SHAPES = [((1, 1, 1), 4), ((2, 2, 5), 4), ((3, 37, 20), 4), ((2, 9, 64), 3), ((1, 40, 16), 1), ((2, 5, 33), 6)]
+
+
+@pytest.mark.parametrize(("shape", "taps"), CONV_SHAPES, ids=str)
+@pytest.mark.parametrize("tail", [False, True], ids=["zeros-before", "tail"])
+def test_fused_conv_matches_torch_conv1d_fp32(kernels, shape, taps, tail):
+    # fp32 atol 1e-5, forward and the gradients wrt x (through the strided view), weight, bias and tail.
+    args = conv_inputs(shape, taps, tail=tail, seed=sum(shape) + taps)
+    got = conv_values_and_grads(causal_conv_fused, *args)
+    want = conv_values_and_grads(conv_reference, *args)
+    assert got[0].is_contiguous()
+    for name, g, w in zip(("y", "x", "weight", "bias", "tail"), got, want, strict=False):
+        torch.testing.assert_close(g, w, atol=1e-5, rtol=1e-5, msg=lambda m, name=name: f"{name}: {m}")
+
+
+def test_fused_conv_bf16_inputs_within_the_rounding_bound(kernels):
+    # bf16 x and tail, float32 weights: the op sums the K taps in float32 and returns float32, so it
+    # matches the float64 conv of the same bf16 values to fp32 accuracy; the gradients wrt the bf16
+    # inputs are rounded to bf16 once (BF16_GRAD_RTOL), those wrt the weights are float32 sums.
+    both, weight, bias, tail = conv_inputs((2, 30, 24), 4, tail=True, dtype=torch.bfloat16, seed=4)
+    got = conv_values_and_grads(causal_conv_fused, both, weight, bias, tail)
+    wide = [t.detach().double().requires_grad_() for t in (both, weight, bias, tail)]
+    want = conv_values_and_grads(conv_reference, *wide)
+    assert got[0].dtype == torch.float32 and got[1].dtype == got[4].dtype == torch.bfloat16
+    torch.testing.assert_close(got[0].double(), want[0], atol=1e-5, rtol=1e-5)
+    for g, w in zip(got[1:], want[1:], strict=True):
+        rtol = BF16_GRAD_RTOL if g.dtype == torch.bfloat16 else 1e-5
+        torch.testing.assert_close(g.double(), w, atol=1e-5, rtol=rtol)
+
+
+def test_fused_conv_gradcheck_float64(kernels):
+    # Finite differences (torch.autograd.gradcheck) against the hand-derived backward, with and without a tail.
+    x = torch.randn(2, 6, 3, dtype=torch.float64, requires_grad=True)
+    weight = torch.randn(3, 4, dtype=torch.float64, requires_grad=True)
+    bias = torch.randn(3, dtype=torch.float64, requires_grad=True)
+    tail = torch.randn(2, 3, 3, dtype=torch.float64, requires_grad=True)
+    assert torch.autograd.gradcheck(causal_conv_fused, (x, weight, bias, tail))
+    assert torch.autograd.gradcheck(causal_conv_fused, (x[:, :2], weight, bias))  # T < K - 1: all taps reach back
+
+
+def test_conv_fake_kernels_give_shapes_and_dtypes_without_running():
+    from torch._subclasses.fake_tensor import FakeTensorMode
+
+    with FakeTensorMode():
+        x, weight, bias = torch.empty(4, 16, 8, dtype=torch.bfloat16), torch.empty(8, 4), torch.empty(8)
+        tail = torch.empty(4, 3, 8, dtype=torch.bfloat16)
+        y = causal_conv_op(x, tail, weight, bias)
+        assert y.shape == (4, 16, 8) and y.dtype == torch.float32
+        grads = causal_conv_backward_op(y, x, tail, weight)
+        assert [tuple(g.shape) for g in grads] == [(4, 16, 8), (4, 3, 8), (8, 4), (8,)]
+        assert [g.dtype for g in grads] == [torch.bfloat16] * 2 + [torch.float32] * 2
+
+
+def test_block_gradients_match_between_compiled_and_composed_paths(kernels):
+    # The whole block (C++ conv and fused RG-LRU vs torch's conv1d and the composed RG-LRU): same
+    # output and same gradients for every parameter and the input, fp32 atol 1e-5.
+    from blockyard.mixers import MIXERS
+    from blockyard.mixers.recurrence import RecurrenceOptions
+
+    torch.manual_seed(12)
+    fast = MIXERS["recurrence"](32, RecurrenceOptions(), layer=0, depth=2, scan_backend="compiled")
+    composed = MIXERS["recurrence"](32, RecurrenceOptions(), layer=0, depth=2, scan_backend="chunked")
+    composed.load_state_dict(fast.state_dict())
+    x = torch.randn(3, 21, 32, requires_grad=True)
+    grad_y = torch.randn(3, 21, 32)
+    results = []
+    for block in (fast, composed):
+        y = block(x)
+        results.append([y.detach(), *torch.autograd.grad((y * grad_y).sum(), [x, *block.parameters()])])
+    names = ["y", "x", *(n for n, _ in fast.named_parameters())]
+    for name, g, w in zip(names, *results, strict=True):
+        torch.testing.assert_close(g, w, atol=1e-5, rtol=1e-5, msg=lambda m, name=name: f"{name}: {m}")

@@ -63,9 +63,11 @@ def _forward_bucket(event: Any) -> str | None:
 def _is_scan(name: str) -> bool:
     """The range of a scan autograd Function (``_ChunkedScan``) or of its backward, or of a compiled
     kernel's custom op (``blockyard::linear_scan``, the fused ``blockyard::rg_lru``, which holds the
-    RG-LRU's gates and decay too) or of its backward."""
+    RG-LRU's gates and decay too) or of its backward; the other custom ops (the causal conv) stay
+    with their block."""
     name = name.removeprefix("autograd::engine::evaluate_function: ")
-    compiled = name.startswith(("blockyard::", "GeneratedBackwardFor_blockyard_"))
+    prefixes = ("blockyard::", "GeneratedBackwardFor_blockyard_")
+    compiled = name.startswith(tuple(p + op for p in prefixes for op in ("linear_scan", "rg_lru")))
     return compiled or (name.startswith("_") and "Scan" in name)
 
 

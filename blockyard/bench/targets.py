@@ -5,6 +5,10 @@ from __future__ import annotations
 import dataclasses
 from typing import Any
 
+# Issue 19: the compiled scan's forward + backward stays within 1.2x one elementwise multiply-add's
+# forward + backward (the memory-bandwidth floor of scripts/bench_scan.py); it was 3.0 before.
+SCAN_TARGET_RATIO = 1.2
+
 
 @dataclasses.dataclass(frozen=True)
 class Target:
@@ -33,13 +37,14 @@ def speed_targets(result: dict[str, Any]) -> list[Target]:
     # The trainer / plain ratios: each blockyard figure over the mean of the plain ones measured just
     # before and after it, median over rounds (the interleaved comparison); the others best / best.
     bracketed = result.get("ratios_median_of_rounds", r)
-    # Issue 19's targets (ratios of one run, side by side); the scan's is the earlier bound.
+    # Issue 19's targets (ratios of one run, side by side).
     targets = [
         Target("blockyard train / plain loop tokens/s, global attention fp32", bracketed["blockyard_over_plain_fp32"],
                ">=", 0.98),
         Target("blockyard train / plain loop tokens/s, global attention bf16", bracketed["blockyard_over_plain_bf16"],
                ">=", 0.98, no_bf16),
-        Target("scan fwd+bwd / multiply-add fwd+bwd, (16, 256, 256)", auto.get("ratio_to_floor"), "<=", 3.0),
+        Target("scan fwd+bwd / multiply-add fwd+bwd, (16, 256, 256)", auto.get("ratio_to_floor"), "<=",
+               SCAN_TARGET_RATIO),
         Target("recurrence / global attention tokens/s, seq 256", r["recurrence_over_attention_s256"], ">=", 1.25),
         Target("recurrence / global attention tokens/s, seq 2048", r["recurrence_over_attention_s2048"], ">=", 2.0),
         Target("bf16 / fp32 tokens/s, global attention", r["bf16_over_fp32_attention"], ">=", 1.8, no_bf16),

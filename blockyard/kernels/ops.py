@@ -147,3 +147,65 @@ def rg_lru_fused(x: Tensor, decay: Tensor, gate_a_logits: Tensor | None = None, 
     gates = [None if g is None else g.to(x.dtype).contiguous() for g in (gate_a_logits, gate_x_logits)]
     start = x.new_zeros(x.shape[0], x.shape[2], dtype=sdt) if h0 is None else h0.to(sdt).contiguous()
     return rg_lru_op(x.contiguous(), gates[0], gates[1], decay.to(sdt).contiguous(), start, float(c), input_norm)
+
+
+# ----------------------------------------------------------------------------- causal depthwise conv
+
+
+@torch.library.custom_op("blockyard::causal_conv", mutates_args=())
+def causal_conv_op(x: Tensor, tail: Tensor | None, weight: Tensor, bias: Tensor) -> Tensor:
+    """y_t = bias + sum_k weight[:, k] x_{t-K+1+k} per channel, (B, T, C) in and out (``rglru_cpu.cpp``)."""
+    return compiled_ops().causal_conv_forward(x, tail, weight, bias)
+
+
+@causal_conv_op.register_fake
+def _(x: Tensor, tail: Tensor | None, weight: Tensor, bias: Tensor) -> Tensor:
+    return x.new_empty(x.shape, dtype=state_dtype(x.dtype))
+
+
+@torch.library.custom_op("blockyard::causal_conv_backward", mutates_args=())
+def causal_conv_backward_op(grad_y: Tensor, x: Tensor, tail: Tensor | None, weight: Tensor
+                            ) -> tuple[Tensor, Tensor, Tensor, Tensor]:
+    """(dx, dtail or an empty tensor, dweight, dbias) of the causal depthwise conv."""
+    return tuple(compiled_ops().causal_conv_backward(grad_y, x, tail, weight))
+
+
+@causal_conv_backward_op.register_fake
+def _(grad_y: Tensor, x: Tensor, tail: Tensor | None, weight: Tensor) -> tuple[Tensor, Tensor, Tensor, Tensor]:
+    dtail = x.new_empty(0) if tail is None else torch.empty_like(tail)
+    return (x.new_empty(x.shape), dtail, torch.empty_like(weight, memory_format=torch.contiguous_format),
+            weight.new_empty(weight.shape[0]))
+
+
+def _conv_setup(ctx: Any, inputs: tuple[Any, ...], output: Tensor) -> None:
+    x, tail, weight, _bias = inputs
+    ctx.save_for_backward(x, tail, weight)
+
+
+def _conv_backward(ctx: Any, grad_y: Tensor) -> tuple[Tensor | None, ...]:
+    x, tail, weight = ctx.saved_tensors
+    dx, dtail, dweight, dbias = causal_conv_backward_op(grad_y.contiguous(), x, tail, weight)
+    need = ctx.needs_input_grad
+    return (dx if need[0] else None, dtail if tail is not None and need[1] else None,
+            dweight if need[2] else None, dbias if need[3] else None)
+
+
+causal_conv_op.register_autograd(_conv_backward, setup_context=_conv_setup)
+
+
+def causal_conv_fused(x: Tensor, weight: Tensor, bias: Tensor, tail: Tensor | None = None) -> Tensor:
+    """The causal depthwise conv through the C++ op: same math as ``causal_depthwise_conv``'s y.
+
+    x: a (B, T, C) float32, bfloat16 or float64 CPU tensor, channels contiguous (any other strides:
+    no copy); weight (C, K), bias (C,) and the output are in the state dtype (float32 for bfloat16
+    inputs: the sum of the K taps is rounded once, into the float32 the RG-LRU reads); the tail
+    (B, K-1, C), the inputs before x, is cast to x's dtype as the reference does.
+    """
+    if x.device.type != "cpu" or x.dtype not in RG_LRU_DTYPES:
+        raise TypeError(f"the fused causal conv takes CPU {[str(d) for d in RG_LRU_DTYPES]} inputs, "
+                        f"got {x.dtype} on {x.device}")
+    if x.shape[-1] > 1 and x.stride(-1) != 1:
+        x = x.contiguous()
+    sdt = state_dtype(x.dtype)
+    tail = None if tail is None else tail.to(x.dtype).contiguous()
+    return causal_conv_op(x, tail, weight.to(sdt), bias.to(sdt).contiguous())
