@@ -171,3 +171,39 @@ def test_seed_rounds_with_a_null_control_end_to_end(tmp_path):
     rerun: list[str] = []
     assert run_grid(path, out=out, workers=2, threads=1, echo=rerun.append) == 0
     assert not any(ln.startswith("start ") for ln in rerun)
+
+
+def test_force_drops_the_records_of_changed_cells_that_no_round_plans_yet(tmp_path):
+    """After --force, a changed cell's old outcome must not survive in the index: with seeds until
+    decided, a seed of a later round is not planned at once, and its stale row was replayed as if
+    that round had run (and its cell, whose config had moved to superseded/, then failed to start)."""
+    from blockyard.grid.run import _plan_rows, _setup, _sync_index, current_cells, plan_cells
+
+    def spec_file(expansion: float) -> Path:
+        path = tmp_path / "grid.yaml"
+        path.write_text("name: stale\nbase:\n" + TINY_BASE + textwrap.dedent(f"""
+            variants:
+              ref: {{}}
+              wider: {{model.mlp_expansion: {expansion}}}
+            reference: ref
+            seeds: {{first: 2, most: 3}}
+            smallest_effect: 0.01
+        """))
+        return path
+
+    out = tmp_path / "out"
+    old = _setup(spec_file(2.5), out, None, 1, "local", None)
+    universe = plan_cells(old.spec, threads=1)
+    out.mkdir()
+    with open_index(out) as index:  # an earlier run that went to round 2: every seed recorded done
+        index.plan(_plan_rows(universe))
+        for i, p in enumerate(universe):
+            index.mark_finished(p.id, "done", summary={"final_val_loss": 2.0 + 0.01 * i})
+    new = _setup(spec_file(3.0), out, None, 1, "local", None)
+    universe = plan_cells(new.spec, threads=1)
+    with open_index(out) as index:
+        _sync_index(new, index, universe, force=True, echo=lambda _: None)
+        rows = {r["id"]: r for r in index.cells()}
+        cells, _line, _complete = current_cells(new.spec, universe, index.cells())
+    assert sorted(rows) == ["ref-seed0", "ref-seed1", "ref-seed2"]  # wider's old rows are gone, not kept as done
+    assert sorted(p.id for p in cells) == ["ref-seed0", "ref-seed1", "wider-seed0", "wider-seed1"]  # round 1 again

@@ -566,7 +566,9 @@ def _sync_index(s: _Setup, index: GridIndex, universe: list[PlannedCell], force:
         moved = _supersede(s.grid_dir, changed + removed, old)
         if moved:
             echo(f"moved {len(moved)} superseded cell(s) to {s.grid_dir / 'superseded'}")
-        index.remove_unplanned(set(new))
+        # A changed cell's row goes too: its outcome belongs to the old config, and with seeds until
+        # decided a later round (not planned now) would otherwise replay and report it.
+        index.remove_unplanned(set(new) - set(changed))
     old_design = index.get_meta("design")
     _refuse_changed_design(s.grid_dir, s.grid_file, old_design, s.spec.design, force)
     design_changed = index.get_meta("design_changed") or ""
@@ -679,7 +681,7 @@ def _tuning_stage(s: _Setup, index: GridIndex, tuning_plan: list[PlannedCell], f
             moved = _supersede(tdir, changed + removed, old)
             if moved:
                 echo(f"moved {len(moved)} superseded tuning cell(s) to {tdir / 'superseded'}")
-            tindex.remove_unplanned(set(new))
+            tindex.remove_unplanned(set(new) - set(changed))
         tindex.set_meta({"name": f"{s.spec.name} tuning", "threads": str(s.threads)})
         recorder = _Recorder(tdir, tindex, f"{s.spec.name} tuning", echo, status_every_s)
         t = s.spec.tuning
