@@ -1,5 +1,6 @@
 """Helpers shared by the test files: mixers built as a model gets them, the example plugins, and a
-mixer registry that each test leaves as it found it (plugin files add kinds to it)."""
+mixer registry that each test leaves as it found it (plugin files add kinds to it). Helpers for tiny
+runs and grids on disk live in ``_helpers.py``."""
 
 from __future__ import annotations
 

@@ -20,6 +20,7 @@ import time
 from pathlib import Path
 
 import pytest
+from _helpers import FailingFile
 
 from blockyard import fs, rundir
 from blockyard.errors import UserError, WriteFailed
@@ -131,25 +132,6 @@ def test_atomic_write_keeps_the_old_file_when_the_write_fails(tmp_path):
                               "2.5 MB, ")
     assert message.endswith(" free there)") and "\n" not in message
     assert failed.value.exit_code == 4
-
-
-class FailingFile:
-    """A real file whose writes fail with ``number``, as write(2) does on a full or broken disk."""
-
-    def __init__(self, raw, number: int) -> None:
-        self.raw, self.number = raw, number
-
-    def write(self, data):
-        raise OSError(self.number, os.strerror(self.number))
-
-    def __getattr__(self, name):
-        return getattr(self.raw, name)
-
-    def __enter__(self):
-        return self
-
-    def __exit__(self, *exc):
-        self.raw.close()
 
 
 def test_a_serializer_that_hides_the_os_error_still_reports_the_disk(tmp_path, monkeypatch):

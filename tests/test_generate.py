@@ -2,12 +2,12 @@
 
 from __future__ import annotations
 
-import random
 from pathlib import Path
 
 import pytest
 import torch
 import yaml
+from _helpers import write_word_corpus
 from scipy import stats
 
 from blockyard.cli import main
@@ -102,9 +102,8 @@ def test_negative_temperature_is_a_user_error():
 @pytest.fixture(scope="module")
 def run_dir(tmp_path_factory) -> Path:
     root = tmp_path_factory.mktemp("sample")
-    rng = random.Random(0)
     words = "the cat sat on a mat and ran to its hat".split()
-    (root / "corpus.txt").write_text("\n".join(" ".join(rng.choice(words) for _ in range(10)) for _ in range(800)))
+    write_word_corpus(root / "corpus.txt", words, seed=0, lines=800, words_per_line=10)
     cfg = {"model": {"width": 32, "depth": 2, "pattern": ["rec", "local"], "mixers": MIXERS},
            "data": {"corpus": str(root / "corpus.txt"), "seq_len": 32, "cache_dir": str(root / "cache")},
            "train": {"steps": 20, "batch_size": 4, "warmup_steps": 2, "eval_every": 10, "checkpoint_every": 10,

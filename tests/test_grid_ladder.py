@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import csv
-import hashlib
 import math
 import textwrap
 from pathlib import Path
@@ -11,17 +10,15 @@ from pathlib import Path
 import numpy as np
 import pytest
 import statsmodels.api as sm
-import torch
+from _helpers import check_refused_at_parse, earlier_grid_dir, real_non_embedding, tree_snapshot, write_grid
 
 from blockyard.cli import main
-from blockyard.errors import UserError
 from blockyard.grid.fairness import MATCH_TOLERANCE
 from blockyard.grid.index import open_index
 from blockyard.grid.ladder import TREND_COLUMNS, Ladder
 from blockyard.grid.report import GAP_VS_N, LOSS_VS_N, write_report
-from blockyard.grid.run import _plan_rows, plan_cells, run_grid
+from blockyard.grid.run import plan_cells, run_grid
 from blockyard.grid.spec import Design, load_grid
-from blockyard.model import build_model
 from blockyard.rundir import format_duration
 
 # Tiny cells on the pydoc corpus (ships with Python), byte tokens.
@@ -43,20 +40,6 @@ ladder:
   - {model.width: 32}
   - {model.width: 48, model.depth: 2}
 """
-
-
-def write_grid(tmp_path: Path, text: str, name: str = "grid.yaml") -> Path:
-    path = tmp_path / name
-    path.write_text(textwrap.dedent(text))
-    return path
-
-
-def real_non_embedding(cfg) -> int:
-    """Non-embedding parameters counted on a built model (torch numel), not the analytic count budgets use."""
-    torch.manual_seed(0)
-    model = build_model(cfg.model, 256)
-    embed = model.embed.weight.numel() + (model.head.weight.numel() if model.head is not None else 0)
-    return sum(p.numel() for p in model.parameters()) - embed
 
 
 def test_every_variant_rung_and_seed_is_a_cell_with_the_rung_budget_and_matching_per_rung(tmp_path):
@@ -86,23 +69,10 @@ def test_without_tokens_per_param_every_rung_keeps_the_base_budget(tmp_path):
     assert {(p.cell.cfg.train.tokens, p.cell.cfg.train.steps) for p in plan} == {(0, 10)}
 
 
-def _tree_snapshot(folder: Path) -> dict[str, tuple[float, str]]:
-    return {str(p.relative_to(folder)): (p.stat().st_mtime_ns, hashlib.sha256(p.read_bytes()).hexdigest())
-            for p in sorted(folder.rglob("*")) if p.is_file()}
-
-
 @pytest.fixture
 def existing_grid_dir(tmp_path) -> Path:
     """A grid dir holding an index of an earlier grid with one finished-looking cell."""
-    path = write_grid(tmp_path, BASE + "name: earlier\nseeds: [0]\n", "earlier.yaml")
-    grid_dir = tmp_path / "grid_dir"
-    grid_dir.mkdir()
-    with open_index(grid_dir) as index:
-        index.plan(_plan_rows(plan_cells(load_grid(path), threads=1)))
-        index.mark_finished("base-seed0", "done", summary={"final_val_loss": 1.5})
-    (grid_dir / "cells" / "base-seed0").mkdir(parents=True)
-    (grid_dir / "cells" / "base-seed0" / "summary.json").write_text('{"status": "done"}')
-    return grid_dir
+    return earlier_grid_dir(tmp_path, BASE + "name: earlier\nseeds: [0]\n")
 
 
 TWO_RUNGS = "ladder: [{model.width: 16}, {model.width: 32}]\n"
@@ -129,15 +99,7 @@ TWO_RUNGS = "ladder: [{model.width: 16}, {model.width: 32}]\n"
 def test_bad_ladders_fail_at_parse_with_one_line_naming_the_key(tmp_path, existing_grid_dir, capsys, body,
                                                                message):
     path = write_grid(tmp_path, BASE + "seeds: [0]\n" + body + "\n", "bad.yaml")
-    with pytest.raises(UserError) as err:
-        load_grid(path)
-    assert str(err.value).startswith(message), str(err.value)
-    before = _tree_snapshot(existing_grid_dir)
-    capsys.readouterr()
-    assert main(["grid", str(path), "--out", str(existing_grid_dir)]) == 2
-    out, errors = capsys.readouterr()
-    assert errors == f"error: {err.value}\n" and out == ""
-    assert _tree_snapshot(existing_grid_dir) == before
+    check_refused_at_parse(path, message, existing_grid_dir, capsys)
 
 
 def _width_n(width: int) -> int:
@@ -158,11 +120,11 @@ def test_ladders_whose_sizes_do_not_fit_fail_before_anything_is_written(tmp_path
     message = message.format(n16=_width_n(16), n32=_width_n(32))
     assert 5000 < _width_n(32)
     path = write_grid(tmp_path, BASE + "seeds: [0]\n" + body + "\n", "bad.yaml")
-    before = _tree_snapshot(existing_grid_dir)
+    before = tree_snapshot(existing_grid_dir)
     assert main(["grid", str(path), "--out", str(existing_grid_dir)]) == 2
     out, errors = capsys.readouterr()
     assert errors.startswith(f"error: {message}") and errors.count("\n") == 1 and out == "", errors
-    assert _tree_snapshot(existing_grid_dir) == before
+    assert tree_snapshot(existing_grid_dir) == before
     assert main(["grid", str(path), "--dry-run", "--out", str(existing_grid_dir)]) == 2
 
 

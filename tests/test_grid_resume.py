@@ -9,15 +9,12 @@ from __future__ import annotations
 import json
 import os
 import signal
-import subprocess
-import sys
 import textwrap
-import time
-from collections.abc import Callable
 from pathlib import Path
 
 import psutil
 import pytest
+from _helpers import start_grid, wait_until
 
 from blockyard.grid.index import open_index
 from blockyard.grid.run import run_grid
@@ -46,16 +43,6 @@ def _summary_status(cell: Path) -> str | None:
         return None
 
 
-def _wait(predicate: Callable[[], object], timeout: float, what: str) -> object:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        value = predicate()
-        if value:
-            return value
-        time.sleep(0.02)
-    raise AssertionError(f"timed out waiting for {what}")
-
-
 def _cell_mid_way(grid_dir: Path, not_these: set[str]) -> str | None:
     """A cell (not in ``not_these``) with a checkpoint and no summary yet, once some cell has finished."""
     cells = sorted((grid_dir / "cells").glob("*")) if (grid_dir / "cells").exists() else []
@@ -66,12 +53,6 @@ def _cell_mid_way(grid_dir: Path, not_these: set[str]) -> str | None:
         if c.name not in not_these and training and any((c / "checkpoints").glob("step_*.pt")):
             return c.name
     return None
-
-
-def _start(spec: Path, grid_dir: Path) -> subprocess.Popen:
-    return subprocess.Popen([sys.executable, "-m", "blockyard", "grid", str(spec), "--out", str(grid_dir),
-                             "--workers", "1", "--threads", "1"], stdout=subprocess.DEVNULL,
-                            stderr=subprocess.DEVNULL, start_new_session=True)
 
 
 def _records(grid_dir: Path, cell: str) -> dict[str, tuple[int, bytes]]:
@@ -97,8 +78,8 @@ def test_killed_grid_resumes_without_retraining_finished_cells(tmp_path):
 
     grid_dir = tmp_path / "interrupted"
     # 1. SIGTERM the grid: it stops its running cell cleanly (checkpoint) and exits 130.
-    proc = _start(spec, grid_dir)
-    first = _wait(lambda: _cell_mid_way(grid_dir, set()), 240, "a finished cell and one mid-way")
+    proc = start_grid(spec, grid_dir)
+    first = wait_until(lambda: _cell_mid_way(grid_dir, set()), 240, "a finished cell and one mid-way")
     finished_first = {c.name for c in (grid_dir / "cells").glob("*") if _summary_status(c) == "done"}
     kept = {cell: _records(grid_dir, cell) for cell in finished_first}
     os.kill(proc.pid, signal.SIGTERM)
@@ -109,8 +90,8 @@ def test_killed_grid_resumes_without_retraining_finished_cells(tmp_path):
 
     # 2. SIGKILL the grid process alone: its running cell must stop by itself (it asked the kernel
     #    for SIGTERM on the grid's death), after writing a checkpoint.
-    proc = _start(spec, grid_dir)
-    second = _wait(lambda: _cell_mid_way(grid_dir, {first}), 240, "a second cell mid-way")
+    proc = start_grid(spec, grid_dir)
+    second = wait_until(lambda: _cell_mid_way(grid_dir, {first}), 240, "a second cell mid-way")
     children = psutil.Process(proc.pid).children(recursive=True)
     os.kill(proc.pid, signal.SIGKILL)
     proc.wait(30)
@@ -120,8 +101,8 @@ def test_killed_grid_resumes_without_retraining_finished_cells(tmp_path):
     assert _summary_status(grid_dir / "cells" / second) == "interrupted"
 
     # 3. Rerun, then SIGKILL the whole process group (grid and cell at once: no clean stop).
-    proc = _start(spec, grid_dir)
-    _wait(lambda: _cell_mid_way(grid_dir, {first, second}), 240, "a third cell mid-way")
+    proc = start_grid(spec, grid_dir)
+    wait_until(lambda: _cell_mid_way(grid_dir, {first, second}), 240, "a third cell mid-way")
     os.killpg(proc.pid, signal.SIGKILL)
     proc.wait(30)
     finished_before_last = {c.name for c in (grid_dir / "cells").glob("*") if _summary_status(c) == "done"}

@@ -2,14 +2,12 @@
 
 from __future__ import annotations
 
-import hashlib
 import subprocess
 import sys
-import textwrap
 from pathlib import Path
 
 import pytest
-import torch
+from _helpers import check_refused_at_parse, earlier_grid_dir, real_non_embedding, tree_snapshot, write_grid
 
 from blockyard.cli import main
 from blockyard.config import to_dict
@@ -19,19 +17,12 @@ from blockyard.grid.fairness import MATCH_TOLERANCE, apply_matching, count_param
 from blockyard.grid.index import open_index
 from blockyard.grid.run import _plan_rows, makespan, plan_cells, run_grid
 from blockyard.grid.spec import expand_cells, load_grid
-from blockyard.model import build_model
 
 BASE = {
     "model": {"width": 32, "depth": 2, "pattern": ["global_attention"], "mlp_expansion": 2.0},
     "data": {"corpus": "pydoc", "seq_len": 32},
     "train": {"steps": 10, "batch_size": 4, "eval_every": 5, "eval_windows": 4},
 }
-
-
-def write_grid(tmp_path: Path, text: str, name: str = "grid.yaml") -> Path:
-    path = tmp_path / name
-    path.write_text(textwrap.dedent(text))
-    return path
 
 
 def test_cells_cross_variants_axes_and_seeds(tmp_path):
@@ -103,54 +94,32 @@ BAD_SPECS = [
 ]
 
 
-def _tree_snapshot(folder: Path) -> dict[str, tuple[float, str]]:
-    return {str(p.relative_to(folder)): (p.stat().st_mtime_ns, hashlib.sha256(p.read_bytes()).hexdigest())
-            for p in sorted(folder.rglob("*")) if p.is_file()}
-
-
 @pytest.fixture
 def existing_grid_dir(tmp_path) -> Path:
     """A grid dir holding an index of another grid's cells and a finished-looking cell dir."""
-    path = write_grid(tmp_path, """
+    return earlier_grid_dir(tmp_path, """
         name: earlier
         base: {model: {width: 32, depth: 1}, data: {seq_len: 32}}
         seeds: [0]
-    """, "earlier.yaml")
-    grid_dir = tmp_path / "grid_dir"
-    grid_dir.mkdir()
-    with open_index(grid_dir) as index:
-        index.plan(_plan_rows(plan_cells(load_grid(path), threads=1)))
-        index.mark_finished("base-seed0", "done", summary={"final_val_loss": 1.5})
-    (grid_dir / "cells" / "base-seed0").mkdir(parents=True)
-    (grid_dir / "cells" / "base-seed0" / "summary.json").write_text('{"status": "done"}')
-    return grid_dir
+    """)
 
 
 @pytest.mark.parametrize("body, message", BAD_SPECS)
 def test_bad_specs_fail_with_one_line_naming_the_key(tmp_path, existing_grid_dir, capsys, body, message):
     path = tmp_path / "bad.yaml"
     path.write_text("base: {model: {width: 32, depth: 1}, data: {seq_len: 32}}\nseeds: [0]\n" + body + "\n")
-    with pytest.raises(UserError) as err:
-        load_grid(path)
-    assert str(err.value).startswith(message), str(err.value)
-    assert "\n" not in str(err.value)
-    before = _tree_snapshot(existing_grid_dir)
-    capsys.readouterr()
-    assert main(["grid", str(path), "--out", str(existing_grid_dir)]) == 2
-    out, errors = capsys.readouterr()
-    assert errors == f"error: {err.value}\n" and out == ""
-    assert _tree_snapshot(existing_grid_dir) == before
+    check_refused_at_parse(path, message, existing_grid_dir, capsys)
 
 
 def test_bad_spec_exit_code_of_the_real_command(tmp_path, existing_grid_dir):
     path = tmp_path / "bad.yaml"
     path.write_text("base: {model: {width: 32}}\nseeds: [0]\naxes: {model.width: 64}\n")
-    before = _tree_snapshot(existing_grid_dir)
+    before = tree_snapshot(existing_grid_dir)
     proc = subprocess.run([sys.executable, "-m", "blockyard", "grid", str(path), "--out", str(existing_grid_dir)],
                           capture_output=True, text=True, timeout=120)
     expected = "error: axes.model.width: expected a list of values\n"
     assert (proc.returncode, proc.stdout, proc.stderr) == (2, "", expected)
-    assert _tree_snapshot(existing_grid_dir) == before
+    assert tree_snapshot(existing_grid_dir) == before
 
 
 @pytest.mark.parametrize("seeds, message", [
@@ -163,11 +132,11 @@ def test_bad_spec_exit_code_of_the_real_command(tmp_path, existing_grid_dir):
 def test_bad_seed_schedules_exit_2_and_leave_the_grid_dir(tmp_path, existing_grid_dir, capsys, seeds, message):
     path = tmp_path / "bad.yaml"
     path.write_text(f"base: {{model: {{width: 32, depth: 1}}, data: {{seq_len: 32}}}}\nseeds: {seeds}\n")
-    before = _tree_snapshot(existing_grid_dir)
+    before = tree_snapshot(existing_grid_dir)
     assert main(["grid", str(path), "--out", str(existing_grid_dir)]) == 2
     out, errors = capsys.readouterr()
     assert errors.startswith(f"error: {message}") and errors.count("\n") == 1 and out == ""
-    assert _tree_snapshot(existing_grid_dir) == before
+    assert tree_snapshot(existing_grid_dir) == before
 
 
 def test_seed_schedule_and_null_control_expand_into_cells(tmp_path):
@@ -216,12 +185,12 @@ def test_changed_spec_in_existing_dir_is_refused_and_dir_untouched(tmp_path, exi
         base: {model: {width: 48, depth: 1}, data: {seq_len: 32}}
         seeds: [0]
     """, "changed.yaml")
-    before = _tree_snapshot(existing_grid_dir)
+    before = tree_snapshot(existing_grid_dir)
     assert main(["grid", str(path), "--out", str(existing_grid_dir)]) == 2
     errors = capsys.readouterr().err
     assert errors.startswith(f"error: {existing_grid_dir}: holds a grid whose cells differ")
     assert "--force" in errors and errors.count("\n") == 1
-    assert _tree_snapshot(existing_grid_dir) == before
+    assert tree_snapshot(existing_grid_dir) == before
 
 
 def test_non_grid_dir_is_refused(tmp_path):
@@ -237,14 +206,6 @@ def test_non_grid_dir_is_refused(tmp_path):
 
 
 # ----------------------------------------------------------------------------- fairness
-
-
-def _real_non_embedding(cfg) -> int:
-    """Count on a real (CPU) model, independently of the analytic count used for matching."""
-    torch.manual_seed(0)
-    model = build_model(cfg.model, 256)
-    embed = model.embed.weight.numel() + (model.head.weight.numel() if model.head is not None else 0)
-    return sum(p.numel() for p in model.parameters()) - embed
 
 
 def test_match_params_lands_within_two_percent_for_recurrence_vs_attention(tmp_path):
@@ -264,12 +225,12 @@ def test_match_params_lands_within_two_percent_for_recurrence_vs_attention(tmp_p
     spec = load_grid(path)
     raw = expand_cells(spec)
     cells = apply_matching(spec, raw)
-    ref = _real_non_embedding(cells[0].cfg)
+    ref = real_non_embedding(cells[0].cfg)
     for before, after in zip(raw, cells, strict=True):
         if after.variant == "attention":
             assert after.adjustments == {} and after.cfg == before.cfg
             continue
-        got = _real_non_embedding(after.cfg)
+        got = real_non_embedding(after.cfg)
         assert abs(got - ref) <= MATCH_TOLERANCE * ref, (after.id, got, ref)
         # Only the MLP expansion moved.
         assert set(after.adjustments) == {"model.mlp_expansion"}
@@ -278,7 +239,7 @@ def test_match_params_lands_within_two_percent_for_recurrence_vs_attention(tmp_p
         b["model"].pop("mlp_expansion")
         assert a == b
         # Unmatched, these variants are more than 2% off (else the test would prove nothing).
-        assert abs(_real_non_embedding(before.cfg) - ref) > MATCH_TOLERANCE * ref, after.id
+        assert abs(real_non_embedding(before.cfg) - ref) > MATCH_TOLERANCE * ref, after.id
     assert count_params(cells[0].cfg)["non_embedding"] == ref
 
 
@@ -368,7 +329,7 @@ def test_dry_run_lists_costs_and_trains_nothing(tmp_path, capsys):
     cells = apply_matching(spec, expand_cells(spec))
     for cell in cells:
         line = next(ln for ln in out.splitlines() if ln.startswith(cell.id + " "))
-        assert f" {_real_non_embedding(cell.cfg):,d} " in line
+        assert f" {real_non_embedding(cell.cfg):,d} " in line
         assert f" {flops_per_token(cell.cfg):,.0f} " in line
         assert " 10 " in line and " 1,280 " in line  # steps, tokens = 10 x 4 x 32
     assert "model.mlp_expansion=" in out
@@ -413,12 +374,12 @@ def test_changed_verdict_rules_are_refused_without_force(tmp_path, capsys):
     with open_index(grid_dir) as index:
         index.plan(_plan_rows(plan_cells(spec, threads=1)))
         index.set_meta({"design": spec.design.to_json(), "threads": "1"})
-    before = _tree_snapshot(grid_dir)
+    before = tree_snapshot(grid_dir)
     changed = write_grid(tmp_path, text % "0.05", "changed.yaml")
     assert main(["grid", str(changed), "--out", str(grid_dir)]) == 2
     errors = capsys.readouterr().err
     assert "its verdict rules (smallest_effect, seeds schedule, null_control) differ" in errors
-    assert errors.count("\n") == 1 and _tree_snapshot(grid_dir) == before
+    assert errors.count("\n") == 1 and tree_snapshot(grid_dir) == before
 
 
 CONFIGS = Path(__file__).resolve().parent.parent / "configs" / "grids"

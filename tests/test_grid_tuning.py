@@ -9,18 +9,16 @@ by numerical integration with scipy, not from memory).
 from __future__ import annotations
 
 import csv
-import hashlib
 import math
 import os
 import signal
-import subprocess
-import sys
 import textwrap
 import time
 from pathlib import Path
 
 import numpy as np
 import pytest
+from _helpers import check_refused_at_parse, start_grid, tree_snapshot, write_grid
 from scipy import integrate
 from scipy import stats as sps
 
@@ -33,12 +31,6 @@ from blockyard.grid.status import status_text
 from blockyard.grid.tuning import basin, choose, mean_score, shared_value_differences, tuned_groups
 
 INF = math.inf
-
-
-def write(tmp_path: Path, text: str, name: str = "grid.yaml") -> Path:
-    path = tmp_path / name
-    path.write_text(textwrap.dedent(text))
-    return path
 
 
 def _row(variant: str, value: float, seed: int, status: str, loss: float | None, key: str = "train.lr") -> dict:
@@ -147,7 +139,7 @@ SPEC = """
 
 
 def test_tuning_cells_cross_variants_values_and_tuning_seeds(tmp_path):
-    spec = load_grid(write(tmp_path, SPEC))
+    spec = load_grid(write_grid(tmp_path, SPEC))
     assert spec.tuning.values == (1e-3, 2e-3, 4e-3, 8e-3)  # log-spaced, 3 significant digits
     cells = plan_tuning(spec, threads=1)
     assert len(cells) == 2 * 4 * 2  # variants x values x tuning seeds; the null control is not tuned
@@ -163,7 +155,7 @@ def test_tuning_cells_cross_variants_values_and_tuning_seeds(tmp_path):
 
 
 def test_verdict_cells_carry_each_variants_chosen_value(tmp_path):
-    spec = load_grid(write(tmp_path, SPEC))
+    spec = load_grid(write_grid(tmp_path, SPEC))
     chosen = {("attention", ()): 2e-3, ("recurrence", ()): 8e-3}
     cells = {p.id: p.cell for p in plan_cells(spec, threads=1, chosen=chosen)}
     assert {cid: c.cfg.train.lr for cid, c in cells.items()} == {
@@ -177,7 +169,7 @@ def test_dry_run_lists_both_stages(tmp_path, capsys, monkeypatch):
     from blockyard.grid import estimate
 
     monkeypatch.setattr(estimate, "measure_tokens_per_s", lambda cfg, threads: 1000.0)
-    path = write(tmp_path, SPEC)
+    path = write_grid(tmp_path, SPEC)
     assert main(["grid", str(path), "--out", str(tmp_path / "out"), "--dry-run", "--workers", "2",
                  "--threads", "1"]) == 0
     out = capsys.readouterr().out
@@ -190,11 +182,6 @@ def test_dry_run_lists_both_stages(tmp_path, capsys, monkeypatch):
 
 
 # ----------------------------------------------------------------------------- bad input
-
-
-def _tree_snapshot(folder: Path) -> dict[str, str]:
-    return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
-            for p in sorted(folder.rglob("*")) if p.is_file()}
 
 
 BAD_TUNE = [
@@ -231,31 +218,23 @@ def test_bad_tune_blocks_exit_2_and_leave_the_grid_dir(tmp_path, capsys, body, m
     path = tmp_path / "bad.yaml"
     path.write_text("base: {model: {width: 32, depth: 1, pattern: [global_attention]}, data: {seq_len: 32}}\n"
                     "seeds: [0]\ntune: " + body + "\n")
-    with pytest.raises(UserError) as err:
-        load_grid(path)
-    assert str(err.value).startswith(message), str(err.value)
-    before = _tree_snapshot(grid_dir)
-    capsys.readouterr()
-    assert main(["grid", str(path), "--out", str(grid_dir)]) == 2
-    out, errors = capsys.readouterr()
-    assert errors == f"error: {err.value}\n" and out == ""
-    assert _tree_snapshot(grid_dir) == before
+    check_refused_at_parse(path, message, grid_dir, capsys)
 
 
 def test_adding_a_tune_block_to_a_run_grid_is_refused_without_force(tmp_path, capsys):
     untuned = SPEC.split("    tune:")[0]
     grid_dir = tmp_path / "out"
-    spec = load_grid(write(tmp_path, untuned, "untuned.yaml"))
+    spec = load_grid(write_grid(tmp_path, untuned, "untuned.yaml"))
     from blockyard.grid.run import _plan_rows
 
     grid_dir.mkdir()
     with open_index(grid_dir) as index:
         index.plan(_plan_rows(plan_cells(spec, threads=1)))
-    before = _tree_snapshot(grid_dir)
-    assert main(["grid", str(write(tmp_path, SPEC)), "--out", str(grid_dir), "--threads", "1"]) == 2
+    before = tree_snapshot(grid_dir)
+    assert main(["grid", str(write_grid(tmp_path, SPEC)), "--out", str(grid_dir), "--threads", "1"]) == 2
     err = capsys.readouterr().err
     assert err.startswith(f"error: {grid_dir}: holds a grid whose tune block differs") and err.count("\n") == 1
-    assert _tree_snapshot(grid_dir) == before
+    assert tree_snapshot(grid_dir) == before
 
 
 # ----------------------------------------------------------------------------- end to end
@@ -297,7 +276,7 @@ def _section(report: str, start: str, end: str) -> str:
 @pytest.fixture(scope="module")
 def tuned_grid(tmp_path_factory) -> tuple[Path, Path, list[str]]:
     tmp = tmp_path_factory.mktemp("tuned")
-    path = write(tmp, E2E)
+    path = write_grid(tmp, E2E)
     lines: list[str] = []
     assert run_grid(path, out=tmp / "out", workers=2, threads=1, echo=lines.append) == 0, lines
     return path, tmp / "out", lines
@@ -357,10 +336,8 @@ def _wait_mid_way(cells: Path, timeout: float = 300) -> None:
 def test_kills_in_either_stage_resume_to_the_same_report(tuned_grid, tmp_path):
     path, reference, _ = tuned_grid
     grid_dir = tmp_path / "killed"
-    command = [sys.executable, "-m", "blockyard", "grid", str(path), "--out", str(grid_dir), "--workers", "1",
-               "--threads", "1"]
     for cells in (grid_dir / "tuning" / "cells", grid_dir / "cells"):  # a kill in stage 1, then in stage 2
-        proc = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True)
+        proc = start_grid(path, grid_dir)
         _wait_mid_way(cells)
         if cells == grid_dir / "tuning" / "cells":
             assert "stage 1 of 2 (tuning train.lr)" in status_text(grid_dir)
@@ -397,13 +374,13 @@ def test_a_changed_tune_block_is_refused_then_forced_and_only_what_changed_rerun
     _path, reference, _ = tuned_grid
     grid_dir = tmp_path / "changed"
     shutil.copytree(reference, grid_dir)
-    path = write(tmp_path, E2E.replace("values: [0.003, 0.01, 0.1]", "values: [0.003, 0.01]"), "changed.yaml")
-    before = _tree_snapshot(grid_dir)
+    path = write_grid(tmp_path, E2E.replace("values: [0.003, 0.01, 0.1]", "values: [0.003, 0.01]"), "changed.yaml")
+    before = tree_snapshot(grid_dir)
     capsys.readouterr()
     assert main(["grid", str(path), "--out", str(grid_dir), "--threads", "1"]) == 2
     err = capsys.readouterr().err
     assert err.startswith(f"error: {grid_dir}: holds a grid whose tune block differs") and err.count("\n") == 1
-    assert _tree_snapshot(grid_dir) == before
+    assert tree_snapshot(grid_dir) == before
 
     wide_summaries = {p: p.stat().st_mtime_ns for p in (grid_dir / "cells").glob("wide-seed*/summary.json")}
     tuning_summaries = {p: p.stat().st_mtime_ns for p in (grid_dir / "tuning" / "cells").glob("*/summary.json")}
@@ -431,7 +408,7 @@ def test_a_changed_tune_block_is_refused_then_forced_and_only_what_changed_rerun
 
 def test_matched_key_and_seed_overlap_are_checked_with_schedules(tmp_path):
     # A seed schedule's potential seeds (0 .. most - 1) count as verdict seeds.
-    path = write(tmp_path, SPEC.replace("seeds: [0, 1]", "seeds: {first: 2, most: 101}"))
+    path = write_grid(tmp_path, SPEC.replace("seeds: [0, 1]", "seeds: {first: 2, most: 101}"))
     with pytest.raises(UserError, match=r"^tune\.seeds: 100 also among the grid's seeds"):
         load_grid(path)
 
@@ -479,7 +456,7 @@ LADDER_TUNED = """
 def _ladder_spec(tmp_path: Path, rungs: str | None = "first", extra: str = "", name: str = "carried.yaml"):
     text = LADDER_TUNED if rungs == "first" else LADDER_TUNED.replace(
         "      rungs: first\n", "" if rungs is None else f"      rungs: {rungs}\n")
-    return write(tmp_path, text + textwrap.indent(textwrap.dedent(extra), "    "), name)
+    return write_grid(tmp_path, text + textwrap.indent(textwrap.dedent(extra), "    "), name)
 
 
 def test_tune_rungs_parses_and_defaults_to_all_also_for_records_from_before_the_key(tmp_path):
@@ -552,12 +529,12 @@ def test_changing_tune_rungs_in_a_grid_dir_is_refused_without_force(tmp_path, ca
     grid_dir = tmp_path / "out"
     _planned_grid_dir(grid_dir, load_grid(_ladder_spec(tmp_path)),
                       {("attention", (("rung", 1),)): 1e-3, ("recurrence", (("rung", 1),)): 1e-2})
-    before = _tree_snapshot(grid_dir)
+    before = tree_snapshot(grid_dir)
     assert main(["grid", str(_ladder_spec(tmp_path, "all", name="all.yaml")), "--out", str(grid_dir),
                  "--threads", "1"]) == 2
     err = capsys.readouterr().err
     assert err.startswith(f"error: {grid_dir}: holds a grid whose tune block differs") and err.count("\n") == 1
-    assert _tree_snapshot(grid_dir) == before
+    assert tree_snapshot(grid_dir) == before
     # A record from before `rungs` existed is the same block as today's default, not a change.
     spec = load_grid(_ladder_spec(tmp_path, rungs=None, name="default.yaml"))
     old = '{"budget": 1.0, "key": "train.lr", "seeds": [100], "values": [0.001, 0.01]}'
@@ -586,7 +563,7 @@ def test_report_says_rung_1_was_tuned_and_the_value_carried(tmp_path, parametriz
         "    variants:\n      attention: {}\n      recurrence: {model.pattern: [recurrence]}",
         f"    variants:\n      attention: {extra}\n      recurrence: {{model.pattern: [recurrence], "
         f"{extra[1:-1]}}}")
-    spec = load_grid(write(tmp_path, text))
+    spec = load_grid(write_grid(tmp_path, text))
     grid_dir = tmp_path / "out"
     tuning_plan = plan_tuning(spec, threads=1)
     # Synthetic tuning losses: attention is best at 1e-3, recurrence at 1e-2.

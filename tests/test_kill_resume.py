@@ -21,26 +21,14 @@ import time
 from pathlib import Path
 
 import pytest
-import yaml
+from _helpers import child_env, comparable, grid_command, write_tiny_run, write_word_corpus
 
 from blockyard.config import load_config
 from blockyard.grid.run import run_grid
-from blockyard.rundir import read_metrics, read_summary, without_timing
+from blockyard.rundir import read_metrics, read_summary
 from blockyard.train import run_training
 
-REPO = Path(__file__).resolve().parents[1]
-ENV = {**os.environ, "PYTHONPATH": str(REPO), "OMP_NUM_THREADS": "1"}
 WORDS = "kill the run at any moment and it must come back the same as if nothing had happened".split()
-
-
-def write_corpus(path: Path) -> Path:
-    rng = random.Random(3)
-    path.write_text("\n".join(" ".join(rng.choice(WORDS) for _ in range(12)) for _ in range(3000)))
-    return path
-
-
-def comparable(run_dir: Path) -> list[dict]:
-    return [without_timing(line) for line in read_metrics(run_dir / "metrics.jsonl")]
 
 
 def last_step(run_dir: Path) -> int:
@@ -81,7 +69,7 @@ class ForkingRunner:
     """Runs ``blockyard ARGS`` again and again, each time as a new forked process (see above)."""
 
     def __init__(self, args: list[str], err: Path) -> None:
-        self.server = subprocess.Popen([sys.executable, "-c", _FORK_SERVER, *args], env=ENV, text=True,
+        self.server = subprocess.Popen([sys.executable, "-c", _FORK_SERVER, *args], env=child_env(), text=True,
                                        stdin=subprocess.PIPE, stdout=subprocess.PIPE)
         self.err = err  # the stderr of the latest run
         self.pid: int | None = None
@@ -113,15 +101,9 @@ class ForkingRunner:
 @pytest.mark.slow
 @pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="watches the forked runs through /proc (Linux)")
 def test_training_killed_20_times_resumes_to_the_uninterrupted_metrics(tmp_path):
-    config = {
-        "model": {"width": 32, "depth": 1, "pattern": ["global_attention"]},
-        "data": {"corpus": str(write_corpus(tmp_path / "corpus.txt")), "tokenizer": "bytes", "seq_len": 32,
-                 "cache_dir": str(tmp_path / "cache")},
-        "train": {"steps": 150, "batch_size": 4, "warmup_steps": 5, "log_every": 1, "eval_every": 10,
-                  "checkpoint_every": 1, "keep_checkpoints": 2, "eval_windows": 2},
-        "runtime": {"threads": 1, "scan": "chunked"},  # no kernel build in every process
-    }
-    (tmp_path / "run.yaml").write_text(yaml.safe_dump(config))
+    train = {"steps": 150, "batch_size": 4, "warmup_steps": 5, "log_every": 1, "eval_every": 10,
+             "checkpoint_every": 1, "keep_checkpoints": 2, "eval_windows": 2}
+    write_tiny_run(tmp_path, WORDS, seed=3, train=train, lines=3000)
     run_training(load_config(tmp_path / "run.yaml"), tmp_path / "reference", progress="silent")
     out = tmp_path / "killed"
     runner = ForkingRunner(["train", str(tmp_path / "run.yaml"), "--out", str(out)], tmp_path / "run.err")
@@ -184,16 +166,16 @@ def grid_steps(grid_dir: Path) -> int:
 @pytest.mark.slow
 def test_grid_killed_5_times_ends_with_the_uninterrupted_results(tmp_path):
     spec = tmp_path / "killed.yaml"
-    spec.write_text(textwrap.dedent(SPEC).replace("CORPUS", str(write_corpus(tmp_path / "corpus.txt"))))
-    env = {**ENV, "BLOCKYARD_CACHE": str(tmp_path / "cache")}
+    corpus = write_word_corpus(tmp_path / "corpus.txt", WORDS, seed=3, lines=3000)
+    spec.write_text(textwrap.dedent(SPEC).replace("CORPUS", str(corpus)))
+    env = child_env(BLOCKYARD_CACHE=str(tmp_path / "cache"))
     os.environ["BLOCKYARD_CACHE"] = env["BLOCKYARD_CACHE"]  # for the in-process reference grid
     try:
         assert run_grid(spec, out=tmp_path / "reference", workers=1, threads=1, echo=lambda _: None) == 0
     finally:
         del os.environ["BLOCKYARD_CACHE"]
     grid_dir = tmp_path / "grid"
-    command = [sys.executable, "-m", "blockyard", "grid", str(spec), "--out", str(grid_dir), "--workers", "1",
-               "--threads", "1"]
+    command = grid_command(spec, grid_dir)
     rng = random.Random(5)
     kills = 0
     while True:

@@ -11,7 +11,6 @@ from __future__ import annotations
 import contextlib
 import json
 import os
-import random
 import signal
 import subprocess
 import sys
@@ -21,7 +20,7 @@ import time
 from pathlib import Path
 
 import pytest
-import yaml
+from _helpers import child_env, comparable, start_grid, wait_until, write_tiny_run
 
 from blockyard.cli import main
 from blockyard.config import load_config
@@ -29,43 +28,16 @@ from blockyard.errors import UserError
 from blockyard.grid.index import open_index
 from blockyard.grid.run import grid_lock
 from blockyard.grid.status import grid_progress, status_text
-from blockyard.rundir import read_metrics, read_summary, without_timing, writer_pid, writing
+from blockyard.rundir import read_metrics, read_summary, writer_pid, writing
 from blockyard.train import run_training
-
-REPO = Path(__file__).resolve().parents[1]
-ENV = {**os.environ, "PYTHONPATH": str(REPO), "OMP_NUM_THREADS": "1"}
 
 
 @pytest.fixture(scope="module")
 def root(tmp_path_factory) -> Path:
-    root = tmp_path_factory.mktemp("writers")
-    rng = random.Random(2)
     words = "a grid of small runs checked twice over one long night".split()
-    (root / "corpus.txt").write_text("\n".join(" ".join(rng.choice(words) for _ in range(12)) for _ in range(2000)))
-    config = {
-        "model": {"width": 32, "depth": 1, "pattern": ["global_attention"]},
-        "data": {"corpus": str(root / "corpus.txt"), "tokenizer": "bytes", "seq_len": 32,
-                 "cache_dir": str(root / "cache")},
-        "train": {"steps": 600, "batch_size": 4, "warmup_steps": 2, "log_every": 5, "eval_every": 200,
-                  "checkpoint_every": 200, "eval_windows": 2},
-        "runtime": {"threads": 1, "scan": "chunked"},  # no kernel build in every process
-    }
-    (root / "run.yaml").write_text(yaml.safe_dump(config))
-    return root
-
-
-def comparable(run_dir: Path) -> list[dict]:
-    return [without_timing(line) for line in read_metrics(run_dir / "metrics.jsonl")]
-
-
-def wait_until(predicate, timeout: float, what: str):
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        value = predicate()
-        if value:
-            return value
-        time.sleep(0.02)
-    raise AssertionError(f"timed out waiting for {what}")
+    train = {"steps": 600, "batch_size": 4, "warmup_steps": 2, "log_every": 5, "eval_every": 200,
+             "checkpoint_every": 200, "eval_windows": 2}
+    return write_tiny_run(tmp_path_factory.mktemp("writers"), words, seed=2, train=train)
 
 
 def test_a_second_train_on_a_live_run_dir_is_refused_and_the_first_is_unharmed(root):
@@ -73,12 +45,12 @@ def test_a_second_train_on_a_live_run_dir_is_refused_and_the_first_is_unharmed(r
     run_training(load_config(root / "run.yaml"), lone, progress="silent")
     out = root / "shared"
     first = subprocess.Popen([sys.executable, "-m", "blockyard", "train", str(root / "run.yaml"), "--out", str(out)],
-                             env=ENV, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+                             env=child_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     try:
         wait_until(lambda: read_metrics(out / "metrics.jsonl"), 120, "the first run's first metric line")
         first.send_signal(signal.SIGSTOP)  # paused, still alive and holding the dir, until the second is done
         second = subprocess.run([sys.executable, "-m", "blockyard", "train", str(root / "run.yaml"), "--out", str(out)],
-                                env=ENV, capture_output=True, text=True, timeout=120)
+                                env=child_env(), capture_output=True, text=True, timeout=120)
         first.send_signal(signal.SIGCONT)
         assert second.returncode == 2
         assert second.stderr.splitlines() == [
@@ -134,7 +106,7 @@ def test_wait_lets_a_cell_take_over_when_the_old_writer_ends(root):
 def test_a_killed_trainer_leaves_no_lock_behind(root):
     out = root / "killed"
     proc = subprocess.Popen([sys.executable, "-m", "blockyard", "train", str(root / "run.yaml"), "--out", str(out)],
-                            env=ENV, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+                            env=child_env(), stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     wait_until(lambda: writer_pid(out) == proc.pid, 120, "the trainer to hold its run dir")
     proc.send_signal(signal.SIGKILL)
     proc.wait(30)
@@ -163,9 +135,7 @@ def test_status_after_the_grid_and_its_cell_were_killed_says_stopped(root, tmp_p
     spec = tmp_path / "crash.yaml"
     spec.write_text(textwrap.dedent(SPEC).replace("CORPUS", str(root / "corpus.txt")))
     grid_dir = tmp_path / "grid"
-    proc = subprocess.Popen([sys.executable, "-m", "blockyard", "grid", str(spec), "--out", str(grid_dir),
-                             "--workers", "1", "--threads", "1"], env={**ENV, "BLOCKYARD_CACHE": str(root / "cache")},
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True)
+    proc = start_grid(spec, grid_dir, env=child_env(BLOCKYARD_CACHE=str(root / "cache")))
     cell = grid_dir / "cells" / "one-seed0"
     try:
         wait_until(lambda: len(read_metrics(cell / "metrics.jsonl")) >= 2, 240, "the first cell's metric lines")

@@ -22,15 +22,15 @@ from pathlib import Path
 
 import pytest
 import yaml
+from _helpers import child_env, comparable, tiny_run_config
 
 from blockyard.cli import main
 from blockyard.config import config_hash, load_config
-from blockyard.rundir import LOCK_FILE, TIMING_FIELDS, read_metrics, without_timing
+from blockyard.rundir import LOCK_FILE, TIMING_FIELDS, read_metrics
 from blockyard.train import run_training
 from blockyard.train import runtime as runtime_mod
 from blockyard.train.progress import Bar, LogLines, Progress, make_progress
 
-REPO = Path(__file__).resolve().parents[1]
 WORDS = ("the of and to in is that for it as was with be by on not he this are or his from at which but have an "
          "they you were her she there one all we their can has been if more when will would who so no").split()
 
@@ -55,14 +55,8 @@ def workdir(tmp_path_factory) -> Path:
 
 
 def config_dict(root: Path, **sections) -> dict:
-    data = {
-        "model": {"width": 32, "depth": 1, "pattern": ["global_attention"]},
-        "data": {"corpus": str(root / "corpus.txt"), "tokenizer": "bytes", "seq_len": 32,
-                 "cache_dir": str(root / "cache")},
-        "train": {"steps": 40, "batch_size": 4, "warmup_steps": 5, "log_every": 5, "eval_every": 10,
-                  "checkpoint_every": 10, "eval_windows": 4, "keep_checkpoints": 2},
-        "runtime": {"threads": 1},
-    }
+    data = tiny_run_config(root, {"steps": 40, "batch_size": 4, "warmup_steps": 5, "log_every": 5, "eval_every": 10,
+                                  "checkpoint_every": 10, "eval_windows": 4, "keep_checkpoints": 2})
     for section, values in sections.items():
         data[section] = {**data.get(section, {}), **values}
     return data
@@ -84,14 +78,9 @@ def snapshot(folder: Path) -> dict[str, tuple[str, int]]:
             for p in sorted(folder.rglob("*")) if p.is_file() and p.name != LOCK_FILE}
 
 
-def comparable(run_dir: Path) -> list[dict]:
-    return [without_timing(line) for line in read_metrics(run_dir / "metrics.jsonl")]
-
-
 def cli(args: list[str], **kw) -> subprocess.Popen:
-    env = {**os.environ, "OMP_NUM_THREADS": "1", "PYTHONPATH": str(REPO)}
-    return subprocess.Popen([sys.executable, "-m", "blockyard", "train", *args], env=env, stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True, **kw)
+    return subprocess.Popen([sys.executable, "-m", "blockyard", "train", *args], env=child_env(),
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, **kw)
 
 
 def wait_for_line_after(run_dir: Path, step: int, proc: subprocess.Popen, timeout: float = 120) -> None:

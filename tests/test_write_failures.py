@@ -13,7 +13,6 @@ from __future__ import annotations
 import errno
 import json
 import os
-import random
 import shutil
 import sqlite3
 import subprocess
@@ -22,16 +21,15 @@ import textwrap
 from pathlib import Path
 
 import pytest
-import yaml
+from _helpers import FailingFile, child_env, comparable, write_tiny_run
 
 from blockyard.cli import main
 from blockyard.config import load_config
 from blockyard.errors import WriteFailed
 from blockyard.grid.index import open_index
-from blockyard.rundir import read_metrics, read_summary, without_timing
+from blockyard.rundir import read_summary
 from blockyard.train import run_training
 
-REPO = Path(__file__).resolve().parents[1]
 ENOSPC = OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
 pytestmark = pytest.mark.skipif(not Path("/proc/self/fd").is_dir(), reason="finds a file's name via /proc (Linux)")
 
@@ -45,20 +43,10 @@ def fd_name(fd: int) -> str:
 
 @pytest.fixture(scope="module")
 def root(tmp_path_factory) -> Path:
-    root = tmp_path_factory.mktemp("full")
-    rng = random.Random(1)
     words = "the of and to in is that for it as was with be by on not he this are or his".split()
-    (root / "corpus.txt").write_text("\n".join(" ".join(rng.choice(words) for _ in range(12)) for _ in range(2000)))
-    config = {
-        "model": {"width": 32, "depth": 1, "pattern": ["global_attention"]},
-        "data": {"corpus": str(root / "corpus.txt"), "tokenizer": "bytes", "seq_len": 32,
-                 "cache_dir": str(root / "cache")},
-        "train": {"steps": 20, "batch_size": 4, "warmup_steps": 2, "log_every": 2, "eval_every": 5,
-                  "checkpoint_every": 5, "eval_windows": 2, "keep_checkpoints": 1},
-        "runtime": {"threads": 1, "scan": "chunked"},  # no kernel build in every process
-    }
-    (root / "run.yaml").write_text(yaml.safe_dump(config))
-    return root
+    train = {"steps": 20, "batch_size": 4, "warmup_steps": 2, "log_every": 2, "eval_every": 5,
+             "checkpoint_every": 5, "eval_windows": 2, "keep_checkpoints": 1}
+    return write_tiny_run(tmp_path_factory.mktemp("full"), words, seed=1, train=train)
 
 
 @pytest.fixture(scope="module")
@@ -66,10 +54,6 @@ def reference(root) -> list[dict]:
     """The metrics of the same config trained without any failure."""
     run_training(load_config(root / "run.yaml"), root / "reference", progress="silent")
     return comparable(root / "reference")
-
-
-def comparable(run_dir: Path) -> list[dict]:
-    return [without_timing(line) for line in read_metrics(run_dir / "metrics.jsonl")]
 
 
 def temp_files(folder: Path) -> list[str]:
@@ -168,25 +152,9 @@ def fail_atomic_writes_of(monkeypatch, prefix: str, number: int = errno.ENOSPC) 
     """Make writes to the temp files of ``prefix``* (fs.atomic_write's ``.NAME.XXXX.tmp``) fail with ``number``."""
     real_fdopen = os.fdopen
 
-    class Failing:
-        def __init__(self, raw):
-            self.raw = raw
-
-        def write(self, data):
-            raise OSError(number, os.strerror(number))
-
-        def __getattr__(self, name):
-            return getattr(self.raw, name)
-
-        def __enter__(self):
-            return self
-
-        def __exit__(self, *exc):
-            self.raw.close()
-
     def fdopen(fd, *args, **kwargs):
         raw = real_fdopen(fd, *args, **kwargs)
-        return Failing(raw) if Path(fd_name(fd)).name.startswith(f".{prefix}") else raw
+        return FailingFile(raw, number) if Path(fd_name(fd)).name.startswith(f".{prefix}") else raw
 
     monkeypatch.setattr(os, "fdopen", fdopen)
 
@@ -311,8 +279,7 @@ def test_a_real_full_filesystem_then_read_only_then_freed(root, reference, tmp_p
         {train} 2> {tmp_path}/freed.err; echo $? > {tmp_path}/freed.code
         cp -a {out} {tmp_path}/after_freed
     """)
-    subprocess.run(["unshare", "-rm", "sh", "-c", script], timeout=600, check=True,
-                   env={**os.environ, "PYTHONPATH": str(REPO), "OMP_NUM_THREADS": "1"})
+    subprocess.run(["unshare", "-rm", "sh", "-c", script], timeout=600, check=True, env=child_env())
 
     def result(name: str) -> tuple[int, list[str]]:
         return int((tmp_path / f"{name}.code").read_text()), (tmp_path / f"{name}.err").read_text().splitlines()
