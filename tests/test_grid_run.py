@@ -207,3 +207,19 @@ def test_force_drops_the_records_of_changed_cells_that_no_round_plans_yet(tmp_pa
         cells, _line, _complete = current_cells(new.spec, universe, index.cells())
     assert sorted(rows) == ["ref-seed0", "ref-seed1", "ref-seed2"]  # wider's old rows are gone, not kept as done
     assert sorted(p.id for p in cells) == ["ref-seed0", "ref-seed1", "wider-seed0", "wider-seed1"]  # round 1 again
+
+
+def test_the_grid_processs_own_progress_lines_call_a_starting_cell_running(tmp_path):
+    """A cell marked running whose process has not yet taken its writer lock is running in the grid
+    process's own lines, also in a dir whose lock the grid does not hold (stage 1's GRID_DIR/tuning)."""
+    from blockyard.grid.run import _plan_rows, _Recorder, plan_cells
+    from blockyard.grid.spec import load_grid
+
+    path = tmp_path / "grid.yaml"
+    path.write_text("name: starting\nbase:\n" + TINY_BASE + "variants:\n  one: {}\nreference: one\nseeds: [0]\n")
+    lines: list[str] = []
+    with open_index(tmp_path) as index:
+        index.plan(_plan_rows(plan_cells(load_grid(path), threads=1)))
+        index.mark_running("one-seed0")
+        _Recorder(tmp_path, index, "starting", lines.append, 60.0).status()
+    assert lines == ["grid starting: 0/1 done, 1 running, 0 failed, 0 left | ETA unknown (no speed measured yet)"]

@@ -458,7 +458,10 @@ class _Recorder:
 
     def status(self) -> None:
         self._last_status = time.monotonic()
-        self.echo(grid_progress(self.grid_dir, self.index.cells(), self.name, more_rounds=self.more_rounds).line())
+        # The recorder is the live grid process: a cell that has started but not yet taken its run dir's
+        # writer lock is running, not "stopped" (stage 1's dir is not the one whose lock the grid holds).
+        self.echo(grid_progress(self.grid_dir, self.index.cells(), self.name, grid_alive=True,
+                                more_rounds=self.more_rounds).line())
 
 
 def _reconcile(grid_dir: Path, index: GridIndex) -> list[str]:
