@@ -106,7 +106,9 @@ def grads_and_loss(model, x, precision: str):
 
 @pytest.mark.parametrize(("kind", "forward_ops", "backward_ops"), [
     ("global_attention", {"aten.mm"}, {"aten.mm"}),
-    ("recurrence", {"aten.mm", "aten.convolution"}, {"aten.mm", "aten.convolution_backward"}),
+    # The recurrence's causal conv runs as the C++ op with fp32 sums under every precision (the
+    # per-op tests above cover torch's conv1d), so only its matmuls have bf16 rounding to emulate.
+    ("recurrence", {"aten.mm"}, {"aten.mm"}),
 ])
 def test_a_training_pass_carries_the_rounding_error_of_torch_bf16_autocast(kind, forward_ops, backward_ops):
     # The gradient's bf16 error (bf16 minus fp32) must be the same error vector under the
