@@ -27,29 +27,48 @@ from torch import nn
 from torch.utils.checkpoint import checkpoint
 
 from blockyard.config import ModelConfig
+from blockyard.kernels import check_backend, resolve_backend
+from blockyard.kernels.ops import FUSED_DTYPES, geglu_fused
 from blockyard.mixers import MIXERS, Mixer
 from blockyard.mixers.base import is_residual_out, mark_residual_out
 from blockyard.parametrization import ParamScaling, readout_multiplier, scaling
 
 
-class MLP(nn.Module):
-    """``gated``: W_o (GeLU(W_g x) * W_u x) (GeGLU, Shazeer 2020); ``plain``: W_o GeLU(W_i x)."""
+def geglu_reference(h: torch.Tensor) -> torch.Tensor:
+    """GeLU(a) * b for h = [a | b] split in halves of the last dim (GeGLU, Shazeer 2020, eq. 5; exact-erf GeLU)."""
+    gate, up = h.chunk(2, dim=-1)
+    return F.gelu(gate) * up
 
-    def __init__(self, width: int, hidden: int, kind: str) -> None:
+
+def geglu(h: torch.Tensor, backend: str = "auto") -> torch.Tensor:
+    """``geglu_reference`` through the C++ op (``blockyard.kernels.ops.geglu_fused``: one pass forward
+    and one backward instead of two and four) where ``backend`` (``runtime.scan``) resolves to the
+    compiled kernels for CPU float32 / bfloat16 / float64 inputs, else the reference itself."""
+    # The backend resolves as for the float32 state the kernels compute in (bfloat16 included).
+    probe = h.new_empty(0, dtype=torch.promote_types(h.dtype, torch.float32))
+    if h.device.type == "cpu" and h.dtype in FUSED_DTYPES and resolve_backend(probe, backend) == "compiled":
+        return geglu_fused(h)
+    return geglu_reference(h)
+
+
+class MLP(nn.Module):
+    """``gated``: W_o (GeLU(W_g x) * W_u x) (GeGLU, Shazeer 2020); ``plain``: W_o GeLU(W_i x).
+
+    ``kernel_backend`` (``runtime.scan``) picks the GeGLU unit's implementation (``geglu``).
+    """
+
+    def __init__(self, width: int, hidden: int, kind: str, *, kernel_backend: str = "auto") -> None:
         super().__init__()
         self.kind = kind
         self.hidden = hidden
+        self.kernel_backend = check_backend(kernel_backend)
         self.proj_in = nn.Linear(width, 2 * hidden if kind == "gated" else hidden, bias=False)
         self.proj_out = nn.Linear(hidden, width, bias=False)
         mark_residual_out(self.proj_out)
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         h = self.proj_in(x)
-        if self.kind == "gated":
-            gate, up = h.chunk(2, dim=-1)
-            h = F.gelu(gate) * up
-        else:
-            h = F.gelu(h)
+        h = geglu(h, self.kernel_backend) if self.kind == "gated" else F.gelu(h)
         return self.proj_out(h)
 
     @staticmethod
@@ -60,12 +79,13 @@ class MLP(nn.Module):
 class Block(nn.Module):
     """One pre-norm residual block: temporal mixer, then MLP (skipped when the MLP is empty)."""
 
-    def __init__(self, mixer: Mixer, width: int, hidden: int, mlp_kind: str, eps: float) -> None:
+    def __init__(self, mixer: Mixer, width: int, hidden: int, mlp_kind: str, eps: float, *,
+                 kernel_backend: str = "auto") -> None:
         super().__init__()
         self.mixer_norm = nn.RMSNorm(width, eps=eps)
         self.mixer = mixer
         self.mlp_norm = nn.RMSNorm(width, eps=eps) if hidden > 0 else None
-        self.mlp = MLP(width, hidden, mlp_kind) if hidden > 0 else None
+        self.mlp = MLP(width, hidden, mlp_kind, kernel_backend=kernel_backend) if hidden > 0 else None
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         x = x + self.mixer(self.mixer_norm(x))
@@ -97,7 +117,7 @@ class LanguageModel(nn.Module):
             # The scan backend (runtime.scan) goes to the mixers that run a linear scan, explicitly.
             kernels = {"scan_backend": scan_backend} if getattr(cls, "takes_scan_backend", False) else {}
             mixer = cls(cfg.width, mcfg.options, layer=layer, depth=cfg.depth, **kernels)
-            blocks.append(Block(mixer, cfg.width, cfg.mlp_hidden, cfg.mlp, cfg.norm_eps))
+            blocks.append(Block(mixer, cfg.width, cfg.mlp_hidden, cfg.mlp, cfg.norm_eps, kernel_backend=scan_backend))
         self.blocks = nn.ModuleList(blocks)
         self.final_norm = nn.RMSNorm(cfg.width, eps=cfg.norm_eps)
         self.head = None if cfg.tie_embeddings else nn.Linear(cfg.width, vocab_size, bias=False)
@@ -204,7 +224,7 @@ def build_model(cfg: ModelConfig, vocab_size: int, *, activation_checkpointing: 
     """The model for ``cfg`` over ``vocab_size`` tokens (the config was validated on load).
 
     ``scan_backend``: the linear-scan / fused-recurrence implementation (``runtime.scan``, as the
-    trainer's ``Runtime.scan_backend``), passed to the recurrent mixers.
+    trainer's ``Runtime.scan_backend``), passed to the recurrent mixers and to the MLPs' GeGLU unit.
     """
     return LanguageModel(cfg, vocab_size, activation_checkpointing=activation_checkpointing,
                          scan_backend=scan_backend)

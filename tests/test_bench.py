@@ -45,6 +45,7 @@ from blockyard.cost.memory import (
     saved_bytes_by_part,
     warn_if_too_large,
 )
+from blockyard.kernels import build
 from blockyard.model import build_model
 from blockyard.train import runtime as runtime_mod
 
@@ -252,8 +253,9 @@ def test_profile_charges_backward_ops_to_the_block_that_ran_forward():
     # GELU runs only in the MLP, SDPA only in attention, the embedding lookup and the loss once each:
     # their forward ops and, through autograd's sequence numbers, their backward nodes must land in
     # those blocks' buckets.
+    # (runtime.scan: chunked keeps the MLP's GeGLU as torch's ops; the C++ op's case follows.)
     torch.manual_seed(0)
-    model = build_model(tiny_cfg().model, 64)
+    model = build_model(tiny_cfg().model, 64, scan_backend="chunked")
     x, y = random_batches(64, 2, 16, 1)[0]
     forward, backward = _buckets_by_op(model, x, y)
     assert forward["aten::gelu"] == backward["GeluBackward0"] == {"mlp"}
@@ -265,6 +267,18 @@ def test_profile_charges_backward_ops_to_the_block_that_ran_forward():
     assert {"mlp", "mixer:global_attention", "head/loss"} <= backward["MmBackward0"]  # every linear layer's
     # The hooks are removed afterwards: a later forward opens no profiler ranges.
     assert all(not m._forward_pre_hooks for m in model.modules())
+
+
+def test_profile_charges_the_fused_geglu_to_the_mlp():
+    if build.load_scan_ops() is None:
+        pytest.skip(f"C++ kernels unavailable: {build.build_status()['error']}")
+    torch.manual_seed(0)
+    model = build_model(tiny_cfg().model, 64, scan_backend="compiled")
+    x, y = random_batches(64, 2, 16, 1)[0]
+    _, backward = _buckets_by_op(model, x, y)
+    geglu = [name for name in backward if "blockyard_geglu" in name]
+    assert geglu and all(backward[name] == {"mlp"} for name in geglu)
+    assert "GeluBackward0" not in backward
 
 
 def test_profile_splits_the_scan_out_of_the_recurrence():

@@ -1,4 +1,4 @@
-"""Build and load the C++ kernels (``scan_cpu.cpp``, ``rglru_cpu.cpp``) on first use, once per machine.
+"""Build and load the C++ kernels (``scan_cpu.cpp``, ``rglru_cpu.cpp``, ``geglu_cpu.cpp``) once per machine.
 
 The kernel is compiled by ``torch.utils.cpp_extension.load`` into a build folder under
 ``$TORCH_EXTENSIONS_DIR`` if set, else ``$BLOCKYARD_CACHE/torch_ext``, else
@@ -36,7 +36,9 @@ import torch
 
 from blockyard import fs
 
-SOURCES = (Path(__file__).with_name("scan_cpu.cpp"), Path(__file__).with_name("rglru_cpu.cpp"))
+SOURCES = tuple(Path(__file__).with_name(name) for name in ("scan_cpu.cpp", "rglru_cpu.cpp", "geglu_cpu.cpp"))
+# Headers the sources include: part of the hash that names the build, not compiled on their own.
+HEADERS = (Path(__file__).with_name("vecmath.h"),)
 # -O3: the inner loops vectorise; -ffp-contract=off: a * h + b rounds twice (no fused multiply-add),
 # as the sequential PyTorch reference does, so the forward matches it bit for bit; -fopenmp: the
 # ATen parallel_for in the headers is OpenMP here, the same runtime as torch's. -O2 leaves the loops
@@ -63,7 +65,7 @@ def extension_name() -> str:
     """Module (and operator namespace) name: a hash of everything that changes the binary."""
     digest = hashlib.sha256()
     for part in (
-        *(source.read_bytes() for source in SOURCES),
+        *(source.read_bytes() for source in (*SOURCES, *HEADERS)),
         repr(CFLAGS).encode(),
         repr(LDFLAGS).encode(),
         torch.__version__.encode(),

@@ -20,8 +20,8 @@ from torch import Tensor
 
 from blockyard.kernels import build
 
-# Input dtypes of the fused RG-LRU op (its state is float32, float64 for float64 inputs).
-RG_LRU_DTYPES = (torch.float32, torch.bfloat16, torch.float64)
+# Input dtypes of the fused ops (RG-LRU, conv, GeGLU; the RG-LRU state is float32, float64 for float64 inputs).
+FUSED_DTYPES = (torch.float32, torch.bfloat16, torch.float64)
 
 
 def compiled_ops() -> Any:
@@ -138,8 +138,8 @@ def rg_lru_fused(x: Tensor, decay: Tensor, gate_a_logits: Tensor | None = None, 
     x and the gate logits: float32, bfloat16 or float64 CPU tensors (cast to x's dtype); Lambda
     and h0 are cast to the state dtype. Raises RuntimeError when the library could not be built.
     """
-    if x.device.type != "cpu" or x.dtype not in RG_LRU_DTYPES:
-        raise TypeError(f"the fused RG-LRU op takes CPU {[str(d) for d in RG_LRU_DTYPES]} inputs, "
+    if x.device.type != "cpu" or x.dtype not in FUSED_DTYPES:
+        raise TypeError(f"the fused RG-LRU op takes CPU {[str(d) for d in FUSED_DTYPES]} inputs, "
                         f"got {x.dtype} on {x.device}")
     if (gate_a_logits is None) != (gate_x_logits is None):
         raise ValueError("the fused RG-LRU op takes both gate logits or neither")
@@ -201,11 +201,63 @@ def causal_conv_fused(x: Tensor, weight: Tensor, bias: Tensor, tail: Tensor | No
     inputs: the sum of the K taps is rounded once, into the float32 the RG-LRU reads); the tail
     (B, K-1, C), the inputs before x, is cast to x's dtype as the reference does.
     """
-    if x.device.type != "cpu" or x.dtype not in RG_LRU_DTYPES:
-        raise TypeError(f"the fused causal conv takes CPU {[str(d) for d in RG_LRU_DTYPES]} inputs, "
+    if x.device.type != "cpu" or x.dtype not in FUSED_DTYPES:
+        raise TypeError(f"the fused causal conv takes CPU {[str(d) for d in FUSED_DTYPES]} inputs, "
                         f"got {x.dtype} on {x.device}")
     if x.shape[-1] > 1 and x.stride(-1) != 1:
         x = x.contiguous()
     sdt = state_dtype(x.dtype)
     tail = None if tail is None else tail.to(x.dtype).contiguous()
     return causal_conv_op(x, tail, weight.to(sdt), bias.to(sdt).contiguous())
+
+
+# ----------------------------------------------------------------------------- GeGLU unit of the MLP
+
+
+@torch.library.custom_op("blockyard::geglu", mutates_args=())
+def geglu_op(h: Tensor) -> Tensor:
+    """GeLU(a) * b for h = [a | b] split in halves of its last dim (``geglu_cpu.cpp``); h contiguous."""
+    return compiled_ops().geglu_forward(h)
+
+
+@geglu_op.register_fake
+def _(h: Tensor) -> Tensor:
+    return h.new_empty((*h.shape[:-1], h.shape[-1] // 2))
+
+
+@torch.library.custom_op("blockyard::geglu_backward", mutates_args=())
+def geglu_backward_op(grad: Tensor, h: Tensor) -> Tensor:
+    """dL/dh of the GeGLU unit, both halves in one tensor of h's shape."""
+    return compiled_ops().geglu_backward(grad, h)
+
+
+@geglu_backward_op.register_fake
+def _(grad: Tensor, h: Tensor) -> Tensor:
+    return torch.empty_like(h)
+
+
+def _geglu_setup(ctx: Any, inputs: tuple[Any, ...], output: Tensor) -> None:
+    ctx.save_for_backward(inputs[0])
+
+
+def _geglu_backward(ctx: Any, grad: Tensor) -> Tensor:
+    (h,) = ctx.saved_tensors
+    return geglu_backward_op(grad.to(h.dtype).contiguous(), h)
+
+
+geglu_op.register_autograd(_geglu_backward, setup_context=_geglu_setup)
+
+
+def geglu_fused(h: Tensor) -> Tensor:
+    """GeLU(a) * b (exact erf GeLU) for h = [a | b], through the C++ op: same math as
+    ``blockyard.model.geglu_reference``, one pass forward and one backward.
+
+    h: a float32, bfloat16 or float64 CPU tensor with an even last dim (copied if not contiguous);
+    the output has h's dtype. Raises RuntimeError when the library could not be built.
+    """
+    if h.device.type != "cpu" or h.dtype not in FUSED_DTYPES:
+        raise TypeError(f"the fused GeGLU op takes CPU {[str(d) for d in FUSED_DTYPES]} inputs, "
+                        f"got {h.dtype} on {h.device}")
+    if h.shape[-1] % 2:
+        raise ValueError(f"the fused GeGLU op splits the last dim in halves, got {h.shape[-1]}")
+    return geglu_op(h.contiguous())

@@ -24,7 +24,7 @@
 // storing them), so training keeps only x, the gate logits and h.
 //
 // Parallel over (batch row, block of channels) items, sequential over time, vectorised over the
-// contiguous channels; exp and expm1 are branch-free polynomials (below) that the compiler
+// contiguous channels; exp and expm1 are branch-free polynomials (vecmath.h) that the compiler
 // vectorises, which the C library's scalar calls would prevent.
 
 #include <ATen/Dispatch.h>
@@ -42,6 +42,8 @@
 #include <c10/util/BFloat16.h>
 #include <torch/library.h>
 
+#include "vecmath.h"
+
 #include <algorithm>
 #include <cmath>
 #include <cstdint>
@@ -54,76 +56,9 @@
 #define BLOCKYARD_SCAN_NS blockyard_scan
 #endif
 
-#if defined(__x86_64__) && (defined(__GNUC__) || defined(__clang__))
-#define BLOCKYARD_RGLRU_CLONES __attribute__((target_clones("avx512f", "avx2", "default")))
-#else
-#define BLOCKYARD_RGLRU_CLONES
-#endif
-
 namespace {
 
-// ----------------------------------------------------------------------------- vectorisable math
-
-// exp(x) for float: x = n ln2 + r with |r| <= ln2 / 2, exp(r) by its Taylor polynomial to degree 7
-// (truncation r^8 / 8! < 2e-9 relative) and 2^n through the exponent bits. Round-to-nearest by
-// the 1.5 * 2^23 trick (valid because -ffp-contract=off and no fast-math keep it exact).
-inline float exp_poly(float x) {
-  const float xc = std::min(std::max(x, -87.0f), 88.0f);
-  const float shifter = 12582912.0f;  // 1.5 * 2^23
-  const float n = (xc * 1.44269504088896341f + shifter) - shifter;
-  const float r = (xc - n * 0.693145751953125f) - n * 1.42860682030941723e-06f;  // ln2 in two parts
-  float p = 1.0f / 5040.0f;
-  p = p * r + 1.0f / 720.0f;
-  p = p * r + 1.0f / 120.0f;
-  p = p * r + 1.0f / 24.0f;
-  p = p * r + 1.0f / 6.0f;
-  p = p * r + 0.5f;
-  p = p * r + 1.0f;
-  p = p * r + 1.0f;
-  const int32_t bits = (static_cast<int32_t>(n) + 127) << 23;
-  float scale;
-  std::memcpy(&scale, &bits, sizeof(scale));
-  const float y = p * scale;
-  return x > 88.0f ? INFINITY : (x < -87.0f ? 0.0f : y);
-}
-
-// expm1(x) for float: the Taylor polynomial to degree 9 for |x| < 0.3 (truncation 0.3^10 / 10!
-// < 2e-12), where exp(x) - 1 would lose digits; exp(x) - 1 elsewhere.
-inline float expm1_poly(float x) {
-  float p = 1.0f / 362880.0f;
-  p = p * x + 1.0f / 40320.0f;
-  p = p * x + 1.0f / 5040.0f;
-  p = p * x + 1.0f / 720.0f;
-  p = p * x + 1.0f / 120.0f;
-  p = p * x + 1.0f / 24.0f;
-  p = p * x + 1.0f / 6.0f;
-  p = p * x + 0.5f;
-  p = p * x + 1.0f;
-  const float small = p * x;
-  const float large = exp_poly(x) - 1.0f;
-  return std::fabs(x) < 0.3f ? small : large;
-}
-
-inline float exp_of(float x) { return exp_poly(x); }
-inline double exp_of(double x) { return std::exp(x); }
-inline float expm1_of(float x) { return expm1_poly(x); }
-inline double expm1_of(double x) { return std::expm1(x); }
-
-template <typename S>
-inline S sigmoid_of(S z) {
-  return S(1) / (S(1) + exp_of(-z));
-}
-
-template <typename S>
-inline S load(const S* p, int64_t i) {
-  return p[i];
-}
-inline float load(const c10::BFloat16* p, int64_t i) { return static_cast<float>(p[i]); }
-
-template <typename I, typename S>
-inline void store(I* p, int64_t i, S v) {
-  p[i] = static_cast<I>(v);
-}
+using namespace blockyard_vecmath;
 
 // ----------------------------------------------------------------------------- one work item
 
@@ -134,7 +69,7 @@ struct Args {
 
 // Forward of channels [c0, c0 + n) of batch row `row`, t from 0 up. la0 = log a0 per channel.
 template <typename I, typename S, bool kGated, bool kNorm>
-BLOCKYARD_RGLRU_CLONES void forward_item(const I* __restrict__ x, const I* __restrict__ ga, const I* __restrict__ gx, const S* __restrict__ la0, const S* __restrict__ h0, S* __restrict__ h,
+BLOCKYARD_CLONES void forward_item(const I* __restrict__ x, const I* __restrict__ ga, const I* __restrict__ gx, const S* __restrict__ la0, const S* __restrict__ h0, S* __restrict__ h,
                                          int64_t row, int64_t c0, int64_t n, Args args) {
   const int64_t C = args.channels;
   const S cc = static_cast<S>(args.c);
@@ -160,7 +95,7 @@ BLOCKYARD_RGLRU_CLONES void forward_item(const I* __restrict__ x, const I* __res
 // Reverse pass of one item, t from T-1 down; writes dx, dga, dgx, dh0 and the item's share of
 // sum_t dL/dloga (c r_t) into lam_row (summed over t in S in `acc`, then over the batch rows in double).
 template <typename I, typename S, bool kGated, bool kNorm>
-BLOCKYARD_RGLRU_CLONES void backward_item(const S* __restrict__ gh, const I* __restrict__ x, const I* __restrict__ ga, const I* __restrict__ gx, const S* __restrict__ la0,
+BLOCKYARD_CLONES void backward_item(const S* __restrict__ gh, const I* __restrict__ x, const I* __restrict__ ga, const I* __restrict__ gx, const S* __restrict__ la0,
                                           const S* __restrict__ h0, const S* __restrict__ h, I* __restrict__ dx, I* __restrict__ dga, I* __restrict__ dgx, S* __restrict__ dh0, double* __restrict__ lam_row,
                                           S* __restrict__ g_next, S* __restrict__ a_next, S* __restrict__ acc, int64_t row, int64_t c0, int64_t n, Args args) {
   const int64_t C = args.channels;
@@ -493,7 +428,7 @@ inline const I* conv_input(const I* x, const I* tail, int64_t row, int64_t s, Co
 
 // wt: the weight transposed to (K, C), so that every tap's weights are contiguous over channels.
 template <typename I, typename S>
-BLOCKYARD_RGLRU_CLONES void conv_forward_item(const I* __restrict__ x, const I* __restrict__ tail, const S* __restrict__ wt,
+BLOCKYARD_CLONES void conv_forward_item(const I* __restrict__ x, const I* __restrict__ tail, const S* __restrict__ wt,
                                               const S* __restrict__ bias, S* __restrict__ y, int64_t row, int64_t c0,
                                               int64_t n, ConvArgs a) {
   const int64_t C = a.channels, K = a.taps;
@@ -513,7 +448,7 @@ BLOCKYARD_RGLRU_CLONES void conv_forward_item(const I* __restrict__ x, const I* 
 // Reverse pass of one item: du (contiguous (B, T, C)), the tail's gradient (if a tail was given)
 // and the item's sums over t of dL/dw (K rows) and dL/dbias (one row) into acc_row ((K + 1) x C, double).
 template <typename I, typename S>
-BLOCKYARD_RGLRU_CLONES void conv_backward_item(const S* __restrict__ gy, const I* __restrict__ x, const I* __restrict__ tail,
+BLOCKYARD_CLONES void conv_backward_item(const S* __restrict__ gy, const I* __restrict__ x, const I* __restrict__ tail,
                                                const S* __restrict__ wt, I* __restrict__ dx, I* __restrict__ dtail,
                                                double* __restrict__ acc_row, S* __restrict__ acc, int64_t row, int64_t c0,
                                                int64_t n, ConvArgs a) {

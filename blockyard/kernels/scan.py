@@ -76,6 +76,7 @@ def scan_backend_info(backend: str = "auto") -> dict[str, Any]:
         "resolved_cpu_float32": resolved,
         # The real RG-LRU runs as the fused C++ op where the backend resolves to compiled.
         "rg_lru_cpu": "fused C++ op" if resolved == "compiled" else f"PyTorch ops around the {resolved} scan",
+        "geglu_cpu": "fused C++ op" if resolved == "compiled" else "PyTorch ops",
         "compiled": build.build_status(),
     }
 

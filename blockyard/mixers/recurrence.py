@@ -41,7 +41,7 @@ from torch import nn
 
 from blockyard.errors import ConfigError
 from blockyard.kernels import check_backend, linear_scan, resolve_backend
-from blockyard.kernels.ops import RG_LRU_DTYPES, causal_conv_fused, compiled_ops, rg_lru_fused
+from blockyard.kernels.ops import FUSED_DTYPES, causal_conv_fused, compiled_ops, rg_lru_fused
 from blockyard.mixers.base import Mixer, register_mixer
 from blockyard.schema import opt
 
@@ -193,7 +193,7 @@ def uses_fused_op(x: torch.Tensor, backend: str) -> bool:
     """Whether ``rg_lru`` runs the fused C++ op for inputs like ``x`` under scan ``backend``: where
     ``backend`` resolves to ``compiled`` (``auto``: the kernels built), for CPU float32 / bfloat16 /
     float64 inputs."""
-    if x.device.type != "cpu" or x.dtype not in RG_LRU_DTYPES:
+    if x.device.type != "cpu" or x.dtype not in FUSED_DTYPES:
         return False
     return resolve_backend(x.new_empty(0, dtype=_compute_dtype(x)), backend) == "compiled"
 
