@@ -541,3 +541,17 @@ def test_without_bf16_units_the_speed_benchmark_skips_bf16_cases(tmp_path, monke
     assert target["met"] is None and target["note"] == "not measurable here: simulated AVX2 CPU"
     text = format_report(json.loads(json.dumps(result, default=str)))
     assert "bf16 GEMM not measured" in text and "skipped: attention-bf16 (simulated AVX2 CPU)" in text
+
+
+def test_ratio_at_equal_mfu_is_the_ratio_of_peak_over_flops():
+    # Arithmetic of the definition (MFU = tokens/s x FLOPs per token / peak): two configs at the same
+    # MFU have tokens/s in the ratio of their peak / FLOPs per token.
+    peaks = {"gemm_fp32_gflops": 100.0, "gemm_bf16_gflops": 220.0}
+    rows = {"a": {"precision": "fp32", "flops_per_token": 30.0}, "b": {"precision": "fp32", "flops_per_token": 20.0},
+            "c": {"precision": "bf16", "flops_per_token": 20.0}}
+    assert bench_speed._equal_mfu_ratio(rows, peaks, "b", "a") == pytest.approx(1.5)
+    assert bench_speed._equal_mfu_ratio(rows, peaks, "c", "b") == pytest.approx(2.2)
+    assert bench_speed._equal_mfu_ratio(rows, peaks, "c", "missing") is None
+    text = format_report({"ratios": {"x": 1.1}, "ratios_median_of_rounds": {"x": 1.0},
+                          "ratios_at_equal_mfu": {"x": 1.5}})
+    assert "1.10x" in text and "1.50x" in text and "at equal MFU" in text

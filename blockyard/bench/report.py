@@ -47,12 +47,16 @@ def _config_lines(result: dict[str, Any]) -> list[str]:
 def _ratio_lines(result: dict[str, Any]) -> list[str]:
     if "ratios" not in result:
         return []
-    lines = ["", f"{'ratio':<36} {'best/best':>9} {'median of rounds':>17}"]
+    lines = ["", f"{'ratio':<36} {'best/best':>9} {'median of rounds':>17} {'at equal MFU':>13}"]
     medians = result.get("ratios_median_of_rounds", {})
+    ceilings = result.get("ratios_at_equal_mfu", {})
     for key, value in result["ratios"].items():
-        med = medians.get(key)
+        med, eq = medians.get(key), ceilings.get(key)
         lines.append(f"{key:<36} {'n/a' if value is None else f'{value:.2f}x':>9} "
-                     f"{'n/a' if med is None else f'{med:.2f}x':>17}")
+                     f"{'n/a' if med is None else f'{med:.2f}x':>17} {'n/a' if eq is None else f'{eq:.2f}x':>13}")
+    if ceilings:
+        lines.append("(at equal MFU: the ratio of GEMM peak / FLOPs per token of the two configs, what the "
+                     "ratio would be if both used their peak equally well)")
     return lines
 
 

@@ -94,6 +94,10 @@ def _run_bench(steps: int, warmup: int, rounds: int, profile: bool, cases: tuple
         if profile:
             result["profile"] = _profiles(cases, cache_dir, threads, log)
     result["ratios"] = {key: _ratio(per_round, *pair) for key, pair in RATIO_PAIRS.items()}
+    if "configs" in result:
+        rows = {row["name"]: row for row in result["configs"]}
+        result["ratios_at_equal_mfu"] = {key: _equal_mfu_ratio(rows, result["peaks"], *pair)
+                                         for key, pair in RATIO_PAIRS.items()}
     result["ratios_median_of_rounds"] = {key: _median_ratio(per_round, *pair) for key, pair in RATIO_PAIRS.items()}
     result["load_average_after"] = list(os.getloadavg())
     result["targets"] = [dataclasses.asdict(t) | {"met": t.met} for t in speed_targets(result)]
@@ -196,6 +200,22 @@ def _median_ratio(rounds: list[dict[str, float]], num: str, den: str) -> float |
     return statistics.median(values) if values else None
 
 
+def _peak_of(precision: str, peaks: dict[str, float]) -> float:
+    """The GEMM peak (GFLOP/s) that a config of ``precision`` is measured against."""
+    return peaks["gemm_bf16_gflops" if precision == "bf16" else "gemm_fp32_gflops"]
+
+
+def _equal_mfu_ratio(rows: dict[str, dict[str, Any]], peaks: dict[str, float], num: str, den: str) -> float | None:
+    """The tokens/s ratio ``num`` / ``den`` would show if both ran at the same MFU: the ratio of
+    their (GEMM peak / training FLOPs per token). A measured ratio above it means ``num`` uses its
+    peak better than ``den``; a target above it asks for exactly that (the FLOPs alone cannot give it)."""
+    a, b = rows.get(num), rows.get(den)
+    if a is None or b is None:
+        return None
+    return (_peak_of(a["precision"], peaks) / a["flops_per_token"]) / (_peak_of(b["precision"], peaks)
+                                                                       / b["flops_per_token"])
+
+
 def _config_rows(cases: tuple[BenchCase, ...], per_round: list[dict[str, float]], runs: dict[str, Any],
                  peaks: dict[str, float], vocab: int) -> list[dict[str, Any]]:
     """One row per measured config: best tokens/s over rounds, achieved GFLOP/s and MFU against its GEMM peak."""
@@ -205,7 +225,7 @@ def _config_rows(cases: tuple[BenchCase, ...], per_round: list[dict[str, float]]
         case = plain.get(name) or next(c for c in cases if c.name == name)
         tokens_per_s = max(r[name] for r in per_round if name in r)
         flops = flops_per_token(runs[case.name]["config"], vocab, with_head=True)
-        peak = peaks["gemm_bf16_gflops" if case.precision == "bf16" else "gemm_fp32_gflops"]
+        peak = _peak_of(case.precision, peaks)
         gflops = tokens_per_s * flops / 1e9
         row = {"name": name, "loop": "plain" if name in plain else "blockyard", "kind": case.kind,
                "precision": case.precision, "seq_len": case.seq_len, "batch": case.batch,
