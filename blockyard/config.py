@@ -187,8 +187,8 @@ class RuntimeConfig:
                          "CPU at about 0.6x fp32 speed, to check what bf16 does to a result",
                          choices=("fp32", "bf16", "bf16_emulated"))
     activation_checkpointing: bool = opt(False, "recompute each residual block in backward to save memory")
-    scan: str = opt("auto", "recurrence kernels: compiled = C++ (the fused RG-LRU op, the C++ scan), "
-                    "chunked / reference = PyTorch ops; auto = compiled where it builds, else chunked",
+    scan: str = opt("auto", "C++ kernels: compiled = the fused RG-LRU op, the C++ scan and conv, the MLP's fused "
+                    "GeGLU; chunked / reference = PyTorch ops; auto = compiled where it builds, else chunked",
                     choices=("auto", "reference", "chunked", "compiled"))
     compile: bool = opt(False, "torch.compile the model for training after a 15-40 s warm-up; its gain depends on "
                         "the CPU (blockyard bench prints compiled/eager); eager with a warning where it fails")

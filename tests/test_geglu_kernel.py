@@ -1,4 +1,5 @@
-"""The MLP's fused GeGLU op (``blockyard/kernels/geglu_cpu.cpp``) against torch's GeLU and the reference.
+"""The fused GeGLU ops (``blockyard/kernels/geglu_cpu.cpp``: the MLP's, and the recurrence block's
+GeLU(gate) * y) against torch's GeLU and the references.
 
 Sources: GeGLU(x) = GeLU(x W) * (x V) (Shazeer 2020, arXiv:2002.05202, eq. 5); GeLU(a) = a Phi(a) with
 the exact normal CDF (Hendrycks & Gimpel 2016, arXiv:1606.08415, sec. 2); torch's ``F.gelu`` (exact
@@ -13,7 +14,14 @@ import torch
 import torch.nn.functional as F
 
 from blockyard.kernels import build, scan_backend_info
-from blockyard.kernels.ops import geglu_backward_op, geglu_fused, geglu_op
+from blockyard.kernels.ops import (
+    geglu_backward_op,
+    geglu_fused,
+    geglu_op,
+    gelu_mul_backward_op,
+    gelu_mul_fused,
+    gelu_mul_op,
+)
 from blockyard.model import MLP, geglu, geglu_reference
 
 # bf16 keeps 8 significant bits: one round-to-nearest is off by at most 2^-9 relative (IEEE-754
@@ -117,3 +125,61 @@ def test_backend_choice_and_fallback(kernels, monkeypatch):
     h = torch.randn(3, 8)
     assert torch.equal(geglu(h, "auto"), geglu_reference(h)) and len(calls) == 1
     assert scan_backend_info("auto")["geglu_cpu"] == "PyTorch ops"
+
+
+# ----------------------------------------------------------------------------- the two-input form
+
+
+@pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
+def test_gelu_mul_matches_torch_on_a_strided_half(kernels, dtype):
+    # The recurrence block's use: a is the gate half of a projection's output (a strided view), b its
+    # own contiguous tensor; values and both gradients equal torch's F.gelu(a) * b.
+    gen = torch.Generator().manual_seed(4)
+    proj = (3 * torch.randn(3, 17, 2 * 24, generator=gen)).to(dtype).requires_grad_(True)
+    b = torch.randn(3, 17, 24, generator=gen).to(dtype).requires_grad_(True)
+    g = torch.randn(3, 17, 24, generator=gen).to(dtype)
+    a = proj[..., :24]
+    assert not a.is_contiguous()
+    got = gelu_mul_fused(a, b)
+    got_grads = torch.autograd.grad(got, (proj, b), g)
+    want = F.gelu(a) * b
+    want_grads = torch.autograd.grad(want, (proj, b), g)
+    torch.testing.assert_close(got, want, atol=1e-5, rtol=1e-5)
+    for x, y in zip(got_grads, want_grads, strict=True):
+        torch.testing.assert_close(x, y, atol=1e-5, rtol=1e-5)
+
+
+def test_gelu_mul_bf16_and_gradcheck(kernels):
+    gen = torch.Generator().manual_seed(5)
+    a, b = (2 * torch.randn(2, 9, 16, generator=gen)).bfloat16(), torch.randn(2, 9, 16, generator=gen).bfloat16()
+    torch.testing.assert_close(gelu_mul_fused(a, b).double(), F.gelu(a.double()) * b.double(), rtol=2.0**-8,
+                               atol=1e-6)
+    a64 = torch.randn(2, 3, 6, dtype=torch.float64, requires_grad=True)
+    b64 = torch.randn(2, 3, 6, dtype=torch.float64, requires_grad=True)
+    assert torch.autograd.gradcheck(gelu_mul_fused, (a64, b64))
+    with pytest.raises(TypeError, match="same-shaped"):
+        gelu_mul_fused(a64, b64[..., :5])
+
+
+def test_gelu_mul_fake_kernels():
+    from torch._subclasses.fake_tensor import FakeTensorMode
+
+    with FakeTensorMode():
+        a = torch.empty(12, 8, dtype=torch.bfloat16)
+        y = gelu_mul_op(a, a)
+        assert y.shape == (12, 8) and y.dtype == torch.bfloat16
+        da, db = gelu_mul_backward_op(y, a, a)
+        assert da.shape == db.shape == (12, 8)
+
+
+def test_recurrence_block_uses_the_op_only_under_the_compiled_backend(kernels, monkeypatch):
+    from blockyard.mixers import recurrence
+    from blockyard.mixers.recurrence import RecurrenceBlock, RecurrenceOptions
+
+    calls = []
+    monkeypatch.setattr(recurrence, "gelu_mul_fused", lambda a, b: calls.append(a.shape) or F.gelu(a) * b)
+    x = torch.randn(2, 6, 16)
+    RecurrenceBlock(16, RecurrenceOptions(), layer=0, depth=1, scan_backend="compiled")(x)
+    assert calls == [(2, 6, 16)]
+    RecurrenceBlock(16, RecurrenceOptions(), layer=0, depth=1, scan_backend="chunked")(x)
+    assert len(calls) == 1

@@ -261,3 +261,51 @@ def geglu_fused(h: Tensor) -> Tensor:
     if h.shape[-1] % 2:
         raise ValueError(f"the fused GeGLU op splits the last dim in halves, got {h.shape[-1]}")
     return geglu_op(h.contiguous())
+
+
+@torch.library.custom_op("blockyard::gelu_mul", mutates_args=())
+def gelu_mul_op(a: Tensor, b: Tensor) -> Tensor:
+    """GeLU(a) * b for (N, H) a and b of one dtype, rows at any stride (``geglu_cpu.cpp``)."""
+    return compiled_ops().gelu_mul_forward(a, b)
+
+
+@gelu_mul_op.register_fake
+def _(a: Tensor, b: Tensor) -> Tensor:
+    return a.new_empty(a.shape)
+
+
+@torch.library.custom_op("blockyard::gelu_mul_backward", mutates_args=())
+def gelu_mul_backward_op(grad: Tensor, a: Tensor, b: Tensor) -> tuple[Tensor, Tensor]:
+    """(dL/da, dL/db) of ``gelu_mul``, contiguous."""
+    da, db = compiled_ops().gelu_mul_backward(grad, a, b)
+    return da, db
+
+
+@gelu_mul_backward_op.register_fake
+def _(grad: Tensor, a: Tensor, b: Tensor) -> tuple[Tensor, Tensor]:
+    return a.new_empty(a.shape), a.new_empty(a.shape)
+
+
+def _gelu_mul_setup(ctx: Any, inputs: tuple[Any, ...], output: Tensor) -> None:
+    ctx.save_for_backward(*inputs)
+
+
+def _gelu_mul_backward(ctx: Any, grad: Tensor) -> tuple[Tensor, Tensor]:
+    a, b = ctx.saved_tensors
+    return gelu_mul_backward_op(grad.to(a.dtype).contiguous(), a, b)
+
+
+gelu_mul_op.register_autograd(_gelu_mul_backward, setup_context=_gelu_mul_setup)
+
+
+def gelu_mul_fused(a: Tensor, b: Tensor) -> Tensor:
+    """GeLU(a) * b (exact erf GeLU) of same-shaped CPU tensors through the C++ op, in a's dtype (b is
+    cast to it): the same math as ``F.gelu(a) * b``, one pass forward and one backward. ``a`` may be a
+    strided view (a half of a projection's output): it is read in place where its rows are evenly spaced."""
+    if a.device.type != "cpu" or a.dtype not in FUSED_DTYPES or a.shape != b.shape:
+        raise TypeError(f"the fused GeLU product takes same-shaped CPU {[str(d) for d in FUSED_DTYPES]} inputs, "
+                        f"got {a.dtype} {tuple(a.shape)} and {b.dtype} {tuple(b.shape)} on {a.device}")
+    width = a.shape[-1]
+    rows = [t.reshape(-1, width) for t in (a, b.to(a.dtype))]  # views where the strides allow
+    rows = [t if width <= 1 or t.stride(-1) == 1 else t.contiguous() for t in rows]
+    return gelu_mul_op(*rows).reshape(a.shape)

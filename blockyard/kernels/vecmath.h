@@ -113,4 +113,25 @@ inline float erf_poly(float x) {
 inline float erf_of(float x) { return erf_poly(x); }
 inline double erf_of(double x) { return std::erf(x); }
 
+// The standard normal CDF Phi(a) and density phi(a) together: erf_poly's exp(-x^2) at x = a / sqrt 2
+// is exp(-a^2 / 2), the density's exponential, so one exp serves both (GeLU's backward needs both).
+inline void normal_cdf_pdf(float a, float& cdf, float& pdf) {
+  const float x = a * 0.70710678118654752440f;
+  const float ax = std::fabs(x);
+  const float t = 1.0f / (1.0f + 0.3275911f * ax);
+  float p = 1.061405429f;
+  p = p * t - 1.453152027f;
+  p = p * t + 1.421413741f;
+  p = p * t - 0.284496736f;
+  p = p * t + 0.254829592f;
+  const float e = exp_poly(-ax * ax);
+  cdf = 0.5f * (1.0f + std::copysign(1.0f - p * t * e, x));
+  pdf = 0.39894228040143267794f * e;
+}
+
+inline void normal_cdf_pdf(double a, double& cdf, double& pdf) {
+  cdf = 0.5 * (1.0 + std::erf(a * 0.70710678118654752440));
+  pdf = 0.39894228040143267794 * std::exp(-0.5 * a * a);
+}
+
 }  // namespace blockyard_vecmath

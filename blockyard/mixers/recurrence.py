@@ -41,7 +41,7 @@ from torch import nn
 
 from blockyard.errors import ConfigError
 from blockyard.kernels import check_backend, linear_scan, resolve_backend
-from blockyard.kernels.ops import FUSED_DTYPES, causal_conv_fused, compiled_ops, rg_lru_fused
+from blockyard.kernels.ops import FUSED_DTYPES, causal_conv_fused, compiled_ops, gelu_mul_fused, rg_lru_fused
 from blockyard.mixers.base import Mixer, register_mixer
 from blockyard.schema import opt
 
@@ -160,6 +160,12 @@ def causal_conv(
         return y, x[:, x.shape[1] - keep :]
     before = x.new_zeros(x.shape[0], keep, x.shape[2]) if tail is None else tail.to(x.dtype)
     return y, torch.cat([before, x], dim=1)[:, -keep:]
+
+
+def gelu_product(gate: torch.Tensor, y: torch.Tensor, backend: str = "auto") -> torch.Tensor:
+    """GeLU(gate) * y, the block's output gating: the fused C++ op (``gelu_mul_fused``) where
+    ``backend`` resolves to the compiled kernels, else torch's ``F.gelu(gate) * y`` (the reference)."""
+    return gelu_mul_fused(gate, y) if uses_fused_op(gate, backend) else F.gelu(gate) * y
 
 
 def rg_lru_log_decay(decay: torch.Tensor, gate_a_logits: torch.Tensor | None, c: float) -> torch.Tensor:
@@ -428,7 +434,7 @@ class RecurrenceBlock(Mixer):
             rec, tail = self.conv(rec, None if state is None else state.conv_tail)
         y, h = self.lru(rec, None if state is None else state.h)
         # The C++ conv hands the RG-LRU float32 under bf16 autocast: the product stays in the gate's dtype.
-        return self.proj_out(F.gelu(gate) * y.to(gate.dtype)), h, tail
+        return self.proj_out(gelu_product(gate, y.to(gate.dtype), self.lru.scan_backend)), h, tail
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         return self._mix(x, None)[0]
