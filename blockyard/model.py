@@ -28,7 +28,7 @@ from torch.utils.checkpoint import checkpoint
 
 from blockyard.config import ModelConfig
 from blockyard.kernels import check_backend, resolve_backend
-from blockyard.kernels.ops import FUSED_DTYPES, geglu_fused
+from blockyard.kernels.ops import FUSED_DTYPES, geglu_fused, rms_norm_fused
 from blockyard.mixers import MIXERS, Mixer
 from blockyard.mixers.base import is_residual_out, mark_residual_out
 from blockyard.parametrization import ParamScaling, readout_multiplier, scaling
@@ -44,11 +44,31 @@ def geglu(h: torch.Tensor, backend: str = "auto") -> torch.Tensor:
     """``geglu_reference`` through the C++ op (``blockyard.kernels.ops.geglu_fused``: one pass forward
     and one backward instead of two and four) where ``backend`` (``runtime.scan``) resolves to the
     compiled kernels for CPU float32 / bfloat16 / float64 inputs, else the reference itself."""
-    # The backend resolves as for the float32 state the kernels compute in (bfloat16 included).
-    probe = h.new_empty(0, dtype=torch.promote_types(h.dtype, torch.float32))
-    if h.device.type == "cpu" and h.dtype in FUSED_DTYPES and resolve_backend(probe, backend) == "compiled":
-        return geglu_fused(h)
-    return geglu_reference(h)
+    return geglu_fused(h) if _fused_applies(h, backend) else geglu_reference(h)
+
+
+class RMSNorm(nn.RMSNorm):
+    """torch's ``nn.RMSNorm`` (Zhang & Sennrich 2019; same parameter, same state-dict key), run through
+    the fused C++ op (``blockyard.kernels.ops.rms_norm_fused``: one pass forward and one backward
+    instead of torch's chain of elementwise ops) where ``kernel_backend`` (``runtime.scan``) resolves
+    to the compiled kernels; torch's own forward, the reference, elsewhere."""
+
+    def __init__(self, width: int, eps: float, *, kernel_backend: str = "auto") -> None:
+        super().__init__(width, eps=eps)
+        self.kernel_backend = check_backend(kernel_backend)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        if self.weight is not None and self.eps is not None and _fused_applies(x, self.kernel_backend):
+            return rms_norm_fused(x, self.weight, self.eps)
+        return super().forward(x)
+
+
+def _fused_applies(x: torch.Tensor, backend: str) -> bool:
+    """Whether the C++ ops run for ``x`` under ``backend``: CPU float32 / bfloat16 / float64 inputs and a
+    backend that resolves to the compiled kernels (as for the float32 the kernels compute in)."""
+    if x.device.type != "cpu" or x.dtype not in FUSED_DTYPES:
+        return False
+    return resolve_backend(x.new_empty(0, dtype=torch.promote_types(x.dtype, torch.float32)), backend) == "compiled"
 
 
 class MLP(nn.Module):
@@ -82,9 +102,9 @@ class Block(nn.Module):
     def __init__(self, mixer: Mixer, width: int, hidden: int, mlp_kind: str, eps: float, *,
                  kernel_backend: str = "auto") -> None:
         super().__init__()
-        self.mixer_norm = nn.RMSNorm(width, eps=eps)
+        self.mixer_norm = RMSNorm(width, eps, kernel_backend=kernel_backend)
         self.mixer = mixer
-        self.mlp_norm = nn.RMSNorm(width, eps=eps) if hidden > 0 else None
+        self.mlp_norm = RMSNorm(width, eps, kernel_backend=kernel_backend) if hidden > 0 else None
         self.mlp = MLP(width, hidden, mlp_kind, kernel_backend=kernel_backend) if hidden > 0 else None
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
@@ -119,7 +139,7 @@ class LanguageModel(nn.Module):
             mixer = cls(cfg.width, mcfg.options, layer=layer, depth=cfg.depth, **kernels)
             blocks.append(Block(mixer, cfg.width, cfg.mlp_hidden, cfg.mlp, cfg.norm_eps, kernel_backend=scan_backend))
         self.blocks = nn.ModuleList(blocks)
-        self.final_norm = nn.RMSNorm(cfg.width, eps=cfg.norm_eps)
+        self.final_norm = RMSNorm(cfg.width, cfg.norm_eps, kernel_backend=scan_backend)
         self.head = None if cfg.tie_embeddings else nn.Linear(cfg.width, vocab_size, bias=False)
         # Tied head: scale its input by width^-1/2 (Raffel et al. 2020, T5). Without it a token's own
         # embedding dominates the residual stream at init and its logit is init_std * width,

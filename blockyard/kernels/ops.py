@@ -309,3 +309,59 @@ def gelu_mul_fused(a: Tensor, b: Tensor) -> Tensor:
     rows = [t.reshape(-1, width) for t in (a, b.to(a.dtype))]  # views where the strides allow
     rows = [t if width <= 1 or t.stride(-1) == 1 else t.contiguous() for t in rows]
     return gelu_mul_op(*rows).reshape(a.shape)
+
+
+# ----------------------------------------------------------------------------- RMSNorm
+
+
+@torch.library.custom_op("blockyard::rms_norm", mutates_args=())
+def rms_norm_op(x: Tensor, weight: Tensor, eps: float) -> tuple[Tensor, Tensor]:
+    """(y, 1 / rms per row) of RMSNorm over the last dim of a contiguous (N, D) x (``rmsnorm_cpu.cpp``)."""
+    y, rstd = compiled_ops().rms_norm_forward(x, weight, eps)
+    return y, rstd
+
+
+@rms_norm_op.register_fake
+def _(x: Tensor, weight: Tensor, eps: float) -> tuple[Tensor, Tensor]:
+    return torch.empty_like(x), x.new_empty(x.shape[0], dtype=weight.dtype)
+
+
+@torch.library.custom_op("blockyard::rms_norm_backward", mutates_args=())
+def rms_norm_backward_op(grad_y: Tensor, x: Tensor, weight: Tensor, rstd: Tensor) -> tuple[Tensor, Tensor]:
+    """(dL/dx, dL/dweight) of ``rms_norm``."""
+    dx, dw = compiled_ops().rms_norm_backward(grad_y, x, weight, rstd)
+    return dx, dw
+
+
+@rms_norm_backward_op.register_fake
+def _(grad_y: Tensor, x: Tensor, weight: Tensor, rstd: Tensor) -> tuple[Tensor, Tensor]:
+    return torch.empty_like(x), torch.empty_like(weight)
+
+
+def _rms_norm_setup(ctx: Any, inputs: tuple[Any, ...], output: tuple[Tensor, Tensor]) -> None:
+    x, weight, _eps = inputs
+    ctx.save_for_backward(x, weight, output[1])
+
+
+def _rms_norm_backward(ctx: Any, grad_y: Tensor, _grad_rstd: Tensor | None) -> tuple[Tensor | None, ...]:
+    x, weight, rstd = ctx.saved_tensors
+    dx, dw = rms_norm_backward_op(grad_y.to(x.dtype).contiguous(), x, weight, rstd)
+    return dx, dw if ctx.needs_input_grad[1] else None, None
+
+
+rms_norm_op.register_autograd(_rms_norm_backward, setup_context=_rms_norm_setup)
+
+
+def rms_norm_fused(x: Tensor, weight: Tensor, eps: float) -> Tensor:
+    """RMSNorm over x's last dim through the C++ op: x / sqrt(mean(x^2) + eps) * weight, in x's dtype.
+
+    The same math as ``torch.nn.functional.rms_norm(x, (D,), weight, eps)``, one pass forward and
+    one backward. x: a float32, bfloat16 or float64 CPU tensor; weight: (D,), cast to the compute
+    dtype (float32; float64 for float64 x).
+    """
+    if x.device.type != "cpu" or x.dtype not in FUSED_DTYPES:
+        raise TypeError(f"the fused RMSNorm takes CPU {[str(d) for d in FUSED_DTYPES]} inputs, "
+                        f"got {x.dtype} on {x.device}")
+    rows = x.reshape(-1, x.shape[-1]).contiguous()
+    y, _ = rms_norm_op(rows, weight.to(state_dtype(x.dtype)).contiguous(), float(eps))
+    return y.reshape(x.shape)
