@@ -176,6 +176,9 @@ def _add_bench(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--threads", type=int, default=0,
                    help="torch threads for every measurement, both loops alike (default 0 = every core)")
     p.add_argument("--no-profile", dest="profile", action="store_false", help="skip the torch.profiler step")
+    p.add_argument("--cases", default=None, metavar="NAMES",
+                   help="comma-separated configs to time (default: all; e.g. recurrence-fp32,attention-fp32 to "
+                        "re-measure one ratio with more --rounds); their plain-loop twins come along")
     p.add_argument("--quality", action="store_true",
                    help="also train fp32 and bf16 (bf16_emulated where the CPU has no bf16 units) for "
                         "--quality-steps and compare the val loss")
@@ -211,7 +214,7 @@ def _cmd_bench(args: argparse.Namespace) -> int:
     print(bench_command(steps=args.steps, warmup=args.warmup, rounds=args.rounds, profile=args.profile,
                         quality=args.quality, quality_steps=args.quality_steps,
                         json_path=args.json, **_given(quality_seeds=args.quality_seeds, quality_lr=args.quality_lr),
-                        threads=args.threads))
+                        threads=args.threads, cases=args.cases))
     return 0
 
 

@@ -308,6 +308,17 @@ def test_bench_command_rejects_bad_arguments(tmp_path):
         bench_command(json_path=str(tmp_path))
     with pytest.raises(UserError, match="--quality-lr"):
         bench_command(quality=True, quality_lr=0.0)
+    with pytest.raises(UserError, match="--cases attention,recurrence-fp32: unknown attention; allowed: attention-"):
+        bench_command(cases="attention,recurrence-fp32")
+    with pytest.raises(UserError, match="no name given"):
+        bench_command(cases=" , ")
+
+
+def test_bench_cases_choose_a_subset_in_the_table_order():
+    from blockyard.bench.command import chosen_cases
+
+    assert [c.name for c in chosen_cases("recurrence-fp32, attention-fp32")] == ["attention-fp32", "recurrence-fp32"]
+    assert len(chosen_cases(None)) == len(bench_speed.CASES)
 
 
 def test_bench_cli_bad_quality_lr_is_a_one_line_error(capsys):

@@ -124,7 +124,7 @@ def test_backend_choice_and_fallback(kernels, monkeypatch):
     monkeypatch.setattr(build, "_STATE", failed)
     h = torch.randn(3, 8)
     assert torch.equal(geglu(h, "auto"), geglu_reference(h)) and len(calls) == 1
-    assert scan_backend_info("auto")["geglu_cpu"] == "PyTorch ops"
+    assert scan_backend_info("auto")["geglu_rms_norm_cpu"] == "PyTorch ops"
 
 
 # ----------------------------------------------------------------------------- the two-input form

@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+from blockyard.bench.cases import CASES, BenchCase
 from blockyard.bench.quality import QUALITY_LR, QUALITY_SEEDS, run_quality
 from blockyard.bench.report import format_report
 from blockyard.bench.speed import run_bench
@@ -13,18 +14,35 @@ from blockyard.errors import UserError
 
 def bench_command(*, steps: int = 30, warmup: int = 10, rounds: int = 2, profile: bool = True,
                   quality: bool = False, quality_steps: int = 300, quality_seeds: int = QUALITY_SEEDS,
-                  quality_lr: float = QUALITY_LR, json_path: str | None = None, threads: int = 0) -> str:
-    """Run the benchmark (and the bf16 quality check), write JSON, return the report."""
+                  quality_lr: float = QUALITY_LR, json_path: str | None = None, threads: int = 0,
+                  cases: str | None = None) -> str:
+    """Run the benchmark (and the bf16 quality check), write JSON, return the report.
+
+    ``cases``: comma-separated names of ``blockyard.bench.cases.CASES`` to time (None: all).
+    """
     check_arguments(steps=steps, warmup=warmup, quality=quality, quality_steps=quality_steps,
                     quality_seeds=quality_seeds, quality_lr=quality_lr, json_path=json_path, threads=threads)
     result = run_bench(steps=steps, warmup=warmup, rounds=rounds, profile=profile, threads=threads,
-                       log=lambda s: print(s, flush=True))
+                       log=lambda s: print(s, flush=True), cases=chosen_cases(cases))
     if quality:
         print("bf16 quality ...", flush=True)
         result["quality"] = run_quality(quality_steps, quality_seeds, threads=threads, lr=quality_lr)
     if json_path is not None:
         Path(json_path).write_text(json.dumps(result, indent=2, default=str) + "\n")
     return format_report(result)
+
+
+def chosen_cases(names: str | None) -> tuple[BenchCase, ...]:
+    """The cases named in ``names`` (comma-separated, in CASES' order); all for None; UserError on an unknown one."""
+    if names is None:
+        return CASES
+    wanted = [n.strip() for n in names.split(",") if n.strip()]
+    known = {c.name for c in CASES}
+    unknown = [n for n in wanted if n not in known]
+    if unknown or not wanted:
+        raise UserError(f"--cases {names}: {'unknown ' + ', '.join(unknown) if unknown else 'no name given'}; "
+                        f"allowed: {', '.join(c.name for c in CASES)}")
+    return tuple(c for c in CASES if c.name in wanted)
 
 
 def check_arguments(*, steps: int, warmup: int, quality: bool, quality_steps: int, quality_seeds: int,

@@ -76,7 +76,8 @@ def scan_backend_info(backend: str = "auto") -> dict[str, Any]:
         "resolved_cpu_float32": resolved,
         # The real RG-LRU runs as the fused C++ op where the backend resolves to compiled.
         "rg_lru_cpu": "fused C++ op" if resolved == "compiled" else f"PyTorch ops around the {resolved} scan",
-        "geglu_cpu": "fused C++ op" if resolved == "compiled" else "PyTorch ops",
+        # The MLP's GeGLU unit and the RMSNorms run as C++ ops under the same condition.
+        "geglu_rms_norm_cpu": "fused C++ ops" if resolved == "compiled" else "PyTorch ops",
         "compiled": build.build_status(),
     }
 
