@@ -105,6 +105,9 @@ def test_module_keeps_torchs_state_dict_and_falls_back(kernels, monkeypatch):
     RMSNorm(16, 1e-6, kernel_backend="compiled")(x)
     RMSNorm(16, 1e-6, kernel_backend="chunked")(x)
     assert calls == [1]
+    with torch.no_grad():  # inference (eval, decode): torch's forward, one fused kernel already
+        RMSNorm(16, 1e-6, kernel_backend="compiled")(x)
+    assert calls == [1]
     failed = build._BuildState()
     failed.state, failed.error = "failed", "RuntimeError: simulated: no compiler here"
     monkeypatch.setattr(build, "_STATE", failed)
