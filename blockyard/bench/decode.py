@@ -78,11 +78,21 @@ def states_at(model: torch.nn.Module, contexts: list[int], seed: int = 0) -> dic
     return out
 
 
+# Each timing runs for at least this long (more reps for fast steps): a batch-1 step takes a few ms,
+# and 8 of them (tens of ms) were measured to swing the batch-1 ratios by 30% on a quiet 2-core machine.
+MIN_TIMED_S = 0.1
+MAX_REPS = 200
+
+
 @torch.no_grad()
 def time_steps(model: torch.nn.Module, states: list[Any], batch: int, reps: int) -> float:
-    """Median seconds of one decode step from ``states`` (each rep from the same state)."""
+    """Median seconds of one decode step from ``states`` (each rep from the same state): at least
+    ``reps`` steps, more for a fast step so that they span ``MIN_TIMED_S`` (at most ``MAX_REPS``)."""
     token = torch.zeros(batch, dtype=torch.long)
-    model.step(token, states)  # warm-up: allocator, kernels
+    t0 = time.perf_counter()
+    model.step(token, states)  # warm-up: allocator, kernels; its time sizes the rep count
+    warm = time.perf_counter() - t0
+    reps = min(MAX_REPS, max(reps, int(MIN_TIMED_S / max(warm, 1e-6))))
     times = []
     for _ in range(reps):
         t0 = time.perf_counter()
@@ -259,8 +269,8 @@ def bench_decode_command(*, models: list[str] | None = None, contexts: list[int]
         used = torch.get_num_threads()
         torch.set_num_threads(before)
     ratios = decode_ratios(rows)
-    text = (f"decode: median over {rounds} round-robin rounds of the median of {reps} steps from the same state, "
-            f"{used} thread(s)\n" + format_rows(rows))
+    text = (f"decode: median over {rounds} round-robin rounds of the median of {reps} or more steps (at least "
+            f"{MIN_TIMED_S:g} s of them) from the same state, {used} thread(s)\n" + format_rows(rows))
     if ratios:
         text += "\nbatch-1 ratios, measured side by side:\n" + format_ratios(ratios)
     if json_path:
