@@ -11,12 +11,21 @@ import pytest
 import torch
 
 from blockyard.config import config_from_dict
+from blockyard.kernels import build
 from blockyard.mixers import MIXERS
 
 ROOT = Path(__file__).resolve().parents[1]
 EXAMPLE_PLUGINS = ROOT / "examples" / "plugins"
 LINEAR_ATTENTION = EXAMPLE_PLUGINS / "linear_attention.py"
 LEAKY = EXAMPLE_PLUGINS / "leaky_linear_attention.py"
+
+
+@pytest.fixture(scope="module")
+def kernels():
+    """Build the C++ kernels once per test module (tens of seconds on a fresh machine); skip without a compiler."""
+    if build.find_compiler() is None:
+        pytest.skip("no C++ compiler on this machine")
+    assert build.load_scan_ops() is not None, build.build_status()["error"]
 
 
 def mixer_options(kind: str, width: int = 32, **options: Any) -> Any:

@@ -30,14 +30,6 @@ from blockyard.model import MLP, geglu, geglu_reference
 BF16_RTOL = 2.0**-6
 
 
-@pytest.fixture(scope="module")
-def kernels():
-    """Build the C++ kernels once (tens of seconds on a fresh machine)."""
-    if build.find_compiler() is None:
-        pytest.skip("no C++ compiler on this machine")
-    assert build.load_scan_ops() is not None, build.build_status()["error"]
-
-
 def values_and_grads(fn, h, seed=1, dtype=None):
     """fn(h) and dL/dh for L = sum(fn(h) * g), g random, rounded to ``dtype`` (default h's) and then cast to h's."""
     h = h.detach().clone().requires_grad_(True)

@@ -28,14 +28,6 @@ from blockyard.mixers.recurrence import causal_depthwise_conv, rg_lru, rg_lru_re
 BF16_GRAD_RTOL = 2.0**-8
 
 
-@pytest.fixture(scope="module")
-def kernels():
-    """Build the C++ kernels once (tens of seconds on a fresh machine)."""
-    if build.find_compiler() is None:
-        pytest.skip("no C++ compiler on this machine")
-    assert build.load_scan_ops() is not None, build.build_status()["error"]
-
-
 def inputs(shape, *, gated=True, dtype=torch.float32, seed=0):
     """x, Lambda, gate logits (or None), h0 as leaves that require grad."""
     gen = torch.Generator().manual_seed(seed)

@@ -97,8 +97,9 @@ inline void store(c10::BFloat16* p, int64_t i, float v) {
 
 // erf(x) for float: Abramowitz & Stegun 1964, eq. 7.1.26 (|error| <= 1.5e-7), with t = 1 / (1 + p|x|):
 // erf(|x|) = 1 - (a1 t + a2 t^2 + a3 t^3 + a4 t^4 + a5 t^5) exp(-x^2), odd in x. Constants from
-// that table (quoted from memory; tests/test_kernels_geglu.py checks the result against torch.erf).
-inline float erf_poly(float x) {
+// that table (quoted from memory; tests/test_geglu_kernel.py checks the result against torch.erf).
+// erf_with_gauss returns erf(x) and sets e = exp(-x^2), the Gaussian factor it computes anyway.
+inline float erf_with_gauss(float x, float& e) {
   const float ax = std::fabs(x);
   const float t = 1.0f / (1.0f + 0.3275911f * ax);
   float p = 1.061405429f;
@@ -106,26 +107,21 @@ inline float erf_poly(float x) {
   p = p * t + 1.421413741f;
   p = p * t - 0.284496736f;
   p = p * t + 0.254829592f;
-  const float y = 1.0f - p * t * exp_poly(-ax * ax);
-  return std::copysign(y, x);
+  e = exp_poly(-ax * ax);
+  return std::copysign(1.0f - p * t * e, x);
 }
 
-inline float erf_of(float x) { return erf_poly(x); }
+inline float erf_of(float x) {
+  float e;
+  return erf_with_gauss(x, e);
+}
 inline double erf_of(double x) { return std::erf(x); }
 
-// The standard normal CDF Phi(a) and density phi(a) together: erf_poly's exp(-x^2) at x = a / sqrt 2
-// is exp(-a^2 / 2), the density's exponential, so one exp serves both (GeLU's backward needs both).
+// The standard normal CDF Phi(a) and density phi(a) together: erf's exp(-x^2) at x = a / sqrt 2 is
+// exp(-a^2 / 2), the density's exponential, so one exp serves both (GeLU's backward needs both).
 inline void normal_cdf_pdf(float a, float& cdf, float& pdf) {
-  const float x = a * 0.70710678118654752440f;
-  const float ax = std::fabs(x);
-  const float t = 1.0f / (1.0f + 0.3275911f * ax);
-  float p = 1.061405429f;
-  p = p * t - 1.453152027f;
-  p = p * t + 1.421413741f;
-  p = p * t - 0.284496736f;
-  p = p * t + 0.254829592f;
-  const float e = exp_poly(-ax * ax);
-  cdf = 0.5f * (1.0f + std::copysign(1.0f - p * t * e, x));
+  float e;
+  cdf = 0.5f * (1.0f + erf_with_gauss(a * 0.70710678118654752440f, e));
   pdf = 0.39894228040143267794f * e;
 }
 
