@@ -27,8 +27,8 @@ from torch import nn
 from torch.utils.checkpoint import checkpoint
 
 from blockyard.config import ModelConfig
-from blockyard.kernels import check_backend, resolve_backend
-from blockyard.kernels.ops import FUSED_DTYPES, geglu_fused, rms_norm_fused
+from blockyard.kernels import check_backend, uses_fused_op
+from blockyard.kernels.ops import geglu_fused, rms_norm_fused
 from blockyard.mixers import MIXERS, Mixer
 from blockyard.mixers.base import is_residual_out, mark_residual_out
 from blockyard.parametrization import ParamScaling, readout_multiplier, scaling
@@ -44,7 +44,7 @@ def geglu(h: torch.Tensor, backend: str = "auto") -> torch.Tensor:
     """``geglu_reference`` through the C++ op (``blockyard.kernels.ops.geglu_fused``: one pass forward
     and one backward instead of two and four) where ``backend`` (``runtime.scan``) resolves to the
     compiled kernels for CPU float32 / bfloat16 / float64 inputs, else the reference itself."""
-    return geglu_fused(h) if _fused_applies(h, backend) else geglu_reference(h)
+    return geglu_fused(h) if uses_fused_op(h, backend) else geglu_reference(h)
 
 
 class RMSNorm(nn.RMSNorm):
@@ -64,17 +64,9 @@ class RMSNorm(nn.RMSNorm):
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         recorded = torch.is_grad_enabled() and (x.requires_grad or bool(self.weight is not None
                                                                        and self.weight.requires_grad))
-        if recorded and self.weight is not None and self.eps is not None and _fused_applies(x, self.kernel_backend):
+        if recorded and self.weight is not None and self.eps is not None and uses_fused_op(x, self.kernel_backend):
             return rms_norm_fused(x, self.weight, self.eps)
         return super().forward(x)
-
-
-def _fused_applies(x: torch.Tensor, backend: str) -> bool:
-    """Whether the C++ ops run for ``x`` under ``backend``: CPU float32 / bfloat16 / float64 inputs and a
-    backend that resolves to the compiled kernels (as for the float32 the kernels compute in)."""
-    if x.device.type != "cpu" or x.dtype not in FUSED_DTYPES:
-        return False
-    return resolve_backend(x.new_empty(0, dtype=torch.promote_types(x.dtype, torch.float32)), backend) == "compiled"
 
 
 class MLP(nn.Module):

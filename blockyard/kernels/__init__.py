@@ -14,6 +14,7 @@ from blockyard.kernels.scan import (
     scan_chunked,
     scan_compiled,
     scan_reference,
+    uses_fused_op,
 )
 
 __all__ = [
@@ -25,4 +26,5 @@ __all__ = [
     "scan_chunked",
     "scan_compiled",
     "scan_reference",
+    "uses_fused_op",
 ]

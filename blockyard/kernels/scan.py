@@ -66,6 +66,15 @@ def resolve_backend(a: torch.Tensor, backend: str = "auto") -> str:
     return "chunked"
 
 
+def uses_fused_op(x: torch.Tensor, backend: str) -> bool:
+    """Whether the C++ ops (``ops``: fused RG-LRU, conv, GeGLU, RMSNorm) run for inputs like ``x`` under
+    ``backend`` (``runtime.scan``): CPU float32 / bfloat16 / float64 inputs and a backend that resolves
+    to ``compiled`` for the float32 (float64) the kernels compute in (``auto``: the kernels built)."""
+    if x.device.type != "cpu" or x.dtype not in ops.FUSED_DTYPES:
+        return False
+    return resolve_backend(x.new_empty(0, dtype=ops.state_dtype(x.dtype)), backend) == "compiled"
+
+
 def scan_backend_info(backend: str = "auto") -> dict[str, Any]:
     """For env.json: the requested backend (``runtime.scan``), what it resolves to for CPU float32,
     and the kernel's build status."""

@@ -40,8 +40,8 @@ import torch.nn.functional as F
 from torch import nn
 
 from blockyard.errors import ConfigError
-from blockyard.kernels import check_backend, linear_scan, resolve_backend
-from blockyard.kernels.ops import FUSED_DTYPES, causal_conv_fused, compiled_ops, gelu_mul_fused, rg_lru_fused
+from blockyard.kernels import check_backend, linear_scan, uses_fused_op
+from blockyard.kernels.ops import causal_conv_fused, compiled_ops, gelu_mul_fused, rg_lru_fused
 from blockyard.mixers.base import Mixer, register_mixer
 from blockyard.schema import opt
 
@@ -193,15 +193,6 @@ def gated_input(
 def _compute_dtype(x: torch.Tensor) -> torch.dtype:
     """float32 at least: the state is never kept in half precision (float64 stays float64)."""
     return torch.promote_types(x.dtype, torch.float32)
-
-
-def uses_fused_op(x: torch.Tensor, backend: str) -> bool:
-    """Whether ``rg_lru`` runs the fused C++ op for inputs like ``x`` under scan ``backend``: where
-    ``backend`` resolves to ``compiled`` (``auto``: the kernels built), for CPU float32 / bfloat16 /
-    float64 inputs."""
-    if x.device.type != "cpu" or x.dtype not in FUSED_DTYPES:
-        return False
-    return resolve_backend(x.new_empty(0, dtype=_compute_dtype(x)), backend) == "compiled"
 
 
 def rg_lru(
