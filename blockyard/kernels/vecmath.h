@@ -111,12 +111,6 @@ inline float erf_with_gauss(float x, float& e) {
   return std::copysign(1.0f - p * t * e, x);
 }
 
-inline float erf_of(float x) {
-  float e;
-  return erf_with_gauss(x, e);
-}
-inline double erf_of(double x) { return std::erf(x); }
-
 // The standard normal CDF Phi(a) and density phi(a) together: erf's exp(-x^2) at x = a / sqrt 2 is
 // exp(-a^2 / 2), the density's exponential, so one exp serves both (GeLU's backward needs both).
 inline void normal_cdf_pdf(float a, float& cdf, float& pdf) {
