@@ -179,6 +179,9 @@ def _add_bench(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--cases", default=None, metavar="NAMES",
                    help="comma-separated configs to time (default: all; e.g. recurrence-fp32,attention-fp32 to "
                         "re-measure one ratio with more --rounds); their plain-loop twins come along")
+    p.add_argument("--pairs", type=int, default=None,
+                   help="alternated step pairs per model-vs-model ratio (recurrence/attention, bf16/fp32), whose "
+                        "median and 95%% interval the targets read (default 16; 0 = skip)")
     p.add_argument("--quality", action="store_true",
                    help="also train fp32 and bf16 (bf16_emulated where the CPU has no bf16 units) for "
                         "--quality-steps and compare the val loss")
@@ -214,7 +217,7 @@ def _cmd_bench(args: argparse.Namespace) -> int:
     print(bench_command(steps=args.steps, warmup=args.warmup, rounds=args.rounds, profile=args.profile,
                         quality=args.quality, quality_steps=args.quality_steps,
                         json_path=args.json, **_given(quality_seeds=args.quality_seeds, quality_lr=args.quality_lr),
-                        threads=args.threads, cases=args.cases))
+                        threads=args.threads, cases=args.cases, **_given(pairs=args.pairs)))
     return 0
 
 

@@ -183,7 +183,7 @@ def test_bench_json_has_the_fields_a_comparison_reads(tmp_path, monkeypatch):
     cases = (BenchCase("attention-fp32", "global_attention", 32, 2, width=32, depth=1),
              BenchCase("recurrence-fp32", "recurrence", 32, 2, width=32, depth=1))
     result = run_bench(steps=11, warmup=1, rounds=1, cases=cases, log=lambda s: None,
-                             gemm_n=128, copy_bytes=2**20, scan_shape=(2, 32, 16))
+                             gemm_n=128, copy_bytes=2**20, scan_shape=(2, 32, 16), pairs=6)
     text = json.dumps(result, default=str)
     result = json.loads(text)
     assert {"machine", "peaks", "configs", "ratios", "scan", "profile", "targets", "per_round"} <= set(result)
@@ -195,6 +195,13 @@ def test_bench_json_has_the_fields_a_comparison_reads(tmp_path, monkeypatch):
     assert result["ratios"]["blockyard_over_plain_fp32"] > 0
     assert result["ratios"]["recurrence_over_attention_s256"] > 0
     assert result["ratios"]["bf16_over_fp32_attention"] is None  # not measured in this run
+    # Paired steps: only the model-vs-model ratio whose two cases ran, 6 per-pair values, an interval.
+    assert set(result["ratios_paired"]) == {"recurrence_over_attention_s256"}
+    p = result["ratios_paired"]["recurrence_over_attention_s256"]
+    assert len(p["values"]) == 6 and p["low"] <= p["median"] <= p["high"]
+    target = next(t for t in result["targets"] if t["name"].endswith("seq 256"))
+    assert target["value"] == p["median"] and target["interval"] == [p["low"], p["high"]]
+    assert "paired steps [95%]" in format_report(result)
     assert {t["name"] for t in result["targets"]} >= {"blockyard train / plain loop tokens/s, global attention fp32"}
     assert "chunked" in result["scan"]["backends"]
     shares = result["profile"]["attention-fp32"]["share"]
@@ -312,6 +319,9 @@ def test_bench_command_rejects_bad_arguments(tmp_path):
         bench_command(cases="attention,recurrence-fp32")
     with pytest.raises(UserError, match="no name given"):
         bench_command(cases=" , ")
+    for pairs in (-1, 5):
+        with pytest.raises(UserError, match="--pairs"):
+            bench_command(pairs=pairs)
 
 
 def test_bench_cases_choose_a_subset_in_the_table_order():

@@ -95,3 +95,39 @@ def blockyard_run(case: BenchCase, steps: int, warmup: int, cache_dir: Path, thr
         raise RuntimeError(f"bench run {case.name}: torch.compile failed ({compiled.get('reason')})")
     return {"tokens_per_s": loop_tokens_per_s(metrics, warmup), "summary": summary, "config": cfg,
             "compile": compiled}
+
+
+@dataclasses.dataclass(frozen=True)
+class TrainerParts:
+    """``case`` as the trainer builds it (model, AdamW, schedule, runtime, data), stepped by ``step(i)``.
+
+    ``step(i)`` is one ``blockyard.train.train_step`` on training batch ``i``: forward, backward,
+    clipping and the update, without the loop's records.
+    """
+
+    model: Any
+    step: Any  # Callable[[int], None]
+
+
+def trainer_parts(case: BenchCase, cache_dir: Path, threads: int = 0) -> TrainerParts:
+    """Build ``case`` with the trainer's own builders (seed 0), for step-level timing and profiling."""
+    import torch
+
+    from blockyard.data import load_data
+    from blockyard.model import build_model
+    from blockyard.train import train_step
+    from blockyard.train.optim import build_optimizer, build_scheduler
+    from blockyard.train.runtime import resolve_runtime
+
+    cfg = blockyard_config(case, 100, cache_dir, threads)
+    runtime, _ = resolve_runtime(cfg.runtime)
+    data = load_data(cfg)
+    torch.manual_seed(0)
+    model = build_model(cfg.model, data.vocab_size, scan_backend=runtime.scan_backend)
+    optimizer = build_optimizer(model, cfg.train)
+    scheduler = build_scheduler(optimizer, cfg.train, cfg.train.steps)
+
+    def step(i: int) -> None:
+        train_step(model, optimizer, scheduler, [data.train_batch(i)], runtime, cfg.train.grad_clip)
+
+    return TrainerParts(model=model, step=step)

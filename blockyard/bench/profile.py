@@ -11,7 +11,7 @@ from typing import Any
 import torch
 from torch import nn
 
-from blockyard.bench.cases import BenchCase, blockyard_config
+from blockyard.bench.cases import BenchCase, trainer_parts
 
 _LABEL = "bench::"
 
@@ -115,25 +115,12 @@ def profile_step(case: BenchCase, cache_dir: Path, warmup: int = 3, threads: int
     """One ``blockyard.train.train_step`` of ``case`` under torch.profiler: ms and share per bucket."""
     from torch.profiler import ProfilerActivity, profile
 
-    from blockyard.data import load_data
-    from blockyard.model import build_model
-    from blockyard.train import train_step
-    from blockyard.train.optim import build_optimizer, build_scheduler
-    from blockyard.train.runtime import resolve_runtime
-
-    cfg = blockyard_config(case, 100, cache_dir, threads)
-    runtime, _ = resolve_runtime(cfg.runtime)
-    data = load_data(cfg)
-    torch.manual_seed(0)
-    model = build_model(cfg.model, data.vocab_size, scan_backend=runtime.scan_backend)
-    optimizer = build_optimizer(model, cfg.train)
-    scheduler = build_scheduler(optimizer, cfg.train, cfg.train.steps)
+    parts = trainer_parts(case, cache_dir, threads)
     for i in range(warmup):
-        train_step(model, optimizer, scheduler, [data.train_batch(i)], runtime, cfg.train.grad_clip)
-    batch = [data.train_batch(warmup)]
-    with labelled_forward(model), profile(activities=[ProfilerActivity.CPU]) as prof:
+        parts.step(i)
+    with labelled_forward(parts.model), profile(activities=[ProfilerActivity.CPU]) as prof:
         start = time.perf_counter()
-        train_step(model, optimizer, scheduler, batch, runtime, cfg.train.grad_clip)
+        parts.step(warmup)
         wall_ms = (time.perf_counter() - start) * 1e3
     ms = step_time_shares(list(prof.events()))
     total = sum(ms.values())

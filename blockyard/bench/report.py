@@ -47,17 +47,31 @@ def _config_lines(result: dict[str, Any]) -> list[str]:
 def _ratio_lines(result: dict[str, Any]) -> list[str]:
     if "ratios" not in result:
         return []
-    lines = ["", f"{'ratio':<36} {'best/best':>9} {'median of rounds':>17} {'at equal MFU':>13}"]
+    lines = ["", f"{'ratio':<36} {'best/best':>9} {'median of rounds':>17} {'at equal MFU':>13} "
+             f"{'paired steps [95%]':>22}"]
     medians = result.get("ratios_median_of_rounds", {})
     ceilings = result.get("ratios_at_equal_mfu", {})
+    paired = result.get("ratios_paired", {})
     for key, value in result["ratios"].items():
         med, eq = medians.get(key), ceilings.get(key)
         lines.append(f"{key:<36} {'n/a' if value is None else f'{value:.2f}x':>9} "
-                     f"{'n/a' if med is None else f'{med:.2f}x':>17} {'n/a' if eq is None else f'{eq:.2f}x':>13}")
+                     f"{'n/a' if med is None else f'{med:.2f}x':>17} {'n/a' if eq is None else f'{eq:.2f}x':>13} "
+                     f"{_paired_cell(paired.get(key)):>22}")
     if ceilings:
         lines.append("(at equal MFU: the ratio of GEMM peak / FLOPs per token of the two configs, what the "
                      "ratio would be if both used their peak equally well)")
+    if paired:
+        lines.append("(paired steps: the trainer's steps of the two configs alternated in this process; median "
+                     "over pairs and its distribution-free 95% interval; the targets read this figure)")
     return lines
+
+
+def _paired_cell(p: dict[str, Any] | None) -> str:
+    if p is None:
+        return "n/a"
+    if p["low"] is None or p["high"] is None:
+        return f"{p['median']:.2f}x"
+    return f"{p['median']:.2f}x [{p['low']:.2f}, {p['high']:.2f}]"
 
 
 def _scan_lines(result: dict[str, Any]) -> list[str]:

@@ -24,7 +24,8 @@ from typing import Any
 
 import torch
 
-from blockyard.bench.cases import CASES, PLAIN_TWINS, BenchCase, blockyard_run
+from blockyard.bench.cases import CASES, PLAIN_TWINS, BenchCase, blockyard_run, trainer_parts
+from blockyard.bench.paired import DEFAULT_PAIRS, median_with_interval, paired_ratios
 from blockyard.bench.peaks import copy_gbytes_per_s, gemm_gflops, machine_facts
 from blockyard.bench.plain import PlainShape, plain_tokens_per_s
 from blockyard.bench.profile import profile_step
@@ -49,23 +50,27 @@ RATIO_PAIRS = {
 def run_bench(steps: int = 30, warmup: int = 10, rounds: int = 2, profile: bool = True,
               cases: tuple[BenchCase, ...] = CASES, log: Callable[[str], None] = print,
               gemm_n: int = 1024, copy_bytes: int = 256 * 2**20,
-              scan_shape: tuple[int, int, int] = (16, 256, 256), threads: int = 0) -> dict[str, Any]:
-    """Measure peaks, every case (``rounds`` times, interleaved with the plain loop), the scan and a profile.
+              scan_shape: tuple[int, int, int] = (16, 256, 256), threads: int = 0,
+              pairs: int = DEFAULT_PAIRS) -> dict[str, Any]:
+    """Measure peaks, every case (``rounds`` times, interleaved with the plain loop), paired steps,
+    the scan and a profile.
 
+    ``pairs``: alternated step pairs per model-vs-model ratio (0: none; ``blockyard.bench.paired``).
     ``gemm_n``, ``copy_bytes`` and ``scan_shape`` size the peak and scan measurements (the tests
     shrink them). ``threads`` (0 = every core) applies to everything measured, both loops alike.
     """
     threads_before = torch.get_num_threads()
     torch.set_num_threads(threads or os.cpu_count() or 1)
     try:
-        return _run_bench(steps, warmup, rounds, profile, cases, log, gemm_n, copy_bytes, scan_shape, threads)
+        return _run_bench(steps, warmup, rounds, profile, cases, log, gemm_n, copy_bytes, scan_shape, threads,
+                          pairs)
     finally:
         torch.set_num_threads(threads_before)
 
 
 def _run_bench(steps: int, warmup: int, rounds: int, profile: bool, cases: tuple[BenchCase, ...],
                log: Callable[[str], None], gemm_n: int, copy_bytes: int, scan_shape: tuple[int, int, int],
-               threads: int) -> dict[str, Any]:
+               threads: int, pairs: int) -> dict[str, Any]:
     from blockyard.data import load_data
 
     result: dict[str, Any] = {"machine": machine_facts(), "steps": steps, "warmup": warmup, "rounds": rounds}
@@ -89,6 +94,8 @@ def _run_bench(steps: int, warmup: int, rounds: int, profile: bool, cases: tuple
         vocab = load_data(runs[cases[0].name]["config"]).vocab_size
         result["configs"] = _config_rows(cases, per_round, runs, result["peaks"], vocab)
         result["per_round"] = per_round
+        if pairs:
+            result["ratios_paired"] = _paired(cases, pairs, cache_dir, threads, log)
         log("scan ...")
         result["scan"] = scan_figures(scan_shape)
         if profile:
@@ -160,6 +167,21 @@ def _round(cases: tuple[BenchCase, ...], steps: int, warmup: int, cache_dir: Pat
         summaries[case.name] = run
         log(f"  {case.name:<24} {speeds[case.name]:>9.0f} tokens/s")
     return speeds, summaries
+
+
+def _paired(cases: tuple[BenchCase, ...], pairs: int, cache_dir: Path, threads: int,
+            log: Callable[[str], None]) -> dict[str, dict[str, Any]]:
+    """Each model-vs-model ratio of RATIO_PAIRS whose two eager cases ran, by alternated trainer steps."""
+    by_name = {c.name: c for c in cases if not c.compile}
+    out: dict[str, dict[str, Any]] = {}
+    for key, (num, den) in RATIO_PAIRS.items():
+        if num in by_name and den in by_name:
+            a, b = by_name[num], by_name[den]
+            log(f"paired steps {num} / {den} ({pairs} pairs) ...")
+            values = paired_ratios(trainer_parts(a, cache_dir, threads).step, trainer_parts(b, cache_dir, threads).step,
+                                   pairs=pairs, num_tokens=a.tokens_per_step, den_tokens=b.tokens_per_step)
+            out[key] = median_with_interval(values) | {"values": values}
+    return out
 
 
 def _profiles(cases: tuple[BenchCase, ...], cache_dir: Path, threads: int,
