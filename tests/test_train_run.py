@@ -235,6 +235,7 @@ def test_records_fields_and_tensorboard(workdir):
                 "scan_backend", "git_commit", "hostname", "start_time"):
         assert key in env, key
     assert env["threads"] == 1 and env["device"] == "cpu" and env["precision"] == "fp32"
+    assert env["allocator"].startswith(("glibc", "unchanged"))  # blockyard.train.allocator
     assert env["python"] == ".".join(map(str, sys.version_info[:3]))
     cfg_back = load_config(out / "config.yaml")
     assert config_hash(cfg_back) == config_hash(load_config(path))

@@ -110,17 +110,20 @@ class TrainerParts:
 
 
 def trainer_parts(case: BenchCase, cache_dir: Path, threads: int = 0) -> TrainerParts:
-    """Build ``case`` with the trainer's own builders (seed 0), for step-level timing and profiling."""
+    """Build ``case`` with the trainer's own builders and malloc settings (seed 0), for step-level
+    timing and profiling."""
     import torch
 
     from blockyard.data import load_data
     from blockyard.model import build_model
     from blockyard.train import train_step
+    from blockyard.train.allocator import keep_freed_memory
     from blockyard.train.optim import build_optimizer, build_scheduler
     from blockyard.train.runtime import resolve_runtime
 
     cfg = blockyard_config(case, 100, cache_dir, threads)
     runtime, _ = resolve_runtime(cfg.runtime)
+    keep_freed_memory()  # as run_training does
     data = load_data(cfg)
     torch.manual_seed(0)
     model = build_model(cfg.model, data.vocab_size, scan_backend=runtime.scan_backend)

@@ -72,8 +72,12 @@ def _run_bench(steps: int, warmup: int, rounds: int, profile: bool, cases: tuple
                log: Callable[[str], None], gemm_n: int, copy_bytes: int, scan_shape: tuple[int, int, int],
                threads: int, pairs: int) -> dict[str, Any]:
     from blockyard.data import load_data
+    from blockyard.train.allocator import keep_freed_memory
 
-    result: dict[str, Any] = {"machine": machine_facts(), "steps": steps, "warmup": warmup, "rounds": rounds}
+    # The trainer keeps freed step memory (blockyard.train.allocator); set it before the first
+    # measurement, so that the plain loop runs under the same malloc settings throughout.
+    result: dict[str, Any] = {"machine": machine_facts(), "steps": steps, "warmup": warmup, "rounds": rounds,
+                              "allocator": keep_freed_memory()}
     if not result["machine"]["bf16"]:
         cases = _without_bf16_cases(cases, result, log)
     with tempfile.TemporaryDirectory(prefix="blockyard-bench-cache-") as cache:

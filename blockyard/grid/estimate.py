@@ -24,6 +24,7 @@ def measure_tokens_per_s(cfg: Config, threads: int, steps: int = TIMED_STEPS) ->
 
     from blockyard.grid.fairness import vocab_size
     from blockyard.model import build_model
+    from blockyard.train.allocator import keep_freed_memory
     from blockyard.train.loop import train_step
     from blockyard.train.optim import build_optimizer, build_scheduler
     from blockyard.train.runtime import resolve_runtime
@@ -32,6 +33,7 @@ def measure_tokens_per_s(cfg: Config, threads: int, steps: int = TIMED_STEPS) ->
     torch.set_num_threads(max(1, threads))
     try:
         runtime, _ = resolve_runtime(cfg.runtime)  # its warnings reach the user when the cell trains
+        keep_freed_memory()  # the cell's trainer does the same
         torch.manual_seed(0)
         vocab = vocab_size(cfg)
         model = build_model(cfg.model, vocab, activation_checkpointing=cfg.runtime.activation_checkpointing,

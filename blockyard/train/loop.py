@@ -47,6 +47,7 @@ from blockyard.rundir import (
     writing,
 )
 from blockyard.train import checkpoint as ckpt
+from blockyard.train.allocator import keep_freed_memory
 from blockyard.train.compile import compile_for_training, compile_warning
 from blockyard.train.dirstate import clear_records, inspect_run_dir, keep_plugin_copies, plan_run_dir
 from blockyard.train.memory import PeakRSS
@@ -194,6 +195,7 @@ class Setup:
     tokens_per_step: int
     compiled: dict[str, Any]  # runtime.compile: requested, active, warm-up or why not (env.json)
     mixer_check: str = ""  # what the contract gate on plugin mixers found (env.json)
+    allocator: str = ""  # how malloc keeps freed step memory (blockyard.train.allocator; env.json)
 
 
 def _now() -> str:
@@ -297,6 +299,7 @@ def run_training(
             mixer_check = gate(cfg) if check else SKIPPED
             s = _build(cfg, cfg_hash, runtime)
             s.mixer_check = mixer_check
+            s.allocator = keep_freed_memory()
             from blockyard.cost.memory import warn_if_too_large  # activations that will not fit: say so first
 
             warn_if_too_large(cfg, s.data.vocab_size, lambda m: show.message(f"warning: {m}"))
@@ -381,7 +384,7 @@ class _Segment:
         self.t_start = time.perf_counter()
         write_json(self.out / ENV_FILE, environment(**s.runtime.facts(), compile=s.compiled, start_time=_now(),
                                                     resumed_from_step=self.step or None, data=s.data.describe(),
-                                                    mixer_check=s.mixer_check),
+                                                    mixer_check=s.mixer_check, allocator=s.allocator),
                    what="the run's environment")
         if self.step == 0:
             params = _param_counts(s.model)
