@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import pytest
 from scipy.stats import binom
@@ -94,3 +96,21 @@ def test_too_few_pairs_have_no_interval():
 def test_a_target_with_an_interval_is_met_only_when_all_of_it_is(interval, met):
     assert Target("ratio", 1.25, ">=", 1.25, interval=interval).met is met
     assert Target("ratio", 1.25, ">=", 1.25).met is True  # without an interval: the value alone
+
+
+def test_a_compiled_case_whose_compilation_fails_is_refused_not_timed_eagerly(tmp_path, monkeypatch):
+    import blockyard.train.compile as compile_mod
+    from blockyard.bench.cases import BenchCase, trainer_parts
+
+    def broken(fn):
+        def run(*args, **kwargs):
+            raise RuntimeError("simulated compiler failure")
+        return run
+
+    monkeypatch.setenv("BLOCKYARD_CACHE", str(tmp_path / "cache"))
+    monkeypatch.setattr(compile_mod.torch, "compile", broken)
+    case = BenchCase("tiny-compiled", "global_attention", 16, 2, width=16, depth=1, compile=True)
+    with pytest.raises(RuntimeError, match="tiny-compiled: torch.compile failed .*simulated compiler failure"):
+        trainer_parts(case, tmp_path / "cache", threads=1)
+    eager = trainer_parts(dataclasses.replace(case, compile=False), tmp_path / "cache", threads=1)
+    eager.step(0)  # the eager twin builds and steps

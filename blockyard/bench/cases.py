@@ -110,14 +110,15 @@ class TrainerParts:
 
 
 def trainer_parts(case: BenchCase, cache_dir: Path, threads: int = 0) -> TrainerParts:
-    """Build ``case`` with the trainer's own builders and malloc settings (seed 0), for step-level
-    timing and profiling."""
+    """Build ``case`` with the trainer's own builders, malloc settings and ``runtime.compile`` (seed 0),
+    for step-level timing and profiling; RuntimeError where a compiled case's compilation fails."""
     import torch
 
     from blockyard.data import load_data
     from blockyard.model import build_model
     from blockyard.train import train_step
     from blockyard.train.allocator import keep_freed_memory
+    from blockyard.train.compile import compile_for_training
     from blockyard.train.optim import build_optimizer, build_scheduler
     from blockyard.train.runtime import resolve_runtime
 
@@ -129,6 +130,9 @@ def trainer_parts(case: BenchCase, cache_dir: Path, threads: int = 0) -> Trainer
     model = build_model(cfg.model, data.vocab_size, scan_backend=runtime.scan_backend)
     optimizer = build_optimizer(model, cfg.train)
     scheduler = build_scheduler(optimizer, cfg.train, cfg.train.steps)
+    compiled = compile_for_training(model, runtime, data.train_batch(0))  # runtime.compile's warm-up, as the trainer
+    if case.compile and not compiled["active"]:  # an eager figure under a compiled name would mislead
+        raise RuntimeError(f"bench case {case.name}: torch.compile failed ({compiled.get('reason')})")
 
     def step(i: int) -> None:
         train_step(model, optimizer, scheduler, [data.train_batch(i)], runtime, cfg.train.grad_clip)

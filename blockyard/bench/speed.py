@@ -175,8 +175,8 @@ def _round(cases: tuple[BenchCase, ...], steps: int, warmup: int, cache_dir: Pat
 
 def _paired(cases: tuple[BenchCase, ...], pairs: int, cache_dir: Path, threads: int,
             log: Callable[[str], None]) -> dict[str, dict[str, Any]]:
-    """Each model-vs-model ratio of RATIO_PAIRS whose two eager cases ran, by alternated trainer steps."""
-    by_name = {c.name: c for c in cases if not c.compile}
+    """Each model-vs-model ratio of RATIO_PAIRS (compiled/eager too) whose two cases ran, by alternated steps."""
+    by_name = {c.name: c for c in cases}
     out: dict[str, dict[str, Any]] = {}
     for key, (num, den) in RATIO_PAIRS.items():
         if num in by_name and den in by_name:
