@@ -23,7 +23,7 @@ from torch.utils._python_dispatch import TorchDispatchMode
 
 from blockyard.bench import quality as bench_quality
 from blockyard.bench import speed as bench_speed
-from blockyard.bench.cases import BenchCase, blockyard_run, loop_tokens_per_s
+from blockyard.bench.cases import BenchCase, blockyard_run, loop_efficiency, loop_tokens_per_s
 from blockyard.bench.command import bench_command
 from blockyard.bench.plain import (
     PlainShape,
@@ -165,6 +165,18 @@ def test_loop_tokens_per_s_reads_wall_clock_between_log_lines():
         loop_tokens_per_s(lines, warmup=25)  # one train line left
 
 
+def test_loop_efficiency_compares_the_loop_clock_with_the_step_clock_in_each_window():
+    lines = [{"split": "train", "step": 10, "tokens": 1000, "wall_s": 5.0, "tokens_per_s": 400.0},
+             {"split": "val", "step": 10, "wall_s": 6.0},
+             {"split": "train", "step": 20, "tokens": 2000, "wall_s": 8.0, "tokens_per_s": 400.0},
+             {"split": "train", "step": 30, "tokens": 3000, "wall_s": 10.5, "tokens_per_s": 500.0},
+             {"split": "train", "step": 40, "tokens": 4000, "wall_s": 13.0, "tokens_per_s": 400.0}]
+    # Windows: 1000 tokens in 3 s of loop (333/s) vs 400/s of steps; 400/s vs 500/s; 400/s vs 400/s.
+    assert loop_efficiency(lines, warmup=10) == pytest.approx(1000 / 3 / 400)  # median of 0.833, 0.8, 1.0
+    with pytest.raises(ValueError, match="raise --steps"):
+        loop_efficiency(lines, warmup=35)
+
+
 # ----------------------------------------------------------------------------- benchmark output
 
 
@@ -195,12 +207,16 @@ def test_bench_json_has_the_fields_a_comparison_reads(tmp_path, monkeypatch):
     assert result["ratios"]["blockyard_over_plain_fp32"] > 0
     assert result["ratios"]["recurrence_over_attention_s256"] > 0
     assert result["ratios"]["bf16_over_fp32_attention"] is None  # not measured in this run
-    # Paired steps: only the model-vs-model ratio whose two cases ran, 6 per-pair values, an interval.
-    assert set(result["ratios_paired"]) == {"recurrence_over_attention_s256"}
+    # Paired steps: only the ratios whose configs ran, 6 per-pair values, an interval.
+    assert set(result["ratios_paired"]) == {"recurrence_over_attention_s256", "blockyard_over_plain_fp32"}
     p = result["ratios_paired"]["recurrence_over_attention_s256"]
-    assert len(p["values"]) == 6 and p["low"] <= p["median"] <= p["high"]
+    assert len(p["values"]) == 6 and p["low"] <= p["median"] <= p["high"] and p["loop_efficiency"] == 1.0
     target = next(t for t in result["targets"] if t["name"].endswith("seq 256"))
     assert target["value"] == p["median"] and target["interval"] == [p["low"], p["high"]]
+    # Against the plain loop: scaled by the trainer loop's own efficiency, read from its run.
+    q = result["ratios_paired"]["blockyard_over_plain_fp32"]
+    assert 0 < q["loop_efficiency"] <= 1.5 and "x the loop's efficiency" in next(
+        t for t in result["targets"] if t["name"].endswith("global attention fp32"))["note"]
     assert "paired steps [95%]" in format_report(result)
     assert {t["name"] for t in result["targets"]} >= {"blockyard train / plain loop tokens/s, global attention fp32"}
     assert "chunked" in result["scan"]["backends"]

@@ -9,6 +9,7 @@ from __future__ import annotations
 import dataclasses
 import itertools
 import json
+import statistics
 import tempfile
 from pathlib import Path
 from typing import Any
@@ -78,6 +79,21 @@ def loop_tokens_per_s(metrics: list[dict[str, Any]], warmup: int) -> float:
     return max((b["tokens"] - a["tokens"]) / (b["wall_s"] - a["wall_s"]) for a, b in itertools.pairwise(lines))
 
 
+def loop_efficiency(metrics: list[dict[str, Any]], warmup: int) -> float:
+    """The training loop's tokens/s over its ``train_step``'s own, in the same log windows (median).
+
+    Each train line holds the step function's tokens/s over the steps since the previous line;
+    the loop's wall clock over the same window also counts batching, records and RSS probes.
+    Both clocks see the same steps, so their ratio is free of the machine's drift between runs.
+    """
+    lines = [m for m in metrics if m.get("split") == "train" and m["step"] >= warmup]
+    ratios = [(b["tokens"] - a["tokens"]) / (b["wall_s"] - a["wall_s"]) / b["tokens_per_s"]
+              for a, b in itertools.pairwise(lines) if b.get("tokens_per_s")]
+    if not ratios:
+        raise ValueError(f"need two train lines at step >= {warmup}; raise --steps")
+    return statistics.median(ratios)
+
+
 def blockyard_run(case: BenchCase, steps: int, warmup: int, cache_dir: Path, threads: int = 0,
                 **train: Any) -> dict[str, Any]:
     """Train ``case`` with ``blockyard.train.run_training`` in a temp run dir; its loop tokens/s and summary."""
@@ -94,7 +110,7 @@ def blockyard_run(case: BenchCase, steps: int, warmup: int, cache_dir: Path, thr
     if case.compile and not compiled["active"]:  # an eager figure under a compiled name would mislead
         raise RuntimeError(f"bench run {case.name}: torch.compile failed ({compiled.get('reason')})")
     return {"tokens_per_s": loop_tokens_per_s(metrics, warmup), "summary": summary, "config": cfg,
-            "compile": compiled}
+            "compile": compiled, "loop_efficiency": loop_efficiency(metrics, warmup)}
 
 
 @dataclasses.dataclass(frozen=True)

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import dataclasses
 import time
+from collections.abc import Callable
 
 import torch
 import torch.nn.functional as F
@@ -140,17 +141,30 @@ def random_batches(vocab: int, batch: int, seq_len: int, count: int, seed: int =
     return out
 
 
-def plain_step_seconds(shape: PlainShape, batch: int, seq_len: int, steps: int, warmup: int,
-                       bf16: bool = False) -> list[float]:
-    """Wall seconds of each timed step of the reference loop (after ``warmup`` untimed steps)."""
+def plain_stepper(shape: PlainShape, batch: int, seq_len: int, bf16: bool = False,
+                  seed: int = 0) -> Callable[[int], None]:
+    """The reference loop as ``step(i)``: a fresh model and AdamW (torch seed 0), each step on a new
+    batch of uniform random tokens (``seed``; speed does not depend on the text, nor on ``i``)."""
     torch.manual_seed(0)
     model = PlainTransformer(shape, seq_len)
     optimizer = plain_optimizer(model)
-    batches = random_batches(shape.vocab, batch, seq_len, warmup + steps)
+    gen = torch.Generator().manual_seed(seed)
+
+    def step(_i: int) -> None:
+        seq = torch.randint(shape.vocab, (batch, seq_len + 1), generator=gen)
+        plain_train_step(model, optimizer, seq[:, :-1], seq[:, 1:], bf16=bf16)
+
+    return step
+
+
+def plain_step_seconds(shape: PlainShape, batch: int, seq_len: int, steps: int, warmup: int,
+                       bf16: bool = False) -> list[float]:
+    """Wall seconds of each timed step of the reference loop (after ``warmup`` untimed steps)."""
+    step = plain_stepper(shape, batch, seq_len, bf16=bf16)
     times = []
-    for i, (x, y) in enumerate(batches):
+    for i in range(warmup + steps):
         start = time.perf_counter()
-        plain_train_step(model, optimizer, x, y, bf16=bf16)
+        step(i)
         if i >= warmup:
             times.append(time.perf_counter() - start)
     return times

@@ -61,8 +61,9 @@ def _ratio_lines(result: dict[str, Any]) -> list[str]:
         lines.append("(at equal MFU: the ratio of GEMM peak / FLOPs per token of the two configs, what the "
                      "ratio would be if both used their peak equally well)")
     if paired:
-        lines.append("(paired steps: the trainer's steps of the two configs alternated in this process; median "
-                     "over pairs and its distribution-free 95% interval; the targets read this figure)")
+        lines.append("(paired steps: the steps of the two configs alternated in this process; median over pairs "
+                     "and its distribution-free 95% interval; against the plain loop, times the trainer loop's own "
+                     "efficiency; the targets read this figure)")
     return lines
 
 

@@ -27,7 +27,7 @@ import torch
 from blockyard.bench.cases import CASES, PLAIN_TWINS, BenchCase, blockyard_run, trainer_parts
 from blockyard.bench.paired import DEFAULT_PAIRS, median_with_interval, paired_ratios
 from blockyard.bench.peaks import copy_gbytes_per_s, gemm_gflops, machine_facts
-from blockyard.bench.plain import PlainShape, plain_tokens_per_s
+from blockyard.bench.plain import PlainShape, plain_stepper, plain_tokens_per_s
 from blockyard.bench.profile import profile_step
 from blockyard.bench.scan import scan_figures
 from blockyard.bench.targets import speed_targets
@@ -99,7 +99,7 @@ def _run_bench(steps: int, warmup: int, rounds: int, profile: bool, cases: tuple
         result["configs"] = _config_rows(cases, per_round, runs, result["peaks"], vocab)
         result["per_round"] = per_round
         if pairs:
-            result["ratios_paired"] = _paired(cases, pairs, cache_dir, threads, log)
+            result["ratios_paired"] = _paired(cases, pairs, cache_dir, threads, runs, log)
         log("scan ...")
         result["scan"] = scan_figures(scan_shape)
         if profile:
@@ -139,10 +139,14 @@ def _peaks(bf16: bool, gemm_n: int, copy_bytes: int) -> dict[str, float]:
     return peak | {"copy_gbytes_per_s": copy_gbytes_per_s(copy_bytes)}
 
 
+def _plain_shape(case: BenchCase) -> PlainShape:
+    """The plain reference loop's model at ``case``'s width and depth."""
+    return PlainShape(width=case.width, depth=case.depth, mlp_hidden=3 * case.width)
+
+
 def _plain_twin(case: BenchCase, steps: int, warmup: int) -> float:
     """Tokens/s of the plain reference loop at ``case``'s shape and precision."""
-    shape = PlainShape(width=case.width, depth=case.depth, mlp_hidden=3 * case.width)
-    return plain_tokens_per_s(shape, case.batch, case.seq_len, steps - warmup, warmup,
+    return plain_tokens_per_s(_plain_shape(case), case.batch, case.seq_len, steps - warmup, warmup,
                               bf16=case.precision == "bf16")
 
 
@@ -173,18 +177,34 @@ def _round(cases: tuple[BenchCase, ...], steps: int, warmup: int, cache_dir: Pat
     return speeds, summaries
 
 
-def _paired(cases: tuple[BenchCase, ...], pairs: int, cache_dir: Path, threads: int,
+def _paired(cases: tuple[BenchCase, ...], pairs: int, cache_dir: Path, threads: int, runs: dict[str, Any],
             log: Callable[[str], None]) -> dict[str, dict[str, Any]]:
-    """Each model-vs-model ratio of RATIO_PAIRS (compiled/eager too) whose two cases ran, by alternated steps."""
+    """Each ratio of RATIO_PAIRS whose configs ran, by alternated steps (``blockyard.bench.paired``).
+
+    Against the plain loop, the trainer's ``train_step`` alternates with the plain step, and each
+    pair's ratio is scaled by the trainer loop's own efficiency (``loop_efficiency`` of this run's
+    timed case: its wall clock over its step clock, same windows), so the figure is the train
+    command's, records and all.
+    """
     by_name = {c.name: c for c in cases}
+    twin_of = {twin: by_name[name] for name, twin in PLAIN_TWINS.items() if name in by_name}
     out: dict[str, dict[str, Any]] = {}
     for key, (num, den) in RATIO_PAIRS.items():
-        if num in by_name and den in by_name:
-            a, b = by_name[num], by_name[den]
-            log(f"paired steps {num} / {den} ({pairs} pairs) ...")
-            values = paired_ratios(trainer_parts(a, cache_dir, threads).step, trainer_parts(b, cache_dir, threads).step,
-                                   pairs=pairs, num_tokens=a.tokens_per_step, den_tokens=b.tokens_per_step)
-            out[key] = median_with_interval(values) | {"values": values}
+        if num not in by_name or (den not in by_name and den not in twin_of):
+            continue
+        a = by_name[num]
+        log(f"paired steps {num} / {den} ({pairs} pairs) ...")
+        if den in twin_of:
+            plain = _plain_shape(a)
+            den_step = plain_stepper(plain, a.batch, a.seq_len, bf16=a.precision == "bf16")
+            scale, den_tokens = runs[num]["loop_efficiency"], a.tokens_per_step
+        else:
+            b = by_name[den]
+            den_step, scale, den_tokens = trainer_parts(b, cache_dir, threads).step, 1.0, b.tokens_per_step
+        values = paired_ratios(trainer_parts(a, cache_dir, threads).step, den_step, pairs=pairs,
+                               num_tokens=a.tokens_per_step, den_tokens=den_tokens)
+        values = [v * scale for v in values]
+        out[key] = median_with_interval(values) | {"values": values, "loop_efficiency": scale}
     return out
 
 
