@@ -180,8 +180,8 @@ def _add_bench(sub: argparse._SubParsersAction) -> None:
                    help="comma-separated configs to time (default: all; e.g. recurrence-fp32,attention-fp32 to "
                         "re-measure one ratio with more --rounds); their plain-loop twins come along")
     p.add_argument("--pairs", type=int, default=None,
-                   help="alternated step pairs per model-vs-model ratio (recurrence/attention, bf16/fp32), whose "
-                        "median and 95%% interval the targets read (default 16; 0 = skip)")
+                   help="alternated step pairs per ratio (recurrence/attention, bf16/fp32, compiled/eager, "
+                        "trainer/plain), whose median and 95%% interval the targets read (default 16; 0 = skip)")
     p.add_argument("--quality", action="store_true",
                    help="also train fp32 and bf16 (bf16_emulated where the CPU has no bf16 units) for "
                         "--quality-steps and compare the val loss")
