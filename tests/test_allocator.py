@@ -50,7 +50,7 @@ def test_kept_memory_is_not_page_faulted_in_again():
     # The contrast: the same program with glibc's initial mmap threshold (128 KiB) fixed through its
     # environment variable maps every block and unmaps it on free, so all 3 x 32,768 pages of 4 KiB
     # fault again. (glibc's own default is dynamic and depends on the order of earlier frees: 0 or
-    # 98,208 faults in six runs of this program, 7,000-30,000 per training step, see
+    # 98,208 faults in six runs of this program, 3,500-33,000 per training step, see
     # blockyard/train/allocator.py.)
     trimmed = _run("default", MALLOC_MMAP_THRESHOLD_="131072")
     pages = 3 * 128 * 2**20 // os.sysconf("SC_PAGE_SIZE")

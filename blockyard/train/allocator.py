@@ -4,8 +4,8 @@ A training step allocates and frees the same large activation and gradient buffe
 With glibc's default settings, freed memory at the top of the heap beyond a dynamic trim threshold
 (at most 64 MiB) goes back to the OS at the end of each step and is page-faulted in again, zeroed
 by the kernel, in the next one. Measured on a 2-core AMD EPYC at width 256, batch 16 x 256 tokens:
-7,000-30,000 minor page faults and 15-70 ms of system CPU time per step (most in bf16), against
-under 500 faults per step with the settings below. Keeping the memory is common practice for CPU
+3,500-33,000 minor page faults and 11-73 ms of system CPU time per step (most in bf16), against
+under 800 (mostly under 10) with the settings below. Keeping the memory is common practice for CPU
 training (no source; the usual advice is a different malloc, which this avoids installing).
 
 ``keep_freed_memory`` sets glibc's M_MMAP_THRESHOLD to its 64-bit maximum (32 MiB: smaller blocks
