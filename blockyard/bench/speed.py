@@ -8,6 +8,8 @@ Everything is measured side by side in one process, so the figures that matter a
   at seq 256 and 2048, compiled (``runtime.compile``) at seq 256, and of the plain reference loop at
   the same shapes (plain, blockyard, plain, ...: a closing plain pass ends the rounds); model FLOPs
   utilisation = tokens/s x training FLOPs per token (``blockyard.cost``) / GEMM peak;
+* **paired steps**: each ratio again with the two configs' steps alternated (``blockyard.bench.paired``),
+  free of the drift between whole runs; the targets read these;
 * **scan**: the linear scan fwd+bwd against one elementwise multiply-add fwd+bwd;
 * **profile**: one training step under ``torch.profiler``, its time split by block kind.
 """
