@@ -11,6 +11,7 @@ import itertools
 import json
 import statistics
 import tempfile
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -121,8 +122,8 @@ class TrainerParts:
     clipping and the update, without the loop's records.
     """
 
-    model: Any
-    step: Any  # Callable[[int], None]
+    model: Any  # blockyard.model's model (torch.nn.Module; torch is imported lazily here)
+    step: Callable[[int], None]
 
 
 def trainer_parts(case: BenchCase, cache_dir: Path, threads: int = 0) -> TrainerParts:

@@ -57,7 +57,7 @@ def run_bench(steps: int = 30, warmup: int = 10, rounds: int = 2, profile: bool 
     """Measure peaks, every case (``rounds`` times, interleaved with the plain loop), paired steps,
     the scan and a profile.
 
-    ``pairs``: alternated step pairs per model-vs-model ratio (0: none; ``blockyard.bench.paired``).
+    ``pairs``: alternated step pairs per ratio (0: none; ``blockyard.bench.paired``).
     ``gemm_n``, ``copy_bytes`` and ``scan_shape`` size the peak and scan measurements (the tests
     shrink them). ``threads`` (0 = every core) applies to everything measured, both loops alike.
     """
@@ -189,14 +189,14 @@ def _paired(cases: tuple[BenchCase, ...], pairs: int, cache_dir: Path, threads: 
     command's, records and all.
     """
     by_name = {c.name: c for c in cases}
-    twin_of = {twin: by_name[name] for name, twin in PLAIN_TWINS.items() if name in by_name}
+    twins = {PLAIN_TWINS[name] for name in by_name if name in PLAIN_TWINS}
     out: dict[str, dict[str, Any]] = {}
     for key, (num, den) in RATIO_PAIRS.items():
-        if num not in by_name or (den not in by_name and den not in twin_of):
+        if num not in by_name or (den not in by_name and den not in twins):
             continue
         a = by_name[num]
         log(f"paired steps {num} / {den} ({pairs} pairs) ...")
-        if den in twin_of:
+        if den in twins:
             plain = _plain_shape(a)
             den_step = plain_stepper(plain, a.batch, a.seq_len, bf16=a.precision == "bf16")
             scale, den_tokens = runs[num]["loop_efficiency"], a.tokens_per_step
