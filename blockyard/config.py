@@ -70,6 +70,11 @@ class ModelConfig:
         "to model.base_width (Yang et al. 2022, arXiv:2203.03466), so an lr tuned at one width transfers",
         choices=("standard", "mup"))
     base_width: int = opt(128, "mup: the width at which mup equals standard (where the lr was tuned)", min=1)
+    init_draws: str = opt(
+        "by_path", "by_path: each weight (each MLP hidden unit) is drawn from a generator keyed by the init seed and "
+        "its path in the model, so the modules two variants share start identical at the same seed and a paired "
+        "comparison measures the change, not two initialisations; stream: one random stream in module order "
+        "(before this key existed)", choices=("by_path", "stream"))
 
     def validate(self, path: str) -> None:
         p = f"{path}." if path else ""
@@ -141,6 +146,10 @@ class TrainConfig:
     lr_floor: float = opt(0.1, "final learning rate as a fraction of the peak (cosine floor)", min=0.0, max=1.0)
     warmup_steps: int = opt(20, "linear warmup steps", min=0)
     weight_decay: float = opt(0.1, "AdamW decoupled weight decay", min=0.0)
+    ema_half_life: float = opt(
+        0.0, "evaluate an exponential moving average of the weights whose half-life is this fraction of the run's "
+        "steps (0 = off, the trained weights); val loss is then the averaged model's, raw_loss the trained one's "
+        "(blockyard/train/averaging.py)", min=0.0, max=1.0)
     decay_all: bool = opt(False, "also decay norms, biases and embeddings (default: matrices only)")
     beta1: float = opt(0.9, "AdamW beta1", min=0.0, max=1.0)
     beta2: float = opt(0.95, "AdamW beta2", min=0.0, max=1.0)

@@ -11,6 +11,16 @@ so that the residual stream's variance does not grow with depth (Radford et al. 
 linear biases zero; norm gains one. Mixers then re-initialise their own special parameters
 (decay rates, convolutions) in ``reset_special_parameters``; torch's LSTM keeps torch's init.
 
+Where the numbers come from (``model.init_draws``): ``by_path`` (the default) draws each weight from
+its own generator keyed by (the init seed, the parameter's path, e.g. ``blocks.1.mlp.proj_in``), and an
+MLP's weights hidden unit by hidden unit (keyed by the unit's index), and re-seeds each mixer's own
+init by its path. Two variants built at the same init seed then start with identical embeddings,
+norms, head, MLP units and same-named mixer weights, whatever else differs (MLPs of different widths
+share their common units): a paired comparison sees the change, not two unrelated initialisations
+(common random numbers, e.g. Law & Kelton, "Simulation Modeling and Analysis", ch. 11). ``stream``
+draws everything from torch's global generator in module order, so adding a module reshuffles all
+that follows (what every run did before the key existed).
+
 ``model.parametrization: mup`` scales these stds, each parameter's Adam lr and the logits with
 width relative to ``model.base_width`` (blockyard/parametrization.py has the rule and the table).
 """
@@ -18,6 +28,7 @@ width relative to ``model.base_width`` (blockyard/parametrization.py has the rul
 from __future__ import annotations
 
 import dataclasses
+import hashlib
 import math
 from typing import Any
 
@@ -69,6 +80,29 @@ class RMSNorm(nn.RMSNorm):
         return super().forward(x)
 
 
+def keyed_generator(base: int, key: str) -> torch.Generator:
+    """A CPU generator seeded from (``base``, ``key``) by a 63-bit BLAKE2b digest: the same pair, the same numbers."""
+    digest = hashlib.blake2b(f"{base}/{key}".encode(), digest_size=8).digest()
+    return torch.Generator().manual_seed(int.from_bytes(digest, "little") & (2**63 - 1))
+
+
+def keyed_normal(shape: tuple[int, ...], base: int, key: str) -> torch.Tensor:
+    """N(0, 1) numbers of ``shape`` from ``keyed_generator(base, key)`` (float32, CPU)."""
+    return torch.randn(shape, generator=keyed_generator(base, key))
+
+
+KEYED_ROW_BLOCK = 32  # rows drawn per generator by keyed_rows (fewer generators, same sharing)
+
+
+def keyed_rows(rows: int, cols: int, base: int, key: str) -> torch.Tensor:
+    """A (rows, cols) N(0, 1) matrix drawn in blocks of ``KEYED_ROW_BLOCK`` rows, block b from key
+    ``{key}[b]``: a longer matrix extends a shorter one, so MLPs of different hidden sizes share their
+    first units."""
+    blocks = -(-rows // KEYED_ROW_BLOCK)
+    drawn = [keyed_normal((KEYED_ROW_BLOCK, cols), base, f"{key}[{b}]") for b in range(blocks)]
+    return torch.cat(drawn)[:rows] if drawn else torch.empty(0, cols)
+
+
 class MLP(nn.Module):
     """``gated``: W_o (GeLU(W_g x) * W_u x) (GeGLU, Shazeer 2020); ``plain``: W_o GeLU(W_i x).
 
@@ -92,6 +126,18 @@ class MLP(nn.Module):
     @staticmethod
     def param_count(width: int, hidden: int, kind: str) -> int:
         return (3 if kind == "gated" else 2) * width * hidden
+
+    def keyed_init_(self, base: int, path: str, std: float, out_std: float) -> None:
+        """``by_path`` init: hidden unit j's input row(s) and output column from keys ending in ``[j]``.
+
+        The gated MLP's two input halves (gate, up) have keys of their own; the output projection is
+        drawn column by column (a column is one unit's write into the residual stream)."""
+        width, hidden = self.proj_out.weight.shape
+        halves = ("gate", "up") if self.kind == "gated" else ("in",)
+        rows = torch.cat([keyed_rows(hidden, width, base, f"{path}.{h}") for h in halves])
+        with torch.no_grad():
+            self.proj_in.weight.copy_(rows.mul_(std))
+            self.proj_out.weight.copy_(keyed_rows(hidden, width, base, f"{path}.out").t().mul_(out_std))
 
 
 class Block(nn.Module):
@@ -125,6 +171,10 @@ class LanguageModel(nn.Module):
     def __init__(self, cfg: ModelConfig, vocab_size: int, *, activation_checkpointing: bool = False,
                  scan_backend: str = "auto") -> None:
         super().__init__()
+        # by_path: one number from the global generator (seeded with the init seed by the caller) keys every
+        # draw; taken first, so it does not depend on which modules the constructors below build.
+        self.init_base = (int(torch.randint(0, 2**62, (1,), device="cpu").item()) if cfg.init_draws == "by_path"
+                          else None)
         self.cfg = cfg
         self.vocab_size = vocab_size
         self.activation_checkpointing = activation_checkpointing
@@ -151,7 +201,7 @@ class LanguageModel(nn.Module):
     def _scale_with_width(self) -> None:
         """muP: classify every parameter against the base-width model, scale the readout and attention."""
         cfg = self.cfg
-        base_cfg = dataclasses.replace(cfg, width=cfg.base_width, parametrization="standard")
+        base_cfg = dataclasses.replace(cfg, width=cfg.base_width, parametrization="standard", init_draws="stream")
         with torch.device("meta"), torch.random.fork_rng(devices=[]):
             base = LanguageModel(base_cfg, self.vocab_size)
             base_shapes = {name: tuple(p.shape) for name, p in base.named_parameters()}
@@ -173,18 +223,39 @@ class LanguageModel(nn.Module):
     def reset_parameters(self) -> None:
         std = self.cfg.init_std
         out_std = std / math.sqrt(2 * self.cfg.depth)
+        base = self.init_base
+        mlp_parts = {f"{name}.{p}" for name, m in self.named_modules() if isinstance(m, MLP)
+                     for p in ("proj_in", "proj_out")} if base is not None else set()
         for name, module in self.named_modules():
-            if isinstance(module, nn.Linear):
+            if isinstance(module, nn.Linear) and name not in mlp_parts:
                 mult = self.width_scaling[f"{name}.weight"].init_mult if self.width_scaling else 1.0
-                nn.init.normal_(module.weight, 0.0, mult * (out_std if is_residual_out(module) else std))
+                self._normal_(module.weight, name, mult * (out_std if is_residual_out(module) else std))
                 if module.bias is not None:
                     nn.init.zeros_(module.bias)
             elif isinstance(module, nn.Embedding):
-                nn.init.normal_(module.weight, 0.0, std)
+                self._normal_(module.weight, name, std)
             elif isinstance(module, nn.RMSNorm) and module.weight is not None:
                 nn.init.ones_(module.weight)
-        for block in self.blocks:
-            block.mixer.reset_special_parameters()
+            if base is not None and isinstance(module, MLP):
+                mults = [self.width_scaling[f"{name}.{p}.weight"].init_mult if self.width_scaling else 1.0
+                         for p in ("proj_in", "proj_out")]
+                module.keyed_init_(base, name, mults[0] * std, mults[1] * out_std)
+        for i, block in enumerate(self.blocks):
+            if base is None:
+                block.mixer.reset_special_parameters()
+                continue
+            with torch.random.fork_rng(devices=[]):
+                key = keyed_generator(base, f"blocks.{i}.mixer")
+                torch.manual_seed(int(torch.randint(0, 2**62, (1,), generator=key)))
+                block.mixer.reset_special_parameters()
+
+    def _normal_(self, weight: torch.Tensor, name: str, std: float) -> None:
+        """N(0, std) in place: keyed by ``name`` under ``by_path``, from the global stream under ``stream``."""
+        if self.init_base is None:
+            nn.init.normal_(weight, 0.0, std)
+        else:
+            with torch.no_grad():
+                weight.copy_(keyed_normal(tuple(weight.shape), self.init_base, name).mul_(std))
 
     def _logits(self, h: torch.Tensor) -> torch.Tensor:
         h = self.final_norm(h)

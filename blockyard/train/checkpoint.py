@@ -109,6 +109,7 @@ def save_checkpoint(
     scheduler: Any,
     loop: dict[str, Any],
     keep: int,
+    averaged: dict[str, Any] | None = None,
 ) -> Path:
     """Write ``step_<step>.pt`` atomically, then delete all but the newest ``keep`` checkpoints."""
     folder = Path(folder)
@@ -122,6 +123,7 @@ def save_checkpoint(
         "scheduler": scheduler.state_dict(),
         "rng": rng_state(),
         "loop": dict(loop),
+        **({"averaged": averaged} if averaged is not None else {}),
     }
     path = checkpoint_path(folder, step)
     fs.atomic_write(path, lambda f: torch.save(state, f), what=f"the checkpoint of step {step}",

@@ -48,6 +48,7 @@ from blockyard.rundir import (
 )
 from blockyard.train import checkpoint as ckpt
 from blockyard.train.allocator import keep_freed_memory
+from blockyard.train.averaging import WeightAverage, ema_decay, half_life_steps
 from blockyard.train.compile import compile_for_training, compile_warning
 from blockyard.train.dirstate import clear_records, inspect_run_dir, keep_plugin_copies, plan_run_dir
 from blockyard.train.memory import PeakRSS
@@ -196,6 +197,7 @@ class Setup:
     compiled: dict[str, Any]  # runtime.compile: requested, active, warm-up or why not (env.json)
     mixer_check: str = ""  # what the contract gate on plugin mixers found (env.json)
     allocator: str = ""  # how malloc keeps freed step memory (blockyard.train.allocator; env.json)
+    average: WeightAverage | None = None  # train.ema_half_life > 0: the weights validation measures
 
 
 def _now() -> str:
@@ -219,8 +221,10 @@ def _build(cfg: Config, cfg_hash: str, runtime: Runtime) -> Setup:
     optimizer = build_optimizer(model, cfg.train)
     total = total_steps(cfg.train, cfg.data.seq_len)
     scheduler = build_scheduler(optimizer, cfg.train, total)
+    average = (WeightAverage(model, ema_decay(half_life_steps(cfg.train.ema_half_life, total)))
+               if cfg.train.ema_half_life > 0 else None)
     return Setup(cfg, cfg_hash, runtime, data, val_batches, model, optimizer, scheduler, total,
-                 tokens_per_step(cfg.train, cfg.data.seq_len), compiled)
+                 tokens_per_step(cfg.train, cfg.data.seq_len), compiled, average=average)
 
 
 def _param_counts(model: nn.Module) -> dict[str, int]:
@@ -354,6 +358,8 @@ def _start(s: Setup, out: Path, action: str, show: Progress) -> tuple[int, LoopS
         metrics = MetricsLog(out / METRICS_FILE)
         return 0, LoopState(), metrics, TensorBoardLog(out / TENSORBOARD_DIR)
     loop = LoopState(**ckpt.restore(found, s.model, s.optimizer, s.scheduler))
+    if s.average is not None and found.state.get("averaged") is not None:
+        s.average.load_state_dict(found.state["averaged"])
     show.message(f"resuming {out} from the checkpoint at step {found.step}/{s.total}")
     metrics = MetricsLog.resume(out / METRICS_FILE, found.step)
     return found.step, loop, metrics, TensorBoardLog(out / TENSORBOARD_DIR, purge_step=found.step + 1)
@@ -411,7 +417,8 @@ class _Segment:
         s = self.s
         ckpt.save_checkpoint(self.out / CHECKPOINT_DIR, step=self.step, config_hash=s.cfg_hash, model=s.model,
                              optimizer=s.optimizer, scheduler=s.scheduler, loop=state,
-                             keep=self.cfg.keep_checkpoints)
+                             keep=self.cfg.keep_checkpoints,
+                             averaged=s.average.state_dict() if s.average is not None else None)
         self.saved_step = self.step
 
     def log(self, line: dict[str, Any]) -> None:
@@ -425,6 +432,8 @@ class _Segment:
         micro = [s.data.train_batch((self.step - 1) * cfg.grad_accum + i) for i in range(cfg.grad_accum)]
         t0 = time.perf_counter()
         stats = train_step(s.model, s.optimizer, s.scheduler, micro, s.runtime, cfg.grad_clip)
+        if s.average is not None:
+            s.average.update()
         self.window_time += time.perf_counter() - t0
         self.window_tokens += s.tokens_per_step
         self.rss.sample()
@@ -444,7 +453,14 @@ class _Segment:
 
     def validate(self) -> None:
         s = self.s
-        result = evaluate(s.model, s.val_batches, s.runtime, is_task=bool(s.data.is_task), hooks=self.eval_hooks)
+        is_task = bool(s.data.is_task)
+        if s.average is None:
+            result = evaluate(s.model, s.val_batches, s.runtime, is_task=is_task, hooks=self.eval_hooks)
+        else:  # the averaged weights are what is measured; the trained ones' loss rides along as raw_loss
+            raw = evaluate(s.model, s.val_batches, s.runtime, is_task=is_task)
+            with s.average.swapped_in():
+                result = evaluate(s.model, s.val_batches, s.runtime, is_task=is_task, hooks=self.eval_hooks)
+            result["raw_loss"] = raw["loss"]
         self.loop.last_val_loss = result["loss"]
         if self.loop.best_val_loss is None or result["loss"] < self.loop.best_val_loss:
             self.loop.best_val_loss = result["loss"]
