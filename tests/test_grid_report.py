@@ -89,7 +89,9 @@ def test_clear_differences_get_simultaneous_scipy_intervals(tmp_path):
     make_grid(tmp_path, {"ref": ref, "better": better, "worse": worse})
     report = write_report(tmp_path).read_text()
     rows = verdict_rows(report)
-    assert rows["better"][5] == "**better**" and rows["worse"][5] == "**worse**"
+    # worse: 4 pairs (+0.06, +0.06, +0.09, +0.05); left without seed 2 the 3 pairs' 97.5% interval reaches
+    # below 0 (t_{0.9875, 2} = 6.2), so the verdict rests on one seed: fragile. better's is steadier.
+    assert rows["better"][5] == "**better**" and rows["worse"][5] == "**worse** (fragile)"
     # Two comparisons: each simultaneous interval is scipy's paired t interval (scipy.stats.ttest_rel,
     # independent code) at 1 - 0.05 / 2 (Bonferroni); the unadjusted column is its 95% interval.
     test = sps.ttest_rel(list(better.values()), list(ref.values()))
@@ -137,7 +139,7 @@ def test_one_seed_reports_no_interval(tmp_path):
     assert "n<2: no interval" in report.split("## Variants")[1]
 
 
-def test_diverged_cells_are_outcomes_with_a_sensitivity_result(tmp_path):
+def test_diverged_cells_are_outcomes_decided_on_the_worst_rank_composite(tmp_path):
     make_grid(tmp_path, {"ref": {0: 2.0, 1: 2.2, 2: 2.1}, "hot": {0: 1.8, 1: "diverged", 2: 1.9}})
     report = write_report(tmp_path).read_text()
     excluded = report.split("## Cells without a final loss")[1].split("##")[0]
@@ -150,9 +152,15 @@ def test_diverged_cells_are_outcomes_with_a_sensitivity_result(tmp_path):
     assert "| 2 / 1 / 0 | 2 | 1.8500 |" in hot and "| 3 / 0 / 0 | 2 | 2.0500 |" in ref
     row = verdict_rows(report)["hot"]
     assert row[2] == "2" and row[9] == "1 / 0"
+    # Lower by 0.2 on both common seeds, but it lost seed 1: 3 composite pairs (-0.2, +inf, -0.2) cannot
+    # reach 2.5% one-sided (smallest p 1/8, Wilcoxon 1945), so undecided, with McNemar's test of 1 vs 0.
+    assert row[5].startswith("**undecided** (divergence differs: diverged on 1 / 0 of 3 pair(s)")
     note = next(ln for ln in report.splitlines() if ln.startswith("- hot: diverged on 1 seed(s)"))
-    assert "worst loss seen at this point (2.2000): 3 pairs" in note
-    assert read_verdicts_csv(tmp_path)["hot"]["diverged_variant"] == "1"
+    assert "worst-rank composite's: on 3 pair(s), 1 where only the variant diverged" in note
+    assert "No rank test on 3 pair(s) can reach the look's level: the smallest one-sided p is 0.125" in note
+    csv_hot = read_verdicts_csv(tmp_path)["hot"]
+    assert csv_hot["diverged_variant"] == "1" and csv_hot["composite_verdict"] == "undecided"
+    assert float(csv_hot["divergence_mcnemar_p"]) == 1.0 and csv_hot["fragile"] == "False"
 
 
 def test_report_files_csv_html_and_caution(tmp_path, capsys):
@@ -190,8 +198,12 @@ def test_forest_plot_leads_the_plots_and_the_null_control_stands_apart(tmp_path)
     assert "**1 of 1 comparison(s) decided**: 1 better." in report
     assert list(verdict_rows(report)) == ["b"]
     null = verdict_rows(report, "## Noise floor (null control)")
-    assert null["null-control"][5] == "**better**"  # 2.25 < 2.30 etc.: a false positive here
+    # 2.25 < 2.30 etc.: a false positive here, on 3 pairs (any 2 of them cannot decide: fragile).
+    assert null["null-control"][5] == "**better** (fragile)"
     assert "**Flagged:** the null control came out **better**" in report
+    # m = 1: the null comparison is at 5%, so a flag comes up in 5% of grids under a true null.
+    assert "Under a true null this happens in 5% of grids (about 1 in 20): 1 null comparison(s), each at the " \
+           "per-comparison level 5% = 5% / 1." in report
     assert read_verdicts_csv(tmp_path)["null-control"]["in_family"] == "False"
 
 
@@ -310,4 +322,5 @@ def test_comparisons_pair_cells_at_the_same_axis_point(tmp_path):
     assert len(lines) == 2
     # Two comparisons (one variant at two points): 97.5% intervals, t(0.9875, 2) = 6.205.
     assert "| model.width=32 | 3 | +0.0033 | [-0.0380, +0.0447] | **undecided** |" in lines[0]
-    assert "| model.width=64 | 3 | -0.0967 | [-0.1174, -0.0760] | **better** |" in lines[1]
+    # Fragile: left without one of its 3 seeds, 2 pairs (t(0.9875, 1) = 25.45) cannot decide it.
+    assert "| model.width=64 | 3 | -0.0967 | [-0.1174, -0.0760] | **better** (fragile) |" in lines[1]

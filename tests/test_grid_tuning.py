@@ -43,27 +43,30 @@ def _row(variant: str, value: float, seed: int, status: str, loss: float | None,
 
 def test_choose_lowest_mean_over_tuning_seeds():
     # Mean over seeds, not the best single seed: 2e-3 has the best single run (3.0) but the worse mean.
-    scores = {1e-3: [3.3, 3.3], 2e-3: [3.0, 3.8], 4e-3: [3.2, 3.25]}
+    # (8e-3, the largest, is never chosen: no larger neighbour vouches for its stability.)
+    scores = {1e-3: [3.3, 3.3], 2e-3: [3.0, 3.8], 4e-3: [3.2, 3.25], 8e-3: [3.9, 3.9]}
     assert choose(scores) == 4e-3
     assert mean_score([3.2, 3.25]) == pytest.approx(np.mean([3.2, 3.25]))
 
 
 def test_choose_ties_go_to_the_smallest_value_whatever_the_order():
-    assert choose({4e-3: [3.0], 1e-3: [3.0], 2e-3: [3.5]}) == 1e-3
+    assert choose({4e-3: [3.0], 1e-3: [3.0], 2e-3: [3.5], 8e-3: [3.6]}) == 1e-3
     assert choose({8e-3: [INF], 2e-3: [INF]}) == 2e-3  # everything diverged: the smallest, flagged by the report
 
 
 def test_a_diverged_or_failed_seed_makes_its_value_infinite():
     # One diverged seed out of two: the value loses even against a much worse finite mean.
     assert mean_score([2.0, INF]) == INF
-    assert choose({1e-3: [4.0, 4.0], 8e-3: [2.0, INF]}) == 1e-3
+    assert choose({1e-3: [4.0, 4.0], 8e-3: [2.0, INF], 16e-3: [2.0, 2.0]}) == 1e-3
     rows = [_row("a", 1e-3, 100, "done", 4.0), _row("a", 8e-3, 100, "diverged", None),
             _row("a", 1e-3, 101, "done", 4.1), _row("a", 8e-3, 101, "failed", None),
             _row("b", 1e-3, 100, "done", 3.0), _row("b", 8e-3, 100, "done", 2.5),
             _row("b", 1e-3, 101, "done", 3.1), _row("b", 8e-3, 101, "done", 2.6)]
     groups = {g.variant: g for g in tuned_groups(rows, _tuning(), 0.01)}
     assert groups["a"].chosen == 1e-3 and groups["a"].scores[8e-3] == {100: INF, 101: INF}
-    assert groups["b"].chosen == 8e-3 and groups["b"].at_edge and not groups["a"].all_failed
+    assert groups["a"].no_margin and not groups["a"].all_failed  # 1e-3's larger neighbour diverged
+    # b is best at the largest value, which the margin never chooses: the smaller one, flagged at the edge.
+    assert groups["b"].chosen == 1e-3 and groups["b"].best_at_largest and groups["b"].at_edge
     assert groups["b"].means[8e-3] == pytest.approx(2.55)
     # A cell that may still train: no choice yet.
     assert tuned_groups([*rows[:-1], _row("b", 8e-3, 101, "interrupted", None)], _tuning(), 0.01) is None
@@ -94,14 +97,15 @@ def test_shared_value_differences_pair_by_tuning_seed():
 
 
 def test_disjoint_tuning_seeds_remove_the_winners_curse():
-    # K = 4 values with the same true loss: the chosen value's tuning loss is biased low by
-    # E[min of K standard normals] * sd / sqrt(n); re-measured on fresh seeds it is unbiased.
+    # 5 values with the same true loss, none diverging: the 4 eligible ones (the largest never is)
+    # compete, so the chosen value's tuning loss is biased low by E[min of K = 4 standard normals] *
+    # sd / sqrt(n); re-measured on fresh seeds it is unbiased.
     # Expected minimum by integration: E[min] = int x K phi(x) (1 - Phi(x))^(K-1) dx = -1.0294 (K = 4).
     k, n, sd, sims = 4, 1, 0.05, 20_000
     e_min = integrate.quad(lambda x: x * k * sps.norm.pdf(x) * sps.norm.sf(x) ** (k - 1), -10, 10)[0]
     assert e_min == pytest.approx(-1.0294, abs=1e-4)
     rng = np.random.default_rng(7)
-    values = [1e-3, 2e-3, 4e-3, 8e-3]
+    values = [1e-3, 2e-3, 4e-3, 8e-3, 16e-3]
     same, fresh = [], []
     for _ in range(sims):
         tuning = {v: list(3.0 + sd * rng.standard_normal(n)) for v in values}
@@ -563,13 +567,14 @@ def test_report_says_rung_1_was_tuned_and_the_value_carried(tmp_path, parametriz
         "    variants:\n      attention: {}\n      recurrence: {model.pattern: [recurrence]}",
         f"    variants:\n      attention: {extra}\n      recurrence: {{model.pattern: [recurrence], "
         f"{extra[1:-1]}}}")
-    spec = load_grid(write_grid(tmp_path, text))
+    # A third value above: the stability margin never chooses the largest value searched.
+    spec = load_grid(write_grid(tmp_path, text.replace("values: [1.0e-3, 1.0e-2]", "values: [1.0e-3, 1.0e-2, 1.0e-1]")))
     grid_dir = tmp_path / "out"
     tuning_plan = plan_tuning(spec, threads=1)
-    # Synthetic tuning losses: attention is best at 1e-3, recurrence at 1e-2.
+    # Synthetic tuning losses: attention is best at 1e-3, recurrence at 1e-2; 1e-1 is worse for both.
     rng = np.random.default_rng(3)
     loss = {p.id: 3.0 + (0.2 if (p.cell.variant == "attention") == (p.cell.cfg.train.lr == 1e-2) else 0.0)
-            + rng.normal(0, 0.01) for p in tuning_plan}
+            + (0.5 if p.cell.cfg.train.lr == 1e-1 else 0.0) + rng.normal(0, 0.01) for p in tuning_plan}
     expected = {}
     for variant in ("attention", "recurrence"):
         ids = [p for p in tuning_plan if p.cell.variant == variant]
@@ -604,7 +609,7 @@ def test_report_says_rung_1_was_tuned_and_the_value_carried(tmp_path, parametriz
         report, "## Ladder", "## Variants")
     with open(grid_dir / "tuning.csv") as f:
         rows = list(csv.DictReader(f))
-    assert len(rows) == 4 and {r["point"] for r in rows} == {"rung=1"}
+    assert len(rows) == 6 and {r["point"] for r in rows} == {"rung=1"}
     assert {(r["variant"], float(r["value"])) for r in rows if r["chosen"] == "True"} == set(expected.items())
     with open(grid_dir / "verdicts.csv") as f:
         verdicts = {r["point"]: r for r in csv.DictReader(f)}
