@@ -202,7 +202,7 @@ def test_forest_plot_leads_the_plots_and_the_null_control_stands_apart(tmp_path)
     assert null["null-control"][5] == "**better** (fragile)"
     assert "**Flagged:** the null control came out **better**" in report
     # m = 1: the null comparison is at 5%, so a flag comes up in 5% of grids under a true null.
-    assert "Under a true null this happens in 5% of grids (about 1 in 20): 1 null comparison(s), each at the " \
+    assert "Under a true null this happens in at most 5% of grids (about 1 in 20): 1 null comparison(s), each at the " \
            "per-comparison level 5% = 5% / 1." in report
     assert read_verdicts_csv(tmp_path)["null-control"]["in_family"] == "False"
 

@@ -778,12 +778,12 @@ def _null_section(doc: Doc, fam: Family) -> None:
                 f"(interval {_ci_text(c.interval, signed=True)}; paired sd {c.interval.sd:.4f}).")
         if c.verdict in (stats.BETTER, stats.WORSE):
             line = (f"**Flagged:** the null control{where} came out **{c.verdict}**, a false positive. " + line +
-                    f" Under a true null this happens in {'at most ' if fam.design.schedule else ''}"
+                    " Under a true null this happens in at most "
                     f"{_pct(rate)} of grids (about 1 in {1 / rate:,.0f}): {len(fam.null)} null comparison(s), each at "
                     f"the per-comparison level {_pct(fam.comparison_alpha)} = {_pct(1 - stats.LEVEL)} / {fam.size}. "
-                    "So rare an event says the cells are probably not exchangeable across seeds (e.g. a run "
-                    "depends on the init seed in another way) or the differences are far from normal (see "
-                    "Method): the verdicts are suspect.")
+                    "If it comes up more often than that, the cells are probably not exchangeable across seeds "
+                    "(e.g. a run depends on the init seed in another way) or the paired differences are far from "
+                    "normal (see Method), and the verdicts are suspect.")
         doc.p(line)
 
 
