@@ -22,6 +22,13 @@
   simulating them (Jennison & Turnbull 2000, ch. 11, apply normal-theory levels to t statistics;
   simulating the t statistics themselves removes that approximation). Stopping at any look
   keeps the guarantee, since coverage holds at all looks at once.
+- Assumptions: the paired differences are independent across seeds and close to normal. Right skew
+  breaks the bound (tests/test_divergence_verdicts.py measures a family error near 10% with lognormal
+  differences at 5 pairs); the report's Method says so.
+- Divergence (a run that blew up has no loss): when two groups diverged on different seeds, a
+  worst-rank composite (Lachin 1999, Stat. Med. 18:1867: a diverged cell ranks worse than every
+  finished loss) is tested by the exact Wilcoxon signed-rank test (Wilcoxon 1945), and the counts by
+  McNemar's exact test (McNemar 1947).
 - Seeds needed (planning, Cohen 1988 ch. 2): the paired t test's sample size from statsmodels'
   power solver, at an upper confidence bound of the paired sd (chi-square bound; a pilot sd is
   biased low in what it implies for planning, Browne 1995, Stat. Med. 14:1933, from memory),

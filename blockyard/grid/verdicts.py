@@ -1,10 +1,14 @@
-"""From cell outcomes to verdicts: the comparisons of a grid, their family, divergence, sensitivity, planning.
+"""From cell outcomes to verdicts: the comparisons of a grid, their family, divergence, fragility, planning.
 
 A *group* is one variant at one axis point (``GroupKey = (variant, point)``); a *comparison* is a
 non-reference group against the reference group at the same point, paired by seed. The grid's
 comparisons form one family whose intervals hold jointly at ``stats.LEVEL`` (see
 ``blockyard.grid.stats``); the null control (``spec.NULL_VARIANT``) is compared the same way at
 the same per-comparison level but kept out of the family: it measures the design's noise floor.
+
+Divergence is an outcome: where the two groups of a comparison diverged on different seeds, the
+verdict comes from the worst-rank composite (``DivergenceTest``), never from the seeds one group
+lost. A decided verdict that changes when any single seed is left out is marked ``fragile``.
 
 Pure functions over cell records (dicts with ``variant, point, seed, status, final_val_loss``):
 no I/O, so the report, the round planner (``blockyard.grid.rounds``) and later stages (tuning,
