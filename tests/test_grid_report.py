@@ -13,6 +13,7 @@ from scipy import stats as sps
 
 from blockyard.cli import main
 from blockyard.errors import UserError
+from blockyard.grid import stats
 from blockyard.grid.index import open_index
 from blockyard.grid.report import CAUTION, VERDICT_COLUMNS, write_report
 from blockyard.grid.run import grid_lock
@@ -324,3 +325,23 @@ def test_comparisons_pair_cells_at_the_same_axis_point(tmp_path):
     assert "| model.width=32 | 3 | +0.0033 | [-0.0380, +0.0447] | **undecided** |" in lines[0]
     # Fragile: left without one of its 3 seeds, 2 pairs (t(0.9875, 1) = 25.45) cannot decide it.
     assert "| model.width=64 | 3 | -0.0967 | [-0.1174, -0.0760] | **better** (fragile) |" in lines[1]
+
+
+def test_the_power_sentence_and_the_method_say_when_they_hold(tmp_path):
+    make_grid(tmp_path, {"ref": {0: 2.0, 1: 2.1, 2: 2.2, 3: 2.3}, "noisy": {0: 2.01, 1: 2.09, 2: 2.22, 3: 2.29}})
+    report = write_report(tmp_path).read_text()
+    csv_noisy = read_verdicts_csv(tmp_path)["noisy"]
+    need, sd = int(csv_noisy["seeds_needed"]), float(csv_noisy["sd_upper"])
+    note = next(ln for ln in report.splitlines() if ln.startswith("- noisy is undecided at 4 pairs"))
+    # 80% power holds at a true difference of 0 and of at least delta; in between it is lower, and the note
+    # gives the chance at delta / 2 (stats.decision_probability, checked against a simulation elsewhere).
+    chance = stats.decision_probability(0.005, sd, need, 0.05, 0.01)
+    assert chance < 0.8
+    assert (f"would decide it with 80% power if the true difference is 0 (equivalent; "
+            f"{csv_noisy['seeds_for_equivalence']} seeds) or at least ±0.01 (better or worse; "
+            f"{csv_noisy['seeds_for_difference']} seeds); if the true difference is in between the chance is "
+            f"lower: {100 * chance:.4g}% at ±0.005 with {need} seeds") in note
+    method = report.split("## Method")[1]
+    assert "Assumptions of the error bound: the paired differences are independent across seeds" in method
+    assert "about 10% at 5 pairs and 8% at 10 pairs" in method  # measured in tests/test_divergence_verdicts.py
+    assert "worst-rank composite (Lachin 1999" in method and "Fragile:" in method
