@@ -159,6 +159,8 @@ def test_diverged_cells_are_outcomes_decided_on_the_worst_rank_composite(tmp_pat
     note = next(ln for ln in report.splitlines() if ln.startswith("- hot: diverged on 1 seed(s)"))
     assert "worst-rank composite's: on 3 pair(s), 1 where only the variant diverged" in note
     assert "No rank test on 3 pair(s) can reach the look's level: the smallest one-sided p is 0.125" in note
+    # 2^-n <= 0.025 first at n = 6; the t test's seeds needed do not apply to the composite.
+    assert "at least 6 pairs not lost by both are needed" in note and row[7] == "-"
     csv_hot = read_verdicts_csv(tmp_path)["hot"]
     assert csv_hot["diverged_variant"] == "1" and csv_hot["composite_verdict"] == "undecided"
     assert float(csv_hot["divergence_mcnemar_p"]) == 1.0 and csv_hot["fragile"] == "False"
@@ -339,8 +341,8 @@ def test_the_power_sentence_and_the_method_say_when_they_hold(tmp_path):
     assert chance < 0.8
     assert (f"would decide it with 80% power if the true difference is 0 (equivalent; "
             f"{csv_noisy['seeds_for_equivalence']} seeds) or at least ±0.01 (better or worse; "
-            f"{csv_noisy['seeds_for_difference']} seeds); if the true difference is in between the chance is "
-            f"lower: {100 * chance:.4g}% at ±0.005 with {need} seeds") in note
+            f"{csv_noisy['seeds_for_difference']} seeds); at a true difference in between, ±0.005, the chance with "
+            f"{need} seeds is {100 * chance:.4g}%") in note
     method = report.split("## Method")[1]
     assert "Assumptions of the error bound: the paired differences are independent across seeds" in method
     assert "about 10% at 5 pairs and 8% at 10 pairs" in method  # measured in tests/test_divergence_verdicts.py

@@ -727,7 +727,8 @@ def _comparison_notes(c: Comparison) -> list[str]:
                 f"alone {d.mcnemar_p:.3g}.")
         if not d.reachable:
             line += (f" No rank test on {d.pairs} pair(s) can reach the look's level: the smallest one-sided p is "
-                     f"{d.rank.smallest_p:.3g}, above {_pct(c_alpha(c) / 2)}; more seeds can decide it.")
+                     f"{d.rank.smallest_p:.3g}, above {_pct(c_alpha(c) / 2)}; at least "
+                     f"{math.ceil(math.log2(2 / c_alpha(c)))} pairs not lost by both are needed.")
         notes.append(line)
     if c.fragile:
         notes.append(f"{_who(c)}: **fragile**: leaving out one of its seeds changes the verdict "
@@ -740,7 +741,7 @@ def _comparison_notes(c: Comparison) -> list[str]:
                      f"{need(pl.seeds_for_equivalence)} seeds) or at least ±{c.smallest_effect:g} (better or worse; "
                      f"{need(pl.seeds_for_difference)} seeds){_halfway_text(c)}. Planned at the level the verdicts use "
                      f"({_pct(c_alpha(c))} two-sided), with the paired sd's upper bound {pl.sd_upper:.4f}.")
-    elif c.planning is None and not c.decided:
+    elif c.planning is None and not c.decided and d is None:
         notes.append(f"{_who(c)}: {c.note}; at least 2 finished pairs are needed for an interval.")
     return notes
 
@@ -757,8 +758,8 @@ def _halfway_text(c: Comparison) -> str:
         return ""
     chance = stats.decision_probability(c.smallest_effect / 2, pl.sd_upper, pl.seeds_needed, c_alpha(c),
                                         c.smallest_effect)
-    return (f"; if the true difference is in between the chance is lower: {_pct(chance)} at "
-            f"±{c.smallest_effect / 2:g} with {pl.seeds_needed} seeds")
+    return (f"; at a true difference in between, ±{c.smallest_effect / 2:g}, the chance with {pl.seeds_needed} seeds "
+            f"is {_pct(chance)}")
 
 
 def _null_section(doc: Doc, fam: Family) -> None:
@@ -1038,7 +1039,7 @@ def _method_section(doc: Doc, res: GridResults) -> None:
         "for reading one comparison alone; verdicts never use it.",
         "Assumptions of the error bound: the paired differences are independent across seeds (each seed its own "
         "run) and close enough to normal for the t interval. Skew breaks it: in the project's simulation with "
-        f"right-skewed (lognormal, σ 0.5) paired differences and no true difference, 5 pairs, 6 comparisons, the "
+        "right-skewed (lognormal, σ 0.5) paired differences, no true difference and 6 comparisons, the "
         f"family error was {SKEW_FAMILY_ERROR} instead of ≤ 5%, nearly all false 'better' (tests/"
         "test_divergence_verdicts.py). A few seeds far from the rest (see the curves) are the warning sign; the "
         "fragile mark shows verdicts that rest on one seed.",

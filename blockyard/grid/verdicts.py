@@ -296,7 +296,9 @@ def compare(group: GroupOutcomes, ref: GroupOutcomes, smallest_effect: float, al
     everything = group.finished | ref.finished | set(group.losses) | set(ref.losses)
     d = _decision(group, ref, everything, smallest_effect, alpha_look)
     unadjusted = stats.mean_interval(d.diffs, stats.LEVEL) if d.seeds else None
-    planning = plan(d.interval, smallest_effect, alpha_look) if with_planning and d.interval else None
+    # The t test's planning does not apply to the composite (its note says how many pairs a rank test needs).
+    planning = (plan(d.interval, smallest_effect, alpha_look) if with_planning and d.interval and d.divergence is None
+                else None)
     fragile = False
     if with_planning and d.verdict in (stats.BETTER, stats.WORSE, stats.EQUIVALENT):
         fragile = any(_decision(group, ref, everything - {s}, smallest_effect, alpha_look).verdict != d.verdict
