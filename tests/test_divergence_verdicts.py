@@ -291,3 +291,27 @@ def test_null_control_flag_rate_for_m_comparisons():
     flagged = sum(stats.decide(iv, DELTA)[0] in (stats.BETTER, stats.WORSE) for iv in intervals)
     assert excludes / sims == pytest.approx(rate, abs=monte_carlo_margin(rate, sims))
     assert flagged <= excludes
+
+
+def test_a_variant_that_loses_seeds_the_reference_finishes_is_worse_on_the_composite():
+    ref = {s: 2.0 + 0.01 * s for s in range(8)}
+    groups = {("ref", ()): GroupOutcomes("ref", (), ref, (), (), ()),
+              ("hot", ()): GroupOutcomes("hot", (), {0: 1.9, 1: 1.9}, (2, 3, 4, 5, 6, 7), (), ()),
+              ("calm", ()): GroupOutcomes("calm", (), {s: v + 0.001 for s, v in ref.items()}, (), (), ())}
+    hot, calm = compare_all(groups, "ref", Design()).comparisons
+    # m = 2: 2.5% two-sided per comparison, 1.25% one-sided. hot's composite: -0.1, -0.11 and six +inf
+    # tied at mid-rank 5.5; R+ = 33 of 36, P(R+ >= 33) = 4 / 256 = 0.0156 (scipy's exact permutation
+    # test over the 2^8 sign patterns): not <= 0.0125.
+    d = hot.divergence
+    assert d.rank.p_greater == pytest.approx(sps.wilcoxon([-0.1, -0.11] + [1e6] * 6, alternative="greater",
+                                                          method=sps.PermutationMethod(n_resamples=math.inf)).pvalue)
+    assert d.rank.p_greater == pytest.approx(4 / 256)
+    assert hot.verdict == stats.UNDECIDED and d.reachable  # 2^-8 could have reached it: the data did not
+    assert hot.note.startswith("divergence differs: diverged on 6 / 0 of 8 pair(s)")
+    assert calm.verdict == stats.EQUIVALENT and calm.divergence is None
+    # One more lost seed instead of a finished one: seven tied at mid-rank 5, R+ = 35, P(R+ >= 35) =
+    # 2 / 256 = 0.0078 <= 0.0125: worse. The
+    # finished seeds' better losses cannot rescue a variant that loses most of its runs.
+    groups[("hot", ())] = GroupOutcomes("hot", (), {0: 1.9}, (1, 2, 3, 4, 5, 6, 7), (), ())
+    hot = compare_all(groups, "ref", Design()).comparisons[0]
+    assert hot.verdict == stats.WORSE and hot.note.startswith("by the worst-rank composite: diverged on 7 / 0")
