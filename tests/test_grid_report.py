@@ -13,6 +13,7 @@ from scipy import stats as sps
 
 from blockyard.cli import main
 from blockyard.errors import UserError
+from blockyard.grid import stats
 from blockyard.grid.index import open_index
 from blockyard.grid.report import CAUTION, VERDICT_COLUMNS, write_report
 from blockyard.grid.run import grid_lock
@@ -89,7 +90,9 @@ def test_clear_differences_get_simultaneous_scipy_intervals(tmp_path):
     make_grid(tmp_path, {"ref": ref, "better": better, "worse": worse})
     report = write_report(tmp_path).read_text()
     rows = verdict_rows(report)
-    assert rows["better"][5] == "**better**" and rows["worse"][5] == "**worse**"
+    # worse: 4 pairs (+0.06, +0.06, +0.09, +0.05); left without seed 2 the 3 pairs' 97.5% interval reaches
+    # below 0 (t_{0.9875, 2} = 6.2), so the verdict rests on one seed: fragile. better's is steadier.
+    assert rows["better"][5] == "**better**" and rows["worse"][5] == "**worse** (fragile)"
     # Two comparisons: each simultaneous interval is scipy's paired t interval (scipy.stats.ttest_rel,
     # independent code) at 1 - 0.05 / 2 (Bonferroni); the unadjusted column is its 95% interval.
     test = sps.ttest_rel(list(better.values()), list(ref.values()))
@@ -137,7 +140,7 @@ def test_one_seed_reports_no_interval(tmp_path):
     assert "n<2: no interval" in report.split("## Variants")[1]
 
 
-def test_diverged_cells_are_outcomes_with_a_sensitivity_result(tmp_path):
+def test_diverged_cells_are_outcomes_decided_on_the_worst_rank_composite(tmp_path):
     make_grid(tmp_path, {"ref": {0: 2.0, 1: 2.2, 2: 2.1}, "hot": {0: 1.8, 1: "diverged", 2: 1.9}})
     report = write_report(tmp_path).read_text()
     excluded = report.split("## Cells without a final loss")[1].split("##")[0]
@@ -150,9 +153,17 @@ def test_diverged_cells_are_outcomes_with_a_sensitivity_result(tmp_path):
     assert "| 2 / 1 / 0 | 2 | 1.8500 |" in hot and "| 3 / 0 / 0 | 2 | 2.0500 |" in ref
     row = verdict_rows(report)["hot"]
     assert row[2] == "2" and row[9] == "1 / 0"
+    # Lower by 0.2 on both common seeds, but it lost seed 1: 3 composite pairs (-0.2, +inf, -0.2) cannot
+    # reach 2.5% one-sided (smallest p 1/8, Wilcoxon 1945), so undecided, with McNemar's test of 1 vs 0.
+    assert row[5].startswith("**undecided** (divergence differs: diverged on 1 / 0 of 3 pair(s)")
     note = next(ln for ln in report.splitlines() if ln.startswith("- hot: diverged on 1 seed(s)"))
-    assert "worst loss seen at this point (2.2000): 3 pairs" in note
-    assert read_verdicts_csv(tmp_path)["hot"]["diverged_variant"] == "1"
+    assert "worst-rank composite's: on 3 pair(s), 1 where only the variant diverged" in note
+    assert "No rank test on 3 pair(s) can reach the look's level: the smallest one-sided p is 0.125" in note
+    # 2^-n <= 0.025 first at n = 6; the t test's seeds needed do not apply to the composite.
+    assert "at least 6 pairs not lost by both are needed" in note and row[7] == "-"
+    csv_hot = read_verdicts_csv(tmp_path)["hot"]
+    assert csv_hot["diverged_variant"] == "1" and csv_hot["composite_verdict"] == "undecided"
+    assert float(csv_hot["divergence_mcnemar_p"]) == 1.0 and csv_hot["fragile"] == "False"
 
 
 def test_report_files_csv_html_and_caution(tmp_path, capsys):
@@ -190,8 +201,12 @@ def test_forest_plot_leads_the_plots_and_the_null_control_stands_apart(tmp_path)
     assert "**1 of 1 comparison(s) decided**: 1 better." in report
     assert list(verdict_rows(report)) == ["b"]
     null = verdict_rows(report, "## Noise floor (null control)")
-    assert null["null-control"][5] == "**better**"  # 2.25 < 2.30 etc.: a false positive here
+    # 2.25 < 2.30 etc.: a false positive here, on 3 pairs (any 2 of them cannot decide: fragile).
+    assert null["null-control"][5] == "**better** (fragile)"
     assert "**Flagged:** the null control came out **better**" in report
+    # m = 1: the null comparison is at 5%, so a flag comes up in 5% of grids under a true null.
+    assert "Under a true null this happens in at most 5% of grids (about 1 in 20): 1 null comparison(s), each at the " \
+           "per-comparison level 5% = 5% / 1." in report
     assert read_verdicts_csv(tmp_path)["null-control"]["in_family"] == "False"
 
 
@@ -310,4 +325,25 @@ def test_comparisons_pair_cells_at_the_same_axis_point(tmp_path):
     assert len(lines) == 2
     # Two comparisons (one variant at two points): 97.5% intervals, t(0.9875, 2) = 6.205.
     assert "| model.width=32 | 3 | +0.0033 | [-0.0380, +0.0447] | **undecided** |" in lines[0]
-    assert "| model.width=64 | 3 | -0.0967 | [-0.1174, -0.0760] | **better** |" in lines[1]
+    # Fragile: left without one of its 3 seeds, 2 pairs (t(0.9875, 1) = 25.45) cannot decide it.
+    assert "| model.width=64 | 3 | -0.0967 | [-0.1174, -0.0760] | **better** (fragile) |" in lines[1]
+
+
+def test_the_power_sentence_and_the_method_say_when_they_hold(tmp_path):
+    make_grid(tmp_path, {"ref": {0: 2.0, 1: 2.1, 2: 2.2, 3: 2.3}, "noisy": {0: 2.01, 1: 2.09, 2: 2.22, 3: 2.29}})
+    report = write_report(tmp_path).read_text()
+    csv_noisy = read_verdicts_csv(tmp_path)["noisy"]
+    need, sd = int(csv_noisy["seeds_needed"]), float(csv_noisy["sd_upper"])
+    note = next(ln for ln in report.splitlines() if ln.startswith("- noisy is undecided at 4 pairs"))
+    # 80% power holds at a true difference of 0 and of at least delta; in between it is lower, and the note
+    # gives the chance at delta / 2 (stats.decision_probability, checked against a simulation elsewhere).
+    chance = stats.decision_probability(0.005, sd, need, 0.05, 0.01)
+    assert chance < 0.8
+    assert (f"would decide it with 80% power if the true difference is 0 (equivalent; "
+            f"{csv_noisy['seeds_for_equivalence']} seeds) or at least ±0.01 (better or worse; "
+            f"{csv_noisy['seeds_for_difference']} seeds); at a true difference in between, ±0.005, the chance with "
+            f"{need} seeds is {100 * chance:.4g}%") in note
+    method = report.split("## Method")[1]
+    assert "Assumptions of the error bound: the paired differences are independent across seeds" in method
+    assert "about 10% at 5 pairs and 8% at 10 pairs" in method  # measured in tests/test_divergence_verdicts.py
+    assert "worst-rank composite (Lachin 1999" in method and "Fragile:" in method

@@ -43,27 +43,30 @@ def _row(variant: str, value: float, seed: int, status: str, loss: float | None,
 
 def test_choose_lowest_mean_over_tuning_seeds():
     # Mean over seeds, not the best single seed: 2e-3 has the best single run (3.0) but the worse mean.
-    scores = {1e-3: [3.3, 3.3], 2e-3: [3.0, 3.8], 4e-3: [3.2, 3.25]}
+    # (8e-3, the largest, is never chosen: no larger neighbour vouches for its stability.)
+    scores = {1e-3: [3.3, 3.3], 2e-3: [3.0, 3.8], 4e-3: [3.2, 3.25], 8e-3: [3.9, 3.9]}
     assert choose(scores) == 4e-3
     assert mean_score([3.2, 3.25]) == pytest.approx(np.mean([3.2, 3.25]))
 
 
 def test_choose_ties_go_to_the_smallest_value_whatever_the_order():
-    assert choose({4e-3: [3.0], 1e-3: [3.0], 2e-3: [3.5]}) == 1e-3
+    assert choose({4e-3: [3.0], 1e-3: [3.0], 2e-3: [3.5], 8e-3: [3.6]}) == 1e-3
     assert choose({8e-3: [INF], 2e-3: [INF]}) == 2e-3  # everything diverged: the smallest, flagged by the report
 
 
 def test_a_diverged_or_failed_seed_makes_its_value_infinite():
     # One diverged seed out of two: the value loses even against a much worse finite mean.
     assert mean_score([2.0, INF]) == INF
-    assert choose({1e-3: [4.0, 4.0], 8e-3: [2.0, INF]}) == 1e-3
+    assert choose({1e-3: [4.0, 4.0], 8e-3: [2.0, INF], 16e-3: [2.0, 2.0]}) == 1e-3
     rows = [_row("a", 1e-3, 100, "done", 4.0), _row("a", 8e-3, 100, "diverged", None),
             _row("a", 1e-3, 101, "done", 4.1), _row("a", 8e-3, 101, "failed", None),
             _row("b", 1e-3, 100, "done", 3.0), _row("b", 8e-3, 100, "done", 2.5),
             _row("b", 1e-3, 101, "done", 3.1), _row("b", 8e-3, 101, "done", 2.6)]
     groups = {g.variant: g for g in tuned_groups(rows, _tuning(), 0.01)}
     assert groups["a"].chosen == 1e-3 and groups["a"].scores[8e-3] == {100: INF, 101: INF}
-    assert groups["b"].chosen == 8e-3 and groups["b"].at_edge and not groups["a"].all_failed
+    assert groups["a"].no_margin and not groups["a"].all_failed  # 1e-3's larger neighbour diverged
+    # b is best at the largest value, which the margin never chooses: the smaller one, flagged at the edge.
+    assert groups["b"].chosen == 1e-3 and groups["b"].best_at_largest and groups["b"].at_edge
     assert groups["b"].means[8e-3] == pytest.approx(2.55)
     # A cell that may still train: no choice yet.
     assert tuned_groups([*rows[:-1], _row("b", 8e-3, 101, "interrupted", None)], _tuning(), 0.01) is None
@@ -94,14 +97,15 @@ def test_shared_value_differences_pair_by_tuning_seed():
 
 
 def test_disjoint_tuning_seeds_remove_the_winners_curse():
-    # K = 4 values with the same true loss: the chosen value's tuning loss is biased low by
-    # E[min of K standard normals] * sd / sqrt(n); re-measured on fresh seeds it is unbiased.
+    # 5 values with the same true loss, none diverging: the 4 eligible ones (the largest never is)
+    # compete, so the chosen value's tuning loss is biased low by E[min of K = 4 standard normals] *
+    # sd / sqrt(n); re-measured on fresh seeds it is unbiased.
     # Expected minimum by integration: E[min] = int x K phi(x) (1 - Phi(x))^(K-1) dx = -1.0294 (K = 4).
     k, n, sd, sims = 4, 1, 0.05, 20_000
     e_min = integrate.quad(lambda x: x * k * sps.norm.pdf(x) * sps.norm.sf(x) ** (k - 1), -10, 10)[0]
     assert e_min == pytest.approx(-1.0294, abs=1e-4)
     rng = np.random.default_rng(7)
-    values = [1e-3, 2e-3, 4e-3, 8e-3]
+    values = [1e-3, 2e-3, 4e-3, 8e-3, 16e-3]
     same, fresh = [], []
     for _ in range(sims):
         tuning = {v: list(3.0 + sd * rng.standard_normal(n)) for v in values}
@@ -258,7 +262,7 @@ E2E = """
     seeds: [0, 1]
     tune:
       key: train.lr
-      values: [0.003, 0.01, 0.1]
+      values: [0.003, 0.01, 0.1, 0.3]
       seeds: [100]
 """
 
@@ -285,13 +289,14 @@ def tuned_grid(tmp_path_factory) -> tuple[Path, Path, list[str]]:
 @pytest.mark.slow
 def test_each_variant_gets_its_own_value_end_to_end(tuned_grid):
     _path, grid_dir, lines = tuned_grid
-    assert "chosen train.lr for narrow: 0.1 (at the edge of the searched values)" in lines
+    # 0.3 is there so that 0.1 has a larger neighbour: the stability margin never chooses the largest value.
+    assert "chosen train.lr for narrow: 0.1" in lines
     assert "chosen train.lr for wide: 0.01" in lines
     assert _lrs(grid_dir) == {"narrow-seed0": 0.1, "narrow-seed1": 0.1, "wide-seed0": 0.01, "wide-seed1": 0.01}
-    assert len(list((grid_dir / "tuning" / "cells").iterdir())) == 6
+    assert len(list((grid_dir / "tuning" / "cells").iterdir())) == 8
     with open(grid_dir / "tuning.csv") as f:
         tuning = list(csv.DictReader(f))
-    assert len(tuning) == 6 and {r["seed"] for r in tuning} == {"100"}
+    assert len(tuning) == 8 and {r["seed"] for r in tuning} == {"100"}
     assert {(r["variant"], r["value"]) for r in tuning if r["chosen"] == "True"} == {("narrow", "0.1"),
                                                                                     ("wide", "0.01")}
     with open(grid_dir / "verdicts.csv") as f:
@@ -300,14 +305,13 @@ def test_each_variant_gets_its_own_value_end_to_end(tuned_grid):
     report = (grid_dir / "report.md").read_text()
     section = _section(report, "## Tuning", "## Variants")
     assert "| narrow (reference) | - | 0.1 |" in section and "| wide | - | 0.01 |" in section
-    assert "the chosen train.lr 0.1 is the largest value searched: the optimum may lie outside: widen `values`" \
-        in section
-    assert "wide**: the chosen" not in section
+    assert "next larger value did not diverge or fail on any tuning seed" in section
+    assert "narrow**: " not in section and "wide**: " not in section  # neither at an edge
     assert "![" in section and (grid_dir / "tuning.png").exists()
     assert "At a shared value" not in section  # one tuning seed: no paired table
     assert status_text(grid_dir).splitlines()[:3] == [
         "grid two-widths: stage 2 of 2 (verdict cells at each variant's chosen train.lr)",
-        "  stage 1, tuning: 6/6 done, 0 running, 0 failed, 0 left | finished",
+        "  stage 1, tuning: 8/8 done, 0 running, 0 failed, 0 left | finished",
         "  stage 2, verdict cells: 4/4 done, 0 running, 0 failed, 0 left | finished"]
 
 
@@ -374,7 +378,8 @@ def test_a_changed_tune_block_is_refused_then_forced_and_only_what_changed_rerun
     _path, reference, _ = tuned_grid
     grid_dir = tmp_path / "changed"
     shutil.copytree(reference, grid_dir)
-    path = write_grid(tmp_path, E2E.replace("values: [0.003, 0.01, 0.1]", "values: [0.003, 0.01]"), "changed.yaml")
+    path = write_grid(tmp_path, E2E.replace("values: [0.003, 0.01, 0.1, 0.3]", "values: [0.003, 0.01, 0.3]"),
+                      "changed.yaml")
     before = tree_snapshot(grid_dir)
     capsys.readouterr()
     assert main(["grid", str(path), "--out", str(grid_dir), "--threads", "1"]) == 2
@@ -392,9 +397,12 @@ def test_a_changed_tune_block_is_refused_then_forced_and_only_what_changed_rerun
                   if p.is_dir()) == ["narrow-seed0", "narrow-seed1"]
     with open(grid_dir / "tuning.csv") as f:
         tuning = list(csv.DictReader(f))
-    assert len(tuning) == 4 and {r["value"] for r in tuning} == {"0.003", "0.01"}
-    narrow = {r["value"]: float(r["final_val_loss"]) for r in tuning if r["variant"] == "narrow"}
-    best = min(narrow, key=lambda v: (narrow[v], float(v)))  # the selection rule, by hand
+    assert len(tuning) == 6 and {r["value"] for r in tuning} == {"0.003", "0.01", "0.3"}
+    narrow = {r["value"]: float(r["final_val_loss"] or "inf") for r in tuning if r["variant"] == "narrow"}
+    # The selection rule, by hand: the lowest loss among the values whose next larger value stayed finite.
+    ladder = sorted(narrow, key=float)
+    stable = [v for v, up in zip(ladder, ladder[1:], strict=False) if math.isfinite(narrow[v] + narrow[up])]
+    best = min(stable, key=lambda v: (narrow[v], float(v)))
     assert {(r["variant"], r["value"]) for r in tuning if r["chosen"] == "True"} == {("narrow", best),
                                                                                     ("wide", "0.01")}
     assert _lrs(grid_dir) == {"narrow-seed0": float(best), "narrow-seed1": float(best), "wide-seed0": 0.01,
@@ -402,7 +410,7 @@ def test_a_changed_tune_block_is_refused_then_forced_and_only_what_changed_rerun
     # Nothing that kept its config was trained again.
     assert {p: p.stat().st_mtime_ns for p in wide_summaries} == wide_summaries
     kept = {p: t for p, t in tuning_summaries.items() if "lr0.1-" not in p.parent.name}
-    assert len(kept) == 4 and {p: p.stat().st_mtime_ns for p in kept} == kept
+    assert len(kept) == 6 and {p: p.stat().st_mtime_ns for p in kept} == kept
     assert "| narrow (reference) | - | 0.1 |" not in (grid_dir / "report.md").read_text()
 
 
@@ -563,13 +571,14 @@ def test_report_says_rung_1_was_tuned_and_the_value_carried(tmp_path, parametriz
         "    variants:\n      attention: {}\n      recurrence: {model.pattern: [recurrence]}",
         f"    variants:\n      attention: {extra}\n      recurrence: {{model.pattern: [recurrence], "
         f"{extra[1:-1]}}}")
-    spec = load_grid(write_grid(tmp_path, text))
+    # A third value above: the stability margin never chooses the largest value searched.
+    spec = load_grid(write_grid(tmp_path, text.replace("values: [1.0e-3, 1.0e-2]", "values: [1.0e-3, 1.0e-2, 1.0e-1]")))
     grid_dir = tmp_path / "out"
     tuning_plan = plan_tuning(spec, threads=1)
-    # Synthetic tuning losses: attention is best at 1e-3, recurrence at 1e-2.
+    # Synthetic tuning losses: attention is best at 1e-3, recurrence at 1e-2; 1e-1 is worse for both.
     rng = np.random.default_rng(3)
     loss = {p.id: 3.0 + (0.2 if (p.cell.variant == "attention") == (p.cell.cfg.train.lr == 1e-2) else 0.0)
-            + rng.normal(0, 0.01) for p in tuning_plan}
+            + (0.5 if p.cell.cfg.train.lr == 1e-1 else 0.0) + rng.normal(0, 0.01) for p in tuning_plan}
     expected = {}
     for variant in ("attention", "recurrence"):
         ids = [p for p in tuning_plan if p.cell.variant == variant]
@@ -604,7 +613,7 @@ def test_report_says_rung_1_was_tuned_and_the_value_carried(tmp_path, parametriz
         report, "## Ladder", "## Variants")
     with open(grid_dir / "tuning.csv") as f:
         rows = list(csv.DictReader(f))
-    assert len(rows) == 4 and {r["point"] for r in rows} == {"rung=1"}
+    assert len(rows) == 6 and {r["point"] for r in rows} == {"rung=1"}
     assert {(r["variant"], float(r["value"])) for r in rows if r["chosen"] == "True"} == set(expected.items())
     with open(grid_dir / "verdicts.csv") as f:
         verdicts = {r["point"]: r for r in csv.DictReader(f)}

@@ -164,18 +164,20 @@ def rows(results: dict[str, dict[int, float | str]]) -> list[dict]:
             for v, seeds in results.items() for s, x in seeds.items()]
 
 
-def test_diverged_cells_count_and_the_sensitivity_uses_the_worst_loss_seen():
+def test_diverged_cells_count_and_a_variant_gains_nothing_from_a_lost_seed():
     groups = group_outcomes(rows({"ref": {0: 2.0, 1: 2.4, 2: 2.2, 3: 2.1},
                                   "hot": {0: 1.9, 1: "diverged", 2: 2.1, 3: 2.0}}))
     (c,) = compare_all(groups, "ref", Design()).comparisons
     assert c.seeds == (0, 2, 3) and c.divergence_differs
     assert (len(c.variant_outcomes.diverged), len(c.reference_outcomes.diverged)) == (1, 0)
-    assert c.verdict == stats.BETTER  # -0.1 on each common seed
-    s = c.sensitivity
-    assert s.worst_loss == 2.4 and s.pairs == 4
-    # Seed 1 scored as 2.4 - 2.4 = 0: the differences are -0.1, 0, -0.1, -0.1 (interval from scipy's t).
-    assert s.interval.mean == pytest.approx(-0.075)
-    assert s.verdict == stats.UNDECIDED
+    # -0.1 on each common seed would be "better" by the t interval; the lost seed ranks worst instead:
+    # composite differences -0.1, +inf, -0.1, -0.1. Four pairs: the smallest one-sided signed-rank p is
+    # 1/16 > 2.5%, so no rank test can decide (Wilcoxon 1945: all 2^4 sign patterns equally likely).
+    d = c.divergence
+    assert (d.pairs, d.variant_only, d.reference_only, d.both) == (4, 1, 0, 0)
+    assert not d.reachable and d.rank.smallest_p == 1 / 16
+    assert c.verdict == stats.UNDECIDED and c.note.startswith(stats.DIVERGENCE_DIFFERS)
+    assert d.mcnemar_p == 1.0  # one discordant pair: exact binomial p = 1 (McNemar 1947)
 
 
 def test_variants_table_means_use_the_seeds_every_group_finished():

@@ -5,7 +5,7 @@ A grid file may hold::
     tune:
       key: train.lr                               # any numeric config key
       values: [1.0e-3, 2.0e-3, 4.0e-3, 8.0e-3]    # or {low: 5.0e-4, high: 8.0e-3, count: 5} (log-spaced)
-      seeds: [100]                                # tuning seeds: disjoint from the grid's seeds
+      seeds: [100, 101, 102]                      # tuning seeds, disjoint from the grid's seeds (default: 3 of them)
       budget: 1.0                                 # tuning cells' token budget / the verdict cells' (0 < b <= 1)
       rungs: all                                  # with a ladder: all (each rung tuned on its own) or first
 
@@ -50,6 +50,8 @@ TUNE_KEYS = ("key", "values", "seeds", "budget", "rungs")
 RUNGS_ALL, RUNGS_FIRST = "all", "first"
 TUNE_RUNGS = (RUNGS_ALL, RUNGS_FIRST)
 RANGE_KEYS = ("low", "high", "count")
+DEFAULT_TUNING_SEEDS = 3  # tune.seeds left out: this many seeds, from TUNING_SEED_START up
+TUNING_SEED_START = 100
 # Stage 1's grid dir, inside the grid dir.
 TUNING_DIR = "tuning"
 # Keys a tuning may not search: they set the budget, which ``tune.budget`` scales.
@@ -189,8 +191,21 @@ def _log_range(raw: dict[str, Any]) -> list[float]:
     return [float(f"{low * (high / low) ** (i / (count - 1)):.3g}") for i in range(count)]
 
 
+def default_tuning_seeds(verdict_seeds: tuple[int, ...]) -> tuple[int, ...]:
+    """``tune.seeds`` left out: the first ``DEFAULT_TUNING_SEEDS`` integers from 100 up that are not verdict seeds.
+    Three, not one: a value that survives one seed says little about the cliff above it (issue 26)."""
+    taken, out, s = set(verdict_seeds), [], TUNING_SEED_START
+    while len(out) < DEFAULT_TUNING_SEEDS:
+        if s not in taken:
+            out.append(s)
+        s += 1
+    return tuple(out)
+
+
 def _parse_seeds(raw: Any, verdict_seeds: tuple[int, ...]) -> tuple[int, ...]:
-    allowed = "a list of distinct non-negative integers not among the grid's seeds, e.g. [100]"
+    allowed = "a list of distinct non-negative integers not among the grid's seeds, e.g. [100, 101, 102]"
+    if raw is None:
+        return default_tuning_seeds(verdict_seeds)
     if not isinstance(raw, list) or not raw:
         raise ConfigError("tune.seeds", f"{raw!r}: {allowed}")
     for s in raw:
@@ -252,13 +267,31 @@ def mean_score(scores: list[float]) -> float:
     return math.fsum(scores) / len(scores)
 
 
+def eligible(scores: dict[float, list[float]]) -> list[float]:
+    """Values with a one-step stability margin: finite mean, and the next larger value searched did not diverge
+    (or fail) on any tuning seed. The largest value has no larger neighbour to vouch for it: never eligible."""
+    values = sorted(scores)
+    return [v for v, up in zip(values, values[1:], strict=False)
+            if math.isfinite(mean_score(scores[v])) and math.isfinite(mean_score(scores[up]))]
+
+
 def choose(scores: dict[float, list[float]]) -> float:
-    """The value with the lowest mean score over the tuning seeds (diverged / failed: +inf);
-    ties, +inf ones included, go to the smallest value."""
+    """The eligible value (``eligible``: its next larger value survived every tuning seed) with the lowest mean
+    score over the tuning seeds; ties go to the smallest. With no eligible value, the smallest value searched
+    (the report tells the user to search lower).
+
+    Why the margin: "lowest mean, diverged = +inf" picks the largest value that happened to survive the few
+    tuning seeds, which on a sharp stability cliff then diverges on the verdict seeds (issue 26); a value one
+    step below a value that survived every tuning seed keeps a step of room. Common practice for learning
+    rates (back off from the largest stable rate), no single source.
+    """
     if not scores:
         raise ValueError("no values to choose from")
-    means = {v: mean_score(s) for v, s in scores.items()}
-    return min(sorted(means), key=lambda v: means[v])  # min keeps the first (smallest) of equal means
+    candidates = eligible(scores)
+    if not candidates:
+        return min(scores)
+    means = {v: mean_score(scores[v]) for v in candidates}
+    return min(candidates, key=lambda v: means[v])  # candidates ascend: min keeps the smallest of equal means
 
 
 def basin(means: dict[float, float], chosen: float, width: float) -> tuple[float, float]:
@@ -293,8 +326,21 @@ class TunedGroup:
 
     @property
     def at_edge(self) -> bool:
-        """The chosen value is the smallest or largest searched: the optimum may lie outside."""
-        return self.chosen in (min(self.scores), max(self.scores))
+        """The chosen value is the smallest searched, or the best mean is at the largest (never eligible): the
+        optimum may lie outside the values searched."""
+        return self.chosen == min(self.scores) or self.best_at_largest
+
+    @property
+    def best_at_largest(self) -> bool:
+        """The largest value searched had the lowest finite mean: the search should go higher."""
+        means = self.means
+        finite = [v for v, m in means.items() if math.isfinite(m)]
+        return bool(finite) and min(finite, key=lambda v: means[v]) == max(self.scores)
+
+    @property
+    def no_margin(self) -> bool:
+        """No value had a stable larger neighbour, so the smallest was taken by default."""
+        return not eligible({v: list(s.values()) for v, s in self.scores.items()})
 
     @property
     def all_failed(self) -> bool:

@@ -1,10 +1,14 @@
-"""From cell outcomes to verdicts: the comparisons of a grid, their family, divergence, sensitivity, planning.
+"""From cell outcomes to verdicts: the comparisons of a grid, their family, divergence, fragility, planning.
 
 A *group* is one variant at one axis point (``GroupKey = (variant, point)``); a *comparison* is a
 non-reference group against the reference group at the same point, paired by seed. The grid's
 comparisons form one family whose intervals hold jointly at ``stats.LEVEL`` (see
 ``blockyard.grid.stats``); the null control (``spec.NULL_VARIANT``) is compared the same way at
 the same per-comparison level but kept out of the family: it measures the design's noise floor.
+
+Divergence is an outcome: where the two groups of a comparison diverged on different seeds, the
+verdict comes from the worst-rank composite (``DivergenceTest``), never from the seeds one group
+lost. A decided verdict that changes when any single seed is left out is marked ``fragile``.
 
 Pure functions over cell records (dicts with ``variant, point, seed, status, final_val_loss``):
 no I/O, so the report, the round planner (``blockyard.grid.rounds``) and later stages (tuning,
@@ -99,10 +103,10 @@ def restrict(groups: dict[GroupKey, GroupOutcomes], seeds: dict[GroupKey, Iterab
 
 @dataclasses.dataclass(frozen=True)
 class Planning:
-    """What would decide a comparison at the smallest effect (fixed design, per-comparison level)."""
+    """What would decide a comparison at the smallest effect, at the level its verdicts use (the look's)."""
 
     sd_upper: float | None  # upper confidence bound of the paired sd (stats.SD_BOUND_CONFIDENCE)
-    seeds_for_difference: int | None  # pairs to call better/worse at 80% power if the truth is +-delta
+    seeds_for_difference: int | None  # pairs to call better/worse at 80% power if |true difference| >= delta
     seeds_for_equivalence: int | None  # pairs to call equivalent at 80% power if the truth is 0
     detectable: float | None  # smallest true difference found with 80% power at the pairs run
 
@@ -115,12 +119,22 @@ class Planning:
 
 
 @dataclasses.dataclass(frozen=True)
-class Sensitivity:
-    """The comparison again with every diverged cell counted as the worst loss seen at its point."""
+class DivergenceTest:
+    """The comparison on the worst-rank composite, used when the two groups diverged on different seeds.
 
-    worst_loss: float
-    pairs: int
-    interval: stats.Interval | None
+    Every seed both groups finished (done or diverged) is a pair; a diverged cell ranks worse than every
+    finished loss (Lachin 1999), so a pair where only the variant diverged is a difference of +inf, one
+    where only the reference did -inf, and one where both did carries no information (left out). No loss
+    is imputed: the signed-rank test needs only the order.
+    """
+
+    pairs: int  # informative pairs (seeds both finished, not both diverged)
+    variant_only: int  # pairs where only the variant diverged
+    reference_only: int  # pairs where only the reference diverged
+    both: int  # pairs where both diverged (left out)
+    rank: stats.SignedRank
+    reachable: bool  # some sign pattern of these pairs reaches the look's level
+    mcnemar_p: float  # exact test of the divergence counts alone (two-sided)
     verdict: str
 
 
@@ -142,7 +156,8 @@ class Comparison:
     planning: Planning | None
     variant_outcomes: GroupOutcomes
     reference_outcomes: GroupOutcomes
-    sensitivity: Sensitivity | None
+    divergence: DivergenceTest | None  # set when the groups diverged on different paired seeds: it gives the verdict
+    fragile: bool = False  # decided, and dropping some one seed changes the verdict (leave-one-seed-out)
 
     @property
     def key(self) -> GroupKey:
@@ -162,7 +177,8 @@ class Comparison:
 
     @property
     def divergence_differs(self) -> bool:
-        return set(self.variant_outcomes.diverged) != set(self.reference_outcomes.diverged)
+        """The groups diverged on different seeds among those both finished."""
+        return self.divergence is not None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -199,7 +215,7 @@ def look_alpha(design: Design, m: int) -> float:
 def compare_all(groups: dict[GroupKey, GroupOutcomes], reference: str | None, design: Design,
                 with_planning: bool = True) -> Family:
     """Every group against the reference at its point, at the design's levels (``with_planning``: seeds
-    needed too, which the round planner and simulations do not need)."""
+    needed and the leave-one-seed-out check too, which the round planner and simulations do not need)."""
     m = family_size(groups, reference)
     a_look = look_alpha(design, m)
     refs = {g.point: g for g in groups.values() if g.variant == reference}
@@ -207,60 +223,100 @@ def compare_all(groups: dict[GroupKey, GroupOutcomes], reference: str | None, de
     for g in groups.values():
         if g.variant == reference or g.point not in refs:
             continue
-        c = compare(g, refs[g.point], design.smallest_effect, a_look, stats.comparison_alpha(max(1, m)),
-                    worst_loss(groups.values(), g.point), in_family=g.variant != NULL_VARIANT,
+        c = compare(g, refs[g.point], design.smallest_effect, a_look, in_family=g.variant != NULL_VARIANT,
                     with_planning=with_planning)
         (family if c.in_family else null).append(c)
     return Family(design, m, stats.comparison_alpha(max(1, m)), a_look, family, null)
 
 
-def worst_loss(groups: Iterable[GroupOutcomes], point: Point) -> float | None:
-    """The highest final loss any finished cell reached at ``point``."""
-    losses = [v for g in groups if g.point == point for v in g.losses.values()]
-    return max(losses) if losses else None
+@dataclasses.dataclass(frozen=True)
+class _Decision:
+    seeds: list[int]
+    diffs: list[float]
+    interval: stats.Interval | None
+    verdict: str
+    note: str
+    divergence: DivergenceTest | None
 
 
-def compare(group: GroupOutcomes, ref: GroupOutcomes, smallest_effect: float, alpha_look: float,
-            alpha_plan: float, worst: float | None, in_family: bool = True, with_planning: bool = True) -> Comparison:
-    """One comparison: paired differences on common seeds, its intervals, verdict, planning and sensitivity."""
-    seeds, diffs = stats.paired_differences(group.losses, ref.losses)
-    interval = unadjusted = planning = None
+def _decision(group: GroupOutcomes, ref: GroupOutcomes, keep: set[int], smallest_effect: float,
+              alpha_look: float) -> _Decision:
+    """The verdict on the seeds in ``keep``: the t interval on pairs both finished with a loss, unless the
+    groups diverged on different seeds; then the worst-rank composite decides (``DivergenceTest``)."""
+    losses_g = {s: v for s, v in group.losses.items() if s in keep}
+    losses_r = {s: v for s, v in ref.losses.items() if s in keep}
+    seeds, diffs = stats.paired_differences(losses_g, losses_r)
+    interval = None
     verdict, note = stats.UNDECIDED, "no finished pairs" if not seeds else stats.NO_INTERVAL
     if seeds:
         interval = stats.mean_interval(diffs, 1 - alpha_look)
-        unadjusted = stats.mean_interval(diffs, stats.LEVEL)
         verdict, note = stats.decide(interval, smallest_effect)
-        planning = plan(interval, smallest_effect, alpha_plan) if with_planning else None
-    sensitivity = None
-    if set(group.diverged) != set(ref.diverged) and worst is not None:
-        sensitivity = _sensitivity(group, ref, worst, smallest_effect, alpha_look)
-    return Comparison(group.variant, ref.variant, group.point, in_family, smallest_effect, tuple(seeds),
-                      tuple(diffs), interval, unadjusted, verdict, note, planning, group, ref, sensitivity)
+    divergence = _divergence_test(group, ref, keep, alpha_look)
+    if divergence is not None:
+        verdict, note = divergence.verdict, _divergence_note(divergence, alpha_look)
+    return _Decision(seeds, diffs, interval, verdict, note, divergence)
+
+
+def _divergence_test(group: GroupOutcomes, ref: GroupOutcomes, keep: set[int],
+                     alpha_look: float) -> DivergenceTest | None:
+    """The worst-rank composite on the seeds both finished, when their divergences differ there; else None."""
+    paired = sorted(group.finished & ref.finished & keep)
+    dg, dr = set(group.diverged), set(ref.diverged)
+    if all((s in dg) == (s in dr) for s in paired):
+        return None
+    composite = []
+    for s in paired:
+        if s in dg and s in dr:
+            continue
+        composite.append(math.inf if s in dg else -math.inf if s in dr else group.losses[s] - ref.losses[s])
+    verdict, rank = stats.decide_composite(composite, alpha_look)
+    variant_only = sum(1 for s in paired if s in dg and s not in dr)
+    reference_only = sum(1 for s in paired if s in dr and s not in dg)
+    return DivergenceTest(len(composite), variant_only, reference_only, sum(1 for s in paired if s in dg and s in dr),
+                          rank, rank.smallest_p <= alpha_look / 2, stats.mcnemar_exact(variant_only, reference_only),
+                          verdict)
+
+
+def _divergence_note(d: DivergenceTest, alpha_look: float) -> str:
+    counts = (f"diverged on {d.variant_only} / {d.reference_only} of {d.pairs} pair(s) (variant only / reference "
+              f"only), McNemar exact p = {d.mcnemar_p:.3g}")
+    if not d.reachable:
+        return (f"{stats.DIVERGENCE_DIFFERS}: {counts}; no rank test on {d.pairs} pair(s) can reach "
+                f"{100 * alpha_look:.4g}%")
+    p = min(d.rank.p_less, d.rank.p_greater)
+    rule = "by the worst-rank composite" if d.verdict != stats.UNDECIDED else stats.DIVERGENCE_DIFFERS
+    return f"{rule}: {counts}; signed-rank one-sided p = {p:.3g}"
+
+
+def compare(group: GroupOutcomes, ref: GroupOutcomes, smallest_effect: float, alpha_look: float,
+            in_family: bool = True, with_planning: bool = True) -> Comparison:
+    """One comparison at the look's two-sided level ``alpha_look``: paired differences on common seeds, their
+    intervals, the verdict (the worst-rank composite's where divergences differ), planning at the same level
+    and the leave-one-seed-out check (``with_planning``)."""
+    everything = group.finished | ref.finished | set(group.losses) | set(ref.losses)
+    d = _decision(group, ref, everything, smallest_effect, alpha_look)
+    unadjusted = stats.mean_interval(d.diffs, stats.LEVEL) if d.seeds else None
+    # The t test's planning does not apply to the composite (its note says how many pairs a rank test needs).
+    planning = (plan(d.interval, smallest_effect, alpha_look) if with_planning and d.interval and d.divergence is None
+                else None)
+    fragile = False
+    if with_planning and d.verdict in (stats.BETTER, stats.WORSE, stats.EQUIVALENT):
+        fragile = any(_decision(group, ref, everything - {s}, smallest_effect, alpha_look).verdict != d.verdict
+                      for s in sorted(group.finished & ref.finished))
+    return Comparison(group.variant, ref.variant, group.point, in_family, smallest_effect, tuple(d.seeds),
+                      tuple(d.diffs), d.interval, unadjusted, d.verdict, d.note, planning, group, ref, d.divergence,
+                      fragile)
 
 
 def plan(interval: stats.Interval, smallest_effect: float, alpha: float) -> Planning | None:
-    """Seeds needed and detectable difference from the sd's upper bound (never from the observed difference)."""
+    """Seeds needed and detectable difference at the level the verdicts use (``alpha``: the look's two-sided
+    level), from the sd's upper bound (never from the observed difference)."""
     if interval.sd is None:
         return None
     upper = stats.sd_upper_bound(interval.sd, interval.n)
     return Planning(upper, stats.seeds_for_difference(smallest_effect, upper, alpha),
                     stats.seeds_for_equivalence(smallest_effect, upper, alpha),
                     stats.detectable_difference(interval.n, upper, alpha))
-
-
-def _sensitivity(group: GroupOutcomes, ref: GroupOutcomes, worst: float, smallest_effect: float,
-                 alpha_look: float) -> Sensitivity:
-    """Diverged cells scored as ``worst``; seeds where both diverged carry no information and are left out."""
-    def scored(g: GroupOutcomes) -> dict[int, float]:
-        return {**g.losses, **{s: worst for s in g.diverged}}
-
-    a, b = scored(group), scored(ref)
-    seeds = [s for s in sorted(set(a) & set(b)) if not (s in group.diverged and s in ref.diverged)]
-    diffs = [a[s] - b[s] for s in seeds]
-    if not diffs:
-        return Sensitivity(worst, 0, None, stats.UNDECIDED)
-    iv = stats.mean_interval(diffs, 1 - alpha_look)
-    return Sensitivity(worst, len(seeds), iv, stats.decide(iv, smallest_effect)[0])
 
 
 def common_seed_means(groups: dict[GroupKey, GroupOutcomes]) -> dict[GroupKey, tuple[int, stats.Interval | None]]:
