@@ -410,6 +410,7 @@ def test_huge_config_warns_with_estimate_and_suggestions():
     assert memory_warning(cfg, 256, available_bytes=2**60) is None
 
 
+@pytest.mark.slow
 def test_trainer_warns_before_training_when_activations_will_not_fit(tmp_path, monkeypatch, capsys):
     # The machine is made to look tiny (64 KiB available) instead of building a huge config.
     import blockyard.cost.memory as me
@@ -511,6 +512,7 @@ def test_tree_rss_sums_the_process_and_every_descendant():
     assert bm.tree_rss_bytes(tree) == 10 + 200 + 3000 + 500_000  # a process that exited counts 0
 
 
+@pytest.mark.slow
 def test_sampled_peak_sees_the_child_processes():
     import sys
 

@@ -9,6 +9,7 @@ from pathlib import Path
 import pytest
 import yaml
 
+from blockyard.cli import main
 from blockyard.config import config_from_dict, config_hash, dump_config, load_config, replace
 from blockyard.errors import ConfigError, UserError
 from blockyard.mixers.attention import GlobalAttentionOptions
@@ -225,17 +226,19 @@ def run_cli(*args: str, cwd: Path) -> subprocess.CompletedProcess:
     ],
     ids=["depth", "heads", "set-override"],
 )
-def test_train_with_a_bad_config_exits_2_with_one_error_line(tmp_path, content, overrides, key):
+def test_train_with_a_bad_config_exits_2_with_one_error_line(tmp_path, capsys, content, overrides, key):
+    """In-process through the CLI's ``main()``; the subprocess smoke test for ``train`` is the next one."""
     bad = write(tmp_path / "bad.yaml", content)
-    proc = run_cli("train", str(bad), "--out", str(tmp_path / "run"), *overrides, cwd=tmp_path)
-    assert proc.returncode == 2, proc.stderr
-    lines = proc.stderr.strip("\n").split("\n")
-    assert len(lines) == 1 and lines[0].startswith(f"error: {key}: "), proc.stderr
-    assert "Traceback" not in proc.stderr
+    assert main(["train", str(bad), "--out", str(tmp_path / "run"), *overrides]) == 2
+    err = capsys.readouterr().err
+    lines = err.strip("\n").split("\n")
+    assert len(lines) == 1 and lines[0].startswith(f"error: {key}: "), err
     assert not (tmp_path / "run").exists()  # nothing was written for a config that never loaded
 
 
+@pytest.mark.slow
 def test_train_with_a_missing_config_file_exits_2(tmp_path):
+    """The real command in a child process: exit 2, one line, no traceback."""
     proc = run_cli("train", str(tmp_path / "nope.yaml"), cwd=tmp_path)
     assert proc.returncode == 2
     assert proc.stderr.startswith("error: ") and "nope.yaml" in proc.stderr and proc.stderr.count("\n") == 1

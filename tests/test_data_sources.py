@@ -263,6 +263,7 @@ def test_plays_extraction_takes_only_gut_texts(tmp_path):
 # ----------------------------------------------------------------------------- hub (offline only)
 
 
+@pytest.mark.slow
 def test_hub_offline_mode_fails_fast_with_one_line(tmp_path):
     # A subprocess: datasets reads the offline switches when it is imported.
     # Fast because it never touches the network: every connection attempt in the child is recorded.

@@ -28,6 +28,8 @@ from blockyard.grid.run import run_grid
 from blockyard.rundir import read_metrics, read_summary
 from blockyard.train import run_training
 
+pytestmark = pytest.mark.slow  # full tier: kills and resumes real processes
+
 WORDS = "kill the run at any moment and it must come back the same as if nothing had happened".split()
 
 

@@ -311,6 +311,7 @@ def test_auto_falls_back_with_a_missing_compiler(fresh_build_state, monkeypatch)
     _check_fallback("Error")
 
 
+@pytest.mark.slow
 def test_ninja_beside_python_is_found_without_path(monkeypatch):
     # CI runs .venv/bin/python without activating the venv: pip's ninja (a project dependency)
     # is then not on PATH, and torch's loader would not find it on its own.

@@ -125,6 +125,7 @@ def long_reference(workdir) -> tuple[Path, list[dict]]:
     return path, comparable(out)
 
 
+@pytest.mark.slow
 def test_kill9_then_rerun_matches_uninterrupted(workdir, long_reference):
     path, reference = long_reference
     out = workdir / "killed"
@@ -145,6 +146,7 @@ def test_kill9_then_rerun_matches_uninterrupted(workdir, long_reference):
     assert summary["status"] == "done" and summary["steps"] == 120
 
 
+@pytest.mark.slow
 def test_sigterm_checkpoints_and_rerun_matches(workdir, long_reference):
     path, reference = long_reference
     out = workdir / "terminated"
@@ -165,6 +167,7 @@ def test_sigterm_checkpoints_and_rerun_matches(workdir, long_reference):
     assert comparable(out) == reference
 
 
+@pytest.mark.slow
 def test_corrupt_latest_checkpoint_falls_back(workdir, long_reference, capsys):
     path, reference = long_reference
     out = workdir / "corrupt"
@@ -196,6 +199,7 @@ def test_corrupt_latest_checkpoint_falls_back(workdir, long_reference, capsys):
 # ----------------------------------------------------------------------------- records
 
 
+@pytest.mark.slow
 def test_records_fields_and_tensorboard(workdir):
     path = write_config(workdir, "records")
     out = workdir / "records_run"
@@ -251,6 +255,7 @@ def test_records_fields_and_tensorboard(workdir):
     assert [e.step for e in acc.Scalars("val/loss")] == [10, 20, 30, 40]
 
 
+@pytest.mark.slow
 def test_log_lines_when_not_a_tty(workdir, capsys):
     path = write_config(workdir, "loglines", train={"steps": 10})
     assert main(["train", str(path), "--out", str(workdir / "loglines_run")]) == 0
@@ -271,6 +276,7 @@ def test_progress_is_a_bar_on_a_tty():
     assert isinstance(make_progress(None, io.StringIO()), LogLines)
 
 
+@pytest.mark.slow
 def test_grad_accum_uses_consecutive_micro_batches(workdir, monkeypatch):
     """Step s (1-based) reads micro-batches (s-1)*k .. (s-1)*k + k-1, so the data position is the step."""
     import blockyard.data
@@ -301,6 +307,7 @@ def test_grad_accum_uses_consecutive_micro_batches(workdir, monkeypatch):
 # ----------------------------------------------------------------------------- divergence
 
 
+@pytest.mark.slow
 def test_divergence_stops_with_exit_3(workdir, capsys):
     path = write_config(workdir, "diverge", train={"lr": 30.0, "warmup_steps": 0, "grad_clip": 0.0, "steps": 40})
     out = workdir / "diverge_run"
@@ -325,6 +332,7 @@ def test_divergence_stops_with_exit_3(workdir, capsys):
 # ----------------------------------------------------------------------------- finished and foreign dirs
 
 
+@pytest.mark.slow
 def test_done_dir_is_not_retrained_and_other_config_refused(workdir, capsys):
     path = write_config(workdir, "done")
     out = workdir / "done_run"
@@ -353,6 +361,7 @@ def test_done_dir_is_not_retrained_and_other_config_refused(workdir, capsys):
     assert not (out / "eval.json").exists()
 
 
+@pytest.mark.slow
 def test_force_keeps_files_that_are_not_records(workdir):
     out = workdir / "foreign"
     out.mkdir()
@@ -364,6 +373,7 @@ def test_force_keeps_files_that_are_not_records(workdir):
     assert (out / "notes.txt").read_text() == "mine"
 
 
+@pytest.mark.slow
 def test_default_out_dir_is_runs_name_hash(workdir, monkeypatch, tmp_path):
     path = write_config(workdir, "defaultdir", train={"steps": 3})
     monkeypatch.chdir(tmp_path)
@@ -403,6 +413,7 @@ def existing_run(workdir) -> Path:
     return out
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("args,names", BAD, ids=[b[1] for b in BAD])
 def test_bad_input_exits_2_with_one_line_and_leaves_dir(workdir, existing_run, capsys, args, names):
     before = snapshot(existing_run)
@@ -415,6 +426,7 @@ def test_bad_input_exits_2_with_one_line_and_leaves_dir(workdir, existing_run, c
     assert snapshot(existing_run) == before
 
 
+@pytest.mark.slow
 def test_cuda_device_absent_is_a_user_error(workdir, existing_run, capsys):
     import torch
 
@@ -443,6 +455,7 @@ def test_bad_config_file(tmp_path, capsys, content, names):
 # ----------------------------------------------------------------------------- precision
 
 
+@pytest.mark.slow
 def test_bf16_unsupported_falls_back_to_fp32(workdir, monkeypatch, capsys):
     monkeypatch.setattr(runtime_mod, "cpu_bf16_support", lambda: (False, "simulated CPU without bf16"))
     path = write_config(workdir, "bf16_no", train={"steps": 3}, runtime={"precision": "bf16"})
@@ -454,6 +467,7 @@ def test_bf16_unsupported_falls_back_to_fp32(workdir, monkeypatch, capsys):
     assert env["precision"] == "fp32" and "simulated CPU without bf16" in env["precision_reason"]
 
 
+@pytest.mark.slow
 def test_bf16_supported_runs_in_bf16(workdir, monkeypatch):
     import torch
 
@@ -476,6 +490,7 @@ def test_bf16_supported_runs_in_bf16(workdir, monkeypatch):
     assert summary["status"] == "done" and abs(summary["final_val_loss"] - math.log(256)) < 1.0
 
 
+@pytest.mark.slow
 def test_timing_fields_are_the_only_difference(workdir):
     """Two identical runs agree on every non-timing field (what the resume tests rely on)."""
     path = write_config(workdir, "twice", train={"steps": 10})
@@ -490,6 +505,7 @@ def test_timing_fields_are_the_only_difference(workdir):
 # ----------------------------------------------------------------------------- other keys
 
 
+@pytest.mark.slow
 def test_task_run_logs_answer_accuracy(workdir):
     cfg = load_config(write_config(workdir, "task", data={"corpus": "task:mqar", "seq_len": 64},
                                    train={"steps": 10, "eval_every": 5}))
@@ -501,6 +517,7 @@ def test_task_run_logs_answer_accuracy(workdir):
     assert json.loads((out / "env.json").read_text())["data"]["corpus"] == "task:mqar"
 
 
+@pytest.mark.slow
 def test_activation_checkpointing_changes_nothing_but_memory(workdir):
     """Recomputing blocks in backward (torch.utils.checkpoint) gives the same losses and updates."""
     plain = load_config(write_config(workdir, "ac_off", train={"steps": 6}, model={"depth": 2}))
@@ -515,6 +532,7 @@ def test_activation_checkpointing_changes_nothing_but_memory(workdir):
             assert x[k] == (y[k] if isinstance(y[k], str) else pytest.approx(y[k], rel=1e-5)), k
 
 
+@pytest.mark.slow
 def test_seeds_change_init_and_data(workdir):
     def first_lines(name, **train):
         cfg = load_config(write_config(workdir, name, train={"steps": 2, "log_every": 1, **train}))
@@ -530,6 +548,7 @@ def test_seeds_change_init_and_data(workdir):
     assert first_lines("dseed5", data_seed=5)[0]["loss"] != base[0]["loss"]
 
 
+@pytest.mark.slow
 def test_scan_backend_and_threads_applied(workdir):
     import torch
 
@@ -553,6 +572,7 @@ def test_scan_backend_and_threads_applied(workdir):
     assert torch.get_num_threads() == threads  # and restored after
 
 
+@pytest.mark.slow
 def test_token_budget_sets_the_number_of_steps(workdir):
     cfg = load_config(write_config(workdir, "budget", train={"tokens": 1000, "steps": 99}))
     summary = run_training(cfg, workdir / "budget_run", progress="silent")
@@ -601,6 +621,7 @@ def test_compiled_run_trains_resumes_exactly_and_its_checkpoint_loads_eagerly(wo
     assert loss == pytest.approx(read_metrics(whole / "metrics.jsonl")[-1]["loss"], rel=1e-5)
 
 
+@pytest.mark.slow
 def test_compile_failure_trains_eagerly_with_a_warning(workdir, monkeypatch, capsys):
     """Where torch.compile fails (here: a simulated compiler error at the first call), the run warns,
     records why in env.json and trains exactly as an eager run (the trial step leaves no trace)."""
