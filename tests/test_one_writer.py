@@ -124,7 +124,7 @@ name: crash
 description: a cell left running by a grid process that died
 base:
   model: {width: 32, depth: 1, pattern: [global_attention]}
-  runtime: {scan: chunked}
+  runtime: {kernels: torch}
   data: {corpus: CORPUS, tokenizer: bytes, seq_len: 32}
   train: {steps: 5000, batch_size: 4, eval_every: 200, eval_windows: 2, log_every: 5, warmup_steps: 2,
           checkpoint_every: 20}

@@ -236,7 +236,7 @@ def test_records_fields_and_tensorboard(workdir):
     assert s["wall_s"] > 0 and s["peak_rss_bytes"] > 50 * 2**20
     env = json.loads((out / "env.json").read_text())
     for key in ("python", "torch", "threads", "cpu_model", "device", "precision", "precision_reason",
-                "scan_backend", "git_commit", "hostname", "start_time"):
+                "kernels", "git_commit", "hostname", "start_time"):
         assert key in env, key
     assert env["threads"] == 1 and env["device"] == "cpu" and env["precision"] == "fp32"
     assert env["allocator"].startswith(("glibc", "unchanged"))  # blockyard.train.allocator
@@ -549,13 +549,13 @@ def test_seeds_change_init_and_data(workdir):
 
 
 @pytest.mark.slow
-def test_scan_backend_and_threads_applied(workdir):
+def test_kernels_choice_and_threads_applied(workdir):
     import torch
 
     threads = torch.get_num_threads()
     wanted = 3 if threads != 3 else 2  # any count other than the current one shows that it was applied
     cfg = load_config(write_config(workdir, "scan", train={"steps": 2},
-                                   runtime={"scan": "reference", "threads": wanted}, model={"pattern": ["recurrence"]}))
+                                   runtime={"kernels": "reference", "threads": wanted}, model={"pattern": ["recurrence"]}))
     out = workdir / "scan_run"
     seen = []
 
@@ -567,8 +567,8 @@ def test_scan_backend_and_threads_applied(workdir):
     assert summary["status"] == "done" and seen == [wanted]  # applied while training
     assert read_metrics(out / "metrics.jsonl")[-1]["probe_threads"] == float(wanted)  # hook metrics reach val lines
     env = json.loads((out / "env.json").read_text())
-    assert env["scan_backend"]["requested"] == "reference" and env["threads"] == wanted
-    assert env["scan_backend"]["rg_lru_cpu"] == "PyTorch ops around the reference scan"
+    assert env["kernels"]["requested"] == "reference" and env["threads"] == wanted
+    assert env["kernels"]["rg_lru_cpu"] == "PyTorch ops around the reference scan"
     assert torch.get_num_threads() == threads  # and restored after
 
 
@@ -612,7 +612,7 @@ def test_compiled_run_trains_resumes_exactly_and_its_checkpoint_loads_eagerly(wo
     assert not any(k.startswith("_orig_mod.") for k in found.state["model"])
     runtime, _ = runtime_mod.resolve_runtime(cfg.runtime)
     data = load_data(cfg)
-    eager = build_model(cfg.model, data.vocab_size, scan_backend=runtime.scan_backend)
+    eager = build_model(cfg.model, data.vocab_size, kernels=runtime.kernels)
     eager.load_state_dict(found.state["model"])  # strict: the same keys as the eager module's
     assert "forward" not in vars(eager)
     with torch.no_grad():
