@@ -139,8 +139,8 @@ class LanguageModel(nn.Module):
         self.blocks = nn.ModuleList(blocks)
         self.final_norm = RMSNorm(cfg.width, cfg.norm_eps, kernels=kernels)
         self.head = None if cfg.tie_embeddings else nn.Linear(cfg.width, vocab_size, bias=False)
-        # Tied head: scale its input by width^-1/2 (Raffel et al. 2020, JMLR, arXiv:1910.10683). Without it a token's own
-        # embedding dominates the residual stream at init and its logit is init_std * width,
+        # Tied head: scale its input by width^-1/2 (Raffel et al. 2020, JMLR, arXiv:1910.10683). Without it a
+        # token's own embedding dominates the residual stream at init and its logit is init_std * width,
         # which puts the fresh loss far above ln(vocab) at width 256.
         self.readout_scale = cfg.width**-0.5 if cfg.tie_embeddings else 1.0
         self.width_scaling: dict[str, ParamScaling] = {}

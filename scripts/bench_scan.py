@@ -21,7 +21,7 @@ from pathlib import Path
 import torch
 
 from blockyard.bench.targets import SCAN_TARGET_RATIO as TARGET_RATIO
-from blockyard.kernels import linear_scan, kernels_info
+from blockyard.kernels import kernels_info, linear_scan
 
 
 def interleaved_times(fns: dict[str, Callable[[], None]], warmup: int, repeats: int) -> dict[str, list[float]]:

@@ -15,7 +15,6 @@ import subprocess
 import sys
 
 import pytest
-
 from _helpers import child_env
 
 # Allocate eight 16 MiB blocks (every page written), free them, five times; report the minor page

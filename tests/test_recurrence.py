@@ -2,7 +2,8 @@
 
 Sources: De et al. 2024 (arXiv:2402.19427), sec. 2.4, eqs. 1-4 and fig. 2 (the block and the RG-LRU);
 Orvieto et al. 2023 (arXiv:2303.06349): complex diagonal recurrence, ring init, the
-sqrt(1 - |lambda|^2) normalisation; Gu et al. 2022 (arXiv:2206.11893, id from memory): fixed diagonal decay, linear time-invariant.
+sqrt(1 - |lambda|^2) normalisation; Gu et al. 2022 (arXiv:2206.11893, id from memory): fixed
+diagonal decay, linear time-invariant.
 """
 
 from __future__ import annotations

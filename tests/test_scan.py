@@ -20,7 +20,7 @@ import textwrap
 import pytest
 import torch
 
-from blockyard.kernels import KERNELS, build, check_backend, linear_scan, kernels_info, scan_reference
+from blockyard.kernels import KERNELS, build, check_backend, kernels_info, linear_scan, scan_reference
 from blockyard.kernels import scan as scan_mod
 
 FAST = ("torch", "compiled")

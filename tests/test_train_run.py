@@ -554,8 +554,8 @@ def test_kernels_choice_and_threads_applied(workdir):
 
     threads = torch.get_num_threads()
     wanted = 3 if threads != 3 else 2  # any count other than the current one shows that it was applied
-    cfg = load_config(write_config(workdir, "scan", train={"steps": 2},
-                                   runtime={"kernels": "reference", "threads": wanted}, model={"pattern": ["recurrence"]}))
+    cfg = load_config(write_config(workdir, "scan", train={"steps": 2}, model={"pattern": ["recurrence"]},
+                                   runtime={"kernels": "reference", "threads": wanted}))
     out = workdir / "scan_run"
     seen = []
 

@@ -28,7 +28,7 @@ def scan_figures(shape: tuple[int, int, int] = (16, 256, 256), repeats: int = 15
     8 (the backward reads dL/dh, a, h and writes dL/da, dL/db). Timing and inputs come from the
     kernels' own ``scripts/bench_scan.py`` (round-robin, so load from other processes hits all alike).
     """
-    from blockyard.kernels import resolve_backend, kernels_info
+    from blockyard.kernels import kernels_info, resolve_backend
 
     bs = _bench_scan_module()
     if bs is None:

@@ -9,9 +9,9 @@ what a choice resolves to; ``build.load_kernels`` builds and loads every kernel.
 from blockyard.kernels.scan import (
     KERNELS,
     check_backend,
+    kernels_info,
     linear_scan,
     resolve_backend,
-    kernels_info,
     scan_chunked,
     scan_compiled,
     scan_reference,

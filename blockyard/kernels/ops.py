@@ -1,14 +1,15 @@
 """The C++ kernels as torch custom operators (``torch.library``), each with a fake-tensor kernel and autograd.
 
 Registered under the stable names ``blockyard::linear_scan``, ``rg_lru``, ``causal_conv``, ``geglu``,
-``gelu_mul`` and ``rms_norm`` (and their backward ops), their implementations call the compiled library of ``build.py``, whose namespace
-is a hash of the source. The fake kernels only describe output shapes and dtypes, so
-FakeTensorMode (the memory estimator) and ``torch.compile`` trace through the ops without the
-library, or a compiler, being present.
+``gelu_mul`` and ``rms_norm`` (and their backward ops), their implementations call the compiled
+library of ``build.py``, whose namespace is a hash of the source. The fake kernels only describe
+output shapes and dtypes, so FakeTensorMode (the memory estimator) and ``torch.compile`` trace
+through the ops without the library, or a compiler, being present.
 
 The ops are first-derivative only (their backward ops have no autograd of their own); the
-pure-PyTorch paths (``runtime.kernels: torch``: ``blockyard.kernels.scan``, ``rg_lru_reference``, torch's
-own conv, GeLU and norm) remain the references, the fallback when the library cannot be built, and support double backward.
+pure-PyTorch paths (``runtime.kernels: torch``: ``blockyard.kernels.scan``, ``rg_lru_reference``,
+torch's own conv, GeLU and norm) remain the references, the fallback when the library cannot be
+built, and support double backward.
 """
 
 from __future__ import annotations

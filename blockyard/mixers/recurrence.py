@@ -22,10 +22,11 @@ backend picks the causal depthwise conv: ``causal_depthwise_conv`` (torch's grou
 reference) or the C++ op ``blockyard.kernels.ops.causal_conv_fused`` (``causal_conv`` chooses).
 
 Ablation knobs (``RecurrenceOptions``): ``gate: false`` is a fixed-decay diagonal recurrence in the
-style of the diagonal state space models of Gu et al. 2022 (arXiv:2206.11893, id from memory): a = sigmoid(Lambda), constant over time, and no input gate either,
-so the recurrence is linear time-invariant; ``complex: true`` is a diagonal complex recurrence in
-the style of the linear recurrent unit of Orvieto et al. 2023 (arXiv:2303.06349); ``input_norm: false`` drops the sqrt(1 - a^2) factor;
-``c``, ``conv_width``, ``gate_blocks`` and ``width_mult`` as their help says.
+style of the diagonal state space models of Gu et al. 2022 (arXiv:2206.11893, id from memory):
+a = sigmoid(Lambda), constant over time, and no input gate either, so the recurrence is linear
+time-invariant; ``complex: true`` is a diagonal complex recurrence in the style of the linear
+recurrent unit of Orvieto et al. 2023 (arXiv:2303.06349); ``input_norm: false`` drops the
+sqrt(1 - a^2) factor; ``c``, ``conv_width``, ``gate_blocks`` and ``width_mult`` as their help says.
 """
 
 from __future__ import annotations
@@ -76,10 +77,12 @@ class RecurrenceOptions:
         min=0.0)
     conv_width: int = opt(4, "width of the causal depthwise Conv1D before the RG-LRU (0 = no conv)", min=0)
     gate: bool = opt(
-        True, "RG-LRU gates r_t and i_t; false = fixed decay a = sigmoid(Lambda) and no input gate (linear time-invariant)")
+        True, "RG-LRU gates r_t and i_t; false = fixed decay a = sigmoid(Lambda) and no input gate "
+        "(linear time-invariant)")
     c: float = opt(8.0, "decay exponent scale: log a_t = -c r_t softplus(-Lambda) (unused when gate is false)", min=0.0)
     input_norm: bool = opt(True, "scale the input by sqrt(1 - a_t^2) so the state keeps unit variance")
-    complex: bool = opt(False, "diagonal complex state in the style of Orvieto et al. 2023 (arXiv:2303.06349); output Re(h)")
+    complex: bool = opt(False, "diagonal complex state in the style of Orvieto et al. 2023 (arXiv:2303.06349); "
+                        "output Re(h)")
     gate_blocks: int = opt(
         4, "blocks of the block-diagonal gate weights W_a, W_x; must divide C (unused when gate is false)", min=1)
 
