@@ -307,7 +307,6 @@ def test_grad_accum_uses_consecutive_micro_batches(workdir, monkeypatch):
 # ----------------------------------------------------------------------------- divergence
 
 
-@pytest.mark.slow
 def test_divergence_stops_with_exit_3(workdir, capsys):
     path = write_config(workdir, "diverge", train={"lr": 30.0, "warmup_steps": 0, "grad_clip": 0.0, "steps": 40})
     out = workdir / "diverge_run"
@@ -332,7 +331,6 @@ def test_divergence_stops_with_exit_3(workdir, capsys):
 # ----------------------------------------------------------------------------- finished and foreign dirs
 
 
-@pytest.mark.slow
 def test_done_dir_is_not_retrained_and_other_config_refused(workdir, capsys):
     path = write_config(workdir, "done")
     out = workdir / "done_run"
@@ -413,7 +411,6 @@ def existing_run(workdir) -> Path:
     return out
 
 
-@pytest.mark.slow
 @pytest.mark.parametrize("args,names", BAD, ids=[b[1] for b in BAD])
 def test_bad_input_exits_2_with_one_line_and_leaves_dir(workdir, existing_run, capsys, args, names):
     before = snapshot(existing_run)
@@ -426,7 +423,6 @@ def test_bad_input_exits_2_with_one_line_and_leaves_dir(workdir, existing_run, c
     assert snapshot(existing_run) == before
 
 
-@pytest.mark.slow
 def test_cuda_device_absent_is_a_user_error(workdir, existing_run, capsys):
     import torch
 
