@@ -84,7 +84,8 @@ def kernels_info(backend: str = "auto") -> dict[str, Any]:
         "requested": check_backend(backend),
         "resolved_cpu_float32": resolved,
         # The real RG-LRU runs as the fused C++ op where the backend resolves to compiled.
-        "rg_lru_cpu": "fused C++ op" if resolved == "compiled" else f"PyTorch ops around the {'chunked' if resolved == 'torch' else resolved} scan",
+        "rg_lru_cpu": ("fused C++ op" if resolved == "compiled"
+                       else f"PyTorch ops around the {'chunked' if resolved == 'torch' else resolved} scan"),
         # The MLP's GeGLU unit and the RMSNorms run as C++ ops under the same condition.
         "geglu_rms_norm_cpu": "fused C++ ops" if resolved == "compiled" else "PyTorch ops",
         "compiled": build.build_status(),
