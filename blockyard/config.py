@@ -196,9 +196,11 @@ class RuntimeConfig:
                          "CPU at about 0.6x fp32 speed, to check what bf16 does to a result",
                          choices=("fp32", "bf16", "bf16_emulated"))
     activation_checkpointing: bool = opt(False, "recompute each residual block in backward to save memory")
-    scan: str = opt("auto", "C++ kernels: compiled = the fused RG-LRU op, the C++ scan and conv, the MLP's fused "
-                    "GeGLU; chunked / reference = PyTorch ops; auto = compiled where it builds, else chunked",
-                    choices=("auto", "reference", "chunked", "compiled"))
+    kernels: str = opt("auto", "C++ kernels: compiled = the fused RG-LRU op, the C++ scan and conv, the MLP's fused "
+                       "GeGLU and the RMSNorm (exit 2 where they do not build); torch = torch's ops (the chunked "
+                       "scan); reference = torch's ops with the sequential scan (the ground truth, slow); "
+                       "auto = compiled where it builds, else torch",
+                       choices=("auto", "compiled", "torch", "reference"))
     compile: bool = opt(False, "torch.compile the model for training after a 15-40 s warm-up; its gain depends on "
                         "the CPU (blockyard bench prints compiled/eager); eager with a warning where it fails")
 
@@ -332,6 +334,46 @@ def apply_overrides(data: dict[str, Any], overrides: list[str] | tuple[str, ...]
     return out
 
 
+# ----------------------------------------------------------------------------- renamed keys
+
+# ``runtime.kernels`` was called ``runtime.scan``, and its value ``torch`` was called ``chunked``.
+FORMER_KERNELS_KEY = "scan"
+FORMER_KERNELS_VALUES = {"chunked": "torch"}
+
+
+def refuse_former_keys(data: dict[str, Any]) -> None:
+    """A config that still writes ``runtime.scan`` gets one line saying what to write instead."""
+    runtime = data.get("runtime")
+    if isinstance(runtime, dict) and FORMER_KERNELS_KEY in runtime:
+        value = runtime[FORMER_KERNELS_KEY]
+        new = FORMER_KERNELS_VALUES.get(value, value) if isinstance(value, str) else "auto"
+        raise ConfigError(f"runtime.{FORMER_KERNELS_KEY}", f"was renamed: write runtime.kernels: {new} instead")
+
+
+def saved_config_data(data: dict[str, Any]) -> dict[str, Any]:
+    """A run dir's own saved config in today's keys: one written before ``runtime.scan`` was renamed
+    ``runtime.kernels`` is translated silently (same choice, same hash), so old run dirs resume."""
+    runtime = data.get("runtime")
+    if not isinstance(runtime, dict) or FORMER_KERNELS_KEY not in runtime:
+        return data
+    runtime = dict(runtime)
+    value = runtime.pop(FORMER_KERNELS_KEY)
+    runtime["kernels"] = FORMER_KERNELS_VALUES.get(value, value)
+    return {**data, "runtime": runtime}
+
+
+def _hash_form(data: dict[str, Any]) -> dict[str, Any]:
+    """``data`` with ``runtime.kernels`` spelled as it was before the rename (``runtime.scan``, ``torch``
+    as ``chunked``), so every run dir and grid cell hashed before the rename keeps its hash."""
+    runtime = data.get("runtime")
+    if not isinstance(runtime, dict) or "kernels" not in runtime:
+        return data
+    former = {new: old for old, new in FORMER_KERNELS_VALUES.items()}
+    runtime = {FORMER_KERNELS_KEY if k == "kernels" else k: former.get(v, v) if k == "kernels" else v
+               for k, v in runtime.items()}
+    return {**data, "runtime": runtime}
+
+
 def config_from_dict(data: dict[str, Any], base_dir: Path | None = None) -> Config:
     """Validate a plain dict (already merged) into a ``Config``; mixer entries by their kind.
 
@@ -340,6 +382,7 @@ def config_from_dict(data: dict[str, Any], base_dir: Path | None = None) -> Conf
     from blockyard.mixers import MIXERS
     from blockyard.mixers.plugins import load_plugins, resolve_plugin_paths
 
+    refuse_former_keys(data)
     data = copy.deepcopy(data)
     if "plugins" in data:
         plugin_paths = resolve_plugin_paths(data["plugins"], base_dir)
@@ -406,7 +449,7 @@ def dict_hash(data: dict[str, Any], base_dir: Path | None = None, length: int = 
     """
     from blockyard.mixers.plugins import file_digest, resolve_plugin_paths
 
-    data = dict(data)
+    data = _hash_form(dict(data))
     data.pop("name", None)
     paths = resolve_plugin_paths(data.pop("plugins", None), base_dir)
     if paths:

@@ -7,7 +7,7 @@ MLPs (Shazeer 2020), head tied to the embedding by default (Press & Wolf 2017), 
 
 Init scheme: embeddings and every linear weight ~ N(0, init_std); the output projection of
 each mixer and MLP (modules marked ``residual_out``, blockyard/mixers/base.py) ~ N(0, init_std / sqrt(2 * depth)),
-so that the residual stream's variance does not grow with depth (Radford et al. 2019, OpenAI report, sec. 2.3);
+so that the residual stream's variance does not grow with depth (Radford et al. 2019, technical report, sec. 2.3);
 linear biases zero; norm gains one. Mixers then re-initialise their own special parameters
 (decay rates, convolutions) in ``reset_special_parameters``; torch's LSTM keeps torch's init.
 
@@ -53,7 +53,7 @@ def geglu_reference(h: torch.Tensor) -> torch.Tensor:
 
 def geglu(h: torch.Tensor, backend: str = "auto") -> torch.Tensor:
     """``geglu_reference`` through the C++ op (``blockyard.kernels.ops.geglu_fused``: one pass forward
-    and one backward instead of two and four) where ``backend`` (``runtime.scan``) resolves to the
+    and one backward instead of two and four) where ``backend`` (``runtime.kernels``) resolves to the
     compiled kernels for CPU float32 / bfloat16 / float64 inputs, else the reference itself."""
     return geglu_fused(h) if uses_fused_op(h, backend) else geglu_reference(h)
 
@@ -61,21 +61,21 @@ def geglu(h: torch.Tensor, backend: str = "auto") -> torch.Tensor:
 class RMSNorm(nn.RMSNorm):
     """torch's ``nn.RMSNorm`` (Zhang & Sennrich 2019; same parameter, same state-dict key), run through
     the fused C++ op (``blockyard.kernels.ops.rms_norm_fused``: one pass forward and one backward
-    instead of torch's chain of elementwise ops) where ``kernel_backend`` (``runtime.scan``) resolves
+    instead of torch's chain of elementwise ops) where ``kernels`` (``runtime.kernels``) resolves
     to the compiled kernels and autograd records the call; torch's own forward (the reference) elsewhere.
 
     Without autograd torch's forward is one fused kernel already, and for a decode step's single
     row it costs less per call than the custom op (measured 19 vs 49 us at width 256).
     """
 
-    def __init__(self, width: int, eps: float, *, kernel_backend: str = "auto") -> None:
+    def __init__(self, width: int, eps: float, *, kernels: str = "auto") -> None:
         super().__init__(width, eps=eps)
-        self.kernel_backend = check_backend(kernel_backend)
+        self.kernels = check_backend(kernels)
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         recorded = torch.is_grad_enabled() and (x.requires_grad or bool(self.weight is not None
                                                                        and self.weight.requires_grad))
-        if recorded and self.weight is not None and self.eps is not None and uses_fused_op(x, self.kernel_backend):
+        if recorded and self.weight is not None and self.eps is not None and uses_fused_op(x, self.kernels):
             return rms_norm_fused(x, self.weight, self.eps)
         return super().forward(x)
 
@@ -106,21 +106,21 @@ def keyed_rows(rows: int, cols: int, base: int, key: str) -> torch.Tensor:
 class MLP(nn.Module):
     """``gated``: W_o (GeLU(W_g x) * W_u x) (GeGLU, Shazeer 2020); ``plain``: W_o GeLU(W_i x).
 
-    ``kernel_backend`` (``runtime.scan``) picks the GeGLU unit's implementation (``geglu``).
+    ``kernels`` (``runtime.kernels``) picks the GeGLU unit's implementation (``geglu``).
     """
 
-    def __init__(self, width: int, hidden: int, kind: str, *, kernel_backend: str = "auto") -> None:
+    def __init__(self, width: int, hidden: int, kind: str, *, kernels: str = "auto") -> None:
         super().__init__()
         self.kind = kind
         self.hidden = hidden
-        self.kernel_backend = check_backend(kernel_backend)
+        self.kernels = check_backend(kernels)
         self.proj_in = nn.Linear(width, 2 * hidden if kind == "gated" else hidden, bias=False)
         self.proj_out = nn.Linear(hidden, width, bias=False)
         mark_residual_out(self.proj_out)
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         h = self.proj_in(x)
-        h = geglu(h, self.kernel_backend) if self.kind == "gated" else F.gelu(h)
+        h = geglu(h, self.kernels) if self.kind == "gated" else F.gelu(h)
         return self.proj_out(h)
 
     @staticmethod
@@ -144,12 +144,12 @@ class Block(nn.Module):
     """One pre-norm residual block: temporal mixer, then MLP (skipped when the MLP is empty)."""
 
     def __init__(self, mixer: Mixer, width: int, hidden: int, mlp_kind: str, eps: float, *,
-                 kernel_backend: str = "auto") -> None:
+                 kernels: str = "auto") -> None:
         super().__init__()
-        self.mixer_norm = RMSNorm(width, eps, kernel_backend=kernel_backend)
+        self.mixer_norm = RMSNorm(width, eps, kernels=kernels)
         self.mixer = mixer
-        self.mlp_norm = RMSNorm(width, eps, kernel_backend=kernel_backend) if hidden > 0 else None
-        self.mlp = MLP(width, hidden, mlp_kind, kernel_backend=kernel_backend) if hidden > 0 else None
+        self.mlp_norm = RMSNorm(width, eps, kernels=kernels) if hidden > 0 else None
+        self.mlp = MLP(width, hidden, mlp_kind, kernels=kernels) if hidden > 0 else None
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         x = x + self.mixer(self.mixer_norm(x))
@@ -169,7 +169,7 @@ class LanguageModel(nn.Module):
     """A causal language model over a vocabulary of ``vocab_size`` tokens."""
 
     def __init__(self, cfg: ModelConfig, vocab_size: int, *, activation_checkpointing: bool = False,
-                 scan_backend: str = "auto") -> None:
+                 kernels: str = "auto") -> None:
         super().__init__()
         # by_path: one number from the global generator (seeded with the init seed by the caller) keys every
         # draw; taken first, so it does not depend on which modules the constructors below build.
@@ -182,15 +182,15 @@ class LanguageModel(nn.Module):
         blocks = []
         for layer, (_name, mcfg) in enumerate(cfg.layer_mixers()):
             cls = MIXERS[mcfg.kind]
-            # The scan backend (runtime.scan) goes to the mixers that run a linear scan, explicitly.
-            kernels = {"scan_backend": scan_backend} if getattr(cls, "takes_scan_backend", False) else {}
-            mixer = cls(cfg.width, mcfg.options, layer=layer, depth=cfg.depth, **kernels)
-            blocks.append(Block(mixer, cfg.width, cfg.mlp_hidden, cfg.mlp, cfg.norm_eps, kernel_backend=scan_backend))
+            # The kernel choice (runtime.kernels) goes to the mixers that run C++ ops, explicitly.
+            extra = {"kernels": kernels} if getattr(cls, "takes_kernels", False) else {}
+            mixer = cls(cfg.width, mcfg.options, layer=layer, depth=cfg.depth, **extra)
+            blocks.append(Block(mixer, cfg.width, cfg.mlp_hidden, cfg.mlp, cfg.norm_eps, kernels=kernels))
         self.blocks = nn.ModuleList(blocks)
-        self.final_norm = RMSNorm(cfg.width, cfg.norm_eps, kernel_backend=scan_backend)
+        self.final_norm = RMSNorm(cfg.width, cfg.norm_eps, kernels=kernels)
         self.head = None if cfg.tie_embeddings else nn.Linear(cfg.width, vocab_size, bias=False)
-        # Tied head: scale its input by width^-1/2 (Raffel et al. 2020, T5). Without it a token's own
-        # embedding dominates the residual stream at init and its logit is init_std * width,
+        # Tied head: scale its input by width^-1/2 (Raffel et al. 2020, JMLR, arXiv:1910.10683). Without it a
+        # token's own embedding dominates the residual stream at init and its logit is init_std * width,
         # which puts the fresh loss far above ln(vocab) at width 256.
         self.readout_scale = cfg.width**-0.5 if cfg.tie_embeddings else 1.0
         self.width_scaling: dict[str, ParamScaling] = {}
@@ -309,11 +309,11 @@ class LanguageModel(nn.Module):
 
 
 def build_model(cfg: ModelConfig, vocab_size: int, *, activation_checkpointing: bool = False,
-                scan_backend: str = "auto") -> LanguageModel:
+                kernels: str = "auto") -> LanguageModel:
     """The model for ``cfg`` over ``vocab_size`` tokens (the config was validated on load).
 
-    ``scan_backend``: the linear-scan / fused-recurrence implementation (``runtime.scan``, as the
-    trainer's ``Runtime.scan_backend``), passed to the recurrent mixers and to the MLPs' GeGLU unit.
+    ``kernels``: the linear-scan / fused-recurrence implementation (``runtime.kernels``, as the
+    trainer's ``Runtime.kernels``), passed to the recurrent mixers and to the MLPs' GeGLU unit.
     """
     return LanguageModel(cfg, vocab_size, activation_checkpointing=activation_checkpointing,
-                         scan_backend=scan_backend)
+                         kernels=kernels)

@@ -125,7 +125,7 @@ def job_steps(spec: dict[str, Any]) -> dict[str, Any]:
     batches = [data.train_batch(i) for i in range(cfg.train.steps)]
     torch.manual_seed(cfg.train.seed)
     model = build_model(cfg.model, data.vocab_size, activation_checkpointing=cfg.runtime.activation_checkpointing,
-                        scan_backend=runtime.scan_backend)
+                        kernels=runtime.kernels)
     model.train()
     optimizer = build_optimizer(model, cfg.train)
     scheduler = build_scheduler(optimizer, cfg.train, cfg.train.steps)
@@ -136,7 +136,7 @@ def job_steps(spec: dict[str, Any]) -> dict[str, Any]:
     peak = peak_rss_bytes()
     est = estimate_activation_memory(cfg.model, data.vocab_size, cfg.train.batch_size, cfg.data.seq_len,
                                      activation_checkpointing=cfg.runtime.activation_checkpointing,
-                                     scan_backend=runtime.scan_backend)
+                                     kernels=runtime.kernels)
     return {"baseline_rss_bytes": baseline, "peak_rss_bytes": peak, "peak_before_training_bytes": before,
             "activation_bytes": peak - baseline, "losses": losses, "estimate_bytes": est.total_bytes}
 

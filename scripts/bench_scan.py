@@ -21,7 +21,7 @@ from pathlib import Path
 import torch
 
 from blockyard.bench.targets import SCAN_TARGET_RATIO as TARGET_RATIO
-from blockyard.kernels import linear_scan, scan_backend_info
+from blockyard.kernels import kernels_info, linear_scan
 
 
 def interleaved_times(fns: dict[str, Callable[[], None]], warmup: int, repeats: int) -> dict[str, list[float]]:
@@ -109,8 +109,8 @@ def main() -> None:
     torch.set_num_threads(args.threads)
     shape = tuple(args.shape)
     x = make_inputs(shape)
-    info = scan_backend_info()  # builds the kernel first, outside the timings
-    backends = ["reference", "chunked"] + (["compiled"] if info["compiled"]["state"] == "built" else [])
+    info = kernels_info()  # builds the kernel first, outside the timings
+    backends = ["reference", "torch"] + (["compiled"] if info["compiled"]["state"] == "built" else [])
 
     fns = {"multiply-add floor": (floor_forward(x), floor_step(x))}
     fns.update({name: (scan_forward(x, name), scan_step(x, name)) for name in backends})
@@ -151,7 +151,7 @@ def main() -> None:
             "copy_gbps": gbps,
             "target_ratio": TARGET_RATIO,
             "results": results,
-            "scan_backend_info": info,
+            "kernels_info": info,
         }
         args.json.write_text(json.dumps(payload, indent=2) + "\n")
 

@@ -66,7 +66,7 @@ def write_tiny_run(root: Path, words: list[str], *, seed: int, train: dict[str, 
     """``root`` with ``corpus.txt`` (:func:`write_word_corpus`) and ``run.yaml`` (:func:`tiny_run_config`, the
     chunked scan so that no process builds the compiled kernel), for tests that run ``blockyard train``."""
     write_word_corpus(root / "corpus.txt", words, seed=seed, lines=lines)
-    config = tiny_run_config(root, train, runtime={"threads": 1, "scan": "chunked"})
+    config = tiny_run_config(root, train, runtime={"threads": 1, "kernels": "torch"})
     (root / "run.yaml").write_text(yaml.safe_dump(config))
     return root
 

@@ -25,7 +25,7 @@ def kernels():
     """Build the C++ kernels once per test module (tens of seconds on a fresh machine); skip without a compiler."""
     if build.find_compiler() is None:
         pytest.skip("no C++ compiler on this machine")
-    assert build.load_scan_ops() is not None, build.build_status()["error"]
+    assert build.load_kernels() is not None, build.build_status()["error"]
 
 
 def mixer_options(kind: str, width: int = 32, **options: Any) -> Any:

@@ -15,8 +15,7 @@ import subprocess
 import sys
 
 import pytest
-
-from tests._helpers import child_env
+from _helpers import child_env
 
 # Allocate eight 16 MiB blocks (every page written), free them, five times; report the minor page
 # faults of the last three rounds and what keep_freed_memory said (or "default" when not called).
@@ -41,6 +40,7 @@ def _run(mode: str, **env: str) -> dict:
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 
+@pytest.mark.slow
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="glibc malloc settings: Linux only")
 def test_kept_memory_is_not_page_faulted_in_again():
     kept = _run("keep")
@@ -58,6 +58,7 @@ def test_kept_memory_is_not_page_faulted_in_again():
     assert kept["faults"] < 0.05 * pages, kept
 
 
+@pytest.mark.slow
 def test_users_own_malloc_settings_are_left_alone():
     got = _run("keep", GLIBC_TUNABLES="glibc.malloc.trim_threshold=1048576")
     assert got["said"] == "unchanged: malloc configured by the user through GLIBC_TUNABLES"

@@ -219,7 +219,7 @@ def test_bench_json_has_the_fields_a_comparison_reads(tmp_path, monkeypatch):
         t for t in result["targets"] if t["name"].endswith("global attention fp32"))["note"]
     assert "paired steps [95%]" in format_report(result)
     assert {t["name"] for t in result["targets"]} >= {"blockyard train / plain loop tokens/s, global attention fp32"}
-    assert "chunked" in result["scan"]["backends"]
+    assert "torch" in result["scan"]["backends"]
     shares = result["profile"]["attention-fp32"]["share"]
     assert sum(shares.values()) == pytest.approx(1.0)
     assert {"mixer:global_attention", "mlp", "optimizer", "head/loss"} <= set(shares)
@@ -276,9 +276,9 @@ def test_profile_charges_backward_ops_to_the_block_that_ran_forward():
     # GELU runs only in the MLP, SDPA only in attention, the embedding lookup and the loss once each:
     # their forward ops and, through autograd's sequence numbers, their backward nodes must land in
     # those blocks' buckets.
-    # (runtime.scan: chunked keeps the MLP's GeGLU as torch's ops; the C++ op's case follows.)
+    # (runtime.kernels: chunked keeps the MLP's GeGLU as torch's ops; the C++ op's case follows.)
     torch.manual_seed(0)
-    model = build_model(tiny_cfg().model, 64, scan_backend="chunked")
+    model = build_model(tiny_cfg().model, 64, kernels="torch")
     x, y = random_batches(64, 2, 16, 1)[0]
     forward, backward = _buckets_by_op(model, x, y)
     assert forward["aten::gelu"] == backward["GeluBackward0"] == {"mlp"}
@@ -293,10 +293,10 @@ def test_profile_charges_backward_ops_to_the_block_that_ran_forward():
 
 
 def test_profile_charges_the_fused_geglu_to_the_mlp():
-    if build.load_scan_ops() is None:
+    if build.load_kernels() is None:
         pytest.skip(f"C++ kernels unavailable: {build.build_status()['error']}")
     torch.manual_seed(0)
-    model = build_model(tiny_cfg().model, 64, scan_backend="compiled")
+    model = build_model(tiny_cfg().model, 64, kernels="compiled")
     x, y = random_batches(64, 2, 16, 1)[0]
     _, backward = _buckets_by_op(model, x, y)
     geglu = [name for name in backward if "blockyard_geglu" in name]
@@ -410,6 +410,7 @@ def test_huge_config_warns_with_estimate_and_suggestions():
     assert memory_warning(cfg, 256, available_bytes=2**60) is None
 
 
+@pytest.mark.slow
 def test_trainer_warns_before_training_when_activations_will_not_fit(tmp_path, monkeypatch, capsys):
     # The machine is made to look tiny (64 KiB available) instead of building a huge config.
     import blockyard.cost.memory as me
@@ -469,11 +470,11 @@ def _bench_memory():
 
 
 def test_memory_probe_runs_the_steps_it_was_given(tmp_path):
-    from blockyard.kernels import scan_backend_info
+    from blockyard.kernels import kernels_info
 
     # Build (or find) the scan kernel first: a first build inside the child would import the
     # compiler tooling after its baseline and be counted as activation memory.
-    scan_backend_info()
+    kernels_info()
     bm = _bench_memory()
     cfg = bm.base_config(str(tmp_path / "cache"), width=32, depth=2, seq_len=32, batch=4, steps=2)
     out = bm.run_child({"job": "steps", "config": cfg}, timeout_s=300)
@@ -511,6 +512,7 @@ def test_tree_rss_sums_the_process_and_every_descendant():
     assert bm.tree_rss_bytes(tree) == 10 + 200 + 3000 + 500_000  # a process that exited counts 0
 
 
+@pytest.mark.slow
 def test_sampled_peak_sees_the_child_processes():
     import sys
 

@@ -172,6 +172,7 @@ def test_train_step_follows_fp32_and_emulates_its_backward(monkeypatch):
         assert b == pytest.approx(a, rel=0.02)
 
 
+@pytest.mark.slow
 def test_a_bf16_emulated_run_says_so_in_env_json(tmp_path, monkeypatch):
     monkeypatch.setenv("BLOCKYARD_CACHE", str(tmp_path / "cache"))
     cfg = config_from_dict({

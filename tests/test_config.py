@@ -9,6 +9,7 @@ from pathlib import Path
 import pytest
 import yaml
 
+from blockyard.cli import main
 from blockyard.config import config_from_dict, config_hash, dump_config, load_config, replace
 from blockyard.errors import ConfigError, UserError
 from blockyard.mixers.attention import GlobalAttentionOptions
@@ -225,17 +226,19 @@ def run_cli(*args: str, cwd: Path) -> subprocess.CompletedProcess:
     ],
     ids=["depth", "heads", "set-override"],
 )
-def test_train_with_a_bad_config_exits_2_with_one_error_line(tmp_path, content, overrides, key):
+def test_train_with_a_bad_config_exits_2_with_one_error_line(tmp_path, capsys, content, overrides, key):
+    """In-process through the CLI's ``main()``; the subprocess smoke test for ``train`` is the next one."""
     bad = write(tmp_path / "bad.yaml", content)
-    proc = run_cli("train", str(bad), "--out", str(tmp_path / "run"), *overrides, cwd=tmp_path)
-    assert proc.returncode == 2, proc.stderr
-    lines = proc.stderr.strip("\n").split("\n")
-    assert len(lines) == 1 and lines[0].startswith(f"error: {key}: "), proc.stderr
-    assert "Traceback" not in proc.stderr
+    assert main(["train", str(bad), "--out", str(tmp_path / "run"), *overrides]) == 2
+    err = capsys.readouterr().err
+    lines = err.strip("\n").split("\n")
+    assert len(lines) == 1 and lines[0].startswith(f"error: {key}: "), err
     assert not (tmp_path / "run").exists()  # nothing was written for a config that never loaded
 
 
+@pytest.mark.slow
 def test_train_with_a_missing_config_file_exits_2(tmp_path):
+    """The real command in a child process: exit 2, one line, no traceback."""
     proc = run_cli("train", str(tmp_path / "nope.yaml"), cwd=tmp_path)
     assert proc.returncode == 2
     assert proc.stderr.startswith("error: ") and "nope.yaml" in proc.stderr and proc.stderr.count("\n") == 1
@@ -250,3 +253,55 @@ def test_exponent_floats_without_a_dot_parse_as_numbers(tmp_path):
     cfg = load_config(path, ["train.weight_decay=1e-2"])
     assert cfg.train.lr == 3e-4
     assert cfg.train.weight_decay == 1e-2
+
+
+# ----------------------------------------------------------------------------- runtime.kernels (was runtime.scan)
+
+
+@pytest.mark.parametrize("old,new", [("chunked", "torch"), ("compiled", "compiled"), ("reference", "reference")])
+def test_the_former_runtime_scan_key_says_what_to_write_instead(tmp_path, capsys, old, new):
+    path = write(tmp_path / "old.yaml", f"runtime:\n  scan: {old}\n")
+    assert main(["train", str(path), "--out", str(tmp_path / "run")]) == 2
+    err = capsys.readouterr().err
+    assert err == f"error: runtime.scan: was renamed: write runtime.kernels: {new} instead\n"
+    assert not (tmp_path / "run").exists()
+    with pytest.raises(ConfigError, match="runtime.scan"):
+        load_config(write(tmp_path / "c.yaml", "model: {width: 64}\n"), [f"runtime.scan={old}"])
+
+
+def test_a_run_dirs_saved_config_from_before_the_rename_is_read_with_the_same_hash(tmp_path):
+    """Old run dirs resume: their saved ``runtime.scan: chunked`` reads as ``runtime.kernels: torch``.
+
+    The hash an old version gave that config is recomputed here as its ``dict_hash`` did (sha256 of
+    the sorted-key JSON without the name), so a run dir or grid cell keeps its id across the rename.
+    """
+    import hashlib
+    import json
+
+    from blockyard.eval.generate import read_run_config
+    from blockyard.train.dirstate import stored_config_hash
+
+    cfg = config_from_dict({"runtime": {"kernels": "torch", "threads": 1}})
+    old = yaml.safe_load(dump_config(cfg))
+    old["runtime"] = {("scan" if k == "kernels" else k): ("chunked" if k == "kernels" else v)
+                      for k, v in old["runtime"].items()}
+    (tmp_path / "config.yaml").write_text(yaml.safe_dump(old, sort_keys=False))
+    old_hash = hashlib.sha256(json.dumps({k: v for k, v in old.items() if k != "name"}, sort_keys=True,
+                                         separators=(",", ":")).encode()).hexdigest()[:8]
+    assert stored_config_hash(tmp_path / "config.yaml") == config_hash(cfg) == old_hash
+    assert read_run_config(tmp_path).runtime.kernels == "torch"
+    other = config_from_dict({"runtime": {"kernels": "compiled", "threads": 1}})
+    assert config_hash(other) != config_hash(cfg)  # the choice still enters the hash
+
+
+def test_compiled_kernels_without_a_working_build_exit_2_at_start_up(tmp_path, capsys, monkeypatch):
+    from blockyard.kernels import build
+
+    monkeypatch.setattr(build, "load_kernels", lambda: None)
+    monkeypatch.setattr(build, "build_status", lambda: {"error": "no C++ compiler found (tried c++, g++)\nmore"})
+    path = write(tmp_path / "c.yaml", "runtime:\n  kernels: compiled\n")
+    assert main(["train", str(path), "--out", str(tmp_path / "run")]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and err.startswith("error: runtime.kernels: compiled: the C++ kernels do not build")
+    assert "no C++ compiler found" in err and "write auto" in err
+    assert not (tmp_path / "run").exists()

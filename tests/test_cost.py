@@ -147,6 +147,7 @@ def test_blocks_with_configs_prints_costs_and_plots(tmp_path):
     cfg = load_config(PRESETS[0], ["model.depth=3"])
     assert f"{cost.param_breakdown(cfg)['total']:,d}" in text
     assert "L=65536" in text and cost.format_bytes(cost.state_bytes(cfg, 65536)) in text
+    assert f"training FLOPs/token at seq_len={cfg.data.seq_len} " in text and "n_ctx" not in text  # our key
     assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
 
 

@@ -51,6 +51,7 @@ def test_batches_are_a_pure_function_of_seed_and_step_across_a_resume(cache):
     assert torch.equal(same_data.train_batch(3)[0], full[3][0])
 
 
+@pytest.mark.slow
 def test_batch_stream_identical_in_another_process(cache):
     here = digest(load_data(cfg_for(cache)).train_batch(s) for s in range(5))
     code = (

@@ -118,6 +118,7 @@ def _prepare_in_child(corpus: str, cache: str, queue, second_waits) -> None:
     queue.put((digest, data.prepared.manifest["prepared_by"]["pid"], str(data.prepared.path)))
 
 
+@pytest.mark.slow
 def test_two_concurrent_preparers_get_one_identical_cache(tmp_path):
     make_docs(tmp_path / "c", 30)
     ctx = multiprocessing.get_context("spawn")

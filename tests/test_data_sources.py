@@ -263,6 +263,7 @@ def test_plays_extraction_takes_only_gut_texts(tmp_path):
 # ----------------------------------------------------------------------------- hub (offline only)
 
 
+@pytest.mark.slow
 def test_hub_offline_mode_fails_fast_with_one_line(tmp_path):
     # A subprocess: datasets reads the offline switches when it is imported.
     # Fast because it never touches the network: every connection attempt in the child is recorded.
@@ -302,6 +303,20 @@ def test_hub_unreachable_fails_fast_before_datasets(monkeypatch):
         src.resolve_corpus("hub:some/set:cfg", Path("."))
     # One probe, with the hub timeout, decided it before datasets was imported.
     assert probes == [(("127.0.0.1", port), src.HUB_PROBE_TIMEOUT_S)]
+
+
+def test_the_probed_hub_is_the_one_the_datasets_library_loads_from(monkeypatch):
+    # The library's endpoint setting (huggingface_hub.constants.ENDPOINT, which its HF_ENDPOINT
+    # variable overrides), so a mirror set for the library is the address probed.
+    from huggingface_hub import constants
+
+    monkeypatch.setattr(src, "HUB_PROBE", None)
+    monkeypatch.setattr(constants, "ENDPOINT", "https://mirror.example:8443")
+    assert src.hub_address() == ("mirror.example", 8443)
+    monkeypatch.setattr(constants, "ENDPOINT", "http://plain.example")
+    assert src.hub_address() == ("plain.example", 80)
+    monkeypatch.setattr(src, "HUB_PROBE", ("127.0.0.1", 9))
+    assert src.hub_address() == ("127.0.0.1", 9)
 
 
 def test_reachable_probe_against_a_local_listener():

@@ -92,6 +92,7 @@ def run_dir(root) -> Path:
                                      "probe_distances": [4, 40], "probe_sequences": 6})
 
 
+@pytest.mark.slow
 def test_eval_at_1x_equals_the_trainers_final_val_loss(run_dir, capsys):
     # Same checkpoint, same windows (same seed and placement rule), same fp32 forward; only the
     # summation order differs (float64 here), so the two agree to float32 rounding.
@@ -110,6 +111,7 @@ def test_eval_at_1x_equals_the_trainers_final_val_loss(run_dir, capsys):
     assert f"{rows['4x']['loss']:.4f}" in printed and "wrote" in printed
 
 
+@pytest.mark.slow
 def test_eval_json_keeps_other_lengths_of_the_same_checkpoint(run_dir):
     evaluate.eval_command(run_dir, "1x")
     evaluate.eval_command(run_dir, "3x", probes="mqar")
@@ -120,6 +122,7 @@ def test_eval_json_keeps_other_lengths_of_the_same_checkpoint(run_dir):
     assert evaluate.merge_eval(old, {**result, "lengths": [], "probes": {}})["lengths"] == []
 
 
+@pytest.mark.slow
 def test_eval_bad_input(run_dir, capsys):
     assert main(["eval", str(run_dir), "--lengths", "100000x"]) == 2
     assert "validation split" in capsys.readouterr().err
@@ -128,6 +131,7 @@ def test_eval_bad_input(run_dir, capsys):
     assert main(["eval", str(run_dir), "--buckets", "0"]) == 2
 
 
+@pytest.mark.slow
 def test_probe_accuracies_go_into_every_val_line(run_dir):
     val = [line for line in read_metrics(run_dir / "metrics.jsonl") if line["split"] == "val"]
     assert len(val) == 2
@@ -143,6 +147,7 @@ def test_probe_accuracies_go_into_every_val_line(run_dir):
         {k: val[-1][k] for k in keys})
 
 
+@pytest.mark.slow
 def test_task_runs_extrapolate_on_longer_task_sequences(root):
     run_dir = train(root, "passkey", data={"corpus": "task:passkey", "seq_len": 80},
                     train={"steps": 15, "eval_every": 15, "checkpoint_every": 15})
@@ -252,6 +257,7 @@ def test_the_config_accepts_exactly_the_probes_that_exist():
         assert config_from_dict({"eval": {"probes": [name]}}).eval.probes == (name,)
 
 
+@pytest.mark.slow
 def test_a_probe_error_stops_training_before_the_run_dir_changes(root):
     cfg = load_config(root / "text.yaml", ["eval.probes=[mqar]", "eval.probe_pairs=[65]"])
     with pytest.raises(ConfigError, match="eval.probe_pairs"):
@@ -268,6 +274,7 @@ def test_probe_params_leave_the_task_config_alone():
 # ----------------------------------------------------------------------------- plots for the grid report
 
 
+@pytest.mark.slow
 def test_length_plot_and_seed_means(run_dir, tmp_path):
     evaluate.eval_command(run_dir, "1x,2x")
     e = evaluate.read_eval(run_dir)
@@ -288,6 +295,7 @@ def test_probe_plot_reads_the_val_line_keys(tmp_path):
     assert evaluate.plot_probe_accuracy({"v": [{"loss": 1.0}]}, tmp_path / "none.png") is None
 
 
+@pytest.mark.slow
 def test_report_figures_from_cell_dirs(run_dir, root, tmp_path):
     evaluate.eval_command(run_dir, "1x,2x")
     plain = train(root, "plain", train={"steps": 15, "eval_every": 15, "checkpoint_every": 15})  # no probes, no eval

@@ -31,6 +31,7 @@ REPO = Path(__file__).resolve().parents[1]
 # ----------------------------------------------------------------------------- importing without torch
 
 
+@pytest.mark.slow
 def test_reading_run_dirs_does_not_import_torch():
     # `blockyard grid --status` runs beside an overnight grid: it must start in a blink, so the
     # run-dir reader, the file helpers and the status line import neither torch nor numpy.
@@ -74,6 +75,7 @@ def test_a_waiting_locker_gets_the_lock_when_the_holder_lets_go(tmp_path):
     assert told == [os.getpid()]  # the waiter was told once who it waits for
 
 
+@pytest.mark.slow
 def test_a_killed_holder_leaves_no_stale_lock(tmp_path):
     lock = tmp_path / "x.lock"
     code = ("import sys, time\nfrom blockyard import fs\n"

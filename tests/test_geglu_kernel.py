@@ -13,7 +13,7 @@ import pytest
 import torch
 import torch.nn.functional as F
 
-from blockyard.kernels import build, scan_backend_info
+from blockyard.kernels import build, kernels_info
 from blockyard.kernels.ops import (
     geglu_backward_op,
     geglu_fused,
@@ -101,22 +101,22 @@ def test_fake_kernels_give_shapes_and_dtypes_without_running():
 
 
 def test_backend_choice_and_fallback(kernels, monkeypatch):
-    # runtime.scan picks the MLP's GeGLU too: compiled -> the op, chunked -> torch's ops; a machine
+    # runtime.kernels picks the MLP's GeGLU too: compiled -> the op, chunked -> torch's ops; a machine
     # whose build failed (simulated) falls back to torch's ops under auto.
-    mlp = MLP(8, 12, "gated", kernel_backend="auto")
+    mlp = MLP(8, 12, "gated", kernels="auto")
     x = torch.randn(2, 5, 8)
     calls = []
     monkeypatch.setattr("blockyard.model.geglu_fused", lambda h: calls.append(h.shape) or geglu_reference(h))
     mlp(x)
     assert calls == [(2, 5, 24)]
-    MLP(8, 12, "gated", kernel_backend="chunked")(x)
+    MLP(8, 12, "gated", kernels="torch")(x)
     assert len(calls) == 1
     failed = build._BuildState()
     failed.state, failed.error = "failed", "RuntimeError: simulated: no compiler here"
     monkeypatch.setattr(build, "_STATE", failed)
     h = torch.randn(3, 8)
     assert torch.equal(geglu(h, "auto"), geglu_reference(h)) and len(calls) == 1
-    assert scan_backend_info("auto")["geglu_rms_norm_cpu"] == "PyTorch ops"
+    assert kernels_info("auto")["geglu_rms_norm_cpu"] == "PyTorch ops"
 
 
 # ----------------------------------------------------------------------------- the two-input form
@@ -171,7 +171,7 @@ def test_recurrence_block_uses_the_op_only_under_the_compiled_backend(kernels, m
     calls = []
     monkeypatch.setattr(recurrence, "gelu_mul_fused", lambda a, b: calls.append(a.shape) or F.gelu(a) * b)
     x = torch.randn(2, 6, 16)
-    RecurrenceBlock(16, RecurrenceOptions(), layer=0, depth=1, scan_backend="compiled")(x)
+    RecurrenceBlock(16, RecurrenceOptions(), layer=0, depth=1, kernels="compiled")(x)
     assert calls == [(2, 6, 16)]
-    RecurrenceBlock(16, RecurrenceOptions(), layer=0, depth=1, scan_backend="chunked")(x)
+    RecurrenceBlock(16, RecurrenceOptions(), layer=0, depth=1, kernels="torch")(x)
     assert len(calls) == 1

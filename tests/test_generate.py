@@ -114,6 +114,7 @@ def run_dir(tmp_path_factory) -> Path:
     return root / "run"
 
 
+@pytest.mark.slow
 def test_sample_command_is_the_step_generation_of_the_newest_checkpoint(run_dir, capsys):
     run = load_run(run_dir)
     assert run.step == 20
@@ -126,6 +127,7 @@ def test_sample_command_is_the_step_generation_of_the_newest_checkpoint(run_dir,
     assert printed.startswith("the cat") and len(expected.encode()) == len("the cat") + 25
 
 
+@pytest.mark.slow
 def test_sample_skips_a_corrupt_newest_checkpoint_without_renaming_it(run_dir, tmp_path):
     import shutil
 
@@ -144,12 +146,14 @@ def test_sample_skips_a_corrupt_newest_checkpoint_without_renaming_it(run_dir, t
     (["--prompt", "a", "--top-k", "-2"], "--top-k"),
     (["--prompt", "a", "--threads", "-1"], "--threads"),
 ])
+@pytest.mark.slow
 def test_sample_bad_arguments_exit_2(run_dir, capsys, argv, message):
     assert main(["sample", str(run_dir), *argv]) == 2
     err = capsys.readouterr().err
     assert err.startswith("error: ") and message in err and "Traceback" not in err
 
 
+@pytest.mark.slow
 def test_sample_bad_run_dirs(tmp_path):
     with pytest.raises(UserError, match="no such run dir"):
         sample_command(tmp_path / "missing", "a", 1, temperature=0, top_k=0, seed=0)

@@ -5,6 +5,8 @@ from __future__ import annotations
 import multiprocessing as mp
 from pathlib import Path
 
+import pytest
+
 from blockyard.grid.index import GridIndex
 
 WRITERS = 4
@@ -30,6 +32,7 @@ def _writer(path: str, k: int) -> None:
     index.close()
 
 
+@pytest.mark.slow
 def test_concurrent_writers_lose_no_update(tmp_path):
     path = tmp_path / "index.sqlite"
     with GridIndex(path) as index:

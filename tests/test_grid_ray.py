@@ -21,6 +21,8 @@ from blockyard.grid.executors import import_ray
 from blockyard.grid.index import open_index
 from blockyard.grid.run import run_grid
 
+pytestmark = pytest.mark.slow  # full tier: grids on a Ray cluster
+
 SPEC = """
 name: two-cells
 base:

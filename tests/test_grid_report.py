@@ -347,3 +347,68 @@ def test_the_power_sentence_and_the_method_say_when_they_hold(tmp_path):
     assert "Assumptions of the error bound: the paired differences are independent across seeds" in method
     assert "about 10% at 5 pairs and 8% at 10 pairs" in method  # measured in tests/test_divergence_verdicts.py
     assert "worst-rank composite (Lachin 1999" in method and "Fragile:" in method
+
+
+# ----------------------------------------------------------------------------- the HTML page and the figures
+
+
+def test_html_renders_emphasis_strong_and_code_and_leaves_products_alone():
+    """Inline marks as CommonMark reads them (spec 0.31, sec. 6.2: a `*` opens emphasis when no space
+    follows it and closes it when no space precedes it; code spans take their content literally)."""
+    from blockyard.grid.report import Doc
+
+    doc = Doc()
+    doc.p("*every* group, **bold**, `a*b*c`, 2*3*4 and a * b * c")
+    doc.table(["*x*"], [["**y**"]])
+    html = doc.html(Path("."), "t")
+    assert "<em>every</em> group, <strong>bold</strong>, <code>a*b*c</code>, 2*3*4 and a * b * c" in html
+    assert "<td><strong>y</strong></td>" in html and "*every*" not in html
+
+
+def test_wide_tables_scroll_inside_the_page():
+    from blockyard.grid.report import Doc
+
+    doc = Doc()
+    doc.table([f"column {i}" for i in range(40)], [[str(i) for i in range(40)]])
+    html = doc.html(Path("."), "t")
+    assert ".wide{overflow-x:auto" in html
+    assert re.search(r"<div class='wide'><table>.*</table></div>", html, re.S)
+
+
+def test_token_axis_reads_in_one_unit_without_an_offset():
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from blockyard.grid.report import label_token_axis
+
+    for top, unit in ((1.4e6, "M"), (9e5, "k"), (3e9, "G")):
+        fig, ax = plt.subplots()
+        ax.plot([top / 7, top], [2.0, 1.0])
+        label_token_axis(ax.xaxis)
+        fig.canvas.draw()
+        labels = [t.get_text() for t in ax.get_xticklabels() if t.get_text()]
+        assert ax.xaxis.get_offset_text().get_text() == ""  # matplotlib's "1e6" is gone
+        assert labels and all(lab == "0" or lab.endswith(unit) for lab in labels), labels
+        plt.close(fig)
+    fig, ax = plt.subplots()
+    ax.set_xlim(0, 1.45e6)
+    ax.set_xticks([0, 2e5, 1.4e6])
+    label_token_axis(ax.xaxis)
+    fig.canvas.draw()
+    assert [t.get_text() for t in ax.get_xticklabels()] == ["0", "0.2M", "1.4M"]
+    plt.close(fig)
+
+
+def test_figures_draw_in_our_palette(tmp_path):
+    import matplotlib
+
+    from blockyard import palette
+
+    make_grid(tmp_path, {"ref": {0: 2.0, 1: 2.1}, "b": {0: 1.9, 1: 2.0}})
+    write_report(tmp_path)
+    assert matplotlib.rcParams["axes.prop_cycle"].by_key()["color"] == list(palette.SERIES)
+    assert len(set(palette.SERIES)) == len(palette.SERIES)
+    verdicts = {palette.BETTER, palette.WORSE, palette.EQUIVALENT, palette.UNDECIDED, palette.OUTSIDE}
+    assert len(verdicts) == 5

@@ -19,6 +19,8 @@ from _helpers import start_grid, wait_until
 from blockyard.grid.index import open_index
 from blockyard.grid.run import run_grid
 
+pytestmark = pytest.mark.slow  # full tier: a grid killed and resumed
+
 SPEC = """
 name: resume
 description: a team checking that an overnight grid survives a crash

@@ -14,6 +14,8 @@ from blockyard.grid.index import open_index
 from blockyard.grid.run import run_grid
 from blockyard.grid.status import status_text
 
+pytestmark = pytest.mark.slow  # full tier: grids trained end to end
+
 # Tiny cells: the pydoc corpus (ships with Python), width 32, one block, 32-token windows.
 TINY_BASE = """
   model: {width: 32, depth: 1, pattern: [global_attention], mlp_expansion: 2.0}

@@ -111,6 +111,7 @@ def test_bad_specs_fail_with_one_line_naming_the_key(tmp_path, existing_grid_dir
     check_refused_at_parse(path, message, existing_grid_dir, capsys)
 
 
+@pytest.mark.slow
 def test_bad_spec_exit_code_of_the_real_command(tmp_path, existing_grid_dir):
     path = tmp_path / "bad.yaml"
     path.write_text("base: {model: {width: 32}}\nseeds: [0]\naxes: {model.width: 64}\n")
@@ -410,6 +411,7 @@ def test_demo_grids_expand_and_match_parameters(name, variants, seeds, groups):
         assert gates == {"gated": True, "no-gate": False, "null-control": True}
 
 
+@pytest.mark.slow
 def test_planning_a_grid_builds_no_model_and_loads_no_report_libraries():
     # The grid parent stays resident while its workers train; issue #8 bounds a grid at N x one
     # cell + 300 MB. Planning counts parameters analytically (blockyard.cost) and the report's scipy

@@ -100,7 +100,7 @@ def test_equivalence_equals_statsmodels_paired_tost():
 @pytest.mark.parametrize("effect, expected_n", [(0.2, 199), (0.5, 34), (0.8, 15), (1.0, 10)])
 def test_seeds_for_difference_matches_power_tables(effect, expected_n):
     # Sample sizes of the two-sided one-sample (= paired) t-test at alpha 0.05 and power 0.80 for
-    # effect size d = delta / sd, as G*Power 3 (Faul et al. 2007) reports them (values from memory;
+    # effect size d = delta / sd, as Faul et al. 2007 (Behavior Research Methods 39) tabulate them (values from memory;
     # Cohen 1988 table 2.4.1 gives the same to within a unit).
     assert stats.seeds_for_difference(0.01, 0.01 / effect, 0.05) == expected_n
 

@@ -28,6 +28,8 @@ from blockyard.grid.run import run_grid
 from blockyard.rundir import read_metrics, read_summary
 from blockyard.train import run_training
 
+pytestmark = pytest.mark.slow  # full tier: kills and resumes real processes
+
 WORDS = "kill the run at any moment and it must come back the same as if nothing had happened".split()
 
 
@@ -141,7 +143,7 @@ name: killed
 description: an overnight grid whose process is killed again and again
 base:
   model: {width: 32, depth: 1, pattern: [global_attention]}
-  runtime: {scan: chunked}
+  runtime: {kernels: torch}
   data: {corpus: CORPUS, tokenizer: bytes, seq_len: 32}
   train: {steps: 1500, batch_size: 4, eval_every: 500, eval_windows: 2, log_every: 25, warmup_steps: 10,
           checkpoint_every: 100}

@@ -15,6 +15,8 @@ import pytest
 from blockyard.cost import analytic as cost
 from blockyard.grid.spec import expand_cells, load_grid
 
+pytestmark = pytest.mark.slow  # full tier: the lessons' grids
+
 LESSONS = Path(__file__).resolve().parents[1] / "configs" / "lessons"
 GRIDS = sorted(glob.glob(str(LESSONS / "*.yaml")))
 

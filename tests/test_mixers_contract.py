@@ -218,3 +218,10 @@ def test_cost_and_init_checks_catch_a_wrong_formula_and_a_missing_mark():
     assert result.passed is False and result.value == 1
     mixer.out.residual_out = False
     assert check_residual_out(mixer).passed is False
+
+
+def test_flops_check_names_the_context_by_our_key():
+    from blockyard.mixers.contract import check_flops
+
+    result = check_flops(MIXERS["global_attention"], WIDTH, mixer_options("global_attention", WIDTH))
+    assert result.passed is True and result.figure.startswith("extra FLOPs/token at seq_len 1: ")

@@ -93,7 +93,7 @@ def test_untied_head_is_a_separate_trained_matrix():
 
 
 def test_init_scales_residual_output_projections_by_inverse_sqrt_of_2_depth():
-    # Radford et al. 2019 (OpenAI report, section 2.3): residual-layer weights scaled by 1/sqrt(N), N = 2 * depth
+    # Radford et al. 2019 (technical report, section 2.3): residual-layer weights scaled by 1/sqrt(N), N = 2 * depth
     # residual branches here; everything else ~ N(0, init_std).
     depth, width, std = 6, 256, 0.02
     model = make(width=width, depth=depth, init_std=std)

@@ -40,6 +40,7 @@ def root(tmp_path_factory) -> Path:
     return write_tiny_run(tmp_path_factory.mktemp("writers"), words, seed=2, train=train)
 
 
+@pytest.mark.slow
 def test_a_second_train_on_a_live_run_dir_is_refused_and_the_first_is_unharmed(root):
     lone = root / "lone"
     run_training(load_config(root / "run.yaml"), lone, progress="silent")
@@ -67,6 +68,7 @@ def test_a_second_train_on_a_live_run_dir_is_refused_and_the_first_is_unharmed(r
     assert writer_pid(out) is None
 
 
+@pytest.mark.slow
 def test_eval_and_force_on_a_live_run_dir_are_refused(root, capsys):
     out = root / "held"
     run_training(load_config(root / "run.yaml", ["train.steps=10"]), out, progress="silent")
@@ -81,6 +83,7 @@ def test_eval_and_force_on_a_live_run_dir_are_refused(root, capsys):
     assert {p.name: p.stat().st_mtime_ns for p in out.rglob("*") if p.is_file() and p.name != "writer.lock"} == before
 
 
+@pytest.mark.slow
 def test_wait_lets_a_cell_take_over_when_the_old_writer_ends(root):
     # A grid cell is started with --wait: after a grid process is killed, its cells still write
     # their last checkpoint while the rerun's cells start; those wait instead of failing.
@@ -103,6 +106,7 @@ def test_wait_lets_a_cell_take_over_when_the_old_writer_ends(root):
     assert summary["status"] == "done"
 
 
+@pytest.mark.slow
 def test_a_killed_trainer_leaves_no_lock_behind(root):
     out = root / "killed"
     proc = subprocess.Popen([sys.executable, "-m", "blockyard", "train", str(root / "run.yaml"), "--out", str(out)],
@@ -120,7 +124,7 @@ name: crash
 description: a cell left running by a grid process that died
 base:
   model: {width: 32, depth: 1, pattern: [global_attention]}
-  runtime: {scan: chunked}
+  runtime: {kernels: torch}
   data: {corpus: CORPUS, tokenizer: bytes, seq_len: 32}
   train: {steps: 5000, batch_size: 4, eval_every: 200, eval_windows: 2, log_every: 5, warmup_steps: 2,
           checkpoint_every: 20}
@@ -131,6 +135,7 @@ seeds: [0, 1]
 """
 
 
+@pytest.mark.slow
 def test_status_after_the_grid_and_its_cell_were_killed_says_stopped(root, tmp_path):
     spec = tmp_path / "crash.yaml"
     spec.write_text(textwrap.dedent(SPEC).replace("CORPUS", str(root / "corpus.txt")))

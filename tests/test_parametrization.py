@@ -195,6 +195,7 @@ def test_config_keys_are_validated():
     assert config_from_dict({"model": {"parametrization": "standard", "base_width": 66}}).model.base_width == 66
 
 
+@pytest.mark.slow
 def test_a_mup_run_trains_end_to_end_and_logs_the_peak_lr(tmp_path):
     """Through the trainer (run_training): the extra lr groups reach the optimizer, resume state and log."""
     from blockyard.rundir import read_metrics
@@ -259,6 +260,7 @@ def _coordinate_change(parametrization: str, width: int, seed: int, steps: int =
     return {name: _rms(after[name] - before[name]) for name in before}
 
 
+@pytest.mark.slow
 def test_coordinate_check_flat_under_mup_growing_under_standard(one_thread):
     """Yang et al. 2022's coordinate check, widths 32-256, 10 steps at lr 3e-3, mean of 2 seeds.
 

@@ -19,6 +19,7 @@ import torch
 import yaml
 from conftest import LEAKY, LINEAR_ATTENTION
 
+from blockyard.cli import main
 from blockyard.config import config_from_dict, config_hash, dump_config, load_config
 from blockyard.errors import UserError
 from blockyard.mixers import MIXERS
@@ -79,7 +80,9 @@ def test_parallel_form_matches_the_masked_sum_and_the_recurrence():
     torch.testing.assert_close(torch.stack(outs, dim=2), masked, rtol=1e-5, atol=1e-9)
 
 
+@pytest.mark.slow
 def test_example_passes_check_and_the_leaky_one_fails_at_position_0():
+    """The subprocess smoke test of ``check``: the real command's exit codes 0 and 1."""
     good = _cli("check", str(LINEAR_ATTENTION))
     assert good.returncode == 0, good.stdout + good.stderr
     assert "all 9 checks pass" in good.stdout
@@ -89,6 +92,7 @@ def test_example_passes_check_and_the_leaky_one_fails_at_position_0():
     assert "FAIL" in line and "output 0 changes when input 1 does" in line
 
 
+@pytest.mark.slow
 def test_check_a_config_runs_the_model_checks_too(tmp_path):
     plugin = _copy(LINEAR_ATTENTION, tmp_path / "p")
     cfg = _config(tmp_path, plugin, "linear_attention")
@@ -101,17 +105,18 @@ def test_check_a_config_runs_the_model_checks_too(tmp_path):
 # ----------------------------------------------------------------------------- the gate in front of training
 
 
-def test_train_refuses_a_leaking_plugin_and_writes_nothing(tmp_path):
+def test_train_refuses_a_leaking_plugin_and_writes_nothing(tmp_path, capsys):
+    """In-process through the CLI's ``main()``: exit 2 and one line."""
     cfg = _config(tmp_path, _copy(LEAKY, tmp_path / "p"), "leaky_linear_attention")
     run_dir = tmp_path / "run"
-    out = _cli("train", str(cfg), "--out", str(run_dir))
-    assert out.returncode == 2, out.stdout + out.stderr
-    lines = out.stderr.strip().splitlines()
-    assert len(lines) == 1 and "Traceback" not in out.stderr
+    assert main(["train", str(cfg), "--out", str(run_dir)]) == 2
+    lines = capsys.readouterr().err.strip().splitlines()
+    assert len(lines) == 1
     assert "fails the mixer contract: causality: output 0 changes when input 1 does" in lines[0]
     assert not run_dir.exists()
 
 
+@pytest.mark.slow
 def test_no_check_trains_anyway_and_env_json_says_so(tmp_path):
     cfg = load_config(_config(tmp_path, _copy(LEAKY, tmp_path / "p"), "leaky_linear_attention"))
     summary = run_training(cfg, tmp_path / "run", progress="silent", check=False)
@@ -119,6 +124,7 @@ def test_no_check_trains_anyway_and_env_json_says_so(tmp_path):
     assert json.loads((tmp_path / "run" / "env.json").read_text())["mixer_check"] == "skipped (--no-check)"
 
 
+@pytest.mark.slow
 def test_a_changed_plugin_is_a_changed_config(tmp_path):
     plugin = _copy(LINEAR_ATTENTION, tmp_path / "p")
     cfg_path = _config(tmp_path, plugin, "linear_attention")
@@ -220,14 +226,15 @@ def test_bad_plugins_values_name_the_key(tmp_path, value, key):
         config_from_dict({"plugins": value})
 
 
-def test_bad_plugin_from_the_command_line_exits_2_with_one_line(tmp_path):
+def test_bad_plugin_from_the_command_line_exits_2_with_one_line(tmp_path, capsys):
+    """In-process through the CLI's ``main()``; the subprocess smoke test of ``check`` is the example's test."""
     path = _bad_plugin(tmp_path, BAD_PLUGINS["raises"][0])
-    for args in (("check", str(path)), ("train", str(_write(tmp_path / "c.yaml", f"plugins: [{path.name}]\n")))):
-        out = _cli(*args)
-        assert out.returncode == 2 and "Traceback" not in out.stderr, out.stderr
-        assert out.stderr.strip().count("\n") == 0 and "bad.py, line 2" in out.stderr
-    missing = _cli("check", str(tmp_path / "nope.py"))
-    assert missing.returncode == 2 and "nope.py: no such file" in missing.stderr
+    for args in (["check", str(path)], ["train", str(_write(tmp_path / "c.yaml", f"plugins: [{path.name}]\n"))]):
+        assert main(args) == 2
+        err = capsys.readouterr().err
+        assert err.strip().count("\n") == 0 and "bad.py, line 2" in err, err
+    assert main(["check", str(tmp_path / "nope.py")]) == 2
+    assert "nope.py: no such file" in capsys.readouterr().err
 
 
 def _write(path: Path, text: str) -> Path:

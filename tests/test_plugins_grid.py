@@ -46,6 +46,7 @@ def plugin_grid(folder: Path, plugin: Path, kind: str, extra: str = "", softmax:
     return spec
 
 
+@pytest.mark.slow
 def test_grid_with_a_plugin_runs_every_cell_from_the_grid_copy(tmp_path):
     spec = plugin_grid(tmp_path / "spec", LINEAR_ATTENTION, "linear_attention")
     lines: list[str] = []

@@ -1,8 +1,9 @@
 """The recurrence mixer against the published equations of the RG-LRU block and its ablations.
 
 Sources: De et al. 2024 (arXiv:2402.19427), sec. 2.4, eqs. 1-4 and fig. 2 (the block and the RG-LRU);
-Orvieto et al. 2023 (arXiv:2303.06349), LRU: complex diagonal recurrence, ring init, the
-sqrt(1 - |lambda|^2) normalisation; Gu et al. 2022 (S4D): fixed diagonal decay, linear time-invariant.
+Orvieto et al. 2023 (arXiv:2303.06349): complex diagonal recurrence, ring init, the
+sqrt(1 - |lambda|^2) normalisation; Gu et al. 2022 (arXiv:2206.11893, id from memory): fixed
+diagonal decay, linear time-invariant.
 """
 
 from __future__ import annotations
@@ -44,9 +45,9 @@ def _scan_loop(a: torch.Tensor, b: torch.Tensor, h0: torch.Tensor | None = None)
     return torch.stack(out, dim=1)
 
 
-def _block(width: int = WIDTH, scan_backend: str = "auto", **opts) -> RecurrenceBlock:
+def _block(width: int = WIDTH, kernels: str = "auto", **opts) -> RecurrenceBlock:
     torch.manual_seed(0)
-    return MIXERS["recurrence"](width, RecurrenceOptions(**opts), layer=0, depth=2, scan_backend=scan_backend)
+    return MIXERS["recurrence"](width, RecurrenceOptions(**opts), layer=0, depth=2, kernels=kernels)
 
 
 def _block_reference(m: RecurrenceBlock, x: torch.Tensor) -> torch.Tensor:
@@ -76,7 +77,7 @@ def _block_reference(m: RecurrenceBlock, x: torch.Tensor) -> torch.Tensor:
     if o.gate:
         r = torch.sigmoid(u @ torch.block_diag(*p["lru.gate_a.weight"]) + p["lru.gate_a.bias"])
         i = torch.sigmoid(u @ torch.block_diag(*p["lru.gate_x.weight"]) + p["lru.gate_x.bias"])
-    else:  # S4D-style ablation: no recurrence gate and no input gate
+    else:  # fixed-decay ablation (Gu et al. 2022): no recurrence gate and no input gate
         r = torch.ones_like(u)
         i = torch.ones_like(u)
     if o.complex:
@@ -118,24 +119,24 @@ FORWARD_CASES = [
 
 @pytest.mark.parametrize("opts", FORWARD_CASES, ids=lambda d: ",".join(f"{k}={v}" for k, v in d.items()) or "default")
 def test_forward_matches_published_equations(opts):
-    # De et al. 2024, fig. 2 / eqs. 1-4 (and the LRU / S4D-style ablations): the fast path through
+    # De et al. 2024, fig. 2 / eqs. 1-4 (and the complex and fixed-decay ablations): the fast path through
     # the project scan equals a direct sequential loop over the equations.
     m = _block(**opts)
     x = torch.randn(2, 9, WIDTH)
     torch.testing.assert_close(m(x).double(), _block_reference(m, x), atol=1e-5, rtol=1e-5)
 
 
-@pytest.fixture(params=["reference", "chunked", "compiled"])
-def scan_backend(request):
-    """Each backend of runtime.scan in turn, passed to the block the way the model builder passes it."""
+@pytest.fixture(params=["reference", "torch", "compiled"])
+def kernels(request):
+    """Each backend of runtime.kernels in turn, passed to the block the way the model builder passes it."""
     return request.param
 
 
 @pytest.mark.parametrize("opts", [{}, {"gate": False}, {"complex": True}, {"complex": True, "gate": False}])
-def test_every_scan_backend_matches_published_equations(opts, scan_backend):
-    # As above, for each backend the runtime.scan key selects (compiled: the fused RG-LRU op for the
+def test_every_scan_backend_matches_published_equations(opts, kernels):
+    # As above, for each backend the runtime.kernels key selects (compiled: the fused RG-LRU op for the
     # real variants); T = 40 takes the chunked path past its short cut.
-    m = _block(scan_backend=scan_backend, **opts)
+    m = _block(kernels=kernels, **opts)
     x = torch.randn(2, 40, WIDTH)
     torch.testing.assert_close(m(x).double(), _block_reference(m, x), atol=1e-5, rtol=1e-5)
     x.requires_grad_(True)
@@ -149,7 +150,7 @@ def test_recurrence_width_follows_width_mult():
     assert _block(12).rec_width == 12
 
 
-def test_rg_lru_gradcheck_float64(scan_backend):
+def test_rg_lru_gradcheck_float64(kernels):
     # Finite differences vs autograd through De et al. 2024's eqs. 1-4 (torch.autograd.gradcheck).
     torch.manual_seed(1)
     shape = (2, 5, 3)
@@ -164,11 +165,11 @@ def test_rg_lru_gradcheck_float64(scan_backend):
         a.requires_grad_(True)
 
     def real(x, lam, ga, gx, h0):
-        return rg_lru(x, lam, ga, gx, c=8.0, input_norm=True, h0=h0, backend=scan_backend)
+        return rg_lru(x, lam, ga, gx, c=8.0, input_norm=True, h0=h0, backend=kernels)
 
     def cplx(x, lam, ga, gx, h0):
         theta_log = torch.full_like(lam, math.log(0.3))
-        scan = functools.partial(linear_scan, backend=scan_backend)
+        scan = functools.partial(linear_scan, backend=kernels)
         return torch.view_as_real(complex_lru(x, lam - 3.0, theta_log, ga, gx, c=8.0, h0=h0.to(torch.complex128),
                                               scan=scan))
 
@@ -275,7 +276,7 @@ def test_complex_lru_matches_python_complex_loop():
 
 
 def test_gate_off_is_time_invariant_and_linear():
-    # Gu et al. 2022 (S4D): a fixed diagonal decay is an LTI system: superposition and shift
+    # Gu et al. 2022: a fixed diagonal decay is an LTI system: superposition and shift
     # equivariance hold; with the RG-LRU gates (De et al. 2024) they do not.
     torch.manual_seed(9)
     x1, x2 = torch.randn(2, 12, WIDTH), torch.randn(2, 12, WIDTH)

@@ -12,7 +12,7 @@ from __future__ import annotations
 import pytest
 import torch
 
-from blockyard.kernels import build, scan_backend_info, scan_reference
+from blockyard.kernels import build, kernels_info, scan_reference
 from blockyard.kernels.ops import (
     causal_conv_backward_op,
     causal_conv_fused,
@@ -137,8 +137,8 @@ def test_memory_estimate_traces_the_compiled_path(kernels):
     from blockyard.cost.memory import estimate_activation_memory
 
     cfg = config_from_dict({"model": {"width": 32, "depth": 1, "pattern": ["recurrence"]}}).model
-    fused = estimate_activation_memory(cfg, 64, 2, 16, scan_backend="compiled")
-    composed = estimate_activation_memory(cfg, 64, 2, 16, scan_backend="chunked")
+    fused = estimate_activation_memory(cfg, 64, 2, 16, kernels="compiled")
+    composed = estimate_activation_memory(cfg, 64, 2, 16, kernels="torch")
     assert 0 < fused.parts["block:0"] < composed.parts["block:0"]
 
 
@@ -154,7 +154,7 @@ def test_auto_falls_back_to_the_reference_when_the_build_failed(monkeypatch):
     want = values_and_grads(reference, x, lam, ga, gx, h0, c=8.0, input_norm=True)
     for g, w in zip(got, want, strict=True):
         torch.testing.assert_close(g, w, atol=1e-5, rtol=1e-5)
-    info = scan_backend_info("auto")
+    info = kernels_info("auto")
     assert info["rg_lru_cpu"] == "PyTorch ops around the chunked scan" and "simulated" in info["compiled"]["error"]
     with pytest.raises(RuntimeError, match="unavailable: RuntimeError: simulated"):
         rg_lru_fused(x, lam, ga, gx, h0=h0)
@@ -163,7 +163,7 @@ def test_auto_falls_back_to_the_reference_when_the_build_failed(monkeypatch):
 def test_backend_choice_reaches_the_op(kernels):
     x = torch.randn(1, 3, 4)
     assert uses_fused_op(x, "auto") and uses_fused_op(x, "compiled")
-    assert not uses_fused_op(x, "chunked") and not uses_fused_op(x, "reference")
+    assert not uses_fused_op(x, "torch") and not uses_fused_op(x, "reference")
     assert not uses_fused_op(x.to(torch.float16), "auto")  # not a dtype of the op
 
 
@@ -177,8 +177,8 @@ def test_fused_step_equals_the_composed_step_and_leaves_the_state_alone(kernels,
 
     torch.manual_seed(11)
     opts = RecurrenceOptions(gate=gate, conv_width=conv_width, input_norm=input_norm)
-    fused = MIXERS["recurrence"](16, opts, layer=0, depth=2, scan_backend="compiled")
-    composed = MIXERS["recurrence"](16, opts, layer=0, depth=2, scan_backend="chunked")
+    fused = MIXERS["recurrence"](16, opts, layer=0, depth=2, kernels="compiled")
+    composed = MIXERS["recurrence"](16, opts, layer=0, depth=2, kernels="torch")
     composed.load_state_dict(fused.state_dict())
     x = torch.randn(3, 6, 16)
     with torch.no_grad():
@@ -285,8 +285,8 @@ def test_block_gradients_match_between_compiled_and_composed_paths(kernels):
     from blockyard.mixers.recurrence import RecurrenceOptions
 
     torch.manual_seed(12)
-    fast = MIXERS["recurrence"](32, RecurrenceOptions(), layer=0, depth=2, scan_backend="compiled")
-    composed = MIXERS["recurrence"](32, RecurrenceOptions(), layer=0, depth=2, scan_backend="chunked")
+    fast = MIXERS["recurrence"](32, RecurrenceOptions(), layer=0, depth=2, kernels="compiled")
+    composed = MIXERS["recurrence"](32, RecurrenceOptions(), layer=0, depth=2, kernels="torch")
     composed.load_state_dict(fast.state_dict())
     x = torch.randn(3, 21, 32, requires_grad=True)
     grad_y = torch.randn(3, 21, 32)

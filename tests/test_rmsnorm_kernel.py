@@ -81,27 +81,27 @@ def test_fake_kernels_give_shapes_and_dtypes_without_running():
 
 
 def test_module_keeps_torchs_state_dict_and_falls_back(kernels, monkeypatch):
-    # The model's RMSNorm is an nn.RMSNorm (same "weight" key, loads torch's); runtime.scan: chunked and
+    # The model's RMSNorm is an nn.RMSNorm (same "weight" key, loads torch's); runtime.kernels: chunked and
     # a failed build (simulated) run torch's forward, compiled runs the op; all give torch's values.
     torch_norm = torch.nn.RMSNorm(16, eps=1e-6)
     with torch.no_grad():
         torch_norm.weight.normal_()
     x = torch.randn(3, 5, 16)
-    for backend in ("compiled", "chunked", "auto"):
-        norm = RMSNorm(16, 1e-6, kernel_backend=backend)
+    for backend in ("compiled", "torch", "auto"):
+        norm = RMSNorm(16, 1e-6, kernels=backend)
         norm.load_state_dict(torch_norm.state_dict())
         assert isinstance(norm, torch.nn.RMSNorm)
         torch.testing.assert_close(norm(x), torch_norm(x), atol=1e-6, rtol=1e-5)
     calls = []
     monkeypatch.setattr("blockyard.model.rms_norm_fused", lambda *a: calls.append(1) or torch_norm(a[0]))
-    RMSNorm(16, 1e-6, kernel_backend="compiled")(x)
-    RMSNorm(16, 1e-6, kernel_backend="chunked")(x)
+    RMSNorm(16, 1e-6, kernels="compiled")(x)
+    RMSNorm(16, 1e-6, kernels="torch")(x)
     assert calls == [1]
     with torch.no_grad():  # inference (eval, decode): torch's forward, one fused kernel already
-        RMSNorm(16, 1e-6, kernel_backend="compiled")(x)
+        RMSNorm(16, 1e-6, kernels="compiled")(x)
     assert calls == [1]
     failed = build._BuildState()
     failed.state, failed.error = "failed", "RuntimeError: simulated: no compiler here"
     monkeypatch.setattr(build, "_STATE", failed)
-    RMSNorm(16, 1e-6, kernel_backend="auto")(x)
+    RMSNorm(16, 1e-6, kernels="auto")(x)
     assert calls == [1]

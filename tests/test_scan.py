@@ -20,10 +20,10 @@ import textwrap
 import pytest
 import torch
 
-from blockyard.kernels import SCAN_BACKENDS, build, check_backend, linear_scan, scan_backend_info, scan_reference
+from blockyard.kernels import KERNELS, build, check_backend, kernels_info, linear_scan, scan_reference
 from blockyard.kernels import scan as scan_mod
 
-FAST = ("chunked", "compiled")
+FAST = ("torch", "compiled")
 SHAPES = [(1, 1, 1), (2, 1, 3), (1, 7, 3), (3, 9, 5), (2, 64, 4), (2, 333, 17), (1, 50, 3)]
 
 
@@ -32,7 +32,7 @@ def compiled_ops():
     """Build the kernel once per session (tens of seconds on a fresh machine)."""
     if build.find_compiler() is None:
         pytest.skip("no C++ compiler on this machine")
-    ops = build.load_scan_ops()
+    ops = build.load_kernels()
     assert ops is not None, f"the C++ scan kernel did not build: {build.build_status()['error']}"
     return ops
 
@@ -123,7 +123,7 @@ def test_gradcheck_float64(backend, with_h0):
 def test_gradcheck_complex128_chunked():
     a, b, h0 = random_inputs((1, 10, 2), dtype=torch.complex128)
     inputs = [t.requires_grad_() for t in (a, b, h0)]
-    assert torch.autograd.gradcheck(lambda *xs: linear_scan(*xs, backend="chunked"), inputs)
+    assert torch.autograd.gradcheck(lambda *xs: linear_scan(*xs, backend="torch"), inputs)
 
 
 def test_chunked_double_backward():
@@ -131,7 +131,7 @@ def test_chunked_double_backward():
     # derivatives exist; torch.autograd.gradgradcheck checks them by finite differences.
     a, b, h0 = random_inputs((1, 10, 2), dtype=torch.float64)
     inputs = [t.requires_grad_() for t in (a, b, h0)]
-    assert torch.autograd.gradgradcheck(lambda *xs: linear_scan(*xs, backend="chunked"), inputs)
+    assert torch.autograd.gradgradcheck(lambda *xs: linear_scan(*xs, backend="torch"), inputs)
 
 
 @pytest.mark.parametrize("backend", FAST, indirect=True)
@@ -172,7 +172,7 @@ def test_no_grad_and_empty_time(backend):
 def test_chunked_on_cuda_matches_cpu_reference():
     # auto sends CUDA tensors to the chunked backend; it must give the loop's values and gradients there too.
     a, b, h0 = random_inputs((2, 100, 8))
-    assert scan_mod.resolve_backend(a.cuda()) == "chunked"
+    assert scan_mod.resolve_backend(a.cuda()) == "torch"
     got = [t.cpu() for t in values_and_grads(a.cuda(), b.cuda(), h0.cuda(), "auto")]
     assert_all_close(got, values_and_grads(a, b, h0, "reference"), rtol=1e-5, atol=1e-5)
 
@@ -227,17 +227,17 @@ def test_long_sequence_stability(backend, kind):
     ],
     ids=["b-shape", "h0-shape", "a-2d", "dtype-mix", "int", "not-tensor"],
 )
-@pytest.mark.parametrize("backend", SCAN_BACKENDS)
+@pytest.mark.parametrize("backend", KERNELS)
 def test_invalid_inputs_raise_clear_errors(args, error, words, backend):
     with pytest.raises(error, match=words.replace("(", r"\(").replace(")", r"\)")):
         linear_scan(*args, backend=backend)
 
 
 def test_unknown_backend_names_the_allowed_ones():
-    with pytest.raises(ValueError, match="allowed: auto, reference, chunked, compiled"):
+    with pytest.raises(ValueError, match="allowed: auto, compiled, torch, reference"):
         check_backend("nope")
     a, b, _ = random_inputs((1, 3, 2))
-    with pytest.raises(ValueError, match="allowed: auto, reference, chunked, compiled"):
+    with pytest.raises(ValueError, match="allowed: auto, compiled, torch, reference"):
         linear_scan(a, b, backend="fast")
 
 
@@ -246,20 +246,20 @@ def test_the_backend_is_explicit_with_no_process_default(compiled_ops, monkeypat
     assert not hasattr(scan_mod, "set_scan_backend") and not hasattr(scan_mod, "_default_backend")
     a, b, h0 = random_inputs((2, 6, 3))
     calls = []
-    monkeypatch.setattr(scan_mod, "scan_chunked", lambda *xs: calls.append("chunked") or scan_reference(*xs))
-    linear_scan(a, b, h0, backend="chunked")
+    monkeypatch.setattr(scan_mod, "scan_chunked", lambda *xs: calls.append("torch") or scan_reference(*xs))
+    linear_scan(a, b, h0, backend="torch")
     linear_scan(a, b, h0)  # auto, unaffected by the call before: compiled here
-    assert calls == ["chunked"] and scan_mod.resolve_backend(a) == "compiled"
-    assert scan_backend_info("chunked")["requested"] == "chunked"
-    assert scan_backend_info()["resolved_cpu_float32"] == "compiled"
+    assert calls == ["torch"] and scan_mod.resolve_backend(a) == "compiled"
+    assert kernels_info("torch")["requested"] == "torch"
+    assert kernels_info()["resolved_cpu_float32"] == "compiled"
 
 
 def test_auto_rules_by_device_and_dtype(compiled_ops):
     cpu = torch.empty(0)
     assert scan_mod.resolve_backend(cpu) == "compiled"
     assert scan_mod.resolve_backend(cpu.to(torch.complex64)) == "compiled"
-    assert scan_mod.resolve_backend(cpu.to(torch.bfloat16)) == "chunked"
-    assert scan_mod.resolve_backend(torch.empty(0, device="meta")) == "chunked"
+    assert scan_mod.resolve_backend(cpu.to(torch.bfloat16)) == "torch"
+    assert scan_mod.resolve_backend(torch.empty(0, device="meta")) == "torch"
     with pytest.raises(TypeError, match="supports"):
         linear_scan(
             torch.ones(1, 2, 1, dtype=torch.bfloat16), torch.ones(1, 2, 1, dtype=torch.bfloat16), backend="compiled"
@@ -267,7 +267,7 @@ def test_auto_rules_by_device_and_dtype(compiled_ops):
 
 
 def test_backend_info_reports_the_build(compiled_ops):
-    info = scan_backend_info()
+    info = kernels_info()
     assert info["resolved_cpu_float32"] == "compiled" and info["rg_lru_cpu"] == "fused C++ op"
     assert info["compiled"]["state"] == "built" and info["compiled"]["error"] is None
     assert "-O3" in info["compiled"]["cflags"]
@@ -284,11 +284,11 @@ def fresh_build_state(monkeypatch, tmp_path):
 
 def _check_fallback(reason: str) -> None:
     a, b, h0 = random_inputs((2, 30, 3))
-    assert scan_mod.resolve_backend(a) == "chunked"
+    assert scan_mod.resolve_backend(a) == "torch"
     torch.testing.assert_close(linear_scan(a, b, h0), scan_reference(a, b, h0), rtol=1e-5, atol=1e-5)
-    status = scan_backend_info()["compiled"]
+    status = kernels_info()["compiled"]
     assert status["state"] == "failed" and reason in status["error"]
-    with pytest.raises(RuntimeError, match="'compiled' is unavailable"):
+    with pytest.raises(RuntimeError, match="runtime.kernels: compiled is unavailable"):
         linear_scan(a, b, h0, backend="compiled")
 
 
@@ -311,6 +311,7 @@ def test_auto_falls_back_with_a_missing_compiler(fresh_build_state, monkeypatch)
     _check_fallback("Error")
 
 
+@pytest.mark.slow
 def test_ninja_beside_python_is_found_without_path(monkeypatch):
     # CI runs .venv/bin/python without activating the venv: pip's ninja (a project dependency)
     # is then not on PATH, and torch's loader would not find it on its own.
@@ -324,7 +325,7 @@ _CHILD = textwrap.dedent(
     """
     import torch
     from blockyard.kernels import build, linear_scan, scan_reference
-    assert build.load_scan_ops() is not None, build.build_status()["error"]
+    assert build.load_kernels() is not None, build.build_status()["error"]
     a, b = torch.rand(2, 50, 3), torch.randn(2, 50, 3)
     assert torch.equal(linear_scan(a, b, backend="compiled"), scan_reference(a, b))
     print("ok")

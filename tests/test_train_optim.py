@@ -16,8 +16,8 @@ from blockyard.train.loop import token_loss_sum, train_step
 from blockyard.train.optim import build_optimizer, build_scheduler, lr_factor, param_groups, total_steps
 from blockyard.train.runtime import Runtime
 
-CPU = Runtime(device=torch.device("cpu"), threads=1, precision="fp32", precision_reason="test", scan_backend="auto",
-              scan={})
+CPU = Runtime(device=torch.device("cpu"), threads=1, precision="fp32", precision_reason="test", kernels="auto",
+              kernels_info={})
 
 
 def _cfg(**train):

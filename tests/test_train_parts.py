@@ -19,8 +19,8 @@ from blockyard.train.loop import divergence, evaluate
 from blockyard.train.memory import PeakRSS, current_rss_bytes
 from blockyard.train.runtime import Runtime, resolve_device, resolve_threads
 
-CPU = Runtime(device=torch.device("cpu"), threads=1, precision="fp32", precision_reason="test", scan_backend="auto",
-              scan={})
+CPU = Runtime(device=torch.device("cpu"), threads=1, precision="fp32", precision_reason="test", kernels="auto",
+              kernels_info={})
 
 
 class FixedLogits(nn.Module):

@@ -125,6 +125,7 @@ def long_reference(workdir) -> tuple[Path, list[dict]]:
     return path, comparable(out)
 
 
+@pytest.mark.slow
 def test_kill9_then_rerun_matches_uninterrupted(workdir, long_reference):
     path, reference = long_reference
     out = workdir / "killed"
@@ -145,6 +146,7 @@ def test_kill9_then_rerun_matches_uninterrupted(workdir, long_reference):
     assert summary["status"] == "done" and summary["steps"] == 120
 
 
+@pytest.mark.slow
 def test_sigterm_checkpoints_and_rerun_matches(workdir, long_reference):
     path, reference = long_reference
     out = workdir / "terminated"
@@ -165,6 +167,7 @@ def test_sigterm_checkpoints_and_rerun_matches(workdir, long_reference):
     assert comparable(out) == reference
 
 
+@pytest.mark.slow
 def test_corrupt_latest_checkpoint_falls_back(workdir, long_reference, capsys):
     path, reference = long_reference
     out = workdir / "corrupt"
@@ -196,6 +199,7 @@ def test_corrupt_latest_checkpoint_falls_back(workdir, long_reference, capsys):
 # ----------------------------------------------------------------------------- records
 
 
+@pytest.mark.slow
 def test_records_fields_and_tensorboard(workdir):
     path = write_config(workdir, "records")
     out = workdir / "records_run"
@@ -232,7 +236,7 @@ def test_records_fields_and_tensorboard(workdir):
     assert s["wall_s"] > 0 and s["peak_rss_bytes"] > 50 * 2**20
     env = json.loads((out / "env.json").read_text())
     for key in ("python", "torch", "threads", "cpu_model", "device", "precision", "precision_reason",
-                "scan_backend", "git_commit", "hostname", "start_time"):
+                "kernels", "git_commit", "hostname", "start_time"):
         assert key in env, key
     assert env["threads"] == 1 and env["device"] == "cpu" and env["precision"] == "fp32"
     assert env["allocator"].startswith(("glibc", "unchanged"))  # blockyard.train.allocator
@@ -251,6 +255,7 @@ def test_records_fields_and_tensorboard(workdir):
     assert [e.step for e in acc.Scalars("val/loss")] == [10, 20, 30, 40]
 
 
+@pytest.mark.slow
 def test_log_lines_when_not_a_tty(workdir, capsys):
     path = write_config(workdir, "loglines", train={"steps": 10})
     assert main(["train", str(path), "--out", str(workdir / "loglines_run")]) == 0
@@ -271,6 +276,7 @@ def test_progress_is_a_bar_on_a_tty():
     assert isinstance(make_progress(None, io.StringIO()), LogLines)
 
 
+@pytest.mark.slow
 def test_grad_accum_uses_consecutive_micro_batches(workdir, monkeypatch):
     """Step s (1-based) reads micro-batches (s-1)*k .. (s-1)*k + k-1, so the data position is the step."""
     import blockyard.data
@@ -353,6 +359,7 @@ def test_done_dir_is_not_retrained_and_other_config_refused(workdir, capsys):
     assert not (out / "eval.json").exists()
 
 
+@pytest.mark.slow
 def test_force_keeps_files_that_are_not_records(workdir):
     out = workdir / "foreign"
     out.mkdir()
@@ -364,6 +371,7 @@ def test_force_keeps_files_that_are_not_records(workdir):
     assert (out / "notes.txt").read_text() == "mine"
 
 
+@pytest.mark.slow
 def test_default_out_dir_is_runs_name_hash(workdir, monkeypatch, tmp_path):
     path = write_config(workdir, "defaultdir", train={"steps": 3})
     monkeypatch.chdir(tmp_path)
@@ -443,6 +451,7 @@ def test_bad_config_file(tmp_path, capsys, content, names):
 # ----------------------------------------------------------------------------- precision
 
 
+@pytest.mark.slow
 def test_bf16_unsupported_falls_back_to_fp32(workdir, monkeypatch, capsys):
     monkeypatch.setattr(runtime_mod, "cpu_bf16_support", lambda: (False, "simulated CPU without bf16"))
     path = write_config(workdir, "bf16_no", train={"steps": 3}, runtime={"precision": "bf16"})
@@ -454,6 +463,7 @@ def test_bf16_unsupported_falls_back_to_fp32(workdir, monkeypatch, capsys):
     assert env["precision"] == "fp32" and "simulated CPU without bf16" in env["precision_reason"]
 
 
+@pytest.mark.slow
 def test_bf16_supported_runs_in_bf16(workdir, monkeypatch):
     import torch
 
@@ -476,6 +486,7 @@ def test_bf16_supported_runs_in_bf16(workdir, monkeypatch):
     assert summary["status"] == "done" and abs(summary["final_val_loss"] - math.log(256)) < 1.0
 
 
+@pytest.mark.slow
 def test_timing_fields_are_the_only_difference(workdir):
     """Two identical runs agree on every non-timing field (what the resume tests rely on)."""
     path = write_config(workdir, "twice", train={"steps": 10})
@@ -490,6 +501,7 @@ def test_timing_fields_are_the_only_difference(workdir):
 # ----------------------------------------------------------------------------- other keys
 
 
+@pytest.mark.slow
 def test_task_run_logs_answer_accuracy(workdir):
     cfg = load_config(write_config(workdir, "task", data={"corpus": "task:mqar", "seq_len": 64},
                                    train={"steps": 10, "eval_every": 5}))
@@ -501,6 +513,7 @@ def test_task_run_logs_answer_accuracy(workdir):
     assert json.loads((out / "env.json").read_text())["data"]["corpus"] == "task:mqar"
 
 
+@pytest.mark.slow
 def test_activation_checkpointing_changes_nothing_but_memory(workdir):
     """Recomputing blocks in backward (torch.utils.checkpoint) gives the same losses and updates."""
     plain = load_config(write_config(workdir, "ac_off", train={"steps": 6}, model={"depth": 2}))
@@ -515,6 +528,7 @@ def test_activation_checkpointing_changes_nothing_but_memory(workdir):
             assert x[k] == (y[k] if isinstance(y[k], str) else pytest.approx(y[k], rel=1e-5)), k
 
 
+@pytest.mark.slow
 def test_seeds_change_init_and_data(workdir):
     def first_lines(name, **train):
         cfg = load_config(write_config(workdir, name, train={"steps": 2, "log_every": 1, **train}))
@@ -530,13 +544,14 @@ def test_seeds_change_init_and_data(workdir):
     assert first_lines("dseed5", data_seed=5)[0]["loss"] != base[0]["loss"]
 
 
-def test_scan_backend_and_threads_applied(workdir):
+@pytest.mark.slow
+def test_kernels_choice_and_threads_applied(workdir):
     import torch
 
     threads = torch.get_num_threads()
     wanted = 3 if threads != 3 else 2  # any count other than the current one shows that it was applied
-    cfg = load_config(write_config(workdir, "scan", train={"steps": 2},
-                                   runtime={"scan": "reference", "threads": wanted}, model={"pattern": ["recurrence"]}))
+    cfg = load_config(write_config(workdir, "scan", train={"steps": 2}, model={"pattern": ["recurrence"]},
+                                   runtime={"kernels": "reference", "threads": wanted}))
     out = workdir / "scan_run"
     seen = []
 
@@ -548,11 +563,12 @@ def test_scan_backend_and_threads_applied(workdir):
     assert summary["status"] == "done" and seen == [wanted]  # applied while training
     assert read_metrics(out / "metrics.jsonl")[-1]["probe_threads"] == float(wanted)  # hook metrics reach val lines
     env = json.loads((out / "env.json").read_text())
-    assert env["scan_backend"]["requested"] == "reference" and env["threads"] == wanted
-    assert env["scan_backend"]["rg_lru_cpu"] == "PyTorch ops around the reference scan"
+    assert env["kernels"]["requested"] == "reference" and env["threads"] == wanted
+    assert env["kernels"]["rg_lru_cpu"] == "PyTorch ops around the reference scan"
     assert torch.get_num_threads() == threads  # and restored after
 
 
+@pytest.mark.slow
 def test_token_budget_sets_the_number_of_steps(workdir):
     cfg = load_config(write_config(workdir, "budget", train={"tokens": 1000, "steps": 99}))
     summary = run_training(cfg, workdir / "budget_run", progress="silent")
@@ -592,7 +608,7 @@ def test_compiled_run_trains_resumes_exactly_and_its_checkpoint_loads_eagerly(wo
     assert not any(k.startswith("_orig_mod.") for k in found.state["model"])
     runtime, _ = runtime_mod.resolve_runtime(cfg.runtime)
     data = load_data(cfg)
-    eager = build_model(cfg.model, data.vocab_size, scan_backend=runtime.scan_backend)
+    eager = build_model(cfg.model, data.vocab_size, kernels=runtime.kernels)
     eager.load_state_dict(found.state["model"])  # strict: the same keys as the eager module's
     assert "forward" not in vars(eager)
     with torch.no_grad():
@@ -601,6 +617,7 @@ def test_compiled_run_trains_resumes_exactly_and_its_checkpoint_loads_eagerly(wo
     assert loss == pytest.approx(read_metrics(whole / "metrics.jsonl")[-1]["loss"], rel=1e-5)
 
 
+@pytest.mark.slow
 def test_compile_failure_trains_eagerly_with_a_warning(workdir, monkeypatch, capsys):
     """Where torch.compile fails (here: a simulated compiler error at the first call), the run warns,
     records why in env.json and trains exactly as an eager run (the trial step leaves no trace)."""

@@ -11,6 +11,8 @@ from blockyard.config import config_from_dict
 from blockyard.errors import UserError
 from blockyard.train import run_training
 
+pytestmark = pytest.mark.slow  # full tier: long training checks
+
 
 def unigram_entropy_nats(tokens: np.ndarray, vocab: int) -> float:
     """H = -sum_i p_i ln p_i over the empirical token frequencies (Shannon 1948), computed with numpy."""

@@ -75,6 +75,7 @@ def check_resumes_to_reference(root: Path, out: Path, reference: list[dict], cap
 # ----------------------------------------------------------------------------- the trainer's files
 
 
+@pytest.mark.slow
 def test_checkpoint(root, reference, capsys, monkeypatch):
     import torch
 
@@ -103,6 +104,7 @@ def test_checkpoint(root, reference, capsys, monkeypatch):
     check_resumes_to_reference(root, out, reference, capsys)
 
 
+@pytest.mark.slow
 def test_metrics_line(root, reference, capsys, monkeypatch):
     real_write = os.write
 
@@ -124,6 +126,7 @@ def test_metrics_line(root, reference, capsys, monkeypatch):
     check_resumes_to_reference(root, out, reference, capsys)
 
 
+@pytest.mark.slow
 def test_tensorboard_events(root, reference, capsys, monkeypatch):
     from tensorboard.summary.writer import record_writer
 
@@ -159,6 +162,7 @@ def fail_atomic_writes_of(monkeypatch, prefix: str, number: int = errno.ENOSPC) 
     monkeypatch.setattr(os, "fdopen", fdopen)
 
 
+@pytest.mark.slow
 def test_summary(root, reference, capsys, monkeypatch):
     fail_atomic_writes_of(monkeypatch, "summary.json")
     out = root / "summary"
@@ -172,6 +176,7 @@ def test_summary(root, reference, capsys, monkeypatch):
     check_resumes_to_reference(root, out, reference, capsys)
 
 
+@pytest.mark.slow
 def test_low_free_space_is_warned_about_before_training(root, capsys, monkeypatch):
     from blockyard import fs
 
@@ -257,6 +262,7 @@ def can_mount_tmpfs() -> str | None:
     return None if probe.returncode == 0 else f"cannot mount a tmpfs: {probe.stderr.strip()[:120]}"
 
 
+@pytest.mark.slow
 def test_a_real_full_filesystem_then_read_only_then_freed(root, reference, tmp_path):
     why = can_mount_tmpfs()
     if why:

@@ -144,7 +144,7 @@ def trainer_parts(case: BenchCase, cache_dir: Path, threads: int = 0) -> Trainer
     keep_freed_memory()  # as run_training does
     data = load_data(cfg)
     torch.manual_seed(0)
-    model = build_model(cfg.model, data.vocab_size, scan_backend=runtime.scan_backend)
+    model = build_model(cfg.model, data.vocab_size, kernels=runtime.kernels)
     optimizer = build_optimizer(model, cfg.train)
     scheduler = build_scheduler(optimizer, cfg.train, cfg.train.steps)
     compiled = compile_for_training(model, runtime, data.train_batch(0))  # runtime.compile's warm-up, as the trainer

@@ -35,6 +35,7 @@ from blockyard.cost import analytic as cost
 from blockyard.errors import UserError
 from blockyard.mixers import state_nbytes
 from blockyard.model import build_model
+from blockyard.palette import use_palette
 
 REPO = Path(__file__).resolve().parents[2]
 VOCAB = 256  # byte tokens, as the presets
@@ -201,6 +202,7 @@ def plot_rows(rows: list[dict[str, Any]], path: Path) -> None:
     import matplotlib
 
     matplotlib.use("Agg")
+    use_palette(matplotlib)
     import matplotlib.pyplot as plt
 
     fig, (ax_speed, ax_state) = plt.subplots(1, 2, figsize=(11, 4))

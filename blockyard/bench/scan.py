@@ -28,14 +28,14 @@ def scan_figures(shape: tuple[int, int, int] = (16, 256, 256), repeats: int = 15
     8 (the backward reads dL/dh, a, h and writes dL/da, dL/db). Timing and inputs come from the
     kernels' own ``scripts/bench_scan.py`` (round-robin, so load from other processes hits all alike).
     """
-    from blockyard.kernels import resolve_backend, scan_backend_info
+    from blockyard.kernels import kernels_info, resolve_backend
 
     bs = _bench_scan_module()
     if bs is None:
         return {"error": "scripts/bench_scan.py not found"}
-    info = scan_backend_info()  # builds the kernel first, outside the timings
+    info = kernels_info()  # builds the kernel first, outside the timings
     x = bs.make_inputs(shape)
-    backends = ["chunked"] + (["compiled"] if info["compiled"]["state"] == "built" else [])
+    backends = ["torch"] + (["compiled"] if info["compiled"]["state"] == "built" else [])
     try:
         forward = bs.interleaved_times({"floor": bs.floor_forward(x)} |
                                        {n: bs.scan_forward(x, n) for n in backends}, 3, repeats)

@@ -24,6 +24,7 @@ from blockyard.cost import measured
 from blockyard.errors import UserError
 from blockyard.mixers import MIXERS
 from blockyard.model import MLP
+from blockyard.palette import use_palette
 from blockyard.schema import describe
 
 # Context lengths at which ``blockyard blocks`` reports state bytes: a short prompt, a long
@@ -215,7 +216,7 @@ def describe_config(cfg: Config, vocab_size: int | None = None) -> str:
     lines += ["  " + line for line in _table(header, rows).splitlines()]
     lines += [
         "",
-        f"training FLOPs/token at n_ctx={cfg.data.seq_len} (6N + mixer terms, embeddings excluded; "
+        f"training FLOPs/token at seq_len={cfg.data.seq_len} (6N + mixer terms, embeddings excluded; "
         "Kaplan et al. 2020): "
         f"{format_count(flops['total'])}  (6N {format_count(flops['dense'])}, "
         f"mixers {format_count(flops['mixer_extra'])}; head 6*d*vocab {format_count(flops['head'])} not included)",
@@ -240,6 +241,7 @@ def plot_state_bytes(cfgs: list[Config], path: str | Path, contexts: list[int] |
     import matplotlib
 
     matplotlib.use("Agg")
+    use_palette(matplotlib)
     import matplotlib.pyplot as plt
 
     contexts = contexts or [2**k for k in range(4, 18)]

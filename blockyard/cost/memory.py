@@ -98,18 +98,18 @@ def saved_bytes_by_part(model: nn.Module, tokens: torch.Tensor) -> tuple[dict[st
 
 
 def estimate_activation_memory(model_cfg: ModelConfig, vocab_size: int, batch: int, seq_len: int, *,
-                               activation_checkpointing: bool = False, scan_backend: str = "auto"
+                               activation_checkpointing: bool = False, kernels: str = "auto"
                                ) -> ActivationEstimate:
     """Activation bytes of one training micro-batch of ``batch`` x ``seq_len`` tokens (no allocation).
 
-    ``scan_backend`` (``runtime.scan``): the compiled kernels are torch custom ops with fake-tensor
+    ``kernels`` (``runtime.kernels``): the compiled kernels are torch custom ops with fake-tensor
     kernels (``blockyard.kernels.ops``), so the estimate traces the path the run will take.
     """
     from blockyard.model import build_model
 
     with _fake_mode():
         # checkpointing off: we want each block's own saves
-        model = build_model(model_cfg, vocab_size, scan_backend=scan_backend)
+        model = build_model(model_cfg, vocab_size, kernels=kernels)
         model.train()
         tokens = torch.zeros(batch, seq_len, dtype=torch.long)
         parts, largest, block_input = saved_bytes_by_part(model, tokens)
@@ -165,7 +165,7 @@ def memory_warning(cfg: Config, vocab_size: int, available_bytes: int | None = N
     batch, seq_len = cfg.train.batch_size, cfg.data.seq_len
     checkpointing = cfg.runtime.activation_checkpointing
     est = estimate_activation_memory(cfg.model, vocab_size, batch, seq_len, activation_checkpointing=checkpointing,
-                                     scan_backend=cfg.runtime.scan)
+                                     kernels=cfg.runtime.kernels)
     if est.total_bytes <= available:
         return None
     per_sequence = est.total_bytes / batch  # activations are linear in the batch
@@ -175,7 +175,7 @@ def memory_warning(cfg: Config, vocab_size: int, available_bytes: int | None = N
         hints.append(f"train.batch_size <= {fits} (with train.grad_accum to keep the tokens per step)")
     if not checkpointing:
         ckpt = estimate_activation_memory(cfg.model, vocab_size, batch, seq_len, activation_checkpointing=True,
-                                          scan_backend=cfg.runtime.scan)
+                                          kernels=cfg.runtime.kernels)
         hints.append(f"runtime.activation_checkpointing: true (estimate {_gib(ckpt.total_bytes)})")
     if not hints:
         hints.append("a shorter data.seq_len or a smaller model")

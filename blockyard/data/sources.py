@@ -68,7 +68,7 @@ PLAYS_FILES = 42
 PLAYS_BYTES = 5_057_198
 PLAYS_MARKER = "fetched.json"  # written last: a folder without it is never read
 
-HUB_PROBE = ("huggingface.co", 443)
+HUB_PROBE: tuple[str, int] | None = None  # (host, port) to probe; None: the hub the datasets library uses
 HUB_PROBE_TIMEOUT_S = 3.0
 _TRUE = ("1", "ON", "YES", "TRUE")
 
@@ -539,14 +539,29 @@ def parse_hub(rest: str) -> tuple[str, str | None]:
     return name, config or None
 
 
+def hub_address() -> tuple[str, int]:
+    """(host, port) of the hub the ``datasets`` library loads from (its endpoint setting, which
+    honours the library's own environment variable), unless ``HUB_PROBE`` names another."""
+    if HUB_PROBE is not None:
+        return HUB_PROBE
+    from urllib.parse import urlsplit
+
+    from huggingface_hub import constants
+
+    url = urlsplit(constants.ENDPOINT)
+    return url.hostname or "", url.port or (443 if url.scheme == "https" else 80)
+
+
 def load_hub(rest: str) -> Any:
     """The dataset's train split (or its only split), from the datasets cache or the hub."""
     name, config = parse_hub(rest)
     label = f"hub:{rest}"
-    how = (f"run `blockyard corpus fetch {label}` where huggingface.co is reachable (set HF_DATASETS_OFFLINE=1 "
+    how = (f"run `blockyard corpus fetch {label}` where the hub is reachable (set HF_DATASETS_OFFLINE=1 "
            "to use the datasets cache only), or download the files and set data.corpus to their local path")
-    if not hub_offline() and not reachable(HUB_PROBE, HUB_PROBE_TIMEOUT_S):
-        raise UserError(f"{CORPUS_KEY}: {label}: {HUB_PROBE[0]} is unreachable; {how}")
+    if not hub_offline():
+        address = hub_address()
+        if not reachable(address, HUB_PROBE_TIMEOUT_S):
+            raise UserError(f"{CORPUS_KEY}: {label}: {address[0]} is unreachable; {how}")
     datasets = import_datasets()
     try:
         dsd = datasets.load_dataset(name, config)
@@ -657,7 +672,7 @@ register_corpus(CorpusKind(
     "hub", "hub:NAME[:CONFIG]", scheme("hub"),
     lambda corpus, root, text_field, errors: hub_corpus(corpus.partition(":")[2], text_field),
     lambda root: CorpusInfo("hub:NAME[:CONFIG]",
-                            "a dataset of the Hugging Face hub (its train split; text in data.text_field)",
+                            "a dataset of the datasets library's hub (its train split; text in data.text_field)",
                             "datasets.load_dataset(NAME, CONFIG); cached by datasets (HF_HOME)",
                             "the dataset's own license: see its card", "datasets cache"),
     _fetch_hub_line))

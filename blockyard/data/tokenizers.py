@@ -40,7 +40,7 @@ def text_pieces(text: str, max_chars: int = PIECE_CHARS) -> Iterator[str]:
     """Consecutive slices of ``text`` (joined they give ``text``) of at most ``max_chars``
     characters, cut at clean places so that encoding the pieces equals encoding the whole.
 
-    Byte-level BPE pre-tokenizes with the pattern of Radford et al. 2019 (OpenAI report), under which a
+    Byte-level BPE pre-tokenizes with the pattern of Radford et al. 2019 (technical report), under which a
     newline between non-space characters is a pre-token of its own and a single space before a
     non-space character opens a pre-token, so no merge spans such a cut (bytes and chars are per
     symbol anyway). A window with no clean place (no space or newline at all) is cut hard.
@@ -199,10 +199,10 @@ class BpeTokenizer:
 
     @staticmethod
     def empty_backend() -> object:
-        from tokenizers import Tokenizer as HFTokenizer
+        from tokenizers import Tokenizer as LibraryTokenizer
         from tokenizers import decoders, models, pre_tokenizers
 
-        backend = HFTokenizer(models.BPE())
+        backend = LibraryTokenizer(models.BPE())
         backend.pre_tokenizer = pre_tokenizers.ByteLevel(add_prefix_space=False, use_regex=True)
         backend.decoder = decoders.ByteLevel()
         return backend
@@ -228,10 +228,10 @@ class BpeTokenizer:
 
     @classmethod
     def load(cls, path: Path) -> BpeTokenizer:
-        from tokenizers import Tokenizer as HFTokenizer
+        from tokenizers import Tokenizer as LibraryTokenizer
 
         data = json.loads(path.read_text())
-        return cls(HFTokenizer.from_str(json.dumps(data["backend"])), data["vocab_size"])
+        return cls(LibraryTokenizer.from_str(json.dumps(data["backend"])), data["vocab_size"])
 
 
 TOKENIZER_FILE = "tokenizer.json"

@@ -29,6 +29,7 @@ import torch.nn.functional as F
 from blockyard import fs
 from blockyard.data.batches import IGNORE_INDEX
 from blockyard.errors import UserError
+from blockyard.palette import use_palette
 from blockyard.rundir import EVAL_FILE, read_json, read_metrics, writing
 
 Batches = list[tuple[torch.Tensor, torch.Tensor]]
@@ -260,6 +261,7 @@ def plot_length_extrapolation(evals: dict[str, list[dict[str, Any]]], path: str 
     import matplotlib
 
     matplotlib.use("Agg")
+    use_palette(matplotlib)
     import matplotlib.pyplot as plt
 
     fig, (ax_len, ax_pos) = plt.subplots(1, 2, figsize=(11, 4))
@@ -305,6 +307,7 @@ def plot_probe_accuracy(lines: dict[str, list[dict[str, Any]]], path: str | Path
     import matplotlib
 
     matplotlib.use("Agg")
+    use_palette(matplotlib)
     import matplotlib.pyplot as plt
 
     by_variant = {label: [probe_curves(line) for line in runs] for label, runs in lines.items()}

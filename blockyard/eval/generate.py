@@ -105,14 +105,14 @@ class LoadedRun:
 
 def read_run_config(run_dir: Path) -> Any:
     """The resolved config a run dir was trained with (its ``config.yaml``)."""
-    from blockyard.config import config_from_dict, read_yaml
+    from blockyard.config import config_from_dict, read_yaml, saved_config_data
 
     if not run_dir.is_dir():
         raise UserError(f"{run_dir}: no such run dir")
     path = run_dir / "config.yaml"
     if not path.is_file():
         raise UserError(f"{run_dir}: not a run dir (no config.yaml)")
-    return config_from_dict(read_yaml(path))
+    return config_from_dict(saved_config_data(read_yaml(path)))
 
 
 def newest_checkpoint(run_dir: Path, cfg_hash: str) -> Any:

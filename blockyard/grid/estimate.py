@@ -2,7 +2,7 @@
 
 For each distinct model of the grid we time a few of the trainer's own steps
 (``blockyard.train.loop.train_step``: forward, backward, clipping, AdamW update) on random tokens of
-the cell's batch shape, in this process, with the cell's runtime (precision, scan backend,
+the cell's batch shape, in this process, with the cell's runtime (precision, kernels,
 activation checkpointing) and thread count, after one untimed warm-up step. Estimated cell time =
 planned tokens / measured tokens/s. It leaves out evaluation, checkpoints and process start-up (a
 few seconds per cell), so it is a lower bound; the real speed shows in the status line while the
@@ -37,7 +37,7 @@ def measure_tokens_per_s(cfg: Config, threads: int, steps: int = TIMED_STEPS) ->
         torch.manual_seed(0)
         vocab = vocab_size(cfg)
         model = build_model(cfg.model, vocab, activation_checkpointing=cfg.runtime.activation_checkpointing,
-                            scan_backend=runtime.scan_backend)
+                            kernels=runtime.kernels)
         model.to(runtime.device)
         opt = build_optimizer(model, cfg.train)
         sched = build_scheduler(opt, cfg.train, steps + 1)

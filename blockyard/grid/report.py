@@ -21,7 +21,7 @@ import re
 from pathlib import Path
 from typing import Any
 
-from blockyard import fs
+from blockyard import fs, palette
 from blockyard.errors import UserError
 from blockyard.grid import stats
 from blockyard.grid.fairness import MATCH_TOLERANCE
@@ -264,6 +264,7 @@ def write_plots(grid_dir: Path, res: GridResults) -> list[tuple[str, str]]:
     import matplotlib
 
     matplotlib.use("Agg")
+    palette.use_palette(matplotlib)
     import matplotlib.pyplot as plt
 
     written: list[tuple[str, str]] = []
@@ -318,11 +319,12 @@ def forest_plot(plt: Any, path: Path, family: Family) -> bool:
         return False
     delta = family.design.smallest_effect
     fig, ax = plt.subplots(figsize=(7.2, 1.2 + 0.42 * len(rows)))
-    ax.axvspan(-delta, delta, color="#9ecae1", alpha=0.35, linewidth=0, label=f"±smallest effect ({delta:g})")
+    ax.axvspan(-delta, delta, color=palette.BAND, alpha=0.35, linewidth=0, label=f"±smallest effect ({delta:g})")
     ax.axvline(0, color="black", linewidth=0.8)
-    colors = {stats.BETTER: "#2b8a3e", stats.WORSE: "#c92a2a", stats.EQUIVALENT: "#1c7ed6", stats.UNDECIDED: "#555"}
+    colors = {stats.BETTER: palette.BETTER, stats.WORSE: palette.WORSE, stats.EQUIVALENT: palette.EQUIVALENT,
+              stats.UNDECIDED: palette.UNDECIDED}
     for y, c in enumerate(reversed(rows)):
-        color = "#999" if not c.in_family else colors[c.verdict]
+        color = palette.OUTSIDE if not c.in_family else colors[c.verdict]
         iv, un = c.interval, c.unadjusted
         if iv.low is not None:
             ax.plot([iv.low, iv.high], [y, y], color=color, linewidth=3, solid_capstyle="butt")
@@ -427,6 +429,25 @@ def _params_plot(plt: Any, path: Path, groups: list[Group]) -> bool:
     return plotted
 
 
+def token_unit(top: float) -> tuple[float, str]:
+    """(divisor, suffix) of the one unit a token axis reaching ``top`` is labelled in: G, M, k or none."""
+    for div, suffix in ((1e9, "G"), (1e6, "M"), (1e3, "k")):
+        if abs(top) >= div:
+            return div, suffix
+    return 1.0, ""
+
+
+def label_token_axis(axis: Any) -> None:
+    """Tick labels such as 0.2M ... 1.4M, one unit for the whole axis, instead of matplotlib's offset ("1e6")."""
+    from matplotlib.ticker import FuncFormatter
+
+    def text(x: float, _pos: Any) -> str:
+        div, suffix = token_unit(max(abs(v) for v in axis.get_view_interval()))
+        return "0" if x == 0 else f"{x / div:.4g}{suffix}"
+
+    axis.set_major_formatter(FuncFormatter(text))
+
+
 def _curve_plots(plt: Any, grid_dir: Path, groups: list[Group]) -> list[tuple[str, str]]:
     curves = {g.label: [_val_curve(grid_dir, r) for r in g.done] for g in groups}
     curves = {k: [c for c in v if c] for k, v in curves.items()}
@@ -446,6 +467,7 @@ def _curve_plots(plt: Any, grid_dir: Path, groups: list[Group]) -> list[tuple[st
         if all(math.isfinite(w) for w in walls):
             ax_w.plot(walls, means, label=label, color=line.get_color(), marker="o", ms=2.5)
             ax_w.fill_between(walls, lows, highs, color=line.get_color(), alpha=0.2, linewidth=0)
+    label_token_axis(ax_t.xaxis)
     for fig, ax, name, xlabel, caption in (
         (fig_t, ax_t, "val_loss_vs_tokens.png", "training tokens", f"Validation loss vs training tokens ({BAND})."),
         (fig_w, ax_w, "val_loss_vs_wall.png", "wall-clock seconds (mean over seeds)",
@@ -512,10 +534,11 @@ class Doc:
                "body{font-family:sans-serif;max-width:70em;margin:2em auto;padding:0 1em;line-height:1.4}"
                "table{border-collapse:collapse;margin:1em 0}td,th{border:1px solid #ccc;padding:.25em .6em;"
                "text-align:left}th{background:#f3f3f3}img{max-width:100%}figcaption{font-style:italic}"
+               ".wide{overflow-x:auto;max-width:100%}"
                "</style></head><body>"]
         for b in self.blocks:
             if b[0] == "h":
-                out.append(f"<h{b[1]}>{e(b[2])}</h{b[1]}>")
+                out.append(f"<h{b[1]}>{_inline_html(b[2])}</h{b[1]}>")
             elif b[0] == "p":
                 out.append(f"<p>{_inline_html(b[1])}</p>")
             elif b[0] == "ul":
@@ -524,20 +547,35 @@ class Doc:
                 head = "".join(f"<th>{e(str(c))}</th>" for c in b[1])
                 body = "".join("<tr>" + "".join(f"<td>{_inline_html(str(c))}</td>" for c in row) + "</tr>"
                                for row in b[2])
-                out.append(f"<table><tr>{head}</tr>{body}</table>")
+                # A table wider than the page scrolls inside it instead of running off its right edge.
+                out.append(f"<div class='wide'><table><tr>{head}</tr>{body}</table></div>")
             elif b[0] == "img":
                 data = base64.b64encode((grid_dir / b[1]).read_bytes()).decode()
                 out.append(f"<figure><img alt='{e(b[2])}' src='data:image/png;base64,{data}'>"
-                           f"<figcaption>{e(b[2])}</figcaption></figure>")
+                           f"<figcaption>{_inline_html(b[2])}</figcaption></figure>")
         out.append("</body></html>")
         return "\n".join(out)
 
 
+_CODE = re.compile(r"`([^`]+)`")
+_STRONG = re.compile(r"\*\*(?=\S)(.+?)(?<=\S)\*\*")
+# *x*: a star not touching a word or another star on its outer side, and no space on its inner side,
+# so products such as ``2*3`` or ``a * b`` stay as written.
+_EM = re.compile(r"(?<![\w*])\*(?=[^\s*])(.+?)(?<=[^\s*])\*(?![\w*])")
+
+
 def _inline_html(text: str) -> str:
-    """Escape, then turn Markdown's **bold** and `code` into tags (the only inline marks we write)."""
-    s = html.escape(text)
-    s = re.sub(r"\*\*(.+?)\*\*", r"<b>\1</b>", s)
-    return re.sub(r"`(.+?)`", r"<code>\1</code>", s)
+    """Escape, then turn Markdown's `code`, **strong** and *emphasis* into tags (the only inline marks we
+    write); nothing inside a code span is read as emphasis."""
+    parts = _CODE.split(text)  # odd positions are the insides of code spans
+    out = []
+    for i, part in enumerate(parts):
+        s = html.escape(part)
+        if i % 2:
+            out.append(f"<code>{s}</code>")
+        else:
+            out.append(_EM.sub(r"<em>\1</em>", _STRONG.sub(r"<strong>\1</strong>", s)))
+    return "".join(out)
 
 
 # ----------------------------------------------------------------------------- the report

@@ -15,6 +15,7 @@ import numpy as np
 
 from blockyard.eval.extrapolation import save_figure
 from blockyard.grid.trend import GapTrend, PowerLawFit, gap_at, gap_band, predict_loss
+from blockyard.palette import use_palette
 
 
 def _span(n_min: float, n_max: float, target: float | None) -> np.ndarray:
@@ -35,6 +36,7 @@ def plot_loss_vs_params(
     import matplotlib
 
     matplotlib.use("Agg")
+    use_palette(matplotlib)
     import matplotlib.pyplot as plt
 
     fig, ax = plt.subplots(figsize=(7, 4.5))
@@ -70,6 +72,7 @@ def plot_gap_vs_params(
     import matplotlib
 
     matplotlib.use("Agg")
+    use_palette(matplotlib)
     import matplotlib.pyplot as plt
 
     fig, ax = plt.subplots(figsize=(7, 4.5))

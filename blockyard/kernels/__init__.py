@@ -1,16 +1,17 @@
-"""The linear scan h_t = a_t * h_{t-1} + b_t: sequential reference, chunked PyTorch, compiled C++.
+"""The C++ kernels and the linear scan h_t = a_t * h_{t-1} + b_t (sequential reference, chunked PyTorch, C++).
 
-``linear_scan(a, b, h0, backend=...)`` is the one entry point (the backend, config key
-``runtime.scan``, is passed explicitly); ``scan_backend_info`` reports what it resolves to.
-``ops`` holds the C++ kernels as torch custom ops, among them the fused RG-LRU.
+``runtime.kernels`` (auto, compiled, torch, reference) chooses between the C++ ops of ``ops`` (the
+scan, the fused RG-LRU, the causal conv, GeGLU, RMSNorm) and torch's; it is passed explicitly.
+``linear_scan(a, b, h0, backend=...)`` is the scan's one entry point; ``kernels_info`` reports
+what a choice resolves to; ``build.load_kernels`` builds and loads every kernel.
 """
 
 from blockyard.kernels.scan import (
-    SCAN_BACKENDS,
+    KERNELS,
     check_backend,
+    kernels_info,
     linear_scan,
     resolve_backend,
-    scan_backend_info,
     scan_chunked,
     scan_compiled,
     scan_reference,
@@ -18,11 +19,11 @@ from blockyard.kernels.scan import (
 )
 
 __all__ = [
-    "SCAN_BACKENDS",
+    "KERNELS",
     "check_backend",
     "linear_scan",
     "resolve_backend",
-    "scan_backend_info",
+    "kernels_info",
     "scan_chunked",
     "scan_compiled",
     "scan_reference",

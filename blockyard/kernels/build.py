@@ -13,7 +13,7 @@ a killed build leaves behind and every later build would wait on forever; under 
 leftover file is stale by construction and is removed.
 
 Any failure (no compiler, no ninja, missing headers, a compile error) is recorded, not raised:
-``load_scan_ops()`` returns None and ``build_status()`` says why, so the scan falls back to the
+``load_kernels()`` returns None and ``build_status()`` says why, so the scan falls back to the
 pure-PyTorch backend.
 """
 
@@ -151,7 +151,7 @@ class _BuildState:
 _STATE = _BuildState()
 
 
-def load_scan_ops() -> Any:
+def load_kernels() -> Any:
     """``torch.ops.<namespace>`` with ``forward`` and ``backward``, building on first call; None if it fails."""
     state = _STATE
     with state.lock:

@@ -1,14 +1,15 @@
 """The C++ kernels as torch custom operators (``torch.library``), each with a fake-tensor kernel and autograd.
 
-Registered under the stable names ``blockyard::linear_scan`` and ``blockyard::rg_lru`` (and their
-backward ops), their implementations call the compiled library of ``build.py``, whose namespace
-is a hash of the source. The fake kernels only describe output shapes and dtypes, so
-FakeTensorMode (the memory estimator) and ``torch.compile`` trace through the ops without the
-library, or a compiler, being present.
+Registered under the stable names ``blockyard::linear_scan``, ``rg_lru``, ``causal_conv``, ``geglu``,
+``gelu_mul`` and ``rms_norm`` (and their backward ops), their implementations call the compiled
+library of ``build.py``, whose namespace is a hash of the source. The fake kernels only describe
+output shapes and dtypes, so FakeTensorMode (the memory estimator) and ``torch.compile`` trace
+through the ops without the library, or a compiler, being present.
 
-Both ops are first-derivative only (their backward ops have no autograd of their own); the
-pure-PyTorch paths (``blockyard.kernels.scan``, ``blockyard.mixers.recurrence.rg_lru_reference``)
-remain the references, the fallback when the library cannot be built, and support double backward.
+The ops are first-derivative only (their backward ops have no autograd of their own); the
+pure-PyTorch paths (``runtime.kernels: torch``: ``blockyard.kernels.scan``, ``rg_lru_reference``,
+torch's own conv, GeLU and norm) remain the references, the fallback when the library cannot be
+built, and support double backward.
 """
 
 from __future__ import annotations
@@ -26,9 +27,9 @@ FUSED_DTYPES = (torch.float32, torch.bfloat16, torch.float64)
 
 def compiled_ops() -> Any:
     """``torch.ops.<hashed namespace>`` of the built library; RuntimeError naming the build error if it failed."""
-    ops = build.load_scan_ops()
+    ops = build.load_kernels()
     if ops is None:
-        raise RuntimeError(f"scan backend 'compiled' is unavailable: {build.build_status()['error']}")
+        raise RuntimeError(f"runtime.kernels: compiled is unavailable: {build.build_status()['error']}")
     return ops
 
 

@@ -8,19 +8,19 @@ operator (a1, b1) . (a2, b2) = (a1 a2, a2 b1 + b2).
 Shapes: ``a, b: (B, T, C)``, ``h0: (B, C)`` or None (zeros), result ``h: (B, T, C)``. Real or
 complex dtypes (complex: a diagonal complex recurrence); all three are differentiable in a, b, h0.
 
-Backends:
+Backends (the values of ``runtime.kernels``, which also choose the other C++ ops of ``ops``):
 - ``reference``: the sequential loop over t, autograd through it. The ground truth.
-- ``chunked``: pure PyTorch, any dtype and device. Time is cut into chunks of K ~ sqrt(T) steps;
+- ``torch``: the chunked scan in pure PyTorch, any dtype and device. Time is cut into chunks of K ~ sqrt(T) steps;
   inside each chunk a sequential scan from zero runs over all chunks at once and ``cumprod``
   gives the chunk's running product of a; the chunk-end states are themselves a linear
   recurrence over chunks (solved recursively), and h = local + prod * carry. No division by
   products of a ever happens, so decays near 0 cannot blow up.
 - ``compiled``: the C++ kernel of ``scan_cpu.cpp`` (CPU, real and complex), parallel over batch x
   channels, sequential in time.
-- ``auto``: compiled for CPU tensors when the kernel builds, else chunked.
+- ``auto``: compiled for CPU tensors when the kernel builds, else torch.
 
-The backend is always passed explicitly (the trainer's ``Runtime.scan_backend``, config key
-``runtime.scan``, handed to the model): there is no process-wide default.
+The backend is always passed explicitly (the trainer's ``Runtime.kernels``, config key
+``runtime.kernels``, handed to the model): there is no process-wide default.
 
 Backward of every fast path is itself a reverse scan (chain rule through h_t = a_t h_{t-1} + b_t;
 complex values follow PyTorch's convention grad_x(w x) = grad * conj(w)):
@@ -38,7 +38,7 @@ import torch
 
 from blockyard.kernels import build, ops
 
-SCAN_BACKENDS = ("auto", "reference", "chunked", "compiled")
+KERNELS = ("auto", "compiled", "torch", "reference")
 COMPILED_DTYPES = (torch.float32, torch.float64, torch.complex64, torch.complex128)
 # Up to this many steps a plain loop is cheapest; longer sequences are cut into chunks.
 SEQUENTIAL_MAX_STEPS = 8
@@ -48,35 +48,35 @@ SEQUENTIAL_MAX_STEPS = 8
 
 
 def check_backend(name: str) -> str:
-    """``name`` if it is one of SCAN_BACKENDS, else ValueError naming the allowed ones."""
-    if name not in SCAN_BACKENDS:
-        raise ValueError(f"unknown scan backend {name!r}; allowed: {', '.join(SCAN_BACKENDS)}")
+    """``name`` if it is one of KERNELS, else ValueError naming the allowed ones."""
+    if name not in KERNELS:
+        raise ValueError(f"unknown kernels choice {name!r}; allowed: {', '.join(KERNELS)}")
     return name
 
 
 def resolve_backend(a: torch.Tensor, backend: str = "auto") -> str:
     """The concrete backend ``linear_scan`` runs for inputs like ``a`` (may build the kernel).
 
-    ``auto``: compiled for CPU tensors of a compiled dtype when the kernel builds, else chunked.
+    ``auto``: compiled for CPU tensors of a compiled dtype when the kernel builds, else torch.
     """
     if check_backend(backend) != "auto":
         return backend
-    if a.device.type == "cpu" and a.dtype in COMPILED_DTYPES and build.load_scan_ops() is not None:
+    if a.device.type == "cpu" and a.dtype in COMPILED_DTYPES and build.load_kernels() is not None:
         return "compiled"
-    return "chunked"
+    return "torch"
 
 
 def uses_fused_op(x: torch.Tensor, backend: str) -> bool:
     """Whether the C++ ops (``ops``: fused RG-LRU, conv, GeGLU, RMSNorm) run for inputs like ``x`` under
-    ``backend`` (``runtime.scan``): CPU float32 / bfloat16 / float64 inputs and a backend that resolves
+    ``backend`` (``runtime.kernels``): CPU float32 / bfloat16 / float64 inputs and a backend that resolves
     to ``compiled`` for the float32 (float64) the kernels compute in (``auto``: the kernels built)."""
     if x.device.type != "cpu" or x.dtype not in ops.FUSED_DTYPES:
         return False
     return resolve_backend(x.new_empty(0, dtype=ops.state_dtype(x.dtype)), backend) == "compiled"
 
 
-def scan_backend_info(backend: str = "auto") -> dict[str, Any]:
-    """For env.json: the requested backend (``runtime.scan``), what it resolves to for CPU float32,
+def kernels_info(backend: str = "auto") -> dict[str, Any]:
+    """For env.json: the requested backend (``runtime.kernels``), what it resolves to for CPU float32,
     and the kernel's build status."""
     probe = torch.empty(0, dtype=torch.float32)
     resolved = resolve_backend(probe, backend)
@@ -84,7 +84,8 @@ def scan_backend_info(backend: str = "auto") -> dict[str, Any]:
         "requested": check_backend(backend),
         "resolved_cpu_float32": resolved,
         # The real RG-LRU runs as the fused C++ op where the backend resolves to compiled.
-        "rg_lru_cpu": "fused C++ op" if resolved == "compiled" else f"PyTorch ops around the {resolved} scan",
+        "rg_lru_cpu": ("fused C++ op" if resolved == "compiled"
+                       else f"PyTorch ops around the {'chunked' if resolved == 'torch' else resolved} scan"),
         # The MLP's GeGLU unit and the RMSNorms run as C++ ops under the same condition.
         "geglu_rms_norm_cpu": "fused C++ ops" if resolved == "compiled" else "PyTorch ops",
         "compiled": build.build_status(),
@@ -102,7 +103,7 @@ def linear_scan(
     name = resolve_backend(a, backend)
     if name == "reference":
         return scan_reference(a, b, h0)
-    if name == "chunked":
+    if name == "torch":
         return scan_chunked(a, b, h0)
     return scan_compiled(a, b, h0)
 
@@ -240,7 +241,7 @@ def scan_compiled(a: torch.Tensor, b: torch.Tensor, h0: torch.Tensor | None = No
     """The C++ kernel (CPU; float32/64, complex64/128) as the custom op ``blockyard::linear_scan``
     (fake kernel and autograd included); raises RuntimeError if it could not be built."""
     if a.device.type != "cpu":
-        raise ValueError(f"scan backend 'compiled' runs on CPU tensors only, got {a.device}; use 'chunked' or 'auto'")
+        raise ValueError(f"scan backend 'compiled' runs on CPU tensors only, got {a.device}; use 'torch' or 'auto'")
     if a.dtype not in COMPILED_DTYPES:
         raise TypeError(f"scan backend 'compiled' supports {[str(d) for d in COMPILED_DTYPES]}, got {a.dtype}")
     start = _zeros_state(a) if h0 is None else h0.contiguous()

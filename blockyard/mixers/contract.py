@@ -290,7 +290,7 @@ def check_flops(cls: type[Mixer], width: int, options: Any) -> CheckResult:
     contexts = (1, 16, 256, 4096)
     flops = [float(cls.extra_flops_per_token(width, options, n)) for n in contexts]
     ok = all(f >= 0 and math.isfinite(f) for f in flops) and flops == sorted(flops)
-    return CheckResult("flops", ok, "extra FLOPs/token at n_ctx " + ", ".join(
+    return CheckResult("flops", ok, "extra FLOPs/token at seq_len " + ", ".join(
         f"{n}: {f:.3g}" for n, f in zip(contexts, flops, strict=True)))
 
 

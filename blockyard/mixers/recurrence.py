@@ -16,16 +16,17 @@ sqrt(-expm1(2 log a)), which keeps precision for a close to 1; the state is floa
 bf16 autocast. Two implementations of the same math: ``rg_lru_reference`` composes PyTorch ops
 around ``blockyard.kernels.linear_scan`` (the reference, and the fallback without a compiler);
 the fused C++ op ``blockyard.kernels.ops.rg_lru_fused`` does decay, input normalisation, input
-gate and scan in one pass. ``rg_lru(..., backend=)`` picks one: the scan backend (config key
-``runtime.scan``) is handed to the block by the model builder, never read from a global. The same
+gate and scan in one pass. ``rg_lru(..., backend=)`` picks one: the kernels choice (config key
+``runtime.kernels``) is handed to the block by the model builder, never read from a global. The same
 backend picks the causal depthwise conv: ``causal_depthwise_conv`` (torch's grouped conv1d, the
 reference) or the C++ op ``blockyard.kernels.ops.causal_conv_fused`` (``causal_conv`` chooses).
 
 Ablation knobs (``RecurrenceOptions``): ``gate: false`` is a fixed-decay diagonal recurrence in the
-style of S4D (Gu et al. 2022): a = sigmoid(Lambda), constant over time, and no input gate either,
-so the recurrence is linear time-invariant; ``complex: true`` is a diagonal complex recurrence in
-the style of the LRU (Orvieto et al. 2023); ``input_norm: false`` drops the sqrt(1 - a^2) factor;
-``c``, ``conv_width``, ``gate_blocks`` and ``width_mult`` as their help says.
+style of the diagonal state space models of Gu et al. 2022 (arXiv:2206.11893, id from memory):
+a = sigmoid(Lambda), constant over time, and no input gate either, so the recurrence is linear
+time-invariant; ``complex: true`` is a diagonal complex recurrence in the style of the linear
+recurrent unit of Orvieto et al. 2023 (arXiv:2303.06349); ``input_norm: false`` drops the
+sqrt(1 - a^2) factor; ``c``, ``conv_width``, ``gate_blocks`` and ``width_mult`` as their help says.
 """
 
 from __future__ import annotations
@@ -76,10 +77,12 @@ class RecurrenceOptions:
         min=0.0)
     conv_width: int = opt(4, "width of the causal depthwise Conv1D before the RG-LRU (0 = no conv)", min=0)
     gate: bool = opt(
-        True, "RG-LRU gates r_t and i_t; false = fixed decay a = sigmoid(Lambda) and no input gate (S4D-style LTI)")
+        True, "RG-LRU gates r_t and i_t; false = fixed decay a = sigmoid(Lambda) and no input gate "
+        "(linear time-invariant)")
     c: float = opt(8.0, "decay exponent scale: log a_t = -c r_t softplus(-Lambda) (unused when gate is false)", min=0.0)
     input_norm: bool = opt(True, "scale the input by sqrt(1 - a_t^2) so the state keeps unit variance")
-    complex: bool = opt(False, "diagonal complex state in the style of the LRU (Orvieto et al. 2023); output Re(h)")
+    complex: bool = opt(False, "diagonal complex state in the style of Orvieto et al. 2023 (arXiv:2303.06349); "
+                        "output Re(h)")
     gate_blocks: int = opt(
         4, "blocks of the block-diagonal gate weights W_a, W_x; must divide C (unused when gate is false)", min=1)
 
@@ -208,8 +211,8 @@ def rg_lru(
 ) -> torch.Tensor:
     """The RG-LRU (De et al. 2024, eqs. 1-4): all states h (B, T, C) in float32 (or float64).
 
-    Runs the fused op where ``backend`` (``runtime.scan``) resolves to the compiled kernels, else
-    ``rg_lru_reference`` with that scan backend; both compute the same math.
+    Runs the fused op where ``backend`` (``runtime.kernels``) resolves to the compiled kernels, else
+    ``rg_lru_reference`` with that choice of scan; both compute the same math.
     """
     both_or_none = (gate_a_logits is None) == (gate_x_logits is None)
     if both_or_none and uses_fused_op(x, backend):
@@ -262,7 +265,7 @@ def complex_lru(
         h_t = lambda_t h_{t-1} + sqrt(1 - |lambda_t|^2) (i_t x_t)
 
     The input x is real; the normalisation gamma_t = sqrt(1 - |lambda_t|^2) is computed from the
-    current magnitude (not learned as in the LRU) so that it stays exact under the gate.
+    current magnitude (not learned as in Orvieto et al. 2023) so that it stays exact under the gate.
     """
     dtype = _compute_dtype(x)
     cdtype = torch.complex64 if dtype == torch.float32 else torch.complex128
@@ -287,7 +290,7 @@ def decay_init(shape: tuple[int, ...], c_eff: float) -> torch.Tensor:
 
 
 def ring_init(shape: tuple[int, ...], c_eff: float) -> tuple[torch.Tensor, torch.Tensor]:
-    """(nu_log, theta_log) of the LRU ring init (Orvieto et al. 2023): |lambda|^(2 c_eff) uniform in
+    """(nu_log, theta_log) of the ring init of Orvieto et al. 2023: |lambda|^(2 c_eff) uniform in
     [RING_MIN^2, RING_MAX^2], phase uniform in (0, MAX_PHASE]."""
     u = torch.rand(shape, dtype=torch.float64)
     radius_sq = u * (RING_MAX**2 - RING_MIN**2) + RING_MIN**2
@@ -318,11 +321,11 @@ class BlockDiagonalLinear(nn.Module):
 
 
 class CausalDepthwiseConv(nn.Module):
-    """Per-channel causal temporal convolution of width ``kernel`` (the C++ op under the compiled scan backend)."""
+    """Per-channel causal temporal convolution of width ``kernel`` (the C++ op under runtime.kernels: compiled)."""
 
-    def __init__(self, width: int, kernel: int, *, scan_backend: str = "auto") -> None:
+    def __init__(self, width: int, kernel: int, *, kernels: str = "auto") -> None:
         super().__init__()
-        self.scan_backend = check_backend(scan_backend)
+        self.kernels = check_backend(kernels)
         self.weight = nn.Parameter(torch.empty(width, kernel))
         self.bias = nn.Parameter(torch.empty(width))
         self.reset_parameters()
@@ -334,16 +337,16 @@ class CausalDepthwiseConv(nn.Module):
         nn.init.uniform_(self.bias, -bound, bound)
 
     def forward(self, x: torch.Tensor, tail: torch.Tensor | None = None) -> tuple[torch.Tensor, torch.Tensor]:
-        return causal_conv(x, self.weight, self.bias, tail, backend=self.scan_backend)
+        return causal_conv(x, self.weight, self.bias, tail, backend=self.kernels)
 
 
 class RGLRU(nn.Module):
     """The RG-LRU's parameters (gates and decay), real or complex; the math is ``rg_lru`` / ``complex_lru``."""
 
-    def __init__(self, width: int, options: RecurrenceOptions, *, scan_backend: str = "auto") -> None:
+    def __init__(self, width: int, options: RecurrenceOptions, *, kernels: str = "auto") -> None:
         super().__init__()
         self.options = options
-        self.scan_backend = check_backend(scan_backend)
+        self.kernels = check_backend(kernels)
         self.gate_a = BlockDiagonalLinear(width, options.gate_blocks) if options.gate else None
         self.gate_x = BlockDiagonalLinear(width, options.gate_blocks) if options.gate else None
         if options.complex:
@@ -376,13 +379,13 @@ class RGLRU(nn.Module):
             ra = None if self.gate_a is None else self.gate_a(xf)
             rx = None if self.gate_x is None else self.gate_x(xf)
             if opts.complex:
-                scan = functools.partial(linear_scan, backend=self.scan_backend)
+                scan = functools.partial(linear_scan, backend=self.kernels)
                 h = complex_lru(xf, self.nu_log, self.theta_log, ra, rx, c=opts.c, input_norm=opts.input_norm, h0=h0,
                                 scan=scan)
                 y = h.real
             else:
                 h = rg_lru(xf, self.decay, ra, rx, c=opts.c, input_norm=opts.input_norm, h0=h0,
-                           backend=self.scan_backend)
+                           backend=self.kernels)
                 y = h
         return y.to(x.dtype), h[:, -1]
 
@@ -395,19 +398,19 @@ class RecurrenceBlock(Mixer):
     summary = "gated linear recurrence block around the RG-LRU (De et al. 2024), with ablation knobs"
     Options = RecurrenceOptions
 
-    # The model builder passes ``scan_backend`` (config key ``runtime.scan``) to mixers that set this.
-    takes_scan_backend = True
+    # The model builder passes ``kernels`` (config key ``runtime.kernels``) to mixers that set this.
+    takes_kernels = True
 
     def __init__(self, width: int, options: RecurrenceOptions, *, layer: int, depth: int,
-                 scan_backend: str = "auto") -> None:
+                 kernels: str = "auto") -> None:
         super().__init__(width, options, layer=layer, depth=depth)
         options.check_width("", width)
         rec = options.recurrence_width(width)
         self.rec_width = rec
         self.proj_in = nn.Linear(width, 2 * rec, bias=False)  # gate branch | recurrent branch
-        self.conv = (CausalDepthwiseConv(rec, options.conv_width, scan_backend=scan_backend)
+        self.conv = (CausalDepthwiseConv(rec, options.conv_width, kernels=kernels)
                      if options.conv_width > 0 else None)
-        self.lru = RGLRU(rec, options, scan_backend=scan_backend)
+        self.lru = RGLRU(rec, options, kernels=kernels)
         self.proj_out = nn.Linear(rec, width, bias=False)
         self.proj_out.residual_out = True
 
@@ -425,7 +428,7 @@ class RecurrenceBlock(Mixer):
             rec, tail = self.conv(rec, None if state is None else state.conv_tail)
         y, h = self.lru(rec, None if state is None else state.h)
         # The C++ conv hands the RG-LRU float32 under bf16 autocast: the product stays in the gate's dtype.
-        return self.proj_out(gelu_product(gate, y.to(gate.dtype), self.lru.scan_backend)), h, tail
+        return self.proj_out(gelu_product(gate, y.to(gate.dtype), self.lru.kernels)), h, tail
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         return self._mix(x, None)[0]
@@ -464,7 +467,7 @@ class RecurrenceBlock(Mixer):
             return False
         if torch.is_grad_enabled() and (x_t.requires_grad or any(p.requires_grad for p in self.parameters())):
             return False
-        return uses_fused_op(x_t, self.lru.scan_backend)
+        return uses_fused_op(x_t, self.lru.kernels)
 
     # ----- cost model hooks
 

@@ -1,4 +1,4 @@
-"""Rotary position embeddings (RoPE, Su et al. 2021, "RoFormer", eq. 34).
+"""Rotary position embeddings (RoPE, Su et al. 2021, arXiv:2104.09864, eq. 34).
 
 Each pair of features (2i, 2i+1) of a query or key at absolute position m is rotated by the
 angle m * theta_i with theta_i = base^(-2i/d). The dot product of a rotated query at m and a

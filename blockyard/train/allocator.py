@@ -3,7 +3,7 @@
 A training step allocates and frees the same large activation and gradient buffers every time.
 With glibc's default settings, freed memory at the top of the heap beyond a dynamic trim threshold
 (at most 64 MiB) goes back to the OS at the end of each step and is page-faulted in again, zeroed
-by the kernel, in the next one. Measured on a 2-core AMD EPYC at width 256, batch 16 x 256 tokens:
+by the kernel, in the next one. Measured on a 2-core x86 server CPU at width 256, batch 16 x 256 tokens:
 3,500-33,000 minor page faults and 11-73 ms of system CPU time per step (most in bf16), against
 under 800 (mostly under 10) with the settings below. Keeping the memory is common practice for CPU
 training (no source; the usual advice is a different malloc, which this avoids installing).

@@ -6,8 +6,8 @@ matrix product and convolution as fp32 math on the same bf16 values and rounds t
 to bf16. A bf16 GEMM unit with fp32 accumulators (AVX512-BF16, AMX) computes exactly that: the
 products of two bf16 numbers are exact in fp32, the sums accumulate in fp32, and the output is
 rounded to nearest-even once (Kalamkar et al. 2019, "A Study of BFLOAT16 for Deep Learning
-Training"; Intel's BF16 ISA reference). Only the order of the fp32 sums can differ, which moves
-an output by at most one bf16 rounding, and rarely.
+Training", arXiv:1905.12322; the AVX512-BF16 instruction set reference). Only the order of the
+fp32 sums can differ, which moves an output by at most one bf16 rounding, and rarely.
 
 Why: without those units torch computes bf16 GEMMs at a few % of fp32 speed, so the question
 "does bf16 change my result?" could only be asked of a machine that has them. Attention keeps

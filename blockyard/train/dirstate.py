@@ -15,7 +15,7 @@ from typing import Any
 
 import yaml
 
-from blockyard.config import Config, config_from_dict, config_hash, dict_hash
+from blockyard.config import Config, config_from_dict, config_hash, dict_hash, saved_config_data
 from blockyard.errors import UserError
 from blockyard.mixers.plugins import copy_plugins, is_loaded, resolve_plugin_paths
 from blockyard.rundir import CONFIG_FILE, RECORD_NAMES, is_empty, read_summary
@@ -39,7 +39,7 @@ def stored_config_hash(path: Path) -> str | None:
     the old plugin version into the registry in place of the one this process is about to train.
     """
     try:
-        data = yaml.safe_load(path.read_text())
+        data = saved_config_data(yaml.safe_load(path.read_text()))
         stored_plugins = resolve_plugin_paths(data.get("plugins"), path.parent)
         if not all(is_loaded(p) for p in stored_plugins):
             return dict_hash(data, path.parent)

@@ -2,7 +2,7 @@
 
 Order of work, chosen so that bad input never damages earlier results:
 
-1. resolve the runtime (device, precision, threads, scan backend) and read the run dir:
+1. resolve the runtime (device, precision, threads, kernels) and read the run dir:
    finished -> report it and stop; another config -> refuse (unless ``force``);
 2. load the data, touch one train batch and the validation windows, build the model and
    optimizer -- every input error surfaces here, before anything in the dir changes;
@@ -214,7 +214,7 @@ def _build(cfg: Config, cfg_hash: str, runtime: Runtime) -> Setup:
     val_batches = list(data.val_batches())
     torch.manual_seed(cfg.train.effective_init_seed)
     model = build_model(cfg.model, data.vocab_size, activation_checkpointing=cfg.runtime.activation_checkpointing,
-                        scan_backend=runtime.scan_backend)
+                        kernels=runtime.kernels)
     model.to(runtime.device)
     model.train()
     compiled = compile_for_training(model, runtime, first_batch)

@@ -188,7 +188,7 @@ def git_commit() -> str | None:
 
 
 def environment(**run_facts: Any) -> dict[str, Any]:
-    """Versions, machine and ``run_facts`` (device, threads, precision, scan backend, ...)."""
+    """Versions, machine and ``run_facts`` (device, threads, precision, kernels, ...)."""
     return {
         "python": sys.version.split()[0],
         "torch": torch.__version__,

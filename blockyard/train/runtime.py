@@ -1,4 +1,4 @@
-"""Where and how a run computes: device, thread count, precision, recurrence scan backend.
+"""Where and how a run computes: device, thread count, precision, C++ kernels or torch ops.
 
 Each is resolved from ``cfg.runtime`` before anything touches the run dir, so a bad value
 fails with a ConfigError naming the key and leaves earlier records alone. What was resolved
@@ -26,8 +26,8 @@ class Runtime:
     threads: int
     precision: str  # effective: fp32, bf16 or bf16_emulated
     precision_reason: str
-    scan_backend: str  # runtime.scan as requested; passed to build_model (no process-wide default)
-    scan: dict[str, Any]  # what it resolves to and the kernels' build status, for env.json
+    kernels: str  # runtime.kernels as requested; passed to build_model (no process-wide default)
+    kernels_info: dict[str, Any]  # what it resolves to and the kernels' build status, for env.json
     compile: bool = False  # runtime.compile: torch.compile the model for training (blockyard.train.compile)
 
     @contextlib.contextmanager
@@ -54,7 +54,7 @@ class Runtime:
             "threads": self.threads,
             "precision": self.precision,
             "precision_reason": self.precision_reason,
-            "scan_backend": self.scan,
+            "kernels": self.kernels_info,
         }
 
 
@@ -143,11 +143,19 @@ def resolve_precision(requested: str, device: torch.device) -> tuple[str, str, s
     return "fp32", f"bf16 requested but unsupported: {why}", warning
 
 
-def describe_scan(name: str) -> dict[str, Any]:
-    """What the recurrence scan backend ``runtime.scan`` resolves to here (builds the kernels on first use)."""
-    from blockyard.kernels import scan_backend_info
+def describe_kernels(name: str) -> dict[str, Any]:
+    """What ``runtime.kernels`` resolves to here (builds the kernels on first use).
 
-    return dict(scan_backend_info(name))
+    ``compiled`` where the kernels do not build is a ConfigError at start-up, not an error in the
+    middle of the first forward pass.
+    """
+    from blockyard.kernels import build, kernels_info
+
+    if name == "compiled" and build.load_kernels() is None:
+        why = str(build.build_status().get("error") or "unknown").strip().splitlines() or ["unknown"]
+        raise ConfigError("runtime.kernels", f"compiled: the C++ kernels do not build here ({why[0]}); "
+                          "write auto (falls back to torch ops) or torch")
+    return dict(kernels_info(name))
 
 
 def resolve_runtime(cfg: RuntimeConfig) -> tuple[Runtime, list[str]]:
@@ -155,6 +163,6 @@ def resolve_runtime(cfg: RuntimeConfig) -> tuple[Runtime, list[str]]:
     device = resolve_device(cfg.device)
     precision, reason, warning = resolve_precision(cfg.precision, device)
     runtime = Runtime(device=device, threads=resolve_threads(cfg.threads), precision=precision,
-                      precision_reason=reason, scan_backend=cfg.scan, scan=describe_scan(cfg.scan),
+                      precision_reason=reason, kernels=cfg.kernels, kernels_info=describe_kernels(cfg.kernels),
                       compile=cfg.compile)
     return runtime, [warning] if warning else []
