@@ -322,7 +322,7 @@ FIT_COLUMNS = ("variant", "point", "form", "E", "E_low", "E_high", "A", "A_low",
                "alpha_high", "level", "rungs", "n_min", "n_max", "bootstrap_refits", "note")
 TREND_COLUMNS = ("variant", "point", "slope_per_doubling", "slope_low", "slope_high", "trend", "target",
                  "gap_at_target", "gap_low", "gap_high", "crossover", "mean_gap_low", "mean_gap_high", "level",
-                 "pairs", "rungs", "caution")
+                 "pairs", "rungs", "caution", "slope_df", "rung_sd")
 
 
 def _point_cell(rest: Point) -> str:
@@ -340,7 +340,7 @@ def trend_rows(res: LadderTrends) -> list[list[Any]]:
     """trend.csv: one row per comparison; the gap is variant minus reference (nats/token)."""
     return [[v, _point_cell(rest), t.slope, t.slope_low, t.slope_high, t.trend, t.target, t.gap_at_target,
              t.gap_low, t.gap_high, t.crossover, t.mean_low, t.mean_high, t.level, t.n_points, len(t.rung_n),
-             t.caution]
+             t.caution, t.slope_df, t.rung_sd]
             for (v, rest), t in res.trends.items()]
 
 

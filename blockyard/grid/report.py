@@ -951,7 +951,7 @@ def _ladder_section(doc: Doc, res: GridResults) -> None:
     lad, lt = res.ladder, res.trends
     if lad is None or lt is None:
         return
-    from blockyard.grid.trend import describe
+    from blockyard.grid.trend import METHOD, describe
 
     doc.h(2, "Ladder: does the gap close with size?")
     budget = (f"each rung trains on {lad.tokens_per_param:g} tokens per non-embedding parameter of the reference"
@@ -972,17 +972,19 @@ def _ladder_section(doc: Doc, res: GridResults) -> None:
     if lt.fits:
         doc.p("Loss against size, per variant (fits.csv): L(N) = E + A·N^-alpha by least squares over every seed "
               "with 4 or more rungs; with fewer, log L on log N without E (3 parameters from 3 sizes would fit any "
-              "noise). Intervals: percentile bootstrap over seeds within each rung.")
+              "noise). alpha's interval: alpha ± t(n−3)·SE from the least-squares covariance (n−2 and the OLS slope in "
+              "the log form); E's and A's: percentile bootstrap over seeds within each rung.")
         doc.table(["variant", "form", "alpha", "interval", "E", "interval", "A", "rungs", "note"],
                   [[series_label(k), f.form, f"{f.alpha:.4f}", _pair(f.alpha_low, f.alpha_high),
                     "-" if f.E is None else f"{f.E:.4f}", "-" if f.E is None else _pair(f.E_low, f.E_high),
                     f"{f.A:.4g}", str(f.n_rungs), f.note or "-"] for k, f in lt.fits.items()])
     if lt.trends:
-        doc.p(f"Trend of each gap to {res.reference} (trend.csv): the per-seed paired differences at every rung "
-              "regressed on log2 of the reference's N (ordinary least squares); the slope is the change of the gap "
-              "per doubling of parameters, with its 95% interval (per comparison, not simultaneous). Shrinking / "
-              "growing: the interval excludes 0 and |gap| falls / rises with N; a positive gap means the variant is "
-              "worse.")
+        doc.p(f"Trend of each gap to {res.reference} (trend.csv): {METHOD}. The rungs, not the seeds, carry the "
+              "slope, so a rung's own deviation (tuning noise shared by its seeds, a depth change) widens the "
+              "interval instead of faking a trend. The slope is the change of the gap per doubling of parameters, "
+              "with its 95% interval (per comparison, not simultaneous). Shrinking / growing: the interval excludes "
+              "0 and |gap| falls / rises with N; reverses: it excludes 0 and the fitted gap changes sign inside the "
+              "ladder; a positive gap means the variant is worse.")
         doc.ul([f"**{series_label(k)}** vs {res.reference}: {describe(t)}." for k, t in lt.trends.items()])
     if lt.notes:
         doc.ul(lt.notes)

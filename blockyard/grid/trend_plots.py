@@ -3,7 +3,8 @@
     plot_loss_vs_params   loss against non-embedding parameters N on log axes, per variant: every
                           seed, the rung means and the fitted curve (extended to the target size)
     plot_gap_vs_params    each comparison's paired gap against N (log x): rung means, the fitted
-                          line, its 95% band (mean) and prediction band, the 0 line, the target
+                          line, its 95% band (mean) and prediction band, the 0 line, the target,
+                          the crossover with its Fieller interval
 """
 
 from __future__ import annotations
@@ -94,11 +95,14 @@ def plot_gap_vs_params(
                         fmt="s", color=color, capsize=3)
         if tr.crossover is not None:
             ax.plot([tr.crossover], [0.0], "x", color=color, ms=9)
+            ax.plot([max(tr.crossover_low, curve_n[0]), min(tr.crossover_high, curve_n[-1])], [0.0, 0.0], "-",
+                    color=color, lw=3, alpha=0.5)  # its Fieller interval, cut to the drawn span
     ax.set_xscale("log")
     ax.set_xlabel("non-embedding parameters N (reference)")
     ax.set_ylabel(f"paired gap, variant - reference ({unit})")
-    ax.set_title("gap against size: circles = rung means, bands = interval of the mean (dark) and\n"
-                 "prediction interval (light) at each trend's level, x = crossover, square = target", fontsize=9)
+    ax.set_title("gap against size: circles = rung means, bands = interval of the mean (dark) and prediction\n"
+                 "interval (light) at each trend's level, x = crossover (bar: its interval), square = target",
+                 fontsize=9)
     ax.grid(True, which="both", alpha=0.3)
     ax.legend(fontsize=7)
     fig.tight_layout()
