@@ -126,7 +126,7 @@ def test_a_changed_plugin_is_a_changed_config(tmp_path):
     first = load_config(cfg_path)
     assert run_training(first, run_dir, progress="silent")["status"] == "done"
     env = json.loads((run_dir / "env.json").read_text())
-    assert env["mixer_check"] == "passed (causality, step) for linear_attention"
+    assert env["mixer_check"] == "passed (causality, mixes_in_time, step) for linear_attention"
     # The run dir keeps the plugin and its config.yaml names the copy.
     assert (run_dir / "plugins" / plugin.name).read_bytes() == plugin.read_bytes()
     assert yaml.safe_load((run_dir / "config.yaml").read_text())["plugins"] == [f"plugins/{plugin.name}"]
