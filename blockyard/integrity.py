@@ -128,14 +128,15 @@ def record(folder: Path, add: dict[str, Entry] | None = None, drop: Iterable[str
 # ----------------------------------------------------------------------------- checking
 
 
-def judge(path: Path, actual: Entry, manifest: dict[str, Entry] | None) -> FileCheck:
-    """``actual`` (the bytes as read) against ``manifest``'s entry for ``path``."""
+def judge(path: Path, actual: Entry, manifest: dict[str, Entry] | None, unlisted: str = DAMAGED) -> FileCheck:
+    """``actual`` (the bytes as read) against ``manifest``'s entry for ``path``; a file the manifest does not
+    list is ``unlisted`` (damaged where every file is recorded before it takes its name: checkpoints)."""
     path = Path(path)
     if manifest is None:
         return FileCheck(path, UNVERIFIABLE, f"no {SUMS_FILE} beside it (written before checksums)")
     expected = manifest.get(path.name)
     if expected is None:
-        return FileCheck(path, DAMAGED, f"not listed in {SUMS_FILE}")
+        return FileCheck(path, unlisted, f"not listed in {SUMS_FILE}")
     if actual.size_bytes != expected.size_bytes:
         return FileCheck(path, DAMAGED, f"{actual.size_bytes:,d} bytes, {expected.size_bytes:,d} recorded")
     if actual.sha256 != expected.sha256:
@@ -150,8 +151,8 @@ def _manifest_or_damage(folder: Path) -> tuple[dict[str, Entry] | None, str | No
         return None, str(e)
 
 
-def check_file(path: Path) -> FileCheck:
-    """Hash the file at ``path`` and judge it against its folder's manifest."""
+def check_file(path: Path, unlisted: str = DAMAGED) -> FileCheck:
+    """Hash the file at ``path`` and judge it against its folder's manifest (see :func:`judge`)."""
     path = Path(path)
     manifest, broken = _manifest_or_damage(path.parent)
     if broken:
@@ -160,7 +161,7 @@ def check_file(path: Path) -> FileCheck:
         actual = entry_of_file(path)
     except OSError as e:
         return FileCheck(path, DAMAGED, f"unreadable ({e.strerror or e.__class__.__name__})")
-    return judge(path, actual, manifest)
+    return judge(path, actual, manifest, unlisted)
 
 
 def check_bytes(path: Path, data: bytes) -> FileCheck:
@@ -171,15 +172,16 @@ def check_bytes(path: Path, data: bytes) -> FileCheck:
     return judge(path, entry_of_bytes(data), manifest)
 
 
-def check_folder(folder: Path, names: Collection[str], *, listed_are_required: bool = False) -> list[FileCheck]:
+def check_folder(folder: Path, names: Collection[str], *, listed_are_required: bool = False,
+                 unlisted: str = DAMAGED) -> list[FileCheck]:
     """Each file ``names`` lists (present in ``folder``), and with ``listed_are_required`` each file the
-    manifest lists that is gone, judged against the manifest."""
+    manifest lists that is gone, judged against the manifest (``unlisted``: see :func:`judge`)."""
     folder = Path(folder)
     manifest, broken = _manifest_or_damage(folder)
     results = []
     for name in sorted(names):
         path = folder / name
-        results.append(FileCheck(path, DAMAGED, broken) if broken else check_file(path))
+        results.append(FileCheck(path, DAMAGED, broken) if broken else check_file(path, unlisted))
     if listed_are_required and manifest:
         results += [FileCheck(folder / name, DAMAGED, "listed in sha256.json but missing")
                     for name in sorted(set(manifest) - set(names))]

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import json
 from collections.abc import Iterator
+from dataclasses import dataclass
 from pathlib import Path
 
 from blockyard import fs, integrity
@@ -20,15 +21,24 @@ from blockyard.rundir import CHECKPOINT_DIR, PLUGIN_DIR, SUMMARY_FILE, read_summ
 _TOKEN_MANIFEST = "manifest.json"  # blockyard.data.cache.MANIFEST (not imported: it pulls in numpy)
 
 
-def _protected(folder: Path) -> tuple[list[str], bool] | None:
-    """The protected file names of ``folder`` and whether its manifest's entries are all required, or None."""
+@dataclass(frozen=True)
+class _Protected:
+    """The files of a folder to check, whether its manifest's entries must all be present, and what an
+    unlisted file is (a plugin copy from before checksums may sit beside newer, listed ones)."""
+
+    names: list[str]
+    listed_are_required: bool = False
+    unlisted: str = integrity.DAMAGED
+
+
+def _protected(folder: Path) -> _Protected | None:
     files = sorted(p.name for p in folder.iterdir() if p.is_file() and p.name != integrity.SUMS_FILE)
     if folder.name == CHECKPOINT_DIR:
-        return [n for n in files if n.startswith("step_") and n.endswith(".pt")], False
+        return _Protected([n for n in files if n.startswith("step_") and n.endswith(".pt")])
     if folder.name == PLUGIN_DIR:
-        return [n for n in files if n.endswith(".py")], False
+        return _Protected([n for n in files if n.endswith(".py")], unlisted=integrity.UNVERIFIABLE)
     if _TOKEN_MANIFEST in files and any(n.endswith(".bin") for n in files):
-        return files, True
+        return _Protected(files, listed_are_required=True)
     return None
 
 
@@ -45,8 +55,8 @@ def verify_tree(root: Path) -> list[integrity.FileCheck]:
     for folder in _folders(root):
         found = _protected(folder)
         if found is not None:
-            names, required = found
-            checks += integrity.check_folder(folder, names, listed_are_required=required)
+            checks += integrity.check_folder(folder, found.names, listed_are_required=found.listed_are_required,
+                                             unlisted=found.unlisted)
     return checks
 
 

@@ -270,3 +270,28 @@ def test_grid_reopens_a_finished_cell_whose_final_checkpoint_is_damaged(root, ca
     code, err = rerun(root, out, capsys)  # what the grid's cell command then does
     assert code == 0 and "from the checkpoint at step 20/30" in err, err
     assert comparable(out) == comparable(root / "reference")
+
+
+def test_grid_reconcile_sends_a_finished_cell_with_a_damaged_final_checkpoint_back_to_train(root, tmp_path,
+                                                                                          capsys):
+    from _helpers import earlier_grid_dir
+
+    from blockyard.grid.index import open_index
+    from blockyard.grid.run import _reconcile
+
+    grid_dir = earlier_grid_dir(tmp_path, """
+        name: earlier
+        base: {model: {width: 32, depth: 1}, data: {seq_len: 32}}
+        seeds: [0]
+    """)
+    cell = grid_dir / "cells" / "base-seed0"
+    shutil.rmtree(cell)
+    shutil.copytree(root / "reference", cell)
+    with open_index(grid_dir) as index:
+        assert _reconcile(grid_dir, index) == []  # verifies: stays finished
+        flip_bit(cell / "checkpoints" / NEWEST)
+        assert _reconcile(grid_dir, index) == ["base-seed0"]
+        (row,) = index.cells()
+        assert row["status"] == "interrupted" and NEWEST in row["message"]
+    assert "cell base-seed0: final checkpoint step_0000030.pt damaged" in capsys.readouterr().out
+    assert (cell / "checkpoints" / "damaged" / NEWEST).exists()

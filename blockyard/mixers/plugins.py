@@ -200,7 +200,7 @@ def _stderr_warning(message: str) -> None:
 
 def check_plugin_copy(path: Path) -> None:
     """Refuse a plugin file whose folder's manifest records other bytes for it (a damaged copy)."""
-    verdict = integrity.check_file(path)
-    if verdict.status == integrity.DAMAGED and "not listed" not in verdict.why:
+    verdict = integrity.check_file(path, unlisted=integrity.UNVERIFIABLE)
+    if verdict.status == integrity.DAMAGED:
         raise UserError(f"plugin {path}: damaged ({verdict.why}); rerun with the original plugin file in the config "
                         "to copy it again, or restore the file")
