@@ -82,7 +82,7 @@ def test_parallel_form_matches_the_masked_sum_and_the_recurrence():
 def test_example_passes_check_and_the_leaky_one_fails_at_position_0():
     good = _cli("check", str(LINEAR_ATTENTION))
     assert good.returncode == 0, good.stdout + good.stderr
-    assert "all 9 checks pass" in good.stdout
+    assert "all 10 checks pass" in good.stdout
     bad = _cli("check", str(LEAKY))
     assert bad.returncode == 1, bad.stdout + bad.stderr
     line = next(ln for ln in bad.stdout.splitlines() if "causality" in ln)
