@@ -8,18 +8,21 @@ every check passes, 1 when one fails, 2 for bad input.
 
 The gate (:func:`gate`) is the fast part (causality and step == forward, at ``GATE_SEQ_LEN``
 tokens) on the plugin mixers of a config; ``train`` and ``grid`` call it before the first step
-and refuse a mixer that fails it, naming the check and its figure.
+and refuse a mixer that fails it, naming the check and its figure. A warning row (an unmarked
+output projection) fails nothing: ``check`` shows it, ``train`` says in one line what the mark
+would change.
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from pathlib import Path
 
 from blockyard.config import Config, MixerConfig, config_from_dict, load_config
 from blockyard.errors import UserError
 from blockyard.mixers import MIXERS
 from blockyard.mixers.base import PLUGIN_MODULE_PREFIX
-from blockyard.mixers.contract import FAST_CHECKS, CheckResult, mixer_contract, model_contract
+from blockyard.mixers.contract import FAST_CHECKS, CheckResult, is_token_local, mixer_contract, model_contract
 from blockyard.mixers.plugins import load_plugin
 
 # Width at which a bare plugin file's mixers are checked (the contract tests' width).
@@ -29,6 +32,8 @@ CHECK_WIDTH = 32
 CHECK_VOCAB = 64
 # Tokens per sequence in the gate: enough for every position to be tried, seconds at most.
 GATE_SEQ_LEN = 16
+# In env.json's mixer_check: the plugin kinds that declare themselves token-local (the report marks them).
+TOKEN_LOCAL_MARK = "token-local on purpose"
 # What env.json records when the gate was skipped.
 SKIPPED = "skipped (--no-check)"
 
@@ -53,9 +58,10 @@ def plugin_file(kind: str) -> str:
 # ----------------------------------------------------------------------------- the gate
 
 
-def gate(cfg: Config) -> str:
+def gate(cfg: Config, note: Callable[[str], None] | None = None) -> str:
     """Run the fast checks on ``cfg``'s plugin mixers; raise UserError on the first failure.
 
+    ``note`` hears one line per warning (an unmarked output projection: what the mark would change).
     Returns what ``env.json`` records (``mixer_check``).
     """
     checked = []
@@ -63,16 +69,21 @@ def gate(cfg: Config) -> str:
         if not is_plugin_kind(mcfg.kind):
             continue
         results = mixer_contract(MIXERS[mcfg.kind], cfg.model.width, mcfg.options, seq_len=GATE_SEQ_LEN,
-                                 checks=FAST_CHECKS)
+                                 checks=(*FAST_CHECKS, "residual_out"))
+        who = f"model.mixers.{name} (kind {mcfg.kind} from {plugin_file(mcfg.kind)})"
         for r in results:
             if not r.passed:
-                raise UserError(
-                    f"model.mixers.{name} (kind {mcfg.kind} from {plugin_file(mcfg.kind)}) fails the mixer contract: "
-                    f"{r.check}: {r.figure}; `blockyard check` lists every check, --no-check trains anyway")
+                raise UserError(f"{who} fails the mixer contract: {r.check}: {r.figure}; `blockyard check` lists "
+                                "every check, --no-check trains anyway")
+            if r.warning and note is not None:
+                note(f"{who}: {r.check}: {r.figure}")
         checked.append(mcfg.kind)
     if not checked:
         return "no plugin mixers"
-    return f"passed ({', '.join(FAST_CHECKS)}) for {', '.join(dict.fromkeys(checked))}"
+    kinds = list(dict.fromkeys(checked))
+    local = [k for k in kinds if is_token_local(MIXERS[k])]
+    return (f"passed ({', '.join(FAST_CHECKS)}) for {', '.join(kinds)}"
+            + (f"; {TOKEN_LOCAL_MARK}: {', '.join(local)}" if local else ""))
 
 
 def gate_many(cfgs: list[Config]) -> None:
@@ -123,9 +134,11 @@ def format_rows(rows: list[Row]) -> str:
     lines = ["  ".join([*(c.ljust(w) for c, w in zip(row[:3], widths, strict=True)), row[3]]).rstrip()
              for row in [header, *table]]
     failed = [f"{who} {r.check}" for who, r in rows if r.passed is False]
+    warned = sum(r.warning for _, r in rows)
     lines.append("")
     lines.append(f"{len(failed)} of {len(rows)} checks FAIL: {', '.join(failed)}" if failed
-                 else f"all {len(rows)} checks pass ({sum(r.passed is None for _, r in rows)} n/a)")
+                 else f"all {len(rows)} checks pass ({sum(r.passed is None for _, r in rows)} n/a, "
+                 f"{warned} with a warning)")
     return "\n".join(lines)
 
 

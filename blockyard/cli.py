@@ -292,6 +292,27 @@ def _cmd_check(args: argparse.Namespace) -> int:
     return code
 
 
+# ----------------------------------------------------------------------------- verify
+
+
+def _add_verify(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("verify", help="check a run dir's or grid dir's checkpoints, plugin copies and token caches "
+                       "against their recorded sha256", description=(
+        "Read-only: each checkpoint, plugin copy and token-cache file under PATH against the sha256 its folder "
+        "recorded when it was written (sha256.json). Each file is ok, DAMAGED or unverifiable (written before "
+        "checksums). Exit code 0: nothing is damaged; 1: a file is damaged; 2: bad input."))
+    p.add_argument("path", help="a run dir, a grid dir, a token cache, or a folder holding them")
+    p.set_defaults(func=_cmd_verify)
+
+
+def _cmd_verify(args: argparse.Namespace) -> int:
+    from blockyard.verify import verify_command
+
+    text, code = verify_command(args.path)
+    print(text)
+    return code
+
+
 # ----------------------------------------------------------------------------- registry
 
 _SUBCOMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [_add_train, _add_blocks]
@@ -300,6 +321,7 @@ _SUBCOMMANDS += [_add_corpus]
 _SUBCOMMANDS += [_add_bench]
 _SUBCOMMANDS += [_add_sample, _add_eval]
 _SUBCOMMANDS += [_add_check]
+_SUBCOMMANDS += [_add_verify]
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -146,12 +146,14 @@ def _umask() -> int:
 
 
 def atomic_write(path: Path, write: Callable[[Any], Any], *, what: str = "file",
-                 needed_bytes: int | None = None) -> None:
+                 needed_bytes: int | None = None, before_replace: Callable[[], Any] | None = None) -> None:
     """Write ``path`` via ``write(fileobj)`` into a temp file of the same dir, fsync, then rename.
 
     A reader (or a later resume) sees either the old file or the complete new one, never a partial
     write, even after a crash, ``kill -9`` or a full disk (the temp file is removed then). Storage
     failures raise :class:`WriteFailed` naming ``what``; ``needed_bytes`` is quoted for space.
+    ``before_replace`` runs after the fsync, before the rename (a checksum manifest names the file
+    before it exists, so no complete file is ever unlisted).
     """
     path = Path(path)
     tmp: str | None = None
@@ -171,6 +173,8 @@ def atomic_write(path: Path, write: Callable[[Any], Any], *, what: str = "file",
                     raise
                 raw.flush()
                 os.fsync(raw.fileno())
+            if before_replace is not None:
+                before_replace()
             os.replace(tmp, path)
             tmp = None
     finally:

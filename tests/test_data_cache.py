@@ -138,7 +138,7 @@ def test_two_concurrent_preparers_get_one_identical_cache(tmp_path):
     assert sorted(p.name for p in tokens_dir.iterdir()) == sorted([Path(results[0][2]).name,
                                                                    Path(results[0][2]).name + ".lock"])
     assert sorted(f.name for f in Path(results[0][2]).iterdir()) == sorted(
-        ["train.bin", "val.bin", "test.bin", "doc_split.npy", "tokenizer.json", MANIFEST])
+        ["train.bin", "val.bin", "test.bin", "doc_split.npy", "tokenizer.json", MANIFEST, "sha256.json"])
 
 
 def test_crash_leftovers_are_never_read_and_get_cleaned(tmp_path):

@@ -16,7 +16,7 @@ from typing import Any
 
 import pytest
 import torch
-from conftest import LEAKY, LINEAR_ATTENTION, mixer_options
+from conftest import EXAMPLE_PLUGINS, LEAKY, LINEAR_ATTENTION, mixer_options
 
 from blockyard.config import config_from_dict
 from blockyard.mixers import MIXERS
@@ -34,6 +34,7 @@ from blockyard.mixers.contract import (
     mixer_inputs,
     model_contract,
     perturb_features,
+    perturbation_effects,
 )
 from blockyard.mixers.plugins import load_plugin
 from blockyard.model import build_model
@@ -70,7 +71,8 @@ def test_every_registered_kind_is_covered():
 @pytest.mark.parametrize("kind,options", CASES)
 def test_contract(kind, options, check):
     (result,) = mixer_contract(MIXERS[kind], WIDTH, mixer_options(kind, WIDTH, **options), checks=[check])
-    assert result.passed is True, f"{kind} {options}: {check}: {result.figure}"
+    # no warning either: the mixers we ship keep their residual_out marks
+    assert result.passed is True and not result.warning, f"{kind} {options}: {check}: {result.figure}"
 
 
 @pytest.mark.parametrize("kind", sorted(MIXERS))
@@ -135,7 +137,7 @@ def _shifted(x: torch.Tensor) -> torch.Tensor:
 def test_causality_rejects_a_mixer_that_ignores_its_input():
     x = mixer_inputs(WIDTH)
     result = check_causality(lambda inp: torch.ones_like(inp) + 0 * inp[:, :1], x, perturb_features())
-    assert result.passed is False and "changes no output" in result.figure
+    assert result.passed is False and "depend on no input" in result.figure
 
 
 class _Drift(torch.nn.Module):
@@ -217,7 +219,79 @@ def test_cost_and_init_checks_catch_a_wrong_formula_and_a_missing_mark():
     result = check_param_count(mixer)
     assert result.passed is False and result.value == 1
     mixer.out.residual_out = False
-    assert check_residual_out(mixer).passed is False
+    unmarked = check_residual_out(mixer)  # a warning, not a failure: the mark only scales the init
+    assert (unmarked.passed, unmarked.warning, unmarked.status) == (True, True, "warn")
+
+
+# ----------------------------------------------------------------------------- what the contract accepts and catches
+# The definitions are those of an autoregressive block (common practice, no source): output t depends on
+# inputs <= t (causality), and a block that mixes in time lets some later output see input t.
+
+DELAY = EXAMPLE_PLUGINS / "delay.py"
+TOKEN_LOCAL = EXAMPLE_PLUGINS / "token_local.py"
+
+
+def test_a_one_step_delay_passes_although_its_last_input_moves_nothing_in_the_window():
+    (cls,) = load_plugin(DELAY)  # y_t = W x_(t-1), no package helpers: the last input moves no output
+    results = {r.check: r for r in mixer_contract(cls, WIDTH, cls.Options())}
+    assert all(r.passed is not False for r in results.values()), [r.figure for r in results.values()]
+    assert results["causality"].passed and results["mixes_in_time"].passed
+    mixer = build_mixer(cls, WIDTH, cls.Options())
+    moved, scale = perturbation_effects(mixer, mixer_inputs(WIDTH), perturb_features())
+    assert float(moved[-1].max()) == 0.0  # the case the old rule refused ("input 39 changes no output")
+    assert (results["residual_out"].status, results["residual_out"].warning) == ("warn", True)
+
+
+def test_a_token_local_block_fails_mixes_in_time_unless_declared():
+    (declared,) = load_plugin(TOKEN_LOCAL)
+
+    class Undeclared(declared):
+        token_local = False
+
+    (fail,) = mixer_contract(Undeclared, WIDTH, declared.Options(), checks=["mixes_in_time"])
+    assert fail.passed is False and "token_local = True" in fail.figure and fail.value == 0.0, fail.figure
+    (ok,) = mixer_contract(declared, WIDTH, declared.Options(), checks=["mixes_in_time"])
+    assert ok.passed is True and not ok.warning and "declared token_local" in ok.figure
+    # a declaration on a block that does mix passes with a warning: it would mislabel the block in reports
+    (cls,) = load_plugin(DELAY)
+    mislabelled = type("Mislabelled", (cls,), {"token_local": True})
+    (warned,) = mixer_contract(mislabelled, WIDTH, cls.Options(), checks=["mixes_in_time"])
+    assert (warned.passed, warned.warning) == (True, True), warned.figure
+
+
+def _gate_config(plugin, kind):
+    return config_from_dict({"plugins": [str(plugin)], "model": {"width": WIDTH, "depth": 1, "pattern": [kind]}})
+
+
+def test_the_gate_refuses_an_undeclared_token_local_block_and_a_leaking_one(tmp_path):
+    from blockyard.check import TOKEN_LOCAL_MARK, gate
+    from blockyard.errors import UserError
+
+    undeclared = tmp_path / "undeclared.py"
+    undeclared.write_text(TOKEN_LOCAL.read_text().replace("token_local = True", "token_local = False"))
+    with pytest.raises(UserError, match="fails the mixer contract: mixes_in_time: no output after t moves"):
+        gate(_gate_config(undeclared, "token_local_linear"))
+    with pytest.raises(UserError, match="fails the mixer contract: causality: output 0 changes when input 1"):
+        gate(_gate_config(LEAKY, "leaky_linear_attention"))
+    notes: list[str] = []
+    assert gate(_gate_config(TOKEN_LOCAL, "token_local_linear"), note=notes.append).endswith(
+        f"; {TOKEN_LOCAL_MARK}: token_local_linear")
+    assert notes == []  # its projection is marked: nothing to say
+    gate(_gate_config(DELAY, "delay"), note=notes.append)
+    assert len(notes) == 1 and "residual_out" in notes[0] and "sqrt(2 x depth)" in notes[0]
+
+
+def test_the_variants_table_marks_a_declared_token_local_variant(tmp_path):
+    from blockyard.check import TOKEN_LOCAL_MARK
+    from blockyard.grid.report import read_token_local
+
+    rows = []
+    for variant, check in (("local", f"passed (causality) for x; {TOKEN_LOCAL_MARK}: x"), ("mixing", "passed")):
+        cell = tmp_path / "cells" / f"{variant}-seed0"
+        cell.mkdir(parents=True)
+        (cell / "env.json").write_text(f'{{"mixer_check": "{check}"}}')
+        rows.append({"id": f"{variant}-seed0", "variant": variant, "point": [], "seed": 0})
+    assert read_token_local(tmp_path, rows) == {"local"}
 
 
 def test_flops_check_names_the_context_by_our_key():

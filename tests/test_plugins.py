@@ -85,7 +85,7 @@ def test_example_passes_check_and_the_leaky_one_fails_at_position_0():
     """The subprocess smoke test of ``check``: the real command's exit codes 0 and 1."""
     good = _cli("check", str(LINEAR_ATTENTION))
     assert good.returncode == 0, good.stdout + good.stderr
-    assert "all 9 checks pass" in good.stdout
+    assert "all 10 checks pass" in good.stdout
     bad = _cli("check", str(LEAKY))
     assert bad.returncode == 1, bad.stdout + bad.stderr
     line = next(ln for ln in bad.stdout.splitlines() if "causality" in ln)
@@ -132,7 +132,7 @@ def test_a_changed_plugin_is_a_changed_config(tmp_path):
     first = load_config(cfg_path)
     assert run_training(first, run_dir, progress="silent")["status"] == "done"
     env = json.loads((run_dir / "env.json").read_text())
-    assert env["mixer_check"] == "passed (causality, step) for linear_attention"
+    assert env["mixer_check"] == "passed (causality, mixes_in_time, step) for linear_attention"
     # The run dir keeps the plugin and its config.yaml names the copy.
     assert (run_dir / "plugins" / plugin.name).read_bytes() == plugin.read_bytes()
     assert yaml.safe_load((run_dir / "config.yaml").read_text())["plugins"] == [f"plugins/{plugin.name}"]

@@ -5,6 +5,7 @@ The Ray half (the same grid on the loopback Ray cluster) is in tests/test_grid_r
 
 from __future__ import annotations
 
+import json
 import textwrap
 from pathlib import Path
 
@@ -57,7 +58,8 @@ def test_grid_with_a_plugin_runs_every_cell_from_the_grid_copy(tmp_path):
     assert cell_cfg["plugins"] == [f"../plugins/{LINEAR_ATTENTION.name}"]
     run = grid / "cells" / "mine-seed0"
     assert (run / "plugins" / LINEAR_ATTENTION.name).exists()
-    assert '"mixer_check": "passed (causality, step) for linear_attention"' in (run / "env.json").read_text()
+    env = json.loads((run / "env.json").read_text())
+    assert env["mixer_check"] == "passed (causality, mixes_in_time, step) for linear_attention"
     with open_index(grid, readonly=True) as index:
         assert {c["id"]: c["status"] for c in index.cells()} == {"softmax-seed0": "done", "mine-seed0": "done"}
     assert "linear_attention: extra_flops_per_token" in (grid / "report.md").read_text()  # measured, and said so

@@ -185,7 +185,7 @@ def test_corrupt_latest_checkpoint_falls_back(workdir, long_reference, capsys):
     warnings = [line for line in err.splitlines() if line.startswith("warning:")]
     assert len(warnings) == 1 and "step_0000075.pt" in warnings[0], err
     assert "from the checkpoint at step 60/" in err
-    assert (out / "checkpoints" / "step_0000075.pt.corrupt").exists()
+    assert (out / "checkpoints" / "damaged" / "step_0000075.pt").exists()  # moved aside, never deleted
     assert comparable(out) == reference
     # TensorBoard: the resumed segment purged the points the first one wrote after step 60.
     from tensorboard.backend.event_processing.event_accumulator import EventAccumulator

@@ -12,6 +12,11 @@ folder, removed by the next preparer. Memory stays bounded: documents are read o
 large ``.txt`` file one chunk at a time, see ``sources.TextFile``), then measured, split and encoded
 in pieces without ever being joined into one string, and appended to the split files; training
 then reads the files as memmaps.
+
+Every file of the folder, the manifest included, has its sha256 in ``sha256.json``
+(``blockyard.integrity``), written inside the temporary folder so that the rename publishes both
+at once. Opening a cache verifies it first: a damaged one is moved to ``<root>/tokens/damaged/``
+with a one-line warning and prepared again; one from before checksums is used with a note.
 """
 
 from __future__ import annotations
@@ -34,7 +39,7 @@ from typing import Any
 
 import numpy as np
 
-from blockyard import fs
+from blockyard import fs, integrity
 from blockyard.data.sources import Corpus, Document, document_chunks
 from blockyard.data.tokenizers import (
     Tokenizer,
@@ -180,6 +185,16 @@ def is_ready(folder: Path) -> bool:
         return False
 
 
+def damage(folder: Path) -> list[integrity.FileCheck]:
+    """The files of a ready cache folder that fail their checksums (empty: all verify). A folder from
+    before checksums has none to fail: a note says it is used unverified."""
+    names = [p.name for p in folder.iterdir() if p.is_file() and p.name != integrity.SUMS_FILE]
+    checks = integrity.check_folder(folder, names, listed_are_required=True)
+    if checks and all(c.status == integrity.UNVERIFIABLE for c in checks):
+        print(f"note: token cache {folder} was prepared before checksums: used unverified", file=sys.stderr)
+    return [c for c in checks if c.status == integrity.DAMAGED]
+
+
 def open_prepared(folder: Path) -> PreparedCorpus:
     manifest = json.loads((folder / MANIFEST).read_text())
     dtype = np.dtype(manifest["dtype"])
@@ -196,13 +211,18 @@ def open_prepared(folder: Path) -> PreparedCorpus:
 def prepare(corpus: Corpus, spec: CacheSpec, root: Path) -> PreparedCorpus:
     """The prepared cache of ``corpus`` under ``spec``: reused when present, else built once."""
     final = root / "tokens" / cache_key(corpus, spec)
-    if is_ready(final):
+    if is_ready(final) and not damage(final):
         return open_prepared(final)
     final.parent.mkdir(parents=True, exist_ok=True)
     lock = final.parent / f"{final.name}.lock"
     with fs.hold_lock(lock, wait_s=None, on_wait=lambda pid: announce_wait(lock, pid)):
-        if is_ready(final):  # another process built it while we waited
-            return open_prepared(final)
+        if is_ready(final):  # another process built it while we waited, or it is damaged
+            broken = damage(final)
+            if not broken:
+                return open_prepared(final)
+            moved = integrity.move_aside(final)
+            print(f"warning: token cache {broken[0].path} is damaged ({broken[0].why}); moved the cache to "
+                  f"{moved.parent.name}/{moved.name}, preparing it again", file=sys.stderr)
         for stale in final.parent.glob(f".tmp-{final.name}-*"):
             shutil.rmtree(stale, ignore_errors=True)  # left by a crashed preparer (we hold the lock)
         tmp = None
@@ -210,8 +230,10 @@ def prepare(corpus: Corpus, spec: CacheSpec, root: Path) -> PreparedCorpus:
             with fs.reporting(final, "the token cache"):
                 tmp = Path(tempfile.mkdtemp(prefix=f".tmp-{final.name}-", dir=final.parent))
                 build(corpus, spec, tmp)
-                if final.exists():
-                    shutil.rmtree(final)  # an old-format or manifest-less folder: never read
+                if final.exists():  # an old-format, manifest-less or damaged-manifest folder: never read
+                    moved = integrity.move_aside(final)
+                    print(f"warning: token cache {final} has no readable manifest; moved it to "
+                          f"{moved.parent.name}/{moved.name}, prepared again", file=sys.stderr)
                 os.rename(tmp, final)
         except BaseException:
             if tmp is None:
@@ -278,7 +300,10 @@ def build(corpus: Corpus, spec: CacheSpec, folder: Path) -> None:
         "prepared_by": {"host": socket.gethostname(), "pid": os.getpid()},
         "prepare_s": round(time.time() - started, 3),
     }
-    fs.atomic_write_text(folder / MANIFEST, json.dumps(manifest, indent=1), what="the token cache's manifest")
+    text = json.dumps(manifest, indent=1)
+    sums = {p.name: integrity.entry_of_file(p) for p in folder.iterdir() if p.is_file()}
+    integrity.record(folder, {**sums, MANIFEST: integrity.entry_of_bytes(text.encode())})
+    fs.atomic_write_text(folder / MANIFEST, text, what="the token cache's manifest")
 
 
 def _write_splits(corpus: Corpus, plan: SplitPlan, tok: Tokenizer, dtype: np.dtype, files: dict[str, Any],

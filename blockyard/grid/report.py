@@ -163,6 +163,8 @@ class GridResults:
     trends: LadderTrends | None = None  # with a ladder
     # variant -> model.parametrization of its cells ("mixed" when they differ); read only under tune.rungs: first
     parametrizations: dict[str, str] = dataclasses.field(default_factory=dict)
+    # variants whose cells use a plugin mixer declared token-local (no mixing in time, on purpose)
+    token_local: frozenset[str] = frozenset()
 
 
 @dataclasses.dataclass(frozen=True)
@@ -222,6 +224,16 @@ def read_parametrizations(grid_dir: Path, rows: list[dict[str, Any]]) -> dict[st
             continue
         seen.setdefault(g.variant, set()).add(str(model.get("parametrization", "standard")))
     return {v: next(iter(p)) if len(p) == 1 else "mixed" for v, p in seen.items()}
+
+
+def read_token_local(grid_dir: Path, rows: list[dict[str, Any]]) -> frozenset[str]:
+    """Variants whose first cell's env.json says the contract gate found a mixer declared token-local."""
+    from blockyard.check import TOKEN_LOCAL_MARK
+    from blockyard.rundir import ENV_FILE, read_json
+
+    return frozenset(g.variant for g in group_cells(rows)
+                     if TOKEN_LOCAL_MARK in str((read_json(cell_dir(grid_dir, g.rows[0]["id"]) / ENV_FILE) or {})
+                                                .get("mixer_check", "")))
 
 
 # ----------------------------------------------------------------------------- curves and plots
@@ -1019,7 +1031,8 @@ def _variants_section(doc: Doc, res: GridResults) -> None:
         first = g.rows[0]
         fpt = first.get("flops_per_token")
         tokens = _mean([r["tokens_seen"] for r in g.done]) or first["planned_tokens"]
-        name = g.variant + (" (reference)" if g.variant == res.reference else "")
+        name = g.variant + (" (reference)" if g.variant == res.reference else "") + \
+            (" (token-local)" if g.variant in res.token_local else "")
         table.append([
             name, g.point_text, f"{len(o.losses)} / {len(o.diverged)} / {len(o.failed)}", str(pairs),
             _fmt(iv.mean) if iv else "-", _ci_text(iv) if iv else "-",
@@ -1046,6 +1059,9 @@ def _variants_section(doc: Doc, res: GridResults) -> None:
               "column 'fairness adjustment' gives the budget used.")
     if res.cost_note:
         doc.p(res.cost_note)
+    if res.token_local:
+        doc.p("Variants marked (token-local) use a block that declares it mixes nothing in time (output t depends "
+              "on input t alone): a no-mixing baseline on purpose, not a block that failed to mix.")
 
 
 def _excluded_section(doc: Doc, rows: list[dict[str, Any]]) -> None:
@@ -1169,6 +1185,7 @@ def write_report(grid_dir: str | Path) -> Path:
     tuning = Tuning.from_json(meta.get("tuning"))
     parametrizations = read_parametrizations(grid_dir, rows) if tuning is not None and tuning.carried else None
     res = grid_results(rows, meta, grid_dir.name, tuning_rows, parametrizations)
+    res = dataclasses.replace(res, token_local=read_token_local(grid_dir, rows))
     plots = write_plots(grid_dir, res)
     doc = build_report(grid_dir, res, plots)
     fs.atomic_write_text(grid_dir / "report.md", doc.markdown(), what="the report")

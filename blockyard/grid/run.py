@@ -48,6 +48,7 @@ from blockyard.grid.status import LOCK_NAME, cell_dir, grid_progress
 from blockyard.grid.tuning import TUNING_DIR, Tuning, chosen_values, tuned_groups
 from blockyard.rundir import format_duration, read_summary
 from blockyard.schema import to_dict
+from blockyard.verify import reopen_if_final_checkpoint_damaged
 
 DEFAULT_ROOT = Path("runs") / "grids"
 STATUS_EVERY_S = 30.0
@@ -468,6 +469,11 @@ def _reconcile(grid_dir: Path, index: GridIndex) -> list[str]:
     """Sync the index with the cell dirs (after a kill); returns the ids still to train, in order."""
     todo = []
     for row in index.cells():
+        reopened = reopen_if_final_checkpoint_damaged(cell_dir(grid_dir, row["id"]))
+        if reopened:
+            print(f"warning: cell {row['id']}: {reopened}; retraining it from the newest good checkpoint")
+            index.mark_finished(row["id"], "interrupted", summary=read_summary(cell_dir(grid_dir, row["id"])),
+                                message=reopened)
         summary = read_summary(cell_dir(grid_dir, row["id"]))
         status = (summary or {}).get("status")
         if status in FINISHED:

@@ -7,15 +7,20 @@ function of inputs <= t, and generating token by token computes the same functio
 practice, no source). Checked:
 
 - ``causality``: changing input t changes no output before t (every t is tried, in one batched
-  forward); the first output position that sees a later input is reported. Also, each input
-  must change some output at or after it (else the check would prove nothing).
+  forward); the first output position that sees a later input is reported. It proves nothing
+  when no input moves any output at all (outputs that depend on no input): that fails too. An
+  input that moves nothing inside the window is fine (a one-step delay's last input).
+- ``mixes_in_time``: some output s > t moves when input t moves; a block where none does is
+  token-local (a per-position map), which an ablation would silently read as "no mixing". It
+  fails unless the class declares ``token_local = True`` (a deliberate no-mixing baseline).
 - ``step``: the step path, token by token from ``init_state``, reproduces ``forward``; the
   largest difference and its position are reported.
 - ``gradients``: a backward pass gives every parameter a finite, non-zero gradient.
 - ``determinism``: two forwards of the same input are equal.
 - ``state``: step states are frozen dataclasses whose tensors are batch-first, and a step never
   changes the state it was given (values and torch's in-place version counters).
-- ``residual_out``: the mixer declares the projection(s) writing into the residual stream.
+- ``residual_out``: the mixer declares the projection(s) writing into the residual stream; a
+  warning, not a failure, when none is marked (the mark only scales that projection's init).
 - ``params`` / ``state_bytes`` / ``flops``: the analytic cost hooks against the counted
   parameters, the measured state tensors, and sanity (finite, never falling with context);
   "n/a" with the measured figure where a plugin gives no formula.
@@ -43,10 +48,10 @@ STEP_TOL = 1e-5
 # Smallest change an input must make to some output at or after it, relative to the output scale.
 EFFECT_TOL = 1e-4
 # Every check of one mixer, of an assembled model, and the ones the training gate runs (seconds).
-MIXER_CHECKS = ("causality", "step", "gradients", "determinism", "state", "residual_out", "params", "state_bytes",
-                "flops")
+MIXER_CHECKS = ("causality", "mixes_in_time", "step", "gradients", "determinism", "state", "residual_out", "params",
+                "state_bytes", "flops")
 MODEL_CHECKS = ("causality", "step", "gradients", "determinism")
-FAST_CHECKS = ("causality", "step")
+FAST_CHECKS = ("causality", "mixes_in_time", "step")
 # Sizes of the contract run: long enough for blocked paths, short enough to stay cheap.
 SEQ_LEN = 40
 BATCH = 2
@@ -65,10 +70,13 @@ class CheckResult:
     value: float | None = None
     position: int | None = None  # causality: first leaking output; step: position of the largest difference
     source: int | None = None  # causality: the later input that output sees
+    warning: bool = False  # passed, with something the user should know (an unmarked output projection)
 
     @property
     def status(self) -> str:
-        return "n/a" if self.passed is None else ("pass" if self.passed else "FAIL")
+        if self.passed is None:
+            return "n/a"
+        return ("warn" if self.warning else "pass") if self.passed else "FAIL"
 
 
 # ----------------------------------------------------------------------------- inputs
@@ -134,19 +142,32 @@ def _scale(y: torch.Tensor) -> float:
 
 
 @torch.no_grad()
-def check_causality(forward: Forward, x: torch.Tensor, perturb: Callable[[torch.Tensor, int], torch.Tensor]
-                    ) -> CheckResult:
-    """Perturb each position t of ``x`` (all in one batch) and find outputs before t that move."""
+def perturbation_effects(forward: Forward, x: torch.Tensor, perturb: Callable[[torch.Tensor, int], torch.Tensor]
+                         ) -> tuple[torch.Tensor, float]:
+    """moved[t, s]: the largest change of output s when input t is perturbed (every t in one batched
+    forward), and the output scale (largest |output| of the unperturbed input)."""
     batch, seq = x.shape[:2]
     copies = torch.cat([x, *(perturb(x, t) for t in range(seq))])
     y = forward(copies)
     y = y.reshape(seq + 1, batch, seq, -1).float()
     base = y[0]
-    scale = _scale(base)
+    return (y[1:] - base).abs().amax(dim=(1, 3)), _scale(base)
+
+
+def _degenerate(name: str, scale: float) -> CheckResult | None:
     if scale == 0 or not math.isfinite(scale):
-        return CheckResult("causality", False, f"output is {'all zero' if scale == 0 else 'not finite'}", scale)
-    # moved[t, s]: how much output s changed when input t was perturbed
-    moved = (y[1:] - base).abs().amax(dim=(1, 3))
+        return CheckResult(name, False, f"output is {'all zero' if scale == 0 else 'not finite'}", scale)
+    return None
+
+
+@torch.no_grad()
+def check_causality(forward: Forward, x: torch.Tensor, perturb: Callable[[torch.Tensor, int], torch.Tensor]
+                    ) -> CheckResult:
+    """Perturb each position t of ``x`` (all in one batch) and find outputs before t that move."""
+    seq = x.shape[1]
+    moved, scale = perturbation_effects(forward, x, perturb)
+    if bad := _degenerate("causality", scale):
+        return bad
     leaks = torch.tril(moved > LEAK_TOL * scale, diagonal=-1)  # output s < input t
     if leaks.any():
         first_out = int(leaks.any(dim=0).nonzero()[0])
@@ -154,15 +175,47 @@ def check_causality(forward: Forward, x: torch.Tensor, perturb: Callable[[torch.
         value = float(moved[src, first_out]) / scale
         return CheckResult("causality", False, f"output {first_out} changes when input {src} does "
                            f"(by {value:.2g} x output scale; limit {LEAK_TOL:g})", value, first_out, src)
-    effect = torch.triu(moved).amax(dim=1)  # per input t: the largest change at s >= t
-    dead = (effect <= EFFECT_TOL * scale).nonzero()
-    if len(dead):
-        t = int(dead[0])
-        return CheckResult("causality", False, f"input {t} changes no output at or after it (max change "
-                           f"{float(effect[t]) / scale:.2g} x output scale): the check would prove nothing", None, t)
+    effect = float(torch.triu(moved).max()) / scale  # the largest change at s >= t, over every input t
+    if effect <= EFFECT_TOL:
+        return CheckResult("causality", False, f"no input changes any output (max change {effect:.2g} x output "
+                           "scale): the outputs depend on no input, the check would prove nothing", effect)
     worst = float(torch.tril(moved, diagonal=-1).max()) / scale if seq > 1 else 0.0
     return CheckResult("causality", True, f"no output moves before its input ({seq} positions tried; largest "
                        f"change before t {worst:.2g} x output scale)", worst)
+
+
+def is_token_local(cls: type) -> bool:
+    """True when the mixer class declares itself token-local on purpose (``token_local = True``)."""
+    return bool(getattr(cls, "token_local", False))
+
+
+@torch.no_grad()
+def check_mixes_in_time(forward: Forward, x: torch.Tensor, perturb: Callable[[torch.Tensor, int], torch.Tensor],
+                        token_local: bool = False) -> CheckResult:
+    """Some output s > t moves when input t moves (the block carries information forward in time).
+
+    A block that declares ``token_local`` passes either way; one that declares it and mixes all the
+    same passes with a warning (the declaration would mislabel it in reports).
+    """
+    moved, scale = perturbation_effects(forward, x, perturb)
+    if bad := _degenerate("mixes_in_time", scale):
+        return bad
+    later = torch.triu(moved, diagonal=1)  # output s > input t
+    value = float(later.max()) / scale if x.shape[1] > 1 else 0.0
+    mixes = value > EFFECT_TOL
+    if token_local:
+        if mixes:
+            return CheckResult("mixes_in_time", True, f"declared token_local, but a later output moves by "
+                               f"{value:.2g} x output scale (drop the declaration?)", value, warning=True)
+        return CheckResult("mixes_in_time", True, f"declared token_local: no output after t moves (max "
+                           f"{value:.2g} x output scale); reports mark it", value)
+    if not mixes:
+        return CheckResult("mixes_in_time", False, f"no output after t moves when input t does (max {value:.2g} x "
+                           f"output scale, limit {EFFECT_TOL:g}): a token-local block; set the class attribute "
+                           "token_local = True if it is a no-mixing baseline on purpose", value)
+    src, out = divmod(int(later.argmax()), later.shape[1])
+    return CheckResult("mixes_in_time", True, f"output {out} moves by {value:.2g} x output scale when input {src} "
+                       "does", value, out, src)
 
 
 @torch.no_grad()
@@ -242,11 +295,18 @@ def check_state(mixer: Mixer, x: torch.Tensor) -> CheckResult:
     return CheckResult("state", True, f"{n} tensor(s), batch-first, none changed by {x.shape[1]} steps", float(n))
 
 
+#: What marking the output projection changes (check's warning row, train's note).
+RESIDUAL_OUT_EFFECT = ("the mark draws the output projection's initial weights with std init_std / sqrt(2 x depth) "
+                       "instead of init_std (Radford et al. 2019, sec. 2.3), so the residual stream's variance "
+                       "does not grow with depth; unmarked, it trains with the unscaled init")
+
+
 def check_residual_out(mixer: Mixer) -> CheckResult:
+    """A warning, not a failure, when no module is marked: the block trains either way."""
     names = [name for name, m in mixer.named_modules() if is_residual_out(m)]
     if not names:
-        return CheckResult("residual_out", False, "no module marked residual_out (mark the output projection "
-                           "with blockyard.mixers.mark_residual_out)", 0.0)
+        return CheckResult("residual_out", True, "no module marked residual_out (mark the output projection "
+                           f"with blockyard.mixers.mark_residual_out): {RESIDUAL_OUT_EFFECT}", 0.0, warning=True)
     return CheckResult("residual_out", True, f"marked: {', '.join(names)}", float(len(names)))
 
 
@@ -315,6 +375,7 @@ def mixer_contract(cls: type[Mixer], width: int, options: Any, *, seq_len: int =
     x = mixer_inputs(width, seq_len, batch)
     run: dict[str, Callable[[], CheckResult]] = {
         "causality": lambda: check_causality(mixer, x, perturb_features()),
+        "mixes_in_time": lambda: check_mixes_in_time(mixer, x, perturb_features(), is_token_local(cls)),
         "step": lambda: check_step(mixer, mixer.init_state(batch), mixer.step, x),
         "gradients": lambda: check_gradients(mixer, mixer, x),
         "determinism": lambda: check_determinism(mixer, x),

@@ -19,10 +19,11 @@ import importlib.util
 import shutil
 import sys
 import traceback
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
+from blockyard import integrity
 from blockyard.errors import ConfigError, UserError
 from blockyard.mixers.base import MIXERS, PLUGIN_MODULE_PREFIX, Mixer, register_mixer
 
@@ -81,6 +82,7 @@ def _error_line(e: BaseException, path: Path) -> int | None:
 def load_plugin(path: str | Path) -> tuple[type[Mixer], ...]:
     """Execute the plugin file at ``path`` (once per content) and register its mixers; returns them."""
     path = Path(path).resolve()
+    check_plugin_copy(path)
     name = module_name(file_digest(path))
     if name in _LOADED:
         for cls in _LOADED[name]:  # again the newest version, if an edited file was loaded in between
@@ -138,22 +140,67 @@ def plugin_kinds() -> dict[str, str]:
             for kind, cls in MIXERS.items() if cls.__module__.startswith(PLUGIN_MODULE_PREFIX)}
 
 
-def copy_plugins(paths: Sequence[str | Path], folder: Path) -> list[Path]:
+def copy_plugins(paths: Sequence[str | Path], folder: Path, warn: Callable[[str], None] | None = None) -> list[Path]:
     """Copy each plugin file into ``folder`` (created), keeping its name; returns the copies' paths.
 
     A file there of the same name and other bytes (another version, or another file of that
-    name) is never overwritten: the copy then carries the start of its digest in its name.
+    name) is never overwritten: the copy then carries the start of its digest in its name. Each
+    copy's sha256 is recorded in ``folder/sha256.json``; damaged copies are repaired first
+    (:func:`repair_copies`).
     """
     folder.mkdir(parents=True, exist_ok=True)
+    repair_copies(folder, paths, warn)
     copies: list[Path] = []
+    recorded: dict[str, integrity.Entry] = {}
     for path in map(Path, paths):
         digest = file_digest(path)
         target = folder / path.name
         if target.exists() and file_digest(target) != digest:
             target = folder / f"{path.stem}_{digest[:8]}{path.suffix}"
         if not target.exists():
-            tmp = target.with_name(f".{target.name}.tmp")
-            shutil.copyfile(path, tmp)
-            tmp.replace(target)
+            _copy_file(path, target)
+        recorded[target.name] = integrity.Entry(digest, target.stat().st_size)
         copies.append(target)
+    integrity.record(folder, recorded)
     return copies
+
+
+def _copy_file(source: Path, target: Path) -> None:
+    tmp = target.with_name(f".{target.name}.tmp")
+    shutil.copyfile(source, tmp)
+    tmp.replace(target)
+
+
+def repair_copies(folder: Path, originals: Sequence[str | Path], warn: Callable[[str], None] | None = None) -> None:
+    """Move each copy in ``folder`` whose bytes differ from those ``folder/sha256.json`` recorded to
+    ``folder/damaged/`` (one warning line each), and copy it again from the one of ``originals`` with
+    the recorded content; without such an original it stays missing (the config then names another plugin)."""
+    try:
+        manifest = integrity.read_manifest(folder) or {}
+    except integrity.UnreadableManifest as e:
+        (warn or _stderr_warning)(f"{e}; the plugin copies there are not verified")
+        return
+    by_digest = {file_digest(p): Path(p) for p in originals}
+    for name, entry in manifest.items():
+        copy = folder / name
+        if not copy.exists() or (verdict := integrity.check_file(copy)).status != integrity.DAMAGED:
+            continue
+        moved = integrity.move_aside(copy)
+        source = by_digest.get(entry.sha256)
+        if source is not None:
+            _copy_file(source, copy)
+        again = f"copied again from {source}" if source else "no plugin of this config has the recorded content"
+        (warn or _stderr_warning)(f"plugin copy {copy} is damaged ({verdict.why}); moved to "
+                                  f"{moved.parent.name}/{moved.name}, {again}")
+
+
+def _stderr_warning(message: str) -> None:
+    print(f"warning: {message}", file=sys.stderr)
+
+
+def check_plugin_copy(path: Path) -> None:
+    """Refuse a plugin file whose folder's manifest records other bytes for it (a damaged copy)."""
+    verdict = integrity.check_file(path, unlisted=integrity.UNVERIFIABLE)
+    if verdict.status == integrity.DAMAGED:
+        raise UserError(f"plugin {path}: damaged ({verdict.why}); rerun with the original plugin file in the config "
+                        "to copy it again, or restore the file")

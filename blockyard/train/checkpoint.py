@@ -3,12 +3,16 @@
 A checkpoint holds model, optimizer and scheduler state, the torch / numpy / python RNG states,
 the data position (the step: batches are a pure function of seed and step) and the loop's own
 state (first loss, best val loss, time spent). Files are ``checkpoints/step_<N>.pt``, written
-atomically; the last ``train.keep_checkpoints`` are kept. A checkpoint that cannot be read is
-renamed ``*.pt.corrupt`` (kept for inspection, ignored from then on) and the previous one used.
+atomically; the last ``train.keep_checkpoints`` are kept. Each file's sha256 goes into
+``checkpoints/sha256.json`` (``blockyard.integrity``) before the file takes its name, and a resume
+checks it before loading. A checkpoint that is damaged (its bytes differ from the recorded ones) or
+cannot be read is moved to ``checkpoints/damaged/`` (kept for inspection, never deleted) and the
+previous one used; one from before checksums ("unverifiable") is used with a note.
 """
 
 from __future__ import annotations
 
+import io
 import random
 import re
 import sys
@@ -19,7 +23,7 @@ from typing import Any
 import numpy as np
 import torch
 
-from blockyard import fs
+from blockyard import fs, integrity
 
 FORMAT = 1
 _NAME = re.compile(r"^step_(\d+)\.pt$")
@@ -126,11 +130,26 @@ def save_checkpoint(
         **({"averaged": averaged} if averaged is not None else {}),
     }
     path = checkpoint_path(folder, step)
-    fs.atomic_write(path, lambda f: torch.save(state, f), what=f"the checkpoint of step {step}",
-                    needed_bytes=tensor_bytes(state))
-    for _old_step, old in list_checkpoints(folder)[:-keep]:
-        old.unlink(missing_ok=True)
+    write_recorded(path, state, what=f"the checkpoint of step {step}")
+    old = [p for _old_step, p in list_checkpoints(folder)[:-keep]]
+    for p in old:
+        p.unlink(missing_ok=True)
+    if old:  # an entry left by a kill before this write names a file that is gone: harmless
+        integrity.record(folder, drop=[p.name for p in old])
     return path
+
+
+def write_recorded(path: Path, state: dict[str, Any], what: str) -> None:
+    """``torch.save(state)`` to ``path`` atomically, its sha256 taken from the bytes as they are written
+    and recorded in the folder's manifest before the file takes its name."""
+    hashing: list[integrity.HashingWriter] = []
+
+    def write(f: Any) -> None:
+        hashing.append(integrity.HashingWriter(f))
+        torch.save(state, hashing[-1])
+
+    fs.atomic_write(path, write, what=what, needed_bytes=tensor_bytes(state),
+                    before_replace=lambda: integrity.record(path.parent, {path.name: hashing[-1].entry()}))
 
 
 def tensor_bytes(tree: Any) -> int:
@@ -152,10 +171,23 @@ def estimate_checkpoint_bytes(model: torch.nn.Module, optimizer_slots: int = 2) 
     return (1 + optimizer_slots) * params + buffers
 
 
-def read_checkpoint(path: Path, config_hash: str) -> Checkpoint:
-    """Load and sanity-check one checkpoint; raises ValueError saying what is wrong with it."""
+def read_checkpoint(path: Path, config_hash: str, note: Any = None) -> Checkpoint:
+    """Verify, load and sanity-check one checkpoint; raises ValueError saying what is wrong with it.
+
+    The bytes are read once: hashed against the folder's manifest, then unpickled from memory.
+    ``note`` hears that a checkpoint from before checksums could not be verified.
+    """
     try:
-        state = torch.load(path, map_location="cpu", weights_only=True)
+        data = Path(path).read_bytes()
+    except OSError as e:
+        raise ValueError(f"unreadable ({e.strerror or e.__class__.__name__})") from None
+    verdict = integrity.check_bytes(path, data)
+    if verdict.status == integrity.DAMAGED:
+        raise ValueError(f"damaged ({verdict.why})")
+    if verdict.status == integrity.UNVERIFIABLE and note is not None:
+        note(f"checkpoint {path} was written before checksums: it loads unverified")
+    try:
+        state = torch.load(io.BytesIO(data), map_location="cpu", weights_only=True)
     except Exception as e:  # torch raises several types for truncated or garbled files
         raise ValueError(f"unreadable ({e.__class__.__name__}: {str(e).splitlines()[0] if str(e) else ''})") from e
     if not isinstance(state, dict) or any(k not in state for k in _REQUIRED):
@@ -170,16 +202,23 @@ def read_checkpoint(path: Path, config_hash: str) -> Checkpoint:
     return Checkpoint(step=int(state["step"]), path=Path(path), state=state)
 
 
-def latest_valid_checkpoint(folder: Path, config_hash: str, warn: Any = None) -> Checkpoint | None:
-    """The newest readable checkpoint in ``folder``; broken newer ones are renamed ``*.corrupt``."""
+def latest_valid_checkpoint(folder: Path, config_hash: str, warn: Any = None, note: Any = None
+                            ) -> Checkpoint | None:
+    """The newest checkpoint in ``folder`` that verifies and reads; newer ones that do not are moved to
+    ``folder/damaged/``, each with a one-line warning naming it."""
     for _step, path in reversed(list_checkpoints(folder)):
         try:
-            return read_checkpoint(path, config_hash)
+            return read_checkpoint(path, config_hash, note=note)
         except ValueError as e:
-            bad = path.with_name(path.name + ".corrupt")
-            path.replace(bad)
-            (warn or _stderr_warning)(f"checkpoint {path} is {e}; moved to {bad.name}, trying the previous one")
+            bad = integrity.move_aside(path)
+            (warn or _stderr_warning)(f"checkpoint {path} is {e}; moved to {bad.parent.name}/{bad.name}, "
+                                      "trying the previous one")
     return None
+
+
+def damaged_checkpoints(folder: Path) -> list[Path]:
+    """Checkpoints an earlier resume moved aside (``folder/damaged/``)."""
+    return sorted((Path(folder) / integrity.DAMAGED_DIR).glob("step_*.pt*"))
 
 
 def _stderr_warning(message: str) -> None:

@@ -9,6 +9,7 @@ The caller holds the run dir's writer lock (``rundir.writing``) around all of th
 from __future__ import annotations
 
 import shutil
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -17,8 +18,8 @@ import yaml
 
 from blockyard.config import Config, config_from_dict, config_hash, dict_hash, saved_config_data
 from blockyard.errors import UserError
-from blockyard.mixers.plugins import copy_plugins, is_loaded, resolve_plugin_paths
-from blockyard.rundir import CONFIG_FILE, RECORD_NAMES, is_empty, read_summary
+from blockyard.mixers.plugins import copy_plugins, is_loaded, repair_copies, resolve_plugin_paths
+from blockyard.rundir import CONFIG_FILE, PLUGIN_DIR, RECORD_NAMES, is_empty, read_summary
 
 
 @dataclass(frozen=True)
@@ -88,6 +89,13 @@ def keep_plugin_copies(cfg: Config, out: Path) -> list[str] | None:
     if not cfg.plugins:
         return None
     return [str(p.relative_to(out)) for p in copy_plugins(cfg.plugins, out / "plugins")]
+
+
+def repair_plugin_copies(cfg: Config, out: Path, warn: Callable[[str], None]) -> None:
+    """Before the run dir's config is compared: a damaged plugin copy in ``out/plugins`` is moved aside
+    and copied again from ``cfg``'s plugin of the recorded content (``mixers.plugins.repair_copies``)."""
+    if cfg.plugins and (out / PLUGIN_DIR).is_dir():
+        repair_copies(out / PLUGIN_DIR, cfg.plugins, warn)
 
 
 def clear_records(out: Path) -> None:

@@ -36,7 +36,7 @@ from torch import nn
 from blockyard import fs
 from blockyard.config import Config, config_hash, dump_config
 from blockyard.data.batches import IGNORE_INDEX, count_correct
-from blockyard.errors import WriteFailed
+from blockyard.errors import UserError, WriteFailed
 from blockyard.rundir import (
     CHECKPOINT_DIR,
     CONFIG_FILE,
@@ -50,7 +50,13 @@ from blockyard.train import checkpoint as ckpt
 from blockyard.train.allocator import keep_freed_memory
 from blockyard.train.averaging import WeightAverage, ema_decay, half_life_steps
 from blockyard.train.compile import compile_for_training, compile_warning
-from blockyard.train.dirstate import clear_records, inspect_run_dir, keep_plugin_copies, plan_run_dir
+from blockyard.train.dirstate import (
+    clear_records,
+    inspect_run_dir,
+    keep_plugin_copies,
+    plan_run_dir,
+    repair_plugin_copies,
+)
 from blockyard.train.memory import PeakRSS
 from blockyard.train.optim import build_optimizer, build_scheduler, tokens_per_step, total_steps
 from blockyard.train.progress import Progress, make_progress
@@ -289,6 +295,7 @@ def run_training(
     show = make_progress(progress)
     runtime, warnings = resolve_runtime(cfg.runtime)
     with writing(out, wait_s=wait_s):
+        repair_plugin_copies(cfg, out, lambda m: show.message(f"warning: {m}"))
         state = inspect_run_dir(out, cfg_hash)
         action = plan_run_dir(state, out, cfg_hash, force)
         if action == "finished":
@@ -300,7 +307,7 @@ def run_training(
         try:
             from blockyard.check import SKIPPED, gate  # a plugin mixer that leaks is refused before anything is written
 
-            mixer_check = gate(cfg) if check else SKIPPED
+            mixer_check = gate(cfg, note=lambda m: show.message(f"note: {m}")) if check else SKIPPED
             s = _build(cfg, cfg_hash, runtime)
             s.mixer_check = mixer_check
             s.allocator = keep_freed_memory()
@@ -349,7 +356,11 @@ def _start(s: Setup, out: Path, action: str, show: Progress) -> tuple[int, LoopS
         fs.remove_temp_files(out)
         fs.remove_temp_files(out / CHECKPOINT_DIR)
         found = ckpt.latest_valid_checkpoint(out / CHECKPOINT_DIR, s.cfg_hash,
-                                             warn=lambda m: show.message(f"warning: {m}"))
+                                             warn=lambda m: show.message(f"warning: {m}"),
+                                             note=lambda m: show.message(f"note: {m}"))
+        if found is None and ckpt.damaged_checkpoints(out / CHECKPOINT_DIR):
+            raise UserError(f"{out}: no checkpoint verifies (the damaged ones are in {CHECKPOINT_DIR}/damaged/); "
+                            "use --force to train from scratch, or restore a good copy of the run dir")
     if found is None:
         out.mkdir(parents=True, exist_ok=True)
         clear_records(out)
