@@ -30,7 +30,7 @@ WORDS = "the of and to in is that for it as was with be by on not he this are or
 TRAIN = {"steps": 30, "batch_size": 4, "warmup_steps": 3, "log_every": 5, "eval_every": 10, "checkpoint_every": 10,
          "eval_windows": 2, "keep_checkpoints": 3}
 NEWEST = "step_0000030.pt"
-RUNTIME = {"threads": 1, "scan": "chunked"}  # no process builds the compiled scan kernel
+RUNTIME = {"threads": 1, "kernels": "torch"}  # no process builds the compiled kernels
 
 
 @pytest.fixture(scope="module")
