@@ -110,6 +110,11 @@ def test_dry_run_without_noise_states_the_assumption_and_what_cannot_be_decided(
     assert "CANNOT DECIDE" not in _dry(spec, tmp_path / "never")
 
 
+def test_one_seed_cannot_decide_anything(tmp_path, fixed_speed):
+    text = _dry(_spec(tmp_path, "[0]", smallest_effect=0.5), tmp_path / "never")
+    assert "worst case, 1 seed(s) per group: no interval" in text and "CANNOT DECIDE: 1 seed per group" in text
+
+
 def test_seed_rounds_plan_at_their_sequential_level(tmp_path, fixed_speed):
     text = _dry(_spec(tmp_path, "{first: 3, most: 9, step: 2}", smallest_effect=0.05), tmp_path / "never")
     sd = budget.ASSUMED_PAIRED_SD

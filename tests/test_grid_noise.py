@@ -64,7 +64,7 @@ def test_noise_csv_equals_numpy_and_statsmodels(tmp_path):
     report = (tmp_path / "report.md").read_text()
     assert "## Noise" in report and "noise.png" in report and (tmp_path / "noise.png").stat().st_size > 0
     # The null control's A/A sd is in the table, marked as such.
-    assert f"{NULL_VARIANT} (null control, A/A)" in report
+    assert f"| {NULL_VARIANT} (A/A) | 5 |" in report
 
 
 def test_one_evaluation_gives_one_row_and_no_plot(tmp_path):

@@ -205,8 +205,9 @@ def plan_lines(design: Design, m: int, fixed_seeds: int, noise: NoiseEstimate,
                  + (f"; most: auto from budget_hours {schedule.budget_hours:g}" if schedule and schedule.auto else "")
                  + ")")
     can = decidable_effect(n, sd, alpha)
-    lines.append(f"  worst case, {n} seeds per group: decides a smallest effect of {can:.4f} nats/token (finds a "
-                 f"true difference of ±{can:.4f}, or shows equivalence inside it, with 80% power)")
+    lines.append(f"  worst case, {n} seed(s) per group: " + (
+        f"decides a smallest effect of {can:.4f} nats/token (finds a true difference of ±{can:.4f}, or shows "
+        "equivalence inside it, with 80% power)" if n >= 2 else "no interval (a paired sd needs 2 pairs)"))
     needed, exact = most_needed(design, m, delta, sd, fixed_seeds)
     more = "" if needed is None else f"seeds.most: {needed}" if schedule else f"a list of {needed} seeds"
     if needed is None:
@@ -219,6 +220,9 @@ def plan_lines(design: Design, m: int, fixed_seeds: int, noise: NoiseEstimate,
         lines.append(f"  smallest_effect {delta:g} needs {more}{bound}, {_hours(wall)} worst case here")
     if can <= delta:
         return lines
+    if n < 2:
+        return [*lines, "", f"CANNOT DECIDE: {n} seed per group gives no interval. Option: more seeds: "
+                f"{more or 'many'}"]
     lines += ["", f"CANNOT DECIDE: at {n} seeds per group this grid decides only effects of {can:.4f} nats/token or "
                   f"more, not smallest_effect {delta:g}. Options:",
               "  - more seeds: " + (more if needed is not None else f"more than {stats.MAX_SEEDS} (not practical)"),

@@ -29,7 +29,9 @@ class _Doc(Protocol):  # the report's document (blockyard.grid.report.Doc)
 
 
 def label(curve: NoiseCurve) -> str:
-    return curve.variant + (f" at {point_text(curve.point)}" if curve.point else "")
+    """The comparison in words; the null control's marked as the A/A comparison it is."""
+    return (curve.variant + (" (A/A)" if curve.null_control else "")
+            + (f" at {point_text(curve.point)}" if curve.point else ""))
 
 
 def noise_rows(curves: list[NoiseCurve]) -> list[list[Any]]:
@@ -57,7 +59,7 @@ def noise_section(doc: _Doc, curves: list[NoiseCurve], smallest_effect: float, p
         first = next(p for p in c.points if p.sd is not None)
         end = c.final
         assert end is not None
-        rows.append([label(c) + (" (null control, A/A)" if c.null_control else ""), str(end.pairs),
+        rows.append([label(c), str(end.pairs),
                      f"{_tokens_text(first.tokens)} -> {_tokens_text(end.tokens)}",
                      f"{first.sd:.4f} -> {end.sd:.4f}", f"{first.mean_diff:+.4f} -> {end.mean_diff:+.4f}",
                      f"±{first.detectable:.4f} -> ±{end.detectable:.4f}",
@@ -91,7 +93,7 @@ def noise_plot(path: Path, curves: list[NoiseCurve], smallest_effect: float,
         pts = [p for p in c.points if p.sd is not None and p.tokens is not None]
         xs = [p.tokens for p in pts]
         style = {"ls": "--", "color": "black"} if c.null_control else {}
-        name = label(c) + (" (null control, A/A)" if c.null_control else "")
+        name = label(c)
         if not c.null_control:
             left.plot(xs, [p.detectable for p in pts], marker="o", ms=3, label=name)
         right.plot(xs, [p.sd for p in pts], marker="o", ms=3, label=name, **style)

@@ -652,7 +652,9 @@ def _summary_section(doc: Doc, res: GridResults) -> None:
         counts[r["status"]] = counts.get(r["status"], 0) + 1
     seeds = sorted({r["seed"] for r in res.rows})
     schedule = res.design.schedule
-    seeds_text = (f"seeds until decided (first {schedule.first}, most {schedule.most}, {schedule.step} per round; "
+    most = f"{schedule.most} (auto, budget_hours {schedule.budget_hours:g})" if schedule and schedule.auto else (
+        schedule.most if schedule else None)
+    seeds_text = (f"seeds until decided (first {schedule.first}, most {most}, {schedule.step} per round; "
                   f"seeds run: {', '.join(map(str, seeds))})" if schedule else f"seeds {', '.join(map(str, seeds))}")
     doc.p(f"{len(res.rows)} cells ({', '.join(f'{n} {s}' for s, n in sorted(counts.items()))}); {seeds_text}; "
           f"reference: {res.reference or 'none (no variants)'}; fairness: {_match_text(res.match)}; smallest effect "
