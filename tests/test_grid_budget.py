@@ -236,5 +236,7 @@ def test_a_budget_that_does_not_fit_round_1_exits_2(tmp_path, capsys, fixed_spee
     assert main(["grid", str(_auto_spec(tmp_path, 1 / 3600)), "--out", str(tmp_path / "never"), "--dry-run",
                  "--workers", "2", "--threads", "1"]) == 2
     out, err = capsys.readouterr()
-    assert err.startswith("error: budget_hours: 0.000277778 h does not fit round 1") and err.count("\n") == 1
+    # Round 1 takes 3.84 s = 0.00107 h here (see TWELVE_S).
+    assert err.startswith("error: budget_hours: 0.000278 h (after any tuning stage) does not fit round 1 (3 seeds "
+                          "per group take about 0.00107 h here)") and err.count("\n") == 1
     assert not (tmp_path / "never").exists()

@@ -81,7 +81,7 @@ def noise_curves(family: Family, curves: Mapping[GroupKey, Curves],
     out = []
     for c in [*family.comparisons, *family.null]:
         ref_key = (c.reference, c.point)
-        out.append(NoiseCurve(c.variant, c.reference, c.point, c in family.null, family.look_alpha,
+        out.append(NoiseCurve(c.variant, c.reference, c.point, not c.in_family, family.look_alpha,
                               paired_points(curves.get(c.key, {}), curves.get(ref_key, {}), list(c.seeds),
                                             family.look_alpha, tokens_per_step.get(c.key))))
     return out

@@ -70,6 +70,6 @@ def read_noise_from(grid_dir: str | Path) -> NoiseEstimate:
         raise UserError(f"--noise-from {grid_dir}: no comparison there has 2 finished pairs to measure a paired sd; "
                         "allowed: a grid dir with finished comparisons")
     sd, df = pooled_sd(sds)
-    where = ", ".join(point_text(c.point) if c.point else c.variant for c in family.comparisons[:3])
+    where = ", ".join(c.variant + (f" at {point_text(c.point)}" if c.point else "") for c in family.comparisons[:3])
     many = f" ({len(sds)} comparisons pooled: {where}{', ...' if len(family.comparisons) > 3 else ''})"
     return NoiseEstimate(sd, df, f"measured in {grid_dir} at the final evaluation" + (many if len(sds) > 1 else ""))
