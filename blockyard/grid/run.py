@@ -8,7 +8,7 @@ Grid dir layout::
     GRID_DIR/plugins/           copies of the plugin files the cells load (a config's ``plugins``)
     GRID_DIR/cells/<cell>/      each cell's run dir (config.yaml, metrics.jsonl, summary.json, ...)
     GRID_DIR/logs/<cell>.log    each cell's trainer output
-    GRID_DIR/report.md, report.html, results.csv, *.png
+    GRID_DIR/report.md, report.html, results.csv, noise.csv, *.png
     GRID_DIR/tuning/            with a ``tune`` block: stage 1, a grid dir of its own (index, configs, cells,
                                 logs); GRID_DIR/tuning.csv one row per tuning cell
 
