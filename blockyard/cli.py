@@ -94,7 +94,12 @@ def _add_grid(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--executor", default="local", choices=("local", "ray"), help="local processes or Ray tasks")
     p.add_argument("--address", default=None, help="Ray cluster address HOST:PORT (default: a local Ray instance)")
     p.add_argument("--dry-run", action="store_true",
-                   help="list the cells, params, FLOPs and estimated time; train nothing")
+                   help="list the cells, params, FLOPs and estimated time, and plan the budget: the smallest "
+                        "effect the worst case decides, the seeds and time smallest_effect needs; train nothing")
+    p.add_argument("--noise-from", metavar="GRID_DIR", default=None,
+                   help="with --dry-run: plan with the paired sd measured in an earlier grid dir of similar models "
+                        "(its comparisons' final evaluations, pooled); without it the plan assumes 0.042 nats/token, "
+                        "the default grid's measured sd, and says so")
     p.add_argument("--force", action="store_true",
                    help="run a changed spec in an existing grid dir (changed cells are moved to superseded/)")
     p.add_argument("--status", metavar="GRID_DIR", default=None, help="print the progress of a grid and exit")
@@ -117,7 +122,7 @@ def _cmd_grid(args: argparse.Namespace) -> int:
 
     return run_grid(args.grid, out=args.out, workers=args.workers, threads=args.threads, executor=args.executor,
                     address=args.address, force=args.force, dry_run=args.dry_run, check=args.check,
-                    echo=lambda line: print(line, flush=True))
+                    echo=lambda line: print(line, flush=True), noise_from=args.noise_from)
 
 
 # ----------------------------------------------------------------------------- report

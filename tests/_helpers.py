@@ -174,3 +174,37 @@ class FailingFile:
 
     def __exit__(self, *exc):
         self.raw.close()
+
+
+def curve_grid(grid_dir: Path, losses: dict[str, dict[int, list[float]]], *, reference: str, design_json: str,
+               tokens_per_step: int = 128, eval_every: int = 10) -> None:
+    """A grid dir without training: ``losses`` = variant -> seed -> validation loss at steps eval_every, 2 x
+    eval_every, ...; each cell done with its last loss as the final one, its metrics.jsonl holding a train line
+    (with tokens) and a val line per evaluation."""
+    import json
+
+    rows = [{"id": f"{v}-seed{s}", "variant": v, "seed": s, "point": [], "config_hash": f"{v}{s}", "adjustments": {},
+             "planned_tokens": len(curve) * eval_every * tokens_per_step, "flops_per_token": 1000.0,
+             "params_total": 2000, "params_non_embedding": 1000}
+            for v, seeds in losses.items() for s, curve in seeds.items()]
+    grid_dir.mkdir(parents=True, exist_ok=True)
+    with open_index(grid_dir) as index:
+        index.plan(rows)
+        index.set_meta({"name": "curves", "reference": reference, "match": "none", "design": design_json})
+        for v, seeds in losses.items():
+            for s, curve in seeds.items():
+                cid = f"{v}-seed{s}"
+                lines = []
+                for i, loss in enumerate(curve, start=1):
+                    step = i * eval_every
+                    lines.append({"step": step, "split": "train", "loss": loss + 0.1, "tokens": step * tokens_per_step,
+                                  "tokens_per_s": 1000.0, "wall_s": step * 0.1})
+                    lines.append({"step": step, "split": "val", "loss": loss, "wall_s": step * 0.1})
+                cell = grid_dir / "cells" / cid
+                cell.mkdir(parents=True)
+                (cell / "metrics.jsonl").write_text("".join(json.dumps(ln) + "\n" for ln in lines))
+                steps = len(curve) * eval_every
+                summary = {"status": "done", "final_val_loss": curve[-1], "best_val_loss": min(curve),
+                           "tokens_seen": steps * tokens_per_step, "steps": steps, "wall_s": 1.0}
+                index.mark_running(cid)
+                index.mark_finished(cid, "done", summary=summary, exit_code=0)

@@ -38,6 +38,9 @@ from blockyard.grid.ladder import (
     trend_rows,
 )
 from blockyard.grid.ladder import split_point as split_rung
+from blockyard.grid.noise import NoiseCurve, noise_curves
+from blockyard.grid.noise_files import grid_curves
+from blockyard.grid.noise_report import NOISE_COLUMNS, NOISE_PLOT, noise_plot, noise_rows, noise_section
 from blockyard.grid.rounds import plan_rounds
 from blockyard.grid.spec import NULL_INIT_OFFSET, NULL_VARIANT, Design
 from blockyard.grid.status import cell_dir
@@ -667,8 +670,10 @@ def _adjust_text(adjustments: dict[str, Any]) -> str:
     return "; ".join(parts)
 
 
-def build_report(grid_dir: Path, res: GridResults, plots: list[tuple[str, str]]) -> Doc:
-    """The report, section by section: verdicts first (what a reader acts on), the method last."""
+def build_report(grid_dir: Path, res: GridResults, plots: list[tuple[str, str]],
+                 noise: tuple[list[NoiseCurve], bool] = ([], False)) -> Doc:
+    """The report, section by section: verdicts first (what a reader acts on), the method last; ``noise``: each
+    comparison's noise along training and whether noise.png was written (blockyard.grid.noise_report)."""
     doc = Doc()
     doc.h(1, f"Grid {res.name}")
     if res.description:
@@ -676,6 +681,7 @@ def build_report(grid_dir: Path, res: GridResults, plots: list[tuple[str, str]])
     _summary_section(doc, res)
     _verdicts_section(doc, res)
     _null_section(doc, res.family)
+    noise_section(doc, noise[0], res.design.smallest_effect, noise[1])
     _tuning_section(doc, res, plots)
     _ladder_section(doc, res)
     _variants_section(doc, res)
@@ -699,7 +705,9 @@ def _summary_section(doc: Doc, res: GridResults) -> None:
         counts[r["status"]] = counts.get(r["status"], 0) + 1
     seeds = sorted({r["seed"] for r in res.rows})
     schedule = res.design.schedule
-    seeds_text = (f"seeds until decided (first {schedule.first}, most {schedule.most}, {schedule.step} per round; "
+    most = f"{schedule.most} (auto, budget_hours {schedule.budget_hours:g})" if schedule and schedule.auto else (
+        schedule.most if schedule else None)
+    seeds_text = (f"seeds until decided (first {schedule.first}, most {most}, {schedule.step} per round; "
                   f"seeds run: {', '.join(map(str, seeds))})" if schedule else f"seeds {', '.join(map(str, seeds))}")
     doc.p(f"{len(res.rows)} cells ({', '.join(f'{n} {s}' for s, n in sorted(counts.items()))}); {seeds_text}; "
           f"reference: {res.reference or 'none (no variants)'}; fairness: {_match_text(res.match)}; smallest effect "
@@ -1168,7 +1176,8 @@ def _match_text(match: str) -> str:
 
 
 def write_report(grid_dir: str | Path) -> Path:
-    """Write report.md, report.html, verdicts.csv, results.csv and the plots into ``grid_dir``; returns report.md."""
+    """Write report.md, report.html, verdicts.csv, results.csv, noise.csv and the plots into ``grid_dir``; returns
+    report.md."""
     grid_dir = Path(grid_dir)
     if not (grid_dir / INDEX_NAME).exists():
         raise UserError(f"{grid_dir}: no grid here (no {INDEX_NAME}); pass the dir a grid was run in")
@@ -1187,7 +1196,10 @@ def write_report(grid_dir: str | Path) -> Path:
     res = grid_results(rows, meta, grid_dir.name, tuning_rows, parametrizations)
     res = dataclasses.replace(res, token_local=read_token_local(grid_dir, rows))
     plots = write_plots(grid_dir, res)
-    doc = build_report(grid_dir, res, plots)
+    noise = noise_curves(res.family, *grid_curves(grid_dir, rows))
+    _write_table(grid_dir / "noise.csv", NOISE_COLUMNS, noise_rows(noise))
+    doc = build_report(grid_dir, res, plots, (noise, noise_plot(grid_dir / NOISE_PLOT, noise,
+                                                                res.design.smallest_effect, save_png)))
     fs.atomic_write_text(grid_dir / "report.md", doc.markdown(), what="the report")
     fs.atomic_write_text(grid_dir / "report.html", doc.html(grid_dir, f"Grid {res.name}"), what="the report")
     write_csv(grid_dir / "results.csv", rows)

@@ -8,7 +8,7 @@ Grid dir layout::
     GRID_DIR/plugins/           copies of the plugin files the cells load (a config's ``plugins``)
     GRID_DIR/cells/<cell>/      each cell's run dir (config.yaml, metrics.jsonl, summary.json, ...)
     GRID_DIR/logs/<cell>.log    each cell's trainer output
-    GRID_DIR/report.md, report.html, results.csv, *.png
+    GRID_DIR/report.md, report.html, results.csv, noise.csv, *.png
     GRID_DIR/tuning/            with a ``tune`` block: stage 1, a grid dir of its own (index, configs, cells,
                                 logs); GRID_DIR/tuning.csv one row per tuning cell
 
@@ -34,7 +34,7 @@ import os
 import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from blockyard import fs
 from blockyard.config import config_hash, dump_config, replace
@@ -49,6 +49,9 @@ from blockyard.grid.tuning import TUNING_DIR, Tuning, chosen_values, tuned_group
 from blockyard.rundir import format_duration, read_summary
 from blockyard.schema import to_dict
 from blockyard.verify import reopen_if_final_checkpoint_damaged
+
+if TYPE_CHECKING:
+    from blockyard.grid.budget import NoiseEstimate
 
 DEFAULT_ROOT = Path("runs") / "grids"
 STATUS_EVERY_S = 30.0
@@ -732,24 +735,37 @@ def run_grid(
     check: bool = True,
     echo: Callable[[str], None] = print,
     status_every_s: float = STATUS_EVERY_S,
+    noise_from: str | Path | None = None,
 ) -> int:
     """``blockyard grid``: returns 0 when every cell finished (done or diverged), 1 when some failed,
-    130 when stopped by a signal."""
+    130 when stopped by a signal. ``noise_from``: an earlier grid dir whose paired sds the dry run's budget
+    plan uses (``blockyard.grid.budget``)."""
     _check_options(workers, threads, executor, address)
     s = dataclasses.replace(_setup(grid_file, out, workers, threads, executor, address), check=check)
     if executor == "local" and s.workers is not None and s.workers * s.threads > s.cores:
         echo(f"note: {s.workers} worker(s) x {s.threads} thread(s) exceed the {s.cores} core(s) here; "
              "cells will share them")
+    noise = None
+    if noise_from is not None and not dry_run:
+        raise UserError(f"--noise-from {noise_from}: only with --dry-run (it plans the budget; a run measures its own)")
+    if noise_from is not None:  # read (and refused when it is no grid dir) before anything is measured or written
+        from blockyard.grid.noise_files import read_noise_from
+
+        noise = read_noise_from(noise_from)
     tuning_plan = plan_tuning(s.spec, s.threads)
     chosen = _stage_one_result(s, tuning_plan) if s.exists else None
+    if s.spec.design.schedule is not None and s.spec.design.schedule.auto:
+        s = _resolve_auto_most(s, tuning_plan, echo)
     universe = plan_cells(s.spec, s.threads, chosen)
     if dry_run:
         workers = s.workers or max(1, s.cores // s.threads)
         echo(f"grid {s.spec.name}: {len(tuning_plan) + len(universe)} cells -> {s.grid_dir}"
              + (" (exists)" if s.exists else ""))
+        estimates = _estimates(universe, s.threads)
         echo(two_stage_dry_run(s.spec, tuning_plan, universe, workers, s.threads, chosen is not None) if tuning_plan
              else dry_run_text(universe, workers, s.threads, design=s.spec.design, ladder=s.spec.ladder,
-                               reference=s.spec.reference))
+                               reference=s.spec.reference, estimates=estimates))
+        echo(_budget_plan(s.spec, universe, estimates, workers, noise))
         return 0
     # Checked before anything is written (a refused command leaves the dir as it was), and again
     # under the lock in case another process changed the grid in between. The verdict cells of a
@@ -799,6 +815,50 @@ def run_grid(
              "rerun the same command to retry them")
         return 1
     return 0
+
+
+def _round_wall(spec: GridSpec, plan: list[PlannedCell], estimates: dict[str, float],
+                workers: int) -> Callable[[int], float]:
+    """Wall seconds of a round that adds k seeds to every group (from one seed's cells, in plan order)."""
+    per_group = [p.cost.tokens / estimates[p.id] for p in plan if p.cell.seed == spec.seeds[0]]
+    return lambda k: makespan([x for x in per_group for _ in range(k)], workers)
+
+
+def _budget_plan(spec: GridSpec, plan: list[PlannedCell], estimates: dict[str, float], workers: int,
+                 noise: NoiseEstimate | None) -> str:
+    """The dry run's budget plan (``blockyard.grid.budget.plan_lines``); empty without comparisons."""
+    from blockyard.grid.budget import ASSUMED_PAIRED_SD, ASSUMED_SOURCE, NoiseEstimate, plan_lines  # noqa: F811
+    from blockyard.grid.verdicts import family_size
+
+    m = family_size(dict.fromkeys((p.cell.variant, p.cell.point) for p in plan), spec.reference)
+    if m == 0:
+        return ""
+    noise = noise or NoiseEstimate(ASSUMED_PAIRED_SD, None, ASSUMED_SOURCE)
+    return "\n".join(plan_lines(spec.design, m, len(spec.seeds), noise,
+                                _round_wall(spec, plan, estimates, workers)))
+
+
+def _resolve_auto_most(s: _Setup, tuning_plan: list[PlannedCell], echo: Callable[[str], None]) -> _Setup:
+    """``seeds.most: auto``: the grid dir's recorded value for this schedule, else the most seeds whose worst case
+    (after stage 1, if any) fits in ``budget_hours`` at the measured speed; echoed, and recorded with the design."""
+    from blockyard.grid.budget import fit_most, resolve_most, with_most
+
+    schedule = s.spec.design.schedule
+    assert schedule is not None and schedule.budget_hours is not None
+
+    def fit() -> int:
+        workers = s.workers or max(1, s.cores // s.threads)
+        first_round = plan_cells(s.spec, s.threads)
+        estimates = _estimates(first_round + tuning_plan, s.threads)
+        stage1 = makespan([p.cost.tokens / estimates[p.id] for p in tuning_plan], workers) if tuning_plan else 0.0
+        later_tuning_seeds = [t for t in (s.spec.tuning.seeds if s.spec.tuning else ()) if t >= schedule.first]
+        return fit_most(schedule, schedule.budget_hours * 3600 - stage1,
+                        _round_wall(s.spec, first_round, estimates, workers), cap=min(later_tuning_seeds, default=None))
+
+    most, recorded = resolve_most(schedule, Design.from_json(s.old_design) if s.old_design else None, fit)
+    echo(f"seeds.most: auto -> {most} " + ("(recorded in the grid dir when it started)" if recorded else
+                                           f"(the worst case fits in budget_hours {schedule.budget_hours:g} here)"))
+    return dataclasses.replace(s, spec=with_most(s.spec, most))
 
 
 def _first_seeds(spec: GridSpec) -> int:

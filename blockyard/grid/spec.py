@@ -12,6 +12,7 @@ A grid file (YAML) holds::
     axes:                            # dotted key -> list of values, crossed with each other
       model.width: [64, 96]
     seeds: [0, 1, 2]                 # each sets train.seed (init and data); or {first: 3, most: 10}
+    budget_hours: 8                  # with seeds: {..., most: auto}: most = what fits in 8 h (blockyard.grid.budget)
     match: params                    # none | params | flops (see blockyard.grid.fairness)
     smallest_effect: 0.01            # nats/token: the smallest difference that matters (verdicts)
     null_control: false              # true: add the reference again under another init seed
@@ -49,8 +50,9 @@ MATCH_MODES = ("none", "params", "flops")
 # The key each match mode adjusts (blockyard.grid.fairness); a tuning may not search it.
 MATCHED_KEYS = {"params": "model.mlp_expansion", "flops": "train.tokens"}
 GRID_KEYS = ("name", "description", "base", "variants", "reference", "axes", "seeds", "match", "smallest_effect",
-             "null_control", "tune", *LADDER_KEYS)
+             "null_control", "tune", "budget_hours", *LADDER_KEYS)
 SCHEDULE_KEYS = ("first", "most", "step")
+AUTO = "auto"  # seeds.most: auto (with budget_hours)
 DEFAULT_SMALLEST_EFFECT = 0.01  # nats per token
 # The variant name of a grid that declares no variants.
 BASE_VARIANT = "base"
@@ -69,8 +71,10 @@ class SeedSchedule:
     """``seeds: {first, most, step}``: seeds added in rounds until every comparison is decided."""
 
     first: int
-    most: int
+    most: int  # with ``auto``: seeds.first until blockyard.grid.budget resolves it from ``budget_hours``
     step: int = 1
+    auto: bool = False  # ``most: auto``: the most seeds whose worst case fits in ``budget_hours``
+    budget_hours: float | None = None
 
     def looks(self) -> tuple[int, ...]:
         """Seeds per group after each round: first, first + step, ..., most."""
@@ -94,7 +98,7 @@ class Design:
         if not text:
             return cls()
         data = json.loads(text)
-        schedule = SeedSchedule(**data["schedule"]) if data.get("schedule") else None
+        schedule = SeedSchedule(**data["schedule"]) if data.get("schedule") else None  # keys added later default
         return cls(float(data["smallest_effect"]), schedule, bool(data.get("null_control")))
 
 
@@ -177,7 +181,7 @@ def parse_grid(
     variants = _parse_variants(data.get("variants"))
     reference = _parse_reference(data.get("reference"), variants, declared="variants" in data)
     axes = _parse_axes(data.get("axes"))
-    seeds, schedule = _parse_seeds(data.get("seeds"))
+    seeds, schedule = _parse_seeds(data.get("seeds"), data.get("budget_hours"))
     design = Design(_parse_smallest_effect(data.get("smallest_effect", DEFAULT_SMALLEST_EFFECT)), schedule,
                     _parse_null_control(data.get("null_control", False), reference, variants))
     match = data.get("match", "none")
@@ -290,10 +294,16 @@ def _parse_axes(raw: Any) -> dict[str, tuple[Any, ...]]:
     return axes
 
 
-def _parse_seeds(raw: Any) -> tuple[tuple[int, ...], SeedSchedule | None]:
-    """A list of seeds (fixed design), or ``{first, most, step}`` (seeds 0 .. most - 1, added in rounds)."""
-    if isinstance(raw, dict):
-        schedule = _parse_schedule(raw)
+def _parse_seeds(raw: Any, budget_hours: Any = None) -> tuple[tuple[int, ...], SeedSchedule | None]:
+    """A list of seeds (fixed design), or ``{first, most, step}`` (seeds 0 .. most - 1, added in rounds);
+    ``most: auto`` goes with ``budget_hours`` and nothing else."""
+    schedule = _parse_schedule(raw) if isinstance(raw, dict) else None
+    if budget_hours is not None and (schedule is None or not schedule.auto):
+        raise ConfigError("budget_hours", "only with seeds: {first: F, most: auto, step: S} (it sets most); "
+                          "remove it or set seeds.most: auto")
+    if schedule is not None and schedule.auto:
+        schedule = dataclasses.replace(schedule, budget_hours=_parse_budget_hours(budget_hours))
+    if schedule is not None:
         return tuple(range(schedule.most)), schedule
     allowed = "expected a list of distinct non-negative integers, e.g. [0, 1, 2], or {first: 3, most: 10}"
     if not isinstance(raw, list) or not raw:
@@ -317,11 +327,20 @@ def _parse_schedule(raw: dict[str, Any]) -> SeedSchedule:
     first, most, step = raw.get("first"), raw.get("most"), raw.get("step", 1)
     if not _is_int(first) or first < 2:
         raise ConfigError("seeds.first", f"{first!r}: an integer >= 2 (an interval needs two pairs)")
-    if not _is_int(most) or most < first:
-        raise ConfigError("seeds.most", f"{most!r}: an integer >= seeds.first ({first})")
+    auto = most == AUTO
+    if not auto and (not _is_int(most) or most < first):
+        raise ConfigError("seeds.most", f"{most!r}: an integer >= seeds.first ({first}), or auto with budget_hours")
     if not _is_int(step) or step < 1:
         raise ConfigError("seeds.step", f"{step!r}: an integer >= 1 (seeds added per round)")
-    return SeedSchedule(first, most, step)
+    return SeedSchedule(first, first if auto else most, step, auto=auto)
+
+
+def _parse_budget_hours(raw: Any) -> float:
+    if raw is None:
+        raise ConfigError("seeds.most", "auto needs the grid key budget_hours: H (hours the worst case may take)")
+    if isinstance(raw, bool) or not isinstance(raw, (int, float)) or not math.isfinite(raw) or raw <= 0:
+        raise ConfigError("budget_hours", f"{raw!r}: a number of hours > 0 (with seeds.most: auto)")
+    return float(raw)
 
 
 def _parse_smallest_effect(raw: Any) -> float:

@@ -1,0 +1,102 @@
+"""The noise of each comparison along training: noise.csv, the report's Noise section and noise.png.
+
+Sources: the paired sd is the sample sd of the per-seed differences with n - 1 degrees of freedom
+(any statistics text; numpy's ``std(ddof=1)``); the detectable difference is the effect size at
+which the two-sided one-sample (= paired) t test reaches 80% power (Cohen 1988, "Statistical
+Power Analysis for the Behavioral Sciences", ch. 2), here solved by statsmodels' TTestPower,
+times the paired sd.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+
+import numpy as np
+import pytest
+from _helpers import curve_grid
+from statsmodels.stats.power import TTestPower
+
+from blockyard.grid.noise import NoiseCurve, NoisePoint, resolution, resolution_text
+from blockyard.grid.report import write_report
+from blockyard.grid.spec import NULL_VARIANT, Design
+
+TOKENS_PER_STEP = 128
+EVAL_EVERY = 10
+
+
+def _losses(seed_count: int = 5, evals: int = 4) -> dict[str, dict[int, list[float]]]:
+    """Two variants, a reference and a null control; seeded random curves (no structure the code could exploit)."""
+    rng = np.random.default_rng(7)
+    out = {}
+    for v in ("ref", "a", "b", NULL_VARIANT):
+        out[v] = {s: list(3.0 - 0.1 * np.arange(evals) + rng.normal(0, 0.05, evals)) for s in range(seed_count)}
+    return out
+
+
+def _read(grid_dir) -> list[dict[str, str]]:
+    with open(grid_dir / "noise.csv") as f:
+        return list(csv.DictReader(f))
+
+
+def test_noise_csv_equals_numpy_and_statsmodels(tmp_path):
+    losses = _losses()
+    curve_grid(tmp_path, losses, reference="ref", design_json=Design(null_control=True).to_json(),
+               tokens_per_step=TOKENS_PER_STEP, eval_every=EVAL_EVERY)
+    write_report(tmp_path)
+    rows = _read(tmp_path)
+    # 3 comparisons (a, b and the null control) x 4 evaluation steps.
+    assert len(rows) == 3 * 4
+    alpha = 0.05 / 2  # Bonferroni over the family's m = 2 comparisons (the null control is not in it)
+    for row in rows:
+        v, i = row["variant"], int(row["step"]) // EVAL_EVERY - 1
+        diffs = np.array([losses[v][s][i] - losses["ref"][s][i] for s in range(5)])
+        sd = np.std(diffs, ddof=1)
+        effect = TTestPower().solve_power(effect_size=None, nobs=len(diffs), alpha=alpha, power=0.8,
+                                          alternative="two-sided")
+        assert int(row["pairs"]) == 5
+        assert float(row["tokens"]) == int(row["step"]) * TOKENS_PER_STEP
+        assert float(row["alpha"]) == pytest.approx(alpha)
+        assert float(row["mean_diff"]) == pytest.approx(diffs.mean(), abs=1e-12)
+        assert float(row["paired_sd"]) == pytest.approx(sd, rel=1e-12)
+        assert float(row["detectable_80"]) == pytest.approx(effect * sd, rel=1e-4)
+        assert row["null_control"] == str(v == NULL_VARIANT)
+    report = (tmp_path / "report.md").read_text()
+    assert "## Noise" in report and "noise.png" in report and (tmp_path / "noise.png").stat().st_size > 0
+    # The null control's A/A sd is in the table, marked as such.
+    assert f"| {NULL_VARIANT} (A/A) | 5 |" in report
+
+
+def test_one_evaluation_gives_one_row_and_no_plot(tmp_path):
+    losses = {"ref": {0: [3.0], 1: [3.1]}, "a": {0: [3.0], 1: [3.05]}}
+    curve_grid(tmp_path, losses, reference="ref", design_json=Design().to_json())
+    write_report(tmp_path)
+    rows = _read(tmp_path)
+    assert len(rows) == 1 and float(rows[0]["paired_sd"]) == pytest.approx(np.std([0.0, -0.05], ddof=1))
+    assert not (tmp_path / "noise.png").exists()  # one evaluation: no line to draw
+
+
+def _curve(sds: list[float], pairs: int = 5, alpha: float = 0.05) -> NoiseCurve:
+    tokens = [1e5 * 2**i for i in range(len(sds))]
+    return NoiseCurve("a", "ref", (), False, alpha, tuple(
+        NoisePoint(i, t, pairs, 0.0, sd, sd * 1.5) for i, (t, sd) in enumerate(zip(tokens, sds, strict=True))))
+
+
+def test_resolution_compares_the_sd_trend_with_the_gain_of_doubling_the_seeds():
+    # sd halves per doubling of tokens (sd ~ tokens^-1, by construction): longer training cuts the detectable
+    # difference by 50% per doubling, more than doubling 5 seeds to 10 does (statsmodels: effect at n = 10
+    # over effect at n = 5, about 0.61).
+    steep = _curve([0.08, 0.04, 0.02, 0.01])
+    r = resolution(steep)
+    gain = (TTestPower().solve_power(None, nobs=10, alpha=0.05, power=0.8)
+            / TTestPower().solve_power(None, nobs=5, alpha=0.05, power=0.8))
+    assert r is not None and r.longer == pytest.approx(0.5) and r.more_seeds == pytest.approx(gain, rel=1e-4)
+    assert r.better_buy == "longer training"
+    assert "longer training buys more resolution" in resolution_text(steep, "a")
+    # A flat sd (the last evaluations do not move it): only seeds help.
+    flat = _curve([0.08, 0.06, 0.05, 0.05, 0.05, 0.05])
+    assert resolution(flat).longer == pytest.approx(1.0) and resolution(flat).better_buy == "more seeds"
+    assert "more seeds buy more resolution" in resolution_text(flat, "a")
+    # At many seeds the gain of doubling them approaches 1/sqrt(2) (the t quantile barely moves).
+    many = resolution(_curve([0.05, 0.05], pairs=400))
+    assert many.more_seeds == pytest.approx(1 / math.sqrt(2), rel=0.01)
