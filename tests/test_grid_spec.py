@@ -128,7 +128,8 @@ def test_bad_spec_exit_code_of_the_real_command(tmp_path, existing_grid_dir):
     ("{first: 3, most: 2}", "seeds.most: 2: an integer >= seeds.first (3)"),
     ("{first: 3}", "seeds.most: None: an integer >= seeds.first"),
     ("{first: 3, most: 6, step: 0}", "seeds.step: 0: an integer >= 1"),
-    ("{first: 3, most: 6, every: 2}", "seeds.every: unknown key (allowed: first, most, step)"),
+    ("{first: 3, most: 6, every: 2}", "seeds.every: unknown key (allowed: first, most, step, start)"),
+    ("{first: 3, most: 6, start: -1}", "seeds.start: -1: an integer >= 0"),
 ])
 def test_bad_seed_schedules_exit_2_and_leave_the_grid_dir(tmp_path, existing_grid_dir, capsys, seeds, message):
     path = tmp_path / "bad.yaml"
@@ -164,6 +165,22 @@ def test_seed_schedule_and_null_control_expand_into_cells(tmp_path):
     assert to_dict(null) | {"name": "", "train": {}} == to_dict(ref) | {"name": "", "train": {}}
     assert plan["null-control-seed2"].adjustments == {} and plan["wide-seed2"].adjustments
     assert spec.design == type(spec.design).from_json(spec.design.to_json())
+
+
+def test_seed_schedule_start_runs_the_same_design_on_other_seeds(tmp_path):
+    """``start: 100`` numbers the seeds 100.. in the order rounds add them; looks and design are unchanged."""
+    path = write_grid(tmp_path, """
+        base: {model: {width: 32, depth: 1, pattern: [global_attention]}, data: {corpus: pydoc, seq_len: 32}}
+        variants: {ref: {}, wide: {model.mlp_expansion: 3.0}}
+        reference: ref
+        seeds: {first: 3, most: 5, step: 2, start: 100}
+    """)
+    spec = load_grid(path)
+    assert spec.seeds == (100, 101, 102, 103, 104)
+    assert spec.design.schedule.looks() == (3, 5)
+    assert spec.design == type(spec.design).from_json(spec.design.to_json())
+    plan = {p.id: p.cell for p in plan_cells(spec, threads=1)}
+    assert plan["wide-seed103"].cfg.train.seed == 103 and "ref-seed0" not in plan
 
 
 def test_bad_seeds_and_base(tmp_path):

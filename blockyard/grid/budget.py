@@ -157,11 +157,12 @@ def fit_most(schedule: SeedSchedule, budget_s: float, round_wall: Callable[[int]
 
 
 def with_most(spec: GridSpec, most: int) -> GridSpec:
-    """``spec`` with its ``most: auto`` schedule resolved to ``most`` (its potential seeds 0 .. most - 1)."""
+    """``spec`` with its ``most: auto`` schedule resolved to ``most`` (its potential seeds start .. start + most - 1)."""
     schedule = spec.design.schedule
     assert schedule is not None
-    design = dataclasses.replace(spec.design, schedule=dataclasses.replace(schedule, most=most))
-    return dataclasses.replace(spec, seeds=tuple(range(most)), design=design)
+    resolved = dataclasses.replace(schedule, most=most)
+    design = dataclasses.replace(spec.design, schedule=resolved)
+    return dataclasses.replace(spec, seeds=resolved.seed_order(), design=design)
 
 
 def resolve_most(schedule: SeedSchedule, recorded: Design | None, fit: Callable[[], int]) -> tuple[int, bool]:

@@ -197,7 +197,7 @@ def grid_results(rows: list[dict[str, Any]], meta: dict[str, str | None], defaul
     family = compare_all(outcomes, reference, design)
     rounds = None
     if design.schedule is not None:
-        state = plan_rounds(design, list(outcomes), reference, tuple(range(design.schedule.most)), outcomes)
+        state = plan_rounds(design, list(outcomes), reference, design.schedule.seed_order(), outcomes)
         rounds = (f"{state.rounds} round(s) ran; {state.reason}" if state.complete
                   else f"round {state.rounds} still running, {state.reason}")
     groups = group_cells(rows)

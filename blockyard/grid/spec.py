@@ -25,7 +25,7 @@ A grid file (YAML) holds::
 Every cell is (variant, rung, one value per axis, seed). Each cell's config is validated by
 ``blockyard.config``; errors name the variant, axis or cell they come from.
 
-``seeds: {first: F, most: M, step: S}`` runs seeds 0..F-1 first, then adds S seeds per round to
+``seeds: {first: F, most: M, step: S}`` (optionally ``start: K``, the first seed number) runs seeds 0..F-1 first, then adds S seeds per round to
 the reference and every still-undecided variant until all are decided or M is reached (see
 ``blockyard.grid.rounds``); the cells of every seed up to M are the grid's potential cells.
 """
@@ -51,7 +51,7 @@ MATCH_MODES = ("none", "params", "flops")
 MATCHED_KEYS = {"params": "model.mlp_expansion", "flops": "train.tokens"}
 GRID_KEYS = ("name", "description", "base", "variants", "reference", "axes", "seeds", "match", "smallest_effect",
              "null_control", "tune", "budget_hours", *LADDER_KEYS)
-SCHEDULE_KEYS = ("first", "most", "step")
+SCHEDULE_KEYS = ("first", "most", "step", "start")
 AUTO = "auto"  # seeds.most: auto (with budget_hours)
 DEFAULT_SMALLEST_EFFECT = 0.01  # nats per token
 # The variant name of a grid that declares no variants.
@@ -75,10 +75,15 @@ class SeedSchedule:
     step: int = 1
     auto: bool = False  # ``most: auto``: the most seeds whose worst case fits in ``budget_hours``
     budget_hours: float | None = None
+    start: int = 0  # the first seed number: seeds start .. start + most - 1 (another set of seeds, same design)
 
     def looks(self) -> tuple[int, ...]:
         """Seeds per group after each round: first, first + step, ..., most."""
         return (*range(self.first, self.most, self.step), self.most)
+
+    def seed_order(self) -> tuple[int, ...]:
+        """The seed numbers in the order rounds add them."""
+        return tuple(range(self.start, self.start + self.most))
 
 
 @dataclasses.dataclass(frozen=True)
@@ -304,7 +309,7 @@ def _parse_seeds(raw: Any, budget_hours: Any = None) -> tuple[tuple[int, ...], S
     if schedule is not None and schedule.auto:
         schedule = dataclasses.replace(schedule, budget_hours=_parse_budget_hours(budget_hours))
     if schedule is not None:
-        return tuple(range(schedule.most)), schedule
+        return schedule.seed_order(), schedule
     allowed = "expected a list of distinct non-negative integers, e.g. [0, 1, 2], or {first: 3, most: 10}"
     if not isinstance(raw, list) or not raw:
         raise ConfigError("seeds", allowed)
@@ -332,7 +337,10 @@ def _parse_schedule(raw: dict[str, Any]) -> SeedSchedule:
         raise ConfigError("seeds.most", f"{most!r}: an integer >= seeds.first ({first}), or auto with budget_hours")
     if not _is_int(step) or step < 1:
         raise ConfigError("seeds.step", f"{step!r}: an integer >= 1 (seeds added per round)")
-    return SeedSchedule(first, first if auto else most, step, auto=auto)
+    start = raw.get("start", 0)
+    if not _is_int(start) or start < 0:
+        raise ConfigError("seeds.start", f"{start!r}: an integer >= 0 (the first seed number; default 0)")
+    return SeedSchedule(first, first if auto else most, step, auto=auto, start=start)
 
 
 def _parse_budget_hours(raw: Any) -> float:

@@ -12,7 +12,8 @@ A grid file may hold::
 Stage 1 trains every (variant, point, value, tuning seed) under ``GRID_DIR/tuning/`` (a grid dir of
 its own: index, cells, configs, logs); a tuning cell's point is the verdict point with the tuned
 key appended. For each (variant, point) the chosen value is the one with the lowest mean final
-validation loss over the tuning seeds, a diverged or failed cell counting as +infinity; ties go
+validation loss over the tuning seeds among the values whose next larger value never diverged (a one-step
+stability margin; see ``eligible``), a diverged or failed cell counting as +infinity; ties go
 to the smallest value (for a learning rate, the more stable one). Stage 2 trains the verdict
 cells, each variant at its chosen value; the verdict rules apply to them unchanged. The seeds are
 disjoint so that the verdict is not measured on the noise the selection used (the winner's curse:
