@@ -184,3 +184,24 @@ def test_a_run_with_the_average_measures_it_and_resumes_exactly(tmp_path):
     off_val = [x for x in comparable(tmp_path / "off") if x["split"] == "val"]
     assert [x["loss"] for x in off_val] == pytest.approx([x["raw_loss"] for x in val], abs=1e-6)
     assert off["status"] == "done"
+
+
+def test_the_method_says_what_the_levers_change_about_what_is_measured(tmp_path):
+    """read_levers reads the cells' configs (a config from before the keys counts as their defaults)."""
+    import yaml
+
+    from blockyard.grid.report import lever_items, read_levers
+
+    (tmp_path / "configs").mkdir()
+    (tmp_path / "configs" / "a-seed0.yaml").write_text(yaml.safe_dump({"model": {"width": 8}}))
+    (tmp_path / "configs" / "b-seed0.yaml").write_text(
+        yaml.safe_dump({"model": {"init_draws": "by_path"}, "train": {"ema_half_life": 0.1}}))
+    rows = [{"id": "a-seed0", "variant": "a", "point": []}, {"id": "b-seed0", "variant": "b", "point": []}]
+    levers = read_levers(tmp_path, rows)
+    assert levers == {"model.init_draws": {"by_path"}, "train.ema_half_life": {0.0, 0.1}}
+    text = " ".join(lever_items(levers))
+    assert "keyed by the init seed and its path" in text and "upper bound" in text
+    assert "exponential moving average" in text and "`raw_loss`" in text
+    assert lever_items({"model.init_draws": frozenset({"by_path"}), "train.ema_half_life": frozenset({0.0})}) == \
+        lever_items({"model.init_draws": frozenset({"by_path"})})
+    assert "one random stream" in lever_items({"model.init_draws": frozenset({"stream"})})[0]

@@ -168,6 +168,8 @@ class GridResults:
     parametrizations: dict[str, str] = dataclasses.field(default_factory=dict)
     # variants whose cells use a plugin mixer declared token-local (no mixing in time, on purpose)
     token_local: frozenset[str] = frozenset()
+    # the noise levers the cells' configs used: model.init_draws and train.ema_half_life -> the values seen
+    levers: dict[str, frozenset[Any]] = dataclasses.field(default_factory=dict)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -227,6 +229,49 @@ def read_parametrizations(grid_dir: Path, rows: list[dict[str, Any]]) -> dict[st
             continue
         seen.setdefault(g.variant, set()).add(str(model.get("parametrization", "standard")))
     return {v: next(iter(p)) if len(p) == 1 else "mixed" for v, p in seen.items()}
+
+
+LEVER_KEYS = (("model", "init_draws", "by_path"), ("train", "ema_half_life", 0.0))
+
+
+def read_levers(grid_dir: Path, rows: list[dict[str, Any]]) -> dict[str, frozenset[Any]]:
+    """``model.init_draws`` and ``train.ema_half_life`` -> the values the cells' configs (GRID_DIR/configs/) use,
+    one config read per group; a config without the key (written before it existed) counts as its default."""
+    from blockyard.config import read_yaml
+
+    seen: dict[str, set[Any]] = {f"{sec}.{key}": set() for sec, key, _ in LEVER_KEYS}
+    for g in group_cells(rows):
+        try:
+            cfg = read_yaml(grid_dir / "configs" / f"{g.rows[0]['id']}.yaml")
+        except UserError:
+            continue
+        for sec, key, default in LEVER_KEYS:
+            seen[f"{sec}.{key}"].add((cfg.get(sec) or {}).get(key, default))
+    return {k: frozenset(v) for k, v in seen.items()}
+
+
+def lever_items(levers: dict[str, frozenset[Any]]) -> list[str]:
+    """The Method's sentences on what the noise levers change about what is measured."""
+    items = []
+    draws = levers.get("model.init_draws", frozenset())
+    if draws == {"by_path"}:
+        items.append(
+            "Initialisation (`model.init_draws: by_path`): every weight is drawn from a generator keyed by the init "
+            "seed and its path in the model (MLPs unit by unit), so at the same seed the modules two variants share "
+            "start identical and only what differs starts differently (common random numbers). The null control "
+            "runs under another init seed and shares nothing, so its spread is an upper bound of a pair's.")
+    elif draws == {"stream"}:
+        items.append("Initialisation (`model.init_draws: stream`): one random stream in module order, so two "
+                     "variants at the same seed start differently in every module after the first that differs.")
+    elif len(draws) > 1:
+        items.append("Initialisation: the cells mix `model.init_draws` values; pairs across them share less.")
+    ema = sorted(float(v) for v in levers.get("train.ema_half_life", frozenset()))
+    if any(v > 0 for v in ema):
+        items.append(
+            "Weight average (`train.ema_half_life` " + ", ".join(f"{v:g}" for v in ema) + " of the run): the loss "
+            "is that of an exponential moving average of the weights, not of the last trained weights (whose loss "
+            "is `raw_loss` in each run's metrics). It measures the averaged model, which lags the trained one.")
+    return items
 
 
 def read_token_local(grid_dir: Path, rows: list[dict[str, Any]]) -> frozenset[str]:
@@ -1113,6 +1158,7 @@ def _method_section(doc: Doc, res: GridResults) -> None:
         "when it lies inside −δ..+δ (two one-sided tests, Schuirmann 1987; this wins when both hold, and the note "
         "says 'lower by less than the smallest effect'), **undecided** otherwise. Undecided is not 'no difference'.",
     ]
+    items += lever_items(res.levers)
     if design.schedule is not None:
         sch = design.schedule
         items.append(
@@ -1194,7 +1240,7 @@ def write_report(grid_dir: str | Path) -> Path:
     tuning = Tuning.from_json(meta.get("tuning"))
     parametrizations = read_parametrizations(grid_dir, rows) if tuning is not None and tuning.carried else None
     res = grid_results(rows, meta, grid_dir.name, tuning_rows, parametrizations)
-    res = dataclasses.replace(res, token_local=read_token_local(grid_dir, rows))
+    res = dataclasses.replace(res, token_local=read_token_local(grid_dir, rows), levers=read_levers(grid_dir, rows))
     plots = write_plots(grid_dir, res)
     noise = noise_curves(res.family, *grid_curves(grid_dir, rows))
     _write_table(grid_dir / "noise.csv", NOISE_COLUMNS, noise_rows(noise))
