@@ -98,7 +98,7 @@ def _add_grid(sub: argparse._SubParsersAction) -> None:
                         "effect the worst case decides, the seeds and time smallest_effect needs; train nothing")
     p.add_argument("--noise-from", metavar="GRID_DIR", default=None,
                    help="with --dry-run: plan with the paired sd measured in an earlier grid dir of similar models "
-                        "(its comparisons' final evaluations, pooled); without it the plan assumes 0.042 nats/token, "
+                        "(its comparisons' final evaluations, pooled); without it the plan assumes 0.030 nats/token, "
                         "the default grid's measured sd, and says so")
     p.add_argument("--force", action="store_true",
                    help="run a changed spec in an existing grid dir (changed cells are moved to superseded/)")

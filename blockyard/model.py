@@ -80,10 +80,26 @@ class RMSNorm(nn.RMSNorm):
         return super().forward(x)
 
 
-def keyed_generator(base: int, key: str) -> torch.Generator:
-    """A CPU generator seeded from (``base``, ``key``) by a 63-bit BLAKE2b digest: the same pair, the same numbers."""
+def keyed_seed(base: int, key: str) -> int:
+    """A 63-bit seed from (``base``, ``key``) by a BLAKE2b digest: the same pair, the same seed."""
     digest = hashlib.blake2b(f"{base}/{key}".encode(), digest_size=8).digest()
-    return torch.Generator().manual_seed(int.from_bytes(digest, "little") & (2**63 - 1))
+    return int.from_bytes(digest, "little") & (2**63 - 1)
+
+
+def keyed_generator(base: int, key: str) -> torch.Generator:
+    """A CPU generator seeded with ``keyed_seed(base, key)``."""
+    return torch.Generator().manual_seed(keyed_seed(base, key))
+
+
+def draw_init_base() -> int:
+    """The number that keys every ``by_path`` draw, from torch's global generator (seeded by the caller).
+
+    Under a fake-tensor mode (shape-only builds: memory estimates) no number exists; the draws are never read there.
+    """
+    from torch._subclasses.fake_tensor import FakeTensor
+
+    probe = torch.randint(0, 2**62, (1,), device="cpu")
+    return 0 if isinstance(probe, FakeTensor) else int(probe.item())
 
 
 def keyed_normal(shape: tuple[int, ...], base: int, key: str) -> torch.Tensor:
@@ -173,8 +189,7 @@ class LanguageModel(nn.Module):
         super().__init__()
         # by_path: one number from the global generator (seeded with the init seed by the caller) keys every
         # draw; taken first, so it does not depend on which modules the constructors below build.
-        self.init_base = (int(torch.randint(0, 2**62, (1,), device="cpu").item()) if cfg.init_draws == "by_path"
-                          else None)
+        self.init_base = draw_init_base() if cfg.init_draws == "by_path" else None
         self.cfg = cfg
         self.vocab_size = vocab_size
         self.activation_checkpointing = activation_checkpointing
@@ -245,8 +260,7 @@ class LanguageModel(nn.Module):
                 block.mixer.reset_special_parameters()
                 continue
             with torch.random.fork_rng(devices=[]):
-                key = keyed_generator(base, f"blocks.{i}.mixer")
-                torch.manual_seed(int(torch.randint(0, 2**62, (1,), generator=key)))
+                torch.manual_seed(keyed_seed(base, f"blocks.{i}.mixer"))
                 block.mixer.reset_special_parameters()
 
     def _normal_(self, weight: torch.Tensor, name: str, std: float) -> None:

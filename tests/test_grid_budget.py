@@ -96,7 +96,7 @@ def test_dry_run_without_noise_states_the_assumption_and_what_cannot_be_decided(
     assert f"paired sd {sd:.4f} nats/token is an ASSUMPTION: the default grid's paired sd" in text
     assert "CANNOT DECIDE" in text
     block = text.split("CANNOT DECIDE")[1]
-    # More seeds: the smallest n whose fixed design (level 0.05) decides 0.01 at sd 0.042 (statsmodels).
+    # More seeds: the smallest n whose fixed design (level 0.05) decides 0.01 at the assumed sd (statsmodels).
     n = int(re.search(r"more seeds: a list of (\d+) seeds", block).group(1))
     assert _decides(0.01, n, sd, 0.05) and not _decides(0.01, n - 1, sd, 0.05)
     # The seeds and the worst-case time of that design: 2 groups x n cells of 1.28 s on 2 workers.

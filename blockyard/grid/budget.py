@@ -27,11 +27,11 @@ from blockyard.grid import stats
 from blockyard.grid.spec import Design, GridSpec, SeedSchedule
 from blockyard.grid.verdicts import look_alpha
 
-# Paired sd (nats/token) of the default grid's comparisons at their final evaluation, measured on
-# main at 82ff8a5 over 5 seeds (issue 26: configs/grids/default.yaml, 32 validation windows).
-ASSUMED_PAIRED_SD = 0.042
-ASSUMED_SOURCE = ("the default grid's paired sd at its final evaluation (configs/grids/default.yaml, 5 seeds, main at "
-                  "82ff8a5)")
+# Paired sd (nats/token) of the default grid's comparisons at their final evaluation, pooled over its two
+# comparisons, 8 seeds each, weights drawn by path (scripts/noise_levers.py, README "What cuts the noise").
+ASSUMED_PAIRED_SD = 0.030
+ASSUMED_SOURCE = ("the default grid's paired sd at its final evaluation (configs/grids/default.yaml, 8 seeds, "
+                  "scripts/noise_levers.py)")
 # The sequential level is simulated over (simulations x looks) numbers (stats.sequential_alpha): a cap on the
 # rounds ``most: auto`` (and the plan's search) may use keeps that cheap. Measured here for 12 looks: 2.2 s and
 # 410 MB peak (24 looks: 12 s and 710 MB).
