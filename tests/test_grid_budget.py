@@ -116,18 +116,18 @@ def test_one_seed_cannot_decide_anything(tmp_path, fixed_speed):
 
 
 def test_seed_rounds_plan_at_their_sequential_level(tmp_path, fixed_speed):
-    text = _dry(_spec(tmp_path, "{first: 3, most: 9, step: 2}", smallest_effect=0.05), tmp_path / "never")
+    text = _dry(_spec(tmp_path, "{first: 3, most: 9, step: 2}", smallest_effect=0.03), tmp_path / "never")
     sd = budget.ASSUMED_PAIRED_SD
     alpha = stats.sequential_alpha((3, 5, 7, 9), 0.05)
     assert f"level per comparison: {alpha:.4g} two-sided (1 comparison(s), 4 looks at 3, 5, 7, 9 seeds)" in text
     d = float(re.search(r"decides a smallest effect of ([0-9.]+)", text).group(1))
     assert _decides(d * 1.0005, 9, sd, alpha) and not _decides(d * 0.995, 9, sd, alpha)
-    # seeds.most that decides 0.05: its own looks' sequential level (the engine's), the powers by statsmodels;
+    # seeds.most that decides 0.03: its own looks' sequential level (the engine's), the powers by statsmodels;
     # one round fewer does not decide it.
     most = int(re.search(r"more seeds: seeds.most: (\d+)", text.split("CANNOT DECIDE")[1]).group(1))
     looks = SeedSchedule(3, most, 2).looks()
-    assert _decides(0.05, most, sd, stats.sequential_alpha(looks, 0.05))
-    assert not _decides(0.05, most - 2, sd, stats.sequential_alpha(looks[:-1], 0.05))
+    assert _decides(0.03, most, sd, stats.sequential_alpha(looks, 0.05))
+    assert not _decides(0.03, most - 2, sd, stats.sequential_alpha(looks[:-1], 0.05))
 
 
 def _auto_spec(tmp_path, hours: float, name: str = "auto.yaml"):
