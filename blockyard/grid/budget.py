@@ -157,7 +157,7 @@ def fit_most(schedule: SeedSchedule, budget_s: float, round_wall: Callable[[int]
 
 
 def with_most(spec: GridSpec, most: int) -> GridSpec:
-    """``spec`` with its ``most: auto`` schedule resolved to ``most`` (its potential seeds start .. start + most - 1)."""
+    """``spec`` with its ``most: auto`` schedule resolved to ``most`` (potential seeds start .. start + most - 1)."""
     schedule = spec.design.schedule
     assert schedule is not None
     resolved = dataclasses.replace(schedule, most=most)

@@ -25,9 +25,9 @@ A grid file (YAML) holds::
 Every cell is (variant, rung, one value per axis, seed). Each cell's config is validated by
 ``blockyard.config``; errors name the variant, axis or cell they come from.
 
-``seeds: {first: F, most: M, step: S}`` (optionally ``start: K``, the first seed number) runs seeds 0..F-1 first, then adds S seeds per round to
-the reference and every still-undecided variant until all are decided or M is reached (see
-``blockyard.grid.rounds``); the cells of every seed up to M are the grid's potential cells.
+``seeds: {first: F, most: M, step: S}`` runs seeds 0..F-1 first (``start: K`` numbers them from K instead),
+then adds S seeds per round to the reference and every still-undecided variant until all are decided or M is
+reached (see ``blockyard.grid.rounds``); the cells of every seed up to M are the grid's potential cells.
 """
 
 from __future__ import annotations
