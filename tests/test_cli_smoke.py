@@ -27,6 +27,7 @@ BAD_INPUT = {
     "sample": (["{tmp}/no-run", "--prompt", "the"], "no-run"),
     "eval": (["{tmp}/no-run"], "no-run"),
     "check": (["{tmp}/missing.py"], "missing.py"),
+    "verify": (["{tmp}/missing-dir"], "missing-dir"),
 }
 
 

@@ -404,7 +404,7 @@ CONFIGS = Path(__file__).resolve().parent.parent / "configs" / "grids"
 
 
 @pytest.mark.parametrize("name, variants, seeds, groups", [
-    ("default", ["global-attention", "recurrence-only", "hybrid-2r1l"], 5, 3),
+    ("default", ["global-attention", "recurrence-only", "hybrid-2r1l"], 7, 3),
     ("gate-ablation", ["gated", "no-gate"], 3, 3),
 ])
 def test_demo_grids_expand_and_match_parameters(name, variants, seeds, groups):
@@ -446,7 +446,7 @@ def test_planning_a_grid_builds_no_model_and_loads_no_report_libraries():
         "from blockyard.grid.run import plan_cells\n"
         "from blockyard.grid.spec import load_grid\n"
         f"plan = plan_cells(load_grid({str(CONFIGS / 'default.yaml')!r}), 1)\n"
-        "assert len(plan) == 15 and plan[0].cost.params_total > 0, plan\n"
+        "assert len(plan) == 21 and plan[0].cost.params_total > 0, plan\n"
         "assert not built, built[:5]\n"
         "assert 'scipy' not in sys.modules and 'matplotlib' not in sys.modules\n"
     )

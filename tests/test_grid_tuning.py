@@ -247,11 +247,12 @@ def test_adding_a_tune_block_to_a_run_grid_is_refused_without_force(tmp_path, ca
 # (3.28 / 3.22) against 3.50 / 3.39 at 0.01; width 128 with init_std 0.2 is best at 0.01 (3.17 / 3.12)
 # against 3.29 / 3.22 at 0.1 and 3.56 / 3.67 at 0.003). Common practice, no source: under the
 # standard parametrization the best Adam lr falls with width.
+# The losses above were measured with the random stream init (model.init_draws: stream), which the grid keeps.
 E2E = """
     name: two-widths
     description: a team checking that each width gets its own learning rate
     base:
-      model: {width: 32, depth: 1, pattern: [global_attention], mlp_expansion: 2.0}
+      model: {width: 32, depth: 1, pattern: [global_attention], mlp_expansion: 2.0, init_draws: stream}
       data: {corpus: pydoc, seq_len: 32}
       train: {steps: 80, batch_size: 8, eval_every: 40, eval_windows: 4, log_every: 20, warmup_steps: 5,
               checkpoint_every: 10}
@@ -349,7 +350,7 @@ def test_kills_in_either_stage_resume_to_the_same_report(tuned_grid, tmp_path):
         proc.wait(30)
     lines: list[str] = []
     assert run_grid(path, out=grid_dir, workers=1, threads=1, echo=lines.append) == 0
-    assert any("stage 1 of 2, tuning train.lr: 6 cells" in ln and "(6 already finished, 0 to run;" in ln
+    assert any("stage 1 of 2, tuning train.lr: 8 cells" in ln and "(8 already finished, 0 to run;" in ln
                for ln in lines)
     for logs in (grid_dir / "tuning" / "logs", grid_dir / "logs"):  # each kill left a cell to resume
         assert any("from the checkpoint at step" in p.read_text() for p in logs.glob("*.log")), logs
@@ -425,7 +426,11 @@ def test_shipped_tuned_grid_tunes_the_default_grids_mixers():
     root = Path(__file__).resolve().parents[1] / "configs" / "grids"
     tuned, default = load_grid(root / "tuned-mixers.yaml"), load_grid(root / "default.yaml")
     assert tuned.variants == default.variants and tuned.reference == default.reference
-    assert tuned.base == default.base and tuned.design == default.design and tuned.match == default.match
+    # Same models, data and matching; the design (smallest effect, seed schedule) may differ: the default grid
+    # moved to 0.07 and up to 7 seeds (issue 26), and the tuned grid keeps the design it was run and timed with
+    # until it is rerun under the new tuning rule.
+    assert tuned.base == default.base and tuned.match == default.match
+    assert tuned.design.null_control == default.design.null_control
     assert tuned.tuning.key == "train.lr" and len(tuned.tuning.values) >= 4
     assert set(tuned.tuning.seeds).isdisjoint(tuned.seeds)
     cells = plan_tuning(tuned, threads=1)

@@ -97,7 +97,7 @@ def test_checkpoint(root, reference, capsys, monkeypatch):
                                 "no space left on the device (needs about ")
     assert errors[0].endswith("; the checkpoint of step 5 stays the resume point; fix that (e.g. free space), "
                               "then rerun the same command to resume")
-    assert [p.name for p in (out / "checkpoints").iterdir()] == ["step_0000005.pt"]
+    assert sorted(p.name for p in (out / "checkpoints").iterdir()) == ["sha256.json", "step_0000005.pt"]
     assert temp_files(out) == []
     assert read_summary(out)["status"] == "failed"
     monkeypatch.undo()
@@ -297,7 +297,8 @@ def test_a_real_full_filesystem_then_read_only_then_freed(root, reference, tmp_p
                               "no space left on the device (needs about ")
     assert "the checkpoint of step 5 stays the resume point" in err[-1]
     after = tmp_path / "after_full"
-    assert [p.name for p in (after / "checkpoints").iterdir()] == ["step_0000005.pt"] and temp_files(after) == []
+    assert sorted(p.name for p in (after / "checkpoints").iterdir()) == ["sha256.json", "step_0000005.pt"]
+    assert temp_files(after) == []
     code, err = result("ro")
     assert code == 4 and len(err) == 1 and "the filesystem is read-only" in err[0], err
     code, err = result("freed")
