@@ -44,16 +44,23 @@ SETTINGS = {
     # shorter runs, more seeds: 300 of the 700 steps (0.43 of the compute per cell)
     "short": {"model.init_draws": "by_path", "train.ema_half_life": 0.1, "train.steps": 300,
               "train.eval_every": 50, "train.checkpoint_every": 150},
+    # half the peak lr (1.5e-3 against the trainer's 3e-3): a calmer trajectory, at a higher loss
+    "low_lr": {"model.init_draws": "by_path", "train.ema_half_life": 0.1, "train.lr": 1.5e-3},
+    # twice the batch at half the steps: the same tokens, half the gradient noise per step
+    "big_batch": {"model.init_draws": "by_path", "train.ema_half_life": 0.1, "train.batch_size": 32,
+                  "train.steps": 350, "train.warmup_steps": 25, "train.eval_every": 50,
+                  "train.checkpoint_every": 175},
 }
 # The null control (the reference under init seed 1,000,000 + seed, same data) is trained once: under
 # either setting it is the same model at an unrelated init, so its A/A sd is one quantity; it is not
 # lowered by keyed draws (a different init seed shares nothing), which is why it is an upper bound of
 # the noise of a shared-init pair.
-NULL_CONTROL = {"stream": False, "by_path": True, "short": True}
+NULL_CONTROL = {"stream": False, "by_path": True, "short": True, "low_lr": True, "big_batch": True}
 # The variants each setting trains (None: all of the default grid's). The "before" setting trains the
 # reference and the hybrid only: one A/B comparison is enough to see what the keyed draws change, and
 # it saves a third of that setting's cells on a 2-core machine.
-VARIANTS = {"stream": ("global-attention", "hybrid-2r1l"), "by_path": None, "short": None}
+VARIANTS = {"stream": ("global-attention", "hybrid-2r1l"), "by_path": None, "short": None, "low_lr": None,
+            "big_batch": None}
 
 
 def grid_file(out: Path, setting: str, seeds: int) -> Path:
@@ -94,20 +101,20 @@ def more_windows(cell: Path, windows: int) -> dict[str, float]:
     """The final checkpoint's trained and averaged weights on ``windows`` validation windows."""
     import torch
 
-    from blockyard.config import load_config, replace
+    from blockyard.config import config_hash, load_config, replace
     from blockyard.data import load_data
     from blockyard.model import build_model
     from blockyard.train import checkpoint as ckpt
     from blockyard.train.loop import evaluate
     from blockyard.train.runtime import resolve_runtime
 
-    cfg = load_config(cell / "config.yaml")
-    cfg = replace(cfg, {"train.eval_windows": windows, "runtime.threads": 1})
+    trained = load_config(cell / "config.yaml")
+    cfg = replace(trained, {"train.eval_windows": windows, "runtime.threads": 1})
     runtime, _ = resolve_runtime(cfg.runtime)
     data = load_data(cfg)
     model = build_model(cfg.model, data.vocab_size)
     newest = ckpt.list_checkpoints(cell / "checkpoints")[-1][1]
-    state = torch.load(newest, map_location="cpu", weights_only=False)
+    state = ckpt.read_checkpoint(newest, config_hash(trained)).state  # verified against the manifest
     batches = list(data.val_batches())
     out = {}
     model.load_state_dict(state["model"])

@@ -205,6 +205,20 @@ BAD_PLUGINS = {
             kind = "lstm"
             Options = O
         """, r"line 9: ValueError: mixer kind 'lstm' is a built-in mixer"),
+    "old_kernel_flag": ("""
+        import dataclasses
+        from blockyard.mixers import Mixer, register_mixer
+
+        @dataclasses.dataclass(frozen=True)
+        class O:
+            pass
+
+        @register_mixer
+        class Old(Mixer):
+            kind = "old_flag"
+            Options = O
+            takes_scan_backend = True
+        """, r"line 9: TypeError: Old\.takes_scan_backend was renamed: write takes_kernels = True"),
     "syntax": ("def broken(:\n", r"bad\.py, line 1: SyntaxError"),
     "nothing": ("x = 1\n", r"bad\.py: registers no mixer"),
 }

@@ -41,6 +41,9 @@ def register_mixer(cls: type[Mixer]) -> type[Mixer]:
         raise TypeError(f"{cls.__name__} needs a class attribute 'kind'")
     if not dataclasses.is_dataclass(getattr(cls, "Options", None)):
         raise TypeError(f"{cls.__name__}.Options must be a dataclass of its config keys")
+    if hasattr(cls, "takes_scan_backend"):  # the name before runtime.kernels; silently ignored otherwise
+        raise TypeError(f"{cls.__name__}.takes_scan_backend was renamed: write takes_kernels = True (the mixer then "
+                        "gets kernels=, one of auto | compiled | torch | reference)")
     earlier = MIXERS.get(cls.kind)
     # A plugin's kind may be taken over by a later plugin (an edited file loaded again in the same
     # process); the plugin loader refuses two files of one config that define the same kind.
