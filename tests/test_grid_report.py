@@ -355,7 +355,7 @@ def test_the_power_sentence_and_the_method_say_when_they_hold(tmp_path):
 def test_html_renders_emphasis_strong_and_code_and_leaves_products_alone():
     """Inline marks as CommonMark reads them (spec 0.31, sec. 6.2: a `*` opens emphasis when no space
     follows it and closes it when no space precedes it; code spans take their content literally)."""
-    from blockyard.grid.report import Doc
+    from blockyard.grid.report.document import Doc
 
     doc = Doc()
     doc.p("*every* group, **bold**, `a*b*c`, 2*3*4 and a * b * c")
@@ -366,7 +366,7 @@ def test_html_renders_emphasis_strong_and_code_and_leaves_products_alone():
 
 
 def test_wide_tables_scroll_inside_the_page():
-    from blockyard.grid.report import Doc
+    from blockyard.grid.report.document import Doc
 
     doc = Doc()
     doc.table([f"column {i}" for i in range(40)], [[str(i) for i in range(40)]])
@@ -381,7 +381,7 @@ def test_token_axis_reads_in_one_unit_without_an_offset():
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    from blockyard.grid.report import label_token_axis
+    from blockyard.plotting import label_token_axis
 
     for top, unit in ((1.4e6, "M"), (9e5, "k"), (3e9, "G")):
         fig, ax = plt.subplots()
