@@ -31,6 +31,15 @@ def save_png(fig: Any, path: Path, dpi: int = 110) -> None:
     fs.atomic_write(path, lambda f: fig.savefig(f, format="png", dpi=dpi), what="a report plot")
 
 
+def finish(fig: Any, path: Path) -> None:
+    """Lay the figure out tightly, write it as a PNG (atomically) and close it."""
+    import matplotlib.pyplot as plt
+
+    fig.tight_layout()
+    save_png(fig, path)
+    plt.close(fig)
+
+
 def label_token_axis(axis: Any) -> None:
     """Tick labels such as 0.2M ... 1.4M, one unit for the whole axis, instead of matplotlib's offset ("1e6")."""
     from matplotlib.ticker import FuncFormatter

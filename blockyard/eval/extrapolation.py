@@ -31,6 +31,7 @@ from blockyard.data.batches import IGNORE_INDEX
 from blockyard.errors import UserError
 from blockyard.palette import use_palette
 from blockyard.rundir import EVAL_FILE, read_json, read_metrics, writing
+from blockyard.text import aligned_table
 
 Batches = list[tuple[torch.Tensor, torch.Tensor]]
 
@@ -160,12 +161,11 @@ def format_table(rows: list[dict[str, Any]]) -> str:
     """Lengths down, position buckets across (nats per token)."""
     n = max(len(r["bucket_loss"]) for r in rows)
     header = ["length", "tokens", "loss", "bits/tok"] + [f"b{i + 1}" for i in range(n)]
-    lines = [header]
+    lines = []
     for r in rows:
         buckets = [f"{v:.3f}" for v in r["bucket_loss"]] + [""] * (n - len(r["bucket_loss"]))
         lines.append([r["label"], str(r["length"]), f"{r['loss']:.4f}", f"{r['bits_per_token']:.3f}", *buckets])
-    widths = [max(len(line[i]) for line in lines) for i in range(len(header))]
-    return "\n".join("  ".join(c.rjust(w) for c, w in zip(line, widths, strict=True)) for line in lines)
+    return aligned_table(header, lines, right=True)
 
 
 def merge_eval(old: dict[str, Any] | None, new: dict[str, Any]) -> dict[str, Any]:

@@ -32,6 +32,7 @@ from typing import Any
 
 from blockyard.errors import ConfigError
 from blockyard.rundir import format_duration
+from blockyard.text import aligned_table
 
 RUNG = "rung"  # the point key of a rung
 LADDER_KEYS = ("ladder", "tokens_per_param", "ladder_target")
@@ -218,12 +219,11 @@ def rung_summary(ladder: Ladder, reference: str | None, cells: Sequence[RungCell
         rows.append([str(k), ladder.overrides_text(k), " / ".join(f"{p:,d}" for p in params),
                      " / ".join(f"{x:,d}" for x in tokens), str(len(at)), "-" if t is None else format_duration(t)])
     rows.append(["total", "", "", "", str(len(cells)), "-" if total_time is None else format_duration(total_time)])
-    widths = [max(len(r[i]) for r in [header, *rows]) for i in range(len(header))]
     budget_text = (f"{ladder.tokens_per_param:g} tokens per non-embedding parameter of the reference"
                    if ladder.tokens_per_param is not None else "the base's budget at every rung (fixed)")
     lines = [f"Ladder: {len(ladder.rungs)} rungs; token budget: {budget_text}"
              + (f"; target N={ladder.target:.3g}" if ladder.target else "")]
-    lines += ["  " + "  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)).rstrip() for r in [header, *rows]]
+    lines += aligned_table(header, rows, indent="  ").splitlines()
     return lines
 
 

@@ -8,12 +8,12 @@ smallest effect as a horizontal line) beside the paired sd, with the null contro
 
 from __future__ import annotations
 
-from collections.abc import Callable
 from pathlib import Path
 from typing import Any, Protocol
 
 from blockyard.grid.noise import NoiseCurve, resolution_text
 from blockyard.grid.verdicts import point_text
+from blockyard.plotting import finish, label_token_axis, pyplot
 
 NOISE_PLOT = "noise.png"
 NOISE_COLUMNS = ("variant", "reference", "point", "null_control", "step", "tokens", "pairs", "mean_diff",
@@ -75,19 +75,15 @@ def noise_section(doc: _Doc, curves: list[NoiseCurve], smallest_effect: float, p
                 "control's A/A sd, where the grid has one.")
 
 
-def noise_plot(path: Path, curves: list[NoiseCurve], smallest_effect: float,
-               save: Callable[[Any, Path], None]) -> bool:
-    """noise.png: detectable difference and paired sd against training tokens, written by ``save(figure, path)`` (the
-    report's atomic PNG writer); False (nothing written) without two evaluations with tokens."""
+def noise_plot(path: Path, curves: list[NoiseCurve], smallest_effect: float) -> bool:
+    """noise.png: detectable difference and paired sd against training tokens, written atomically; False (nothing
+    written) without two evaluations with tokens."""
     drawn = [c for c in curves if sum(p.sd is not None and p.tokens is not None for p in c.points) >= 2]
     if not drawn:
         return False
-    import matplotlib
+    from matplotlib.ticker import ScalarFormatter
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-    from matplotlib.ticker import FuncFormatter, ScalarFormatter
-
+    plt = pyplot()
     fig, (left, right) = plt.subplots(1, 2, figsize=(11, 4.2))
     for c in drawn:
         pts = [p for p in c.points if p.sd is not None and p.tokens is not None]
@@ -102,14 +98,12 @@ def noise_plot(path: Path, curves: list[NoiseCurve], smallest_effect: float,
     right.set_ylabel("paired sd (nats/token)")
     for ax in (left, right):
         ax.set_xlabel("training tokens")
-        ax.xaxis.set_major_formatter(FuncFormatter(lambda x, _: f"{x / 1e6:.3g}M"))
+        label_token_axis(ax.xaxis)
         plain = ScalarFormatter(useOffset=False)
         plain.set_scientific(False)
         ax.yaxis.set_major_formatter(plain)
         ax.set_ylim(bottom=0)
         ax.grid(True, alpha=0.3)
         ax.legend(fontsize=7)
-    fig.tight_layout()
-    save(fig, path)
-    plt.close(fig)
+    finish(fig, path)
     return True

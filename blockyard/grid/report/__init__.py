@@ -24,7 +24,7 @@ from blockyard.grid.report.figures import FOREST, GAP_VS_N, LOSS_VS_N, TUNING_PL
 from blockyard.grid.report.results import GridResults, Group, grid_results, load_results, read_levers, read_token_local
 from blockyard.grid.report.sections import CAUTION, SKEW_FAMILY_ERROR, build_report, lever_items
 from blockyard.grid.report.tables import CSV_COLUMNS, VERDICT_COLUMNS, write_table, write_tables
-from blockyard.plotting import label_token_axis, save_png
+from blockyard.plotting import label_token_axis
 
 __all__ = ["CAUTION", "CSV_COLUMNS", "FOREST", "GAP_VS_N", "LOSS_VS_N", "SKEW_FAMILY_ERROR", "TUNING_PLOT",
            "VERDICT_COLUMNS", "Doc", "GridResults", "Group", "build_report", "grid_results", "label_token_axis",
@@ -39,7 +39,7 @@ def write_report(grid_dir: str | Path) -> Path:
     plots = write_plots(grid_dir, res)
     noise = noise_curves(res.family, *grid_curves(grid_dir, res.rows))
     write_table(grid_dir / "noise.csv", NOISE_COLUMNS, noise_rows(noise))
-    plotted = noise_plot(grid_dir / NOISE_PLOT, noise, res.design.smallest_effect, save_png)
+    plotted = noise_plot(grid_dir / NOISE_PLOT, noise, res.design.smallest_effect)
     report = write_document(grid_dir, build_report(grid_dir, res, plots, (noise, plotted)), f"Grid {res.name}")
     write_tables(grid_dir, res)
     return report

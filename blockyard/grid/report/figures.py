@@ -20,7 +20,7 @@ from blockyard.grid.report.results import GridResults, Group, TuningResults, axi
 from blockyard.grid.status import cell_dir
 from blockyard.grid.tuning import Tuning
 from blockyard.grid.verdicts import Family, point_text
-from blockyard.plotting import label_token_axis, pyplot, save_png
+from blockyard.plotting import finish, label_token_axis, pyplot
 from blockyard.rundir import METRICS_FILE, read_metrics
 from blockyard.text import is_finite_number, percent_text
 
@@ -141,9 +141,7 @@ def forest_plot(plt: Any, path: Path, family: Family) -> bool:
     ax.set_xlabel(f"final val loss difference to {family_reference(family)} (nats/token; < 0 is better)")
     ax.grid(True, axis="x", alpha=0.3)
     ax.legend(fontsize=7, loc="lower right")
-    fig.tight_layout()
-    save_png(fig, path)
-    plt.close(fig)
+    finish(fig, path)
     return True
 
 
@@ -172,9 +170,7 @@ def tuning_plot(plt: Any, path: Path, tuned: TuningResults) -> bool:
     ax.set_ylabel("final validation loss (nats/token)")
     ax.grid(True, alpha=0.3, which="both")
     ax.legend(fontsize=7)
-    fig.tight_layout()
-    save_png(fig, path)
-    plt.close(fig)
+    finish(fig, path)
     return True
 
 
@@ -207,16 +203,16 @@ def _params_plot(plt: Any, path: Path, groups: list[Group]) -> bool:
         yerr = None if iv.half_width is None else [[iv.half_width], [iv.half_width]]
         ax.errorbar([params], [iv.mean], yerr=yerr, fmt="o", capsize=4, label=g.label)
         plotted = True
-    if plotted:
-        ax.set_xscale("log")
-        ax.set_xlabel("non-embedding parameters")
-        ax.set_ylabel("final validation loss (nats/token)")
-        ax.grid(True, alpha=0.3)
-        ax.legend(fontsize=7)
-        fig.tight_layout()
-        save_png(fig, path)
-    plt.close(fig)
-    return plotted
+    if not plotted:
+        plt.close(fig)
+        return False
+    ax.set_xscale("log")
+    ax.set_xlabel("non-embedding parameters")
+    ax.set_ylabel("final validation loss (nats/token)")
+    ax.grid(True, alpha=0.3)
+    ax.legend(fontsize=7)
+    finish(fig, path)
+    return True
 
 
 def _curve_plots(plt: Any, grid_dir: Path, groups: list[Group]) -> list[tuple[str, str]]:
@@ -250,8 +246,8 @@ def _curve_plots(plt: Any, grid_dir: Path, groups: list[Group]) -> list[tuple[st
             ax.set_ylabel("validation loss (nats/token)")
             ax.grid(True, alpha=0.3)
             ax.legend(fontsize=7)
-            fig.tight_layout()
-            save_png(fig, grid_dir / name)
+            finish(fig, grid_dir / name)
             written.append((name, caption))
-        plt.close(fig)
+        else:
+            plt.close(fig)
     return written
