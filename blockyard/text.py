@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from typing import Any
+from typing import Any, TypeGuard
 
 
 def aligned_table(header: Sequence[Any], rows: Sequence[Sequence[Any]], right: bool = False,
@@ -66,7 +66,7 @@ def value_text(v: Any) -> str:
     return str(v)
 
 
-def is_finite_number(x: Any) -> bool:
+def is_finite_number(x: Any) -> TypeGuard[float]:
     """A real, finite number (a bool is not one): what a loss read from a record must be to count."""
     return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
 

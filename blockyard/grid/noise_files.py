@@ -32,7 +32,7 @@ def val_curve(run_dir: Path) -> tuple[dict[int, float], float | None]:
         if line.get("split") == "train" and line.get("tokens") and step:
             per_step = line["tokens"] / step
         elif line.get("split") == "val" and is_finite_number(loss):
-            curve[int(step)] = float(loss)
+            curve[int(line["step"])] = float(loss)
     return curve, per_step
 
 

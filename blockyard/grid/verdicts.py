@@ -218,7 +218,8 @@ def compare_all(groups: dict[GroupKey, GroupOutcomes], reference: str | None, de
     m = family_size(groups, reference)
     a_look = look_alpha(design, m)
     refs = {g.point: g for g in groups.values() if g.variant == reference}
-    family, null = [], []
+    family: list[Comparison] = []
+    null: list[Comparison] = []
     for g in groups.values():
         if g.variant == reference or g.point not in refs:
             continue

@@ -40,8 +40,9 @@ def _val_curve(grid_dir: Path, row: CellRow) -> list[tuple[float, float, float]]
     for ln in lines:
         if ln.get("split") == "train" and ln.get("tokens") and ln.get("step"):
             per_step = ln["tokens"] / ln["step"]
-    if per_step is None and row.get("tokens_seen") and row.get("steps"):
-        per_step = row["tokens_seen"] / row["steps"]
+    seen, steps = row["tokens_seen"], row["steps"]
+    if per_step is None and seen and steps:
+        per_step = seen / steps
     out = []
     for ln in lines:
         if ln.get("split") == "val" and is_finite_number(ln.get("loss")) and per_step:
@@ -127,6 +128,7 @@ def forest_plot(plt: Any, path: Path, family: Family) -> bool:
     for y, c in enumerate(reversed(rows)):
         color = palette.OUTSIDE if not c.in_family else colors[c.verdict]
         iv, un = c.interval, c.unadjusted
+        assert iv is not None  # rows have intervals
         if iv.low is not None:
             ax.plot([iv.low, iv.high], [y, y], color=color, linewidth=3, solid_capstyle="butt")
         if un is not None and un.low is not None:
@@ -195,7 +197,7 @@ def _params_plot(plt: Any, path: Path, groups: list[Group]) -> bool:
     fig, ax = plt.subplots(figsize=(6.4, 4.2))
     plotted = False
     for g in groups:
-        finals = [float(r["final_val_loss"]) for r in g.done]
+        finals = [float(loss) for r in g.done if (loss := r["final_val_loss"]) is not None]
         params = mean_of([r["params_non_embedding"] for r in g.done])
         if not finals or params is None:
             continue

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import csv
 import io
+from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
 
@@ -18,7 +19,7 @@ from blockyard.grid.ladder import FIT_COLUMNS, TREND_COLUMNS, fit_rows, trend_ro
 from blockyard.grid.report.results import GridResults, TuningResults
 from blockyard.grid.spec import NULL_VARIANT
 from blockyard.grid.tuning import split_point
-from blockyard.grid.verdicts import Comparison, Family, Point
+from blockyard.grid.verdicts import Comparison, Family
 from blockyard.text import value_text
 
 CSV_COLUMNS = ("id", "variant", "point", "seed", "status", "final_val_loss", "best_val_loss", "params_total",
@@ -44,7 +45,7 @@ def write_csv(path: Path, rows: list[CellRow]) -> None:
     write_table(path, CSV_COLUMNS, table)
 
 
-def point_cell(point: Point) -> str:
+def point_cell(point: Iterable[tuple[str, Any]]) -> str:
     """An axis point as one CSV cell: ``model.width=64; model.depth=3`` (empty without axes)."""
     return "; ".join(f"{k}={value_text(v)}" for k, v in point)
 
@@ -110,7 +111,8 @@ def write_tables(grid_dir: Path, res: GridResults) -> None:
     """results.csv, verdicts.csv (with the tuned values under a ``tune`` block), tuning.csv, and with a ladder
     fits.csv and trend.csv."""
     write_csv(grid_dir / "results.csv", res.rows)
-    columns, table = VERDICT_COLUMNS, verdict_table(res.family)
+    columns: tuple[str, ...] = VERDICT_COLUMNS
+    table = verdict_table(res.family)
     if res.tuning is not None:
         columns, table = (*columns, *TUNED_COLUMNS), [row + _tuned_values(res.tuning, c, res.reference)
                                                       for row, c in zip(table, res.family.comparisons + res.family.null,
