@@ -31,13 +31,17 @@ def save_png(fig: Any, path: Path, dpi: int = 110) -> None:
     fs.atomic_write(path, lambda f: fig.savefig(f, format="png", dpi=dpi), what="a report plot")
 
 
-def finish(fig: Any, path: Path) -> None:
-    """Lay the figure out tightly, write it as a PNG (atomically) and close it."""
+def finish(fig: Any, path: str | Path, dpi: int = 110) -> Path:
+    """Lay the figure out tightly, write it as a PNG at ``path`` (atomically, folders created), close it;
+    returns the path."""
     import matplotlib.pyplot as plt
 
+    out = Path(path)
     fig.tight_layout()
-    save_png(fig, path)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    save_png(fig, out, dpi)
     plt.close(fig)
+    return out
 
 
 def label_token_axis(axis: Any) -> None:

@@ -35,7 +35,7 @@ from blockyard.cost import analytic as cost
 from blockyard.errors import UserError
 from blockyard.mixers import state_nbytes
 from blockyard.model import build_model
-from blockyard.palette import use_palette
+from blockyard.plotting import pyplot
 from blockyard.text import aligned_table, binary_bytes
 
 REPO = Path(__file__).resolve().parents[2]
@@ -199,12 +199,7 @@ def format_rows(rows: list[dict[str, Any]]) -> str:
 
 def plot_rows(rows: list[dict[str, Any]], path: Path) -> None:
     """Two panels: decode tokens/s vs context (one line per model and batch), state bytes vs context."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    use_palette(matplotlib)
-    import matplotlib.pyplot as plt
-
+    plt = pyplot()
     fig, (ax_speed, ax_state) = plt.subplots(1, 2, figsize=(11, 4))
     keys = sorted({(r["model"], r["batch"]) for r in rows}, key=lambda k: (k[1], k[0]))
     for model, batch in keys:

@@ -24,7 +24,7 @@ from blockyard.cost import measured
 from blockyard.errors import UserError
 from blockyard.mixers import MIXERS
 from blockyard.model import MLP
-from blockyard.palette import use_palette
+from blockyard.plotting import pyplot
 from blockyard.schema import describe
 from blockyard.text import aligned_table, binary_bytes, count_text
 
@@ -214,12 +214,7 @@ def measured_note(model: ModelConfig) -> str:
 
 def plot_state_bytes(cfgs: list[Config], path: str | Path, contexts: list[int] | None = None) -> Path:
     """Log-log PNG of inference state bytes (batch 1) vs context length, one line per config."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    use_palette(matplotlib)
-    import matplotlib.pyplot as plt
-
+    plt = pyplot()
     contexts = contexts or [2**k for k in range(4, 18)]
     fig, ax = plt.subplots(figsize=(6, 4))
     for cfg in cfgs:
