@@ -21,14 +21,24 @@ from blockyard.grid.noise_files import grid_curves
 from blockyard.grid.noise_report import NOISE_COLUMNS, NOISE_PLOT, noise_plot, noise_rows
 from blockyard.grid.report.document import Doc, write_document
 from blockyard.grid.report.figures import FOREST, GAP_VS_N, LOSS_VS_N, TUNING_PLOT, write_plots
-from blockyard.grid.report.results import GridResults, Group, grid_results, load_results, read_levers, read_token_local
+from blockyard.grid.report.results import (
+    GridMeta,
+    GridResults,
+    Group,
+    grid_results,
+    load_results,
+    read_levers,
+    read_meta,
+    read_token_local,
+)
 from blockyard.grid.report.sections import CAUTION, SKEW_FAMILY_ERROR, build_report, lever_items
 from blockyard.grid.report.tables import CSV_COLUMNS, VERDICT_COLUMNS, write_table, write_tables
 from blockyard.plotting import label_token_axis
 
 __all__ = ["CAUTION", "CSV_COLUMNS", "FOREST", "GAP_VS_N", "LOSS_VS_N", "SKEW_FAMILY_ERROR", "TUNING_PLOT",
-           "VERDICT_COLUMNS", "Doc", "GridResults", "Group", "build_report", "grid_results", "label_token_axis",
-           "lever_items", "load_results", "read_levers", "read_token_local", "write_report"]
+           "VERDICT_COLUMNS", "Doc", "GridMeta", "GridResults", "Group", "build_report", "grid_results",
+           "label_token_axis", "lever_items", "load_results", "read_levers", "read_meta", "read_token_local",
+           "write_report"]
 
 
 def write_report(grid_dir: str | Path) -> Path:

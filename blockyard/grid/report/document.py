@@ -16,72 +16,108 @@ from pathlib import Path
 from blockyard import fs
 
 
+@dataclasses.dataclass(frozen=True)
+class Heading:
+    level: int
+    text: str
+
+
+@dataclasses.dataclass(frozen=True)
+class Paragraph:
+    text: str
+
+
+@dataclasses.dataclass(frozen=True)
+class Bullets:
+    items: list[str]
+
+
+@dataclasses.dataclass(frozen=True)
+class Table:
+    header: list[str]
+    rows: list[list[str]]
+
+
+@dataclasses.dataclass(frozen=True)
+class Figure:
+    name: str  # a PNG in the grid dir
+    caption: str
+
+
+Block = Heading | Paragraph | Bullets | Table | Figure
+
+_STYLE = ("body{font-family:sans-serif;max-width:70em;margin:2em auto;padding:0 1em;line-height:1.4}"
+          "table{border-collapse:collapse;margin:1em 0}td,th{border:1px solid #ccc;padding:.25em .6em;"
+          "text-align:left}th{background:#f3f3f3}img{max-width:100%}figcaption{font-style:italic}"
+          ".wide{overflow-x:auto;max-width:100%}")
+
+
 @dataclasses.dataclass
 class Doc:
     """A report as blocks, rendered both as Markdown and as self-contained HTML."""
 
-    blocks: list[tuple] = dataclasses.field(default_factory=list)
+    blocks: list[Block] = dataclasses.field(default_factory=list)
 
     def h(self, level: int, text: str) -> None:
-        self.blocks.append(("h", level, text))
+        self.blocks.append(Heading(level, text))
 
     def p(self, text: str) -> None:
-        self.blocks.append(("p", text))
+        self.blocks.append(Paragraph(text))
 
     def ul(self, items: list[str]) -> None:
-        self.blocks.append(("ul", items))
+        self.blocks.append(Bullets(items))
 
     def table(self, header: list[str], rows: list[list[str]]) -> None:
-        self.blocks.append(("table", header, rows))
+        self.blocks.append(Table(header, rows))
 
     def img(self, name: str, caption: str) -> None:
-        self.blocks.append(("img", name, caption))
+        self.blocks.append(Figure(name, caption))
 
     def markdown(self) -> str:
-        out: list[str] = []
-        for b in self.blocks:
-            if b[0] == "h":
-                out.append("#" * b[1] + " " + b[2])
-            elif b[0] == "p":
-                out.append(b[1])
-            elif b[0] == "ul":
-                out.append("\n".join(f"- {item}" for item in b[1]))
-            elif b[0] == "table":
-                cell = lambda s: str(s).replace("|", "\\|")
-                lines = ["| " + " | ".join(cell(c) for c in b[1]) + " |", "|" + "---|" * len(b[1])]
-                lines += ["| " + " | ".join(cell(c) for c in row) + " |" for row in b[2]]
-                out.append("\n".join(lines))
-            elif b[0] == "img":
-                out.append(f"![{b[2]}]({b[1]})\n\n*{b[2]}*")
-        return "\n\n".join(out) + "\n"
+        return "\n\n".join(_markdown(b) for b in self.blocks) + "\n"
 
     def html(self, grid_dir: Path, title: str) -> str:
-        e = html.escape
-        out = [f"<!doctype html><html><head><meta charset='utf-8'><title>{e(title)}</title><style>"
-               "body{font-family:sans-serif;max-width:70em;margin:2em auto;padding:0 1em;line-height:1.4}"
-               "table{border-collapse:collapse;margin:1em 0}td,th{border:1px solid #ccc;padding:.25em .6em;"
-               "text-align:left}th{background:#f3f3f3}img{max-width:100%}figcaption{font-style:italic}"
-               ".wide{overflow-x:auto;max-width:100%}"
-               "</style></head><body>"]
-        for b in self.blocks:
-            if b[0] == "h":
-                out.append(f"<h{b[1]}>{_inline_html(b[2])}</h{b[1]}>")
-            elif b[0] == "p":
-                out.append(f"<p>{_inline_html(b[1])}</p>")
-            elif b[0] == "ul":
-                out.append("<ul>" + "".join(f"<li>{_inline_html(i)}</li>" for i in b[1]) + "</ul>")
-            elif b[0] == "table":
-                head = "".join(f"<th>{e(str(c))}</th>" for c in b[1])
-                body = "".join("<tr>" + "".join(f"<td>{_inline_html(str(c))}</td>" for c in row) + "</tr>"
-                               for row in b[2])
-                # A table wider than the page scrolls inside it instead of running off its right edge.
-                out.append(f"<div class='wide'><table><tr>{head}</tr>{body}</table></div>")
-            elif b[0] == "img":
-                data = base64.b64encode((grid_dir / b[1]).read_bytes()).decode()
-                out.append(f"<figure><img alt='{e(b[2])}' src='data:image/png;base64,{data}'>"
-                           f"<figcaption>{_inline_html(b[2])}</figcaption></figure>")
+        """One page; figures are read from ``grid_dir`` and inlined."""
+        head = f"<!doctype html><html><head><meta charset='utf-8'><title>{html.escape(title)}</title><style>"
+        out = [head + _STYLE + "</style></head><body>"]
+        out += [_html(b, grid_dir) for b in self.blocks]
         out.append("</body></html>")
         return "\n".join(out)
+
+
+def _markdown(b: Block) -> str:
+    if isinstance(b, Heading):
+        return "#" * b.level + " " + b.text
+    if isinstance(b, Paragraph):
+        return b.text
+    if isinstance(b, Bullets):
+        return "\n".join(f"- {item}" for item in b.items)
+    if isinstance(b, Table):
+        def cell(s: object) -> str:
+            return str(s).replace("|", "\\|")
+
+        lines = ["| " + " | ".join(cell(c) for c in b.header) + " |", "|" + "---|" * len(b.header)]
+        lines += ["| " + " | ".join(cell(c) for c in row) + " |" for row in b.rows]
+        return "\n".join(lines)
+    return f"![{b.caption}]({b.name})\n\n*{b.caption}*"
+
+
+def _html(b: Block, grid_dir: Path) -> str:
+    e = html.escape
+    if isinstance(b, Heading):
+        return f"<h{b.level}>{_inline_html(b.text)}</h{b.level}>"
+    if isinstance(b, Paragraph):
+        return f"<p>{_inline_html(b.text)}</p>"
+    if isinstance(b, Bullets):
+        return "<ul>" + "".join(f"<li>{_inline_html(i)}</li>" for i in b.items) + "</ul>"
+    if isinstance(b, Table):
+        head = "".join(f"<th>{e(str(c))}</th>" for c in b.header)
+        body = "".join("<tr>" + "".join(f"<td>{_inline_html(str(c))}</td>" for c in row) + "</tr>" for row in b.rows)
+        # A table wider than the page scrolls inside it instead of running off its right edge.
+        return f"<div class='wide'><table><tr>{head}</tr>{body}</table></div>"
+    data = base64.b64encode((grid_dir / b.name).read_bytes()).decode()
+    return (f"<figure><img alt='{e(b.caption)}' src='data:image/png;base64,{data}'>"
+            f"<figcaption>{_inline_html(b.caption)}</figcaption></figure>")
 
 
 _CODE = re.compile(r"`([^`]+)`")

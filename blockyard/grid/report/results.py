@@ -13,7 +13,7 @@ from typing import Any
 
 from blockyard.errors import UserError
 from blockyard.grid.fairness import MATCH_TOLERANCE
-from blockyard.grid.index import INDEX_NAME, CellRow, open_index
+from blockyard.grid.index import INDEX_NAME, CellRow, GridIndex, open_index
 from blockyard.grid.ladder import Ladder, LadderTrends, ladder_trends
 from blockyard.grid.rounds import plan_rounds
 from blockyard.grid.spec import NULL_VARIANT, Design
@@ -22,8 +22,28 @@ from blockyard.grid.tuning import TUNING_DIR, TunedGroup, Tuning, tuned_groups
 from blockyard.grid.verdicts import Family, GroupKey, Point, compare_all, group_outcomes, point_text
 from blockyard.text import is_finite_number
 
-# The index's meta keys the report reads.
-META_KEYS = ("name", "description", "reference", "match", "design", "design_changed", "cost_note", "tuning", "ladder")
+
+@dataclasses.dataclass(frozen=True)
+class GridMeta:
+    """What the grid recorded about itself in its index's meta table, parsed (``read_meta``)."""
+
+    name: str  # the grid's name, or its dir's
+    description: str
+    reference: str | None  # None: no variants to compare
+    match: str  # fairness: none, params or flops
+    design: Design
+    design_changed: bool  # the verdict rules changed with --force after cells had run
+    cost_note: str  # which cost figures were measured rather than computed (plugin mixers)
+    tuning: Tuning | None
+    ladder: Ladder | None
+
+
+def read_meta(index: GridIndex, default_name: str) -> GridMeta:
+    """The index's meta, parsed; ``default_name`` names a grid that recorded no name."""
+    get = index.get_meta
+    return GridMeta(get("name") or default_name, get("description") or "", get("reference") or None,
+                    get("match") or "none", Design.from_json(get("design")), get("design_changed") == "1",
+                    get("cost_note") or "", Tuning.from_json(get("tuning")), Ladder.from_json(get("ladder")))
 
 
 def mean_of(values: list[Any]) -> float | None:
@@ -117,13 +137,10 @@ class GridResults:
     levers: dict[str, frozenset[Any]] = dataclasses.field(default_factory=dict)
 
 
-def grid_results(rows: list[CellRow], meta: dict[str, str | None], default_name: str,
-                 tuning_rows: list[CellRow] | None = None,
+def grid_results(rows: list[CellRow], meta: GridMeta, tuning_rows: list[CellRow] | None = None,
                  parametrizations: dict[str, str] | None = None) -> GridResults:
-    """The results of the cells ``rows`` under the index's ``meta`` (``META_KEYS``); pure."""
-    reference = meta.get("reference") or None
-    design = Design.from_json(meta.get("design"))
-    tuning = Tuning.from_json(meta.get("tuning"))
+    """The results of the cells ``rows`` under the grid's ``meta``; pure."""
+    reference, design, tuning, ladder = meta.reference, meta.design, meta.tuning, meta.ladder
     tuned = None
     if tuning is not None:
         tuned = TuningResults(tuning, tuning_rows or [], tuned_groups(tuning_rows or [], tuning,
@@ -136,16 +153,13 @@ def grid_results(rows: list[CellRow], meta: dict[str, str | None], default_name:
         rounds = (f"{state.rounds} round(s) ran; {state.reason}" if state.complete
                   else f"round {state.rounds} still running, {state.reason}")
     groups = group_cells(rows)
-    ladder = Ladder.from_json(meta.get("ladder"))
     trends = None
     if ladder is not None:
         params = {g.key: p for g in groups if (p := g.params_non_embedding) is not None}
         trends = ladder_trends(ladder, reference, {k: g.losses for k, g in outcomes.items()}, params,
                                skip=(NULL_VARIANT,))
-    return GridResults(meta.get("name") or default_name, meta.get("description") or "", reference,
-                       meta.get("match") or "none", design, meta.get("design_changed") == "1",
-                       meta.get("cost_note") or "", rows,
-                       groups, family, rounds, tuned, ladder, trends, parametrizations or {})
+    return GridResults(meta.name, meta.description, reference, meta.match, design, meta.design_changed,
+                       meta.cost_note, rows, groups, family, rounds, tuned, ladder, trends, parametrizations or {})
 
 
 def load_results(grid_dir: Path) -> GridResults:
@@ -154,16 +168,16 @@ def load_results(grid_dir: Path) -> GridResults:
         raise UserError(f"{grid_dir}: no grid here (no {INDEX_NAME}); pass the dir a grid was run in")
     with open_index(grid_dir, readonly=True) as index:
         rows = index.cells()
-        meta = {k: index.get_meta(k) for k in META_KEYS}
+        meta = read_meta(index, grid_dir.name)
     if not rows:
         raise UserError(f"{grid_dir}: the grid index holds no cells")
     tuning_rows = None
     if (grid_dir / TUNING_DIR / INDEX_NAME).exists():
         with open_index(grid_dir / TUNING_DIR, readonly=True) as index:
             tuning_rows = index.cells()
-    tuning = Tuning.from_json(meta.get("tuning"))
-    parametrizations = read_parametrizations(grid_dir, rows) if tuning is not None and tuning.carried else None
-    res = grid_results(rows, meta, grid_dir.name, tuning_rows, parametrizations)
+    carried = meta.tuning is not None and meta.tuning.carried
+    parametrizations = read_parametrizations(grid_dir, rows) if carried else None
+    res = grid_results(rows, meta, tuning_rows, parametrizations)
     return dataclasses.replace(res, token_local=read_token_local(grid_dir, rows), levers=read_levers(grid_dir, rows))
 
 
