@@ -24,7 +24,7 @@ from typing import Any, TypedDict
 
 from blockyard.grid import stats
 from blockyard.grid.spec import NULL_VARIANT, Design
-from blockyard.text import is_finite_number, value_text
+from blockyard.text import is_finite_number, percent_text, value_text
 
 Point = tuple[tuple[str, Any], ...]
 GroupKey = tuple[str, Point]
@@ -282,7 +282,7 @@ def _divergence_note(d: DivergenceTest, alpha_look: float) -> str:
               f"only), McNemar exact p = {d.mcnemar_p:.3g}")
     if not d.reachable:
         return (f"{stats.DIVERGENCE_DIFFERS}: {counts}; no rank test on {d.pairs} pair(s) can reach "
-                f"{100 * alpha_look:.4g}%")
+                f"{percent_text(alpha_look)}")
     p = min(d.rank.p_less, d.rank.p_greater)
     rule = "by the worst-rank composite" if d.verdict != stats.UNDECIDED else stats.DIVERGENCE_DIFFERS
     return f"{rule}: {counts}; signed-rank one-sided p = {p:.3g}"
