@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import math
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 from blockyard import palette
 from blockyard.grid import stats
@@ -33,8 +33,16 @@ LOSS_VS_N = "ladder_loss_vs_params.png"
 GAP_VS_N = "ladder_gap_vs_params.png"
 
 
-def _val_curve(grid_dir: Path, row: CellRow) -> list[tuple[float, float, float]]:
-    """(tokens, wall_s, val loss) per validation line of a cell."""
+class CurvePoint(NamedTuple):
+    """One validation line of a cell."""
+
+    tokens: float  # training tokens at this evaluation
+    wall_s: float  # nan where the line has no time
+    loss: float
+
+
+def _val_curve(grid_dir: Path, row: CellRow) -> list[CurvePoint]:
+    """The validation lines of a cell, in order."""
     lines = read_metrics(cell_dir(grid_dir, row["id"]) / METRICS_FILE)
     per_step = None
     for ln in lines:
@@ -46,20 +54,23 @@ def _val_curve(grid_dir: Path, row: CellRow) -> list[tuple[float, float, float]]
     out = []
     for ln in lines:
         if ln.get("split") == "val" and is_finite_number(ln.get("loss")) and per_step:
-            out.append((ln["step"] * per_step, float(ln.get("wall_s") or math.nan), float(ln["loss"])))
+            out.append(CurvePoint(ln["step"] * per_step, float(ln.get("wall_s") or math.nan), float(ln["loss"])))
     return out
 
 
-def _band(curves: list[list[tuple[float, float, float]]]) -> tuple[list[float], list[float], list[float], list[float],
-                                                                 list[float]]:
-    """Over the steps every seed has: x (tokens), mean wall_s, mean, min, max of the loss."""
-    common = sorted(set.intersection(*(set(c[0] for c in curve) for curve in curves))) if curves else []
-    xs, walls, means, lows, highs = [], [], [], [], []
+def _band(curves: list[list[CurvePoint]]) -> tuple[list[float], list[float], list[float], list[float], list[float]]:
+    """Over the evaluations every seed has: tokens, mean wall_s, and the mean, min and max of the loss."""
+    common = sorted(set.intersection(*({p.tokens for p in curve} for curve in curves))) if curves else []
+    xs: list[float] = []
+    walls: list[float] = []
+    means: list[float] = []
+    lows: list[float] = []
+    highs: list[float] = []
     for x in common:
-        points = [next(p for p in curve if p[0] == x) for curve in curves]
-        losses = [p[2] for p in points]
+        points = [next(p for p in curve if p.tokens == x) for curve in curves]
+        losses = [p.loss for p in points]
         xs.append(x)
-        walls.append(sum(p[1] for p in points) / len(points))
+        walls.append(sum(p.wall_s for p in points) / len(points))
         means.append(sum(losses) / len(losses))
         lows.append(min(losses))
         highs.append(max(losses))

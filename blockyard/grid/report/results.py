@@ -52,7 +52,7 @@ def mean_of(values: list[Any]) -> float | None:
     return sum(finite) / len(finite) if finite else None
 
 
-@dataclasses.dataclass
+@dataclasses.dataclass(frozen=True)
 class Group:
     """The cells of one variant at one axis point (for curves and costs)."""
 
