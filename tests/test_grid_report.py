@@ -377,32 +377,6 @@ def test_wide_tables_scroll_inside_the_page():
     assert re.search(r"<div class='wide'><table>.*</table></div>", html, re.S)
 
 
-def test_token_axis_reads_in_one_unit_without_an_offset():
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    from blockyard.plotting import label_token_axis
-
-    for top, unit in ((1.4e6, "M"), (9e5, "k"), (3e9, "G")):
-        fig, ax = plt.subplots()
-        ax.plot([top / 7, top], [2.0, 1.0])
-        label_token_axis(ax.xaxis)
-        fig.canvas.draw()
-        labels = [t.get_text() for t in ax.get_xticklabels() if t.get_text()]
-        assert ax.xaxis.get_offset_text().get_text() == ""  # matplotlib's "1e6" is gone
-        assert labels and all(lab == "0" or lab.endswith(unit) for lab in labels), labels
-        plt.close(fig)
-    fig, ax = plt.subplots()
-    ax.set_xlim(0, 1.45e6)
-    ax.set_xticks([0, 2e5, 1.4e6])
-    label_token_axis(ax.xaxis)
-    fig.canvas.draw()
-    assert [t.get_text() for t in ax.get_xticklabels()] == ["0", "0.2M", "1.4M"]
-    plt.close(fig)
-
-
 def test_figures_draw_in_our_palette(tmp_path):
     import matplotlib
 
