@@ -18,9 +18,8 @@ from pathlib import Path
 
 from blockyard.grid.noise import noise_curves
 from blockyard.grid.noise_files import grid_curves
-from blockyard.grid.noise_report import NOISE_COLUMNS, NOISE_PLOT, noise_plot, noise_rows
 from blockyard.grid.report.document import Doc, write_document
-from blockyard.grid.report.figures import FOREST, GAP_VS_N, LOSS_VS_N, TUNING_PLOT, write_plots
+from blockyard.grid.report.figures import FOREST, GAP_VS_N, LOSS_VS_N, NOISE_PLOT, TUNING_PLOT, noise_plot, write_plots
 from blockyard.grid.report.results import (
     GridMeta,
     GridResults,
@@ -32,7 +31,14 @@ from blockyard.grid.report.results import (
     read_token_local,
 )
 from blockyard.grid.report.sections import CAUTION, SKEW_FAMILY_ERROR, build_report, lever_items
-from blockyard.grid.report.tables import CSV_COLUMNS, VERDICT_COLUMNS, write_table, write_tables
+from blockyard.grid.report.tables import (
+    CSV_COLUMNS,
+    NOISE_COLUMNS,
+    VERDICT_COLUMNS,
+    noise_rows,
+    write_table,
+    write_tables,
+)
 from blockyard.plotting import label_token_axis
 
 __all__ = ["CAUTION", "CSV_COLUMNS", "FOREST", "GAP_VS_N", "LOSS_VS_N", "SKEW_FAMILY_ERROR", "TUNING_PLOT",

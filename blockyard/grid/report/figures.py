@@ -1,6 +1,7 @@
 """The report's figures, as PNGs in the grid dir: the forest plot of the verdicts, stage 1's loss against the
 tuned value, the validation curves (against tokens and wall-clock time), loss against parameters, the ladder's
-fits and trends (``blockyard.grid.trend_plots``) and the evaluations' figures (``blockyard.eval.extrapolation``).
+fits and trends (``blockyard.grid.trend_plots``), the evaluations' figures (``blockyard.eval.extrapolation``)
+and noise.png (each comparison's detectable difference and paired sd along training).
 
 Each writer returns whether it drew; ``write_plots`` returns (file name, caption) for each PNG written, in
 the order the report shows them.
@@ -16,6 +17,7 @@ from blockyard import palette
 from blockyard.grid import stats
 from blockyard.grid.index import CellRow
 from blockyard.grid.ladder import series_label
+from blockyard.grid.noise import NoiseCurve
 from blockyard.grid.report.results import GridResults, Group, TuningResults, axis_varies_size, mean_of
 from blockyard.grid.status import cell_dir
 from blockyard.grid.tuning import Tuning
@@ -31,6 +33,7 @@ FOREST = "verdicts.png"
 TUNING_PLOT = "tuning.png"
 LOSS_VS_N = "ladder_loss_vs_params.png"
 GAP_VS_N = "ladder_gap_vs_params.png"
+NOISE_PLOT = "noise.png"
 
 
 class CurvePoint(NamedTuple):
@@ -264,3 +267,37 @@ def _curve_plots(plt: Any, grid_dir: Path, groups: list[Group]) -> list[tuple[st
         else:
             plt.close(fig)
     return written
+
+
+def noise_plot(path: Path, curves: list[NoiseCurve], smallest_effect: float) -> bool:
+    """noise.png: detectable difference and paired sd against training tokens, written atomically; False (nothing
+    written) without two evaluations with tokens."""
+    drawn = [c for c in curves if sum(p.sd is not None and p.tokens is not None for p in c.points) >= 2]
+    if not drawn:
+        return False
+    from matplotlib.ticker import ScalarFormatter
+
+    plt = pyplot()
+    fig, (left, right) = plt.subplots(1, 2, figsize=(11, 4.2))
+    for c in drawn:
+        pts = [p for p in c.points if p.sd is not None and p.tokens is not None]
+        xs = [p.tokens for p in pts]
+        style = {"ls": "--", "color": "black"} if c.null_control else {}
+        name = c.label
+        if not c.null_control:
+            left.plot(xs, [p.detectable for p in pts], marker="o", ms=3, label=name)
+        right.plot(xs, [p.sd for p in pts], marker="o", ms=3, label=name, **style)
+    left.axhline(smallest_effect, color="grey", ls=":", label=f"smallest effect {smallest_effect:g}")
+    left.set_ylabel("detectable difference (nats/token)")
+    right.set_ylabel("paired sd (nats/token)")
+    for ax in (left, right):
+        ax.set_xlabel("training tokens")
+        label_token_axis(ax.xaxis)
+        plain = ScalarFormatter(useOffset=False)
+        plain.set_scientific(False)
+        ax.yaxis.set_major_formatter(plain)
+        ax.set_ylim(bottom=0)
+        ax.grid(True, alpha=0.3)
+        ax.legend(fontsize=7)
+    finish(fig, path)
+    return True

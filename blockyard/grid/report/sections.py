@@ -1,8 +1,8 @@
-"""The report's prose, section by section: summary, verdicts and their notes, the noise floor, tuning, the
-ladder, the variants with their costs, the cells left out, the method and the caution.
+"""The report's prose, section by section: summary, verdicts and their notes, the noise floor, the noise along
+training, tuning, the ladder, the variants with their costs, the cells left out, the method and the caution.
 
 Each section writes into a ``Doc`` from a ``GridResults``; the wording of every rule stands here beside the
-numbers it produced. The Noise section is ``blockyard.grid.noise_report``'s.
+numbers it produced.
 """
 
 from __future__ import annotations
@@ -16,10 +16,9 @@ from blockyard.grid.fairness import MATCH_TOLERANCE
 from blockyard.grid.index import CellRow
 from blockyard.grid.ladder import Ladder, rung_of, series_label
 from blockyard.grid.ladder import split_point as split_rung
-from blockyard.grid.noise import NoiseCurve
-from blockyard.grid.noise_report import noise_section
+from blockyard.grid.noise import NoiseCurve, resolution_text
 from blockyard.grid.report.document import Doc
-from blockyard.grid.report.figures import BAND, TUNING_PLOT
+from blockyard.grid.report.figures import BAND, NOISE_PLOT, TUNING_PLOT
 from blockyard.grid.report.results import GridResults, TuningResults, mean_of
 from blockyard.grid.spec import NULL_INIT_OFFSET, NULL_VARIANT
 from blockyard.grid.tuning import TunedGroup, Tuning, shared_value_differences
@@ -95,7 +94,7 @@ def _adjust_text(adjustments: dict[str, Any]) -> str:
 def build_report(grid_dir: Path, res: GridResults, plots: list[tuple[str, str]],
                  noise: tuple[list[NoiseCurve], bool] = ([], False)) -> Doc:
     """The report, section by section: verdicts first (what a reader acts on), the method last; ``noise``: each
-    comparison's noise along training and whether noise.png was written (blockyard.grid.noise_report)."""
+    comparison's noise along training and whether noise.png was written."""
     doc = Doc()
     doc.h(1, f"Grid {res.name}")
     if res.description:
@@ -266,6 +265,41 @@ def _null_section(doc: Doc, fam: Family) -> None:
                     "(e.g. a run depends on the init seed in another way) or the paired differences are far from "
                     "normal (see Method), and the verdicts are suspect.")
         doc.p(line)
+
+
+def _tokens_text(tokens: float | None) -> str:
+    return "-" if tokens is None else f"{tokens / 1e6:.3g}M"
+
+
+def noise_section(doc: Doc, curves: list[NoiseCurve], smallest_effect: float, plotted: bool) -> None:
+    """The Noise section: each comparison's paired sd and detectable difference, first and last evaluation."""
+    measured = [c for c in curves if c.final is not None]
+    if not measured:
+        return
+    doc.h(2, "Noise")
+    doc.p("Every pair of cells (variant and reference, same seed) logs its validation loss at each evaluation, so "
+          "the noise of each comparison is known along training at no extra cost. Paired sd: the sd over seeds of "
+          "variant minus reference (nats/token); detectable: the smallest true difference these pairs find with "
+          "80% power at the level the verdict uses. Every step is in noise.csv.")
+    rows = []
+    for c in measured:
+        first = next(p for p in c.points if p.sd is not None)
+        end = c.final
+        assert end is not None
+        rows.append([c.label, str(end.pairs),
+                     f"{_tokens_text(first.tokens)} -> {_tokens_text(end.tokens)}",
+                     f"{first.sd:.4f} -> {end.sd:.4f}", f"{first.mean_diff:+.4f} -> {end.mean_diff:+.4f}",
+                     f"±{first.detectable:.4f} -> ±{end.detectable:.4f}",
+                     "yes" if end.detectable is not None and end.detectable <= smallest_effect else "no"])
+    doc.table(["comparison", "pairs", "tokens (first -> last evaluation)", "paired sd", "mean difference",
+               "detectable (80% power)", f"detects {smallest_effect:g}?"], rows)
+    advice = [t for c in measured if not c.null_control and (t := resolution_text(c, c.label))]
+    if advice:
+        doc.ul(advice)
+    if plotted:
+        doc.img(NOISE_PLOT, "Left: detectable difference (80% power, at the verdicts' level) against training tokens, "
+                "one line per comparison; dotted: the smallest effect. Right: the paired sd; dashed: the null "
+                "control's A/A sd, where the grid has one.")
 
 
 def _tuning_section(doc: Doc, res: GridResults, plots: list[tuple[str, str]]) -> None:

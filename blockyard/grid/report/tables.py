@@ -1,5 +1,5 @@
 """The report's CSV files: results.csv (one row per cell), verdicts.csv (one per comparison), tuning.csv (one
-per stage-1 cell), and the writer the Noise section's and the ladder's tables go through too.
+per stage-1 cell), noise.csv (one per comparison and evaluation step), and the ladder's fits.csv and trend.csv.
 
 Column names and formats are part of the output others read: floats keep every digit (repr), a missing
 value is an empty cell.
@@ -16,6 +16,7 @@ from typing import Any
 from blockyard import fs
 from blockyard.grid.index import CellRow
 from blockyard.grid.ladder import FIT_COLUMNS, TREND_COLUMNS, fit_rows, trend_rows
+from blockyard.grid.noise import NoiseCurve
 from blockyard.grid.report.results import GridResults, TuningResults
 from blockyard.grid.spec import NULL_VARIANT
 from blockyard.grid.tuning import split_point
@@ -31,6 +32,16 @@ VERDICT_COLUMNS = ("variant", "point", "pairs", "mean_diff", "low", "high", "low
                    "seeds_for_difference", "seeds_for_equivalence", "detectable_diff", "failed_variant",
                    "failed_reference", "composite_verdict", "composite_p_better", "composite_p_worse",
                    "divergence_mcnemar_p", "seeds", "fragile")
+
+
+NOISE_COLUMNS = ("variant", "reference", "point", "null_control", "step", "tokens", "pairs", "mean_diff",
+                 "paired_sd", "detectable_80", "alpha")
+
+
+def noise_rows(curves: list[NoiseCurve]) -> list[list[Any]]:
+    """noise.csv: one row per comparison and evaluation step."""
+    return [[c.variant, c.reference, "; ".join(f"{k}={v}" for k, v in c.point), c.null_control, p.step, p.tokens,
+             p.pairs, p.mean_diff, p.sd, p.detectable, c.alpha] for c in curves for p in c.points]
 
 
 def write_csv(path: Path, rows: list[CellRow]) -> None:
