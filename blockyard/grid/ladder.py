@@ -26,12 +26,12 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import math
 from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 from blockyard.errors import ConfigError
 from blockyard.rundir import format_duration
+from blockyard.text import aligned_table, is_finite_number
 
 RUNG = "rung"  # the point key of a rung
 LADDER_KEYS = ("ladder", "tokens_per_param", "ladder_target")
@@ -70,10 +70,6 @@ class Ladder:
                          for key, v in self.rungs[k - 1].items()) or "-"
 
 
-def _is_number(x: Any) -> bool:
-    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
-
-
 def parse_ladder(data: Mapping[str, Any], check_key: Callable[[str, Any], str]) -> Ladder | None:
     """The ladder keys of a grid mapping, validated (None when the grid has no ``ladder``).
 
@@ -101,7 +97,7 @@ def parse_ladder(data: Mapping[str, Any], check_key: Callable[[str, Any], str]) 
         if texts.index(text) != k - 1:
             raise ConfigError(f"ladder.{RUNG}{k}", f"repeats rung {texts.index(text) + 1}; every rung needs its size")
     tpp = data.get("tokens_per_param")
-    if tpp is not None and (not _is_number(tpp) or tpp <= 0):
+    if tpp is not None and (not is_finite_number(tpp) or tpp <= 0):
         raise ConfigError("tokens_per_param", f"{tpp!r}: a number > 0 (training tokens per non-embedding parameter "
                           "of the reference at each rung; about 20 is compute-optimal)")
     if tpp is not None:
@@ -110,7 +106,7 @@ def parse_ladder(data: Mapping[str, Any], check_key: Callable[[str, Any], str]) 
                 raise ConfigError(f"ladder.{RUNG}{k}.{BUDGET_KEY}",
                                   "set by tokens_per_param; set each key in one place")
     target = data.get("ladder_target")
-    if target is not None and (not _is_number(target) or target <= 0):
+    if target is not None and (not is_finite_number(target) or target <= 0):
         raise ConfigError("ladder_target", f"{target!r}: a non-embedding parameter count (> 0) to extrapolate to")
     return Ladder(tuple(rungs), None if tpp is None else float(tpp), None if target is None else float(target))
 
@@ -218,12 +214,11 @@ def rung_summary(ladder: Ladder, reference: str | None, cells: Sequence[RungCell
         rows.append([str(k), ladder.overrides_text(k), " / ".join(f"{p:,d}" for p in params),
                      " / ".join(f"{x:,d}" for x in tokens), str(len(at)), "-" if t is None else format_duration(t)])
     rows.append(["total", "", "", "", str(len(cells)), "-" if total_time is None else format_duration(total_time)])
-    widths = [max(len(r[i]) for r in [header, *rows]) for i in range(len(header))]
     budget_text = (f"{ladder.tokens_per_param:g} tokens per non-embedding parameter of the reference"
                    if ladder.tokens_per_param is not None else "the base's budget at every rung (fixed)")
     lines = [f"Ladder: {len(ladder.rungs)} rungs; token budget: {budget_text}"
              + (f"; target N={ladder.target:.3g}" if ladder.target else "")]
-    lines += ["  " + "  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)).rstrip() for r in [header, *rows]]
+    lines += aligned_table(header, rows, indent="  ").splitlines()
     return lines
 
 

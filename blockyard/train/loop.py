@@ -46,6 +46,7 @@ from blockyard.rundir import (
     TENSORBOARD_DIR,
     writing,
 )
+from blockyard.text import decimal_bytes
 from blockyard.train import checkpoint as ckpt
 from blockyard.train.allocator import keep_freed_memory
 from blockyard.train.averaging import WeightAverage, ema_decay, half_life_steps
@@ -343,9 +344,9 @@ def _warn_if_disk_short(out: Path, s: Setup, show: Progress) -> None:
     need = (s.cfg.train.keep_checkpoints + 1) * each
     free = fs.free_bytes(out)
     if free is not None and free < need:
-        show.message(f"warning: {out}: {fs.format_bytes(free)} free, but train.keep_checkpoints "
-                     f"{s.cfg.train.keep_checkpoints} checkpoints of about {fs.format_bytes(each)} (+1 being "
-                     f"written) need {fs.format_bytes(need)}; the run will stop with exit code 4 when the disk "
+        show.message(f"warning: {out}: {decimal_bytes(free)} free, but train.keep_checkpoints "
+                     f"{s.cfg.train.keep_checkpoints} checkpoints of about {decimal_bytes(each)} (+1 being "
+                     f"written) need {decimal_bytes(need)}; the run will stop with exit code 4 when the disk "
                      "is full (free space, then rerun the same command to resume)")
 
 
