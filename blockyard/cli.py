@@ -48,12 +48,14 @@ def _add_train(sub: argparse._SubParsersAction) -> None:
 
 def _cmd_train(args: argparse.Namespace) -> int:
     from blockyard.config import load_config
+    from blockyard.eval.probes import make_eval_hook
     from blockyard.train import train_from_cli
 
     if args.wait < 0:
         raise UserError(f"--wait {args.wait:g}: must be >= 0 seconds")
     cfg = load_config(args.config, args.overrides)
-    return train_from_cli(cfg, out=args.out, force=args.force, check=args.check, wait_s=args.wait)
+    return train_from_cli(cfg, out=args.out, force=args.force, check=args.check, wait_s=args.wait,
+                          eval_hook_builders=[make_eval_hook])  # eval.probes plug into the trainer from above
 
 
 # ----------------------------------------------------------------------------- blocks

@@ -183,7 +183,9 @@ def run_probes(
 
 
 def make_eval_hook(cfg: Any, data: Any) -> Callable[[torch.nn.Module, Any], dict[str, float]] | None:
-    """The trainer's eval hook for ``cfg.eval.probes`` (None when empty).
+    """The trainer's eval hook for ``cfg.eval.probes`` (None when empty): an ``EvalHookBuilder`` of
+    ``blockyard.train.loop``, passed to ``run_training`` by ``blockyard train`` (the trainer, a lower layer,
+    does not import the evaluation code).
 
     The probe batches are built here, once, so a probe that cannot run on this model fails
     before training starts, and every evaluation sees the same sequences.

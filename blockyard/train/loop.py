@@ -67,6 +67,10 @@ from blockyard.train.signals import StopRequest
 Batch = tuple[torch.Tensor, torch.Tensor]
 #: An extra evaluation metric: (model, runtime) -> {name: value}, merged into each val line.
 EvalHook = Callable[[nn.Module, Runtime], dict[str, float]]
+#: Builds an eval hook once the run's data is loaded, before training (so a hook that cannot run fails
+#: first): (config, data) -> hook, or None when the config asks for none. Layers above the trainer plug in
+#: so, e.g. the probe suite (``blockyard.eval.probes.make_eval_hook``, passed in by ``blockyard train``).
+EvalHookBuilder = Callable[[Config, Any], EvalHook | None]
 
 
 # ----------------------------------------------------------------------------- math of one step
@@ -279,17 +283,22 @@ def run_training(
     force: bool = False,
     progress: str | Progress | None = None,
     eval_hooks: Sequence[EvalHook] = (),
+    eval_hook_builders: Sequence[EvalHookBuilder] = (),
     check: bool = True,
     wait_s: float = 0.0,
 ) -> dict[str, Any]:
     """Train ``cfg`` into ``out_dir`` (fresh, resumed, or not at all when done); the summary.
 
     ``progress``: None/"auto" (tqdm bar on a TTY, log lines otherwise), "log", "bar",
-    "silent", "warnings", or a :class:`Progress`. ``check``: run the mixer contract gate on
+    "silent", "warnings", or a :class:`Progress`. ``eval_hooks`` and the hooks that
+    ``eval_hook_builders`` build add metrics to every val line. ``check``: run the mixer contract gate on
     plugin mixers first (``blockyard.check.gate``). The run holds the dir's writer lock throughout;
     another live writer is waited for up to ``wait_s`` seconds. Raises UserError for bad input or
     a busy dir (the dir untouched), WriteFailed when a file cannot be written (nothing earlier lost).
     """
+    if cfg.eval.probes and not eval_hook_builders:  # a caller's slip, not the user's: say so before any work
+        raise ValueError("eval.probes is set but no eval_hook_builders were given to build the probes "
+                         "(pass [blockyard.eval.probes.make_eval_hook], as `blockyard train` does)")
     out = Path(out_dir)
     cfg_hash = config_hash(cfg)
     show = make_progress(progress)
@@ -317,10 +326,8 @@ def run_training(
             if warning := compile_warning(s.compiled):
                 show.message(f"warning: {warning}")
             _warn_if_disk_short(out, s, show)
-            from blockyard.eval.probes import make_eval_hook  # eval.probes; builds (and checks) the probes first
-
-            probes = make_eval_hook(cfg, s.data)
-            return _train(s, out, action, show, (*eval_hooks, probes) if probes else tuple(eval_hooks))
+            built = (build(cfg, s.data) for build in eval_hook_builders)
+            return _train(s, out, action, show, (*eval_hooks, *(hook for hook in built if hook is not None)))
         finally:
             torch.set_num_threads(threads_before)
 
@@ -574,7 +581,7 @@ def exit_code(summary: dict[str, Any]) -> int:
 
 
 def train_from_cli(cfg: Config, out: str | Path | None = None, force: bool = False, check: bool = True,
-                   wait_s: float = 0.0) -> int:
+                   wait_s: float = 0.0, eval_hook_builders: Sequence[EvalHookBuilder] = ()) -> int:
     """``blockyard train``: run into ``out`` (default :func:`default_run_dir`); the exit code."""
     return exit_code(run_training(cfg, Path(out) if out else default_run_dir(cfg), force=force, check=check,
-                                  wait_s=wait_s))
+                                  wait_s=wait_s, eval_hook_builders=eval_hook_builders))
