@@ -11,6 +11,7 @@ from __future__ import annotations
 import argparse
 import sys
 from collections.abc import Callable
+from typing import Any
 
 from blockyard.errors import UserError
 
@@ -205,8 +206,9 @@ def _add_bench(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(func=_cmd_bench)
 
 
-def _given(**options: object) -> dict[str, object]:
-    """The options the user set (not None): the rest keep the defaults of the function they go to."""
+def _given(**options: Any) -> dict[str, Any]:
+    """The options the user set (not None): the rest keep the defaults of the function they go to.
+    (Values come from argparse, untyped: the function they go to states their types.)"""
     return {key: value for key, value in options.items() if value is not None}
 
 

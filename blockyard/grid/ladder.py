@@ -26,12 +26,12 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import math
 from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 from blockyard.errors import ConfigError
 from blockyard.rundir import format_duration
+from blockyard.schema import is_number
 
 RUNG = "rung"  # the point key of a rung
 LADDER_KEYS = ("ladder", "tokens_per_param", "ladder_target")
@@ -70,10 +70,6 @@ class Ladder:
                          for key, v in self.rungs[k - 1].items()) or "-"
 
 
-def _is_number(x: Any) -> bool:
-    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
-
-
 def parse_ladder(data: Mapping[str, Any], check_key: Callable[[str, Any], str]) -> Ladder | None:
     """The ladder keys of a grid mapping, validated (None when the grid has no ``ladder``).
 
@@ -101,7 +97,7 @@ def parse_ladder(data: Mapping[str, Any], check_key: Callable[[str, Any], str]) 
         if texts.index(text) != k - 1:
             raise ConfigError(f"ladder.{RUNG}{k}", f"repeats rung {texts.index(text) + 1}; every rung needs its size")
     tpp = data.get("tokens_per_param")
-    if tpp is not None and (not _is_number(tpp) or tpp <= 0):
+    if tpp is not None and (not is_number(tpp) or tpp <= 0):
         raise ConfigError("tokens_per_param", f"{tpp!r}: a number > 0 (training tokens per non-embedding parameter "
                           "of the reference at each rung; about 20 is compute-optimal)")
     if tpp is not None:
@@ -110,7 +106,7 @@ def parse_ladder(data: Mapping[str, Any], check_key: Callable[[str, Any], str]) 
                 raise ConfigError(f"ladder.{RUNG}{k}.{BUDGET_KEY}",
                                   "set by tokens_per_param; set each key in one place")
     target = data.get("ladder_target")
-    if target is not None and (not _is_number(target) or target <= 0):
+    if target is not None and (not is_number(target) or target <= 0):
         raise ConfigError("ladder_target", f"{target!r}: a non-embedding parameter count (> 0) to extrapolate to")
     return Ladder(tuple(rungs), None if tpp is None else float(tpp), None if target is None else float(target))
 
@@ -212,8 +208,8 @@ def rung_summary(ladder: Ladder, reference: str | None, cells: Sequence[RungCell
         ref = [c for c in at if c.variant == reference] or at
         params = sorted({c.params_non_embedding for c in ref})
         tokens = sorted({c.tokens for c in ref})
-        secs = [c.seconds for c in at]
-        t = sum(secs) if secs and all(s is not None for s in secs) else None  # type: ignore[misc]
+        secs = [c.seconds for c in at if c.seconds is not None]
+        t = sum(secs) if at and len(secs) == len(at) else None  # unknown if any cell's time is
         total_time = None if t is None or total_time is None else total_time + t
         rows.append([str(k), ladder.overrides_text(k), " / ".join(f"{p:,d}" for p in params),
                      " / ".join(f"{x:,d}" for x in tokens), str(len(at)), "-" if t is None else format_duration(t)])

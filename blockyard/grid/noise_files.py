@@ -7,7 +7,6 @@ and ``blockyard.grid.verdicts``'.
 
 from __future__ import annotations
 
-import math
 from pathlib import Path
 from typing import Any
 
@@ -18,6 +17,7 @@ from blockyard.grid.spec import Design
 from blockyard.grid.status import cell_dir
 from blockyard.grid.verdicts import GroupKey, compare_all, group_outcomes, point_text
 from blockyard.rundir import METRICS_FILE, read_metrics
+from blockyard.schema import is_number
 
 
 def _key(row: dict[str, Any]) -> GroupKey:
@@ -32,8 +32,7 @@ def val_curve(run_dir: Path) -> tuple[dict[int, float], float | None]:
         step, loss = line.get("step"), line.get("loss")
         if line.get("split") == "train" and line.get("tokens") and step:
             per_step = line["tokens"] / step
-        elif (line.get("split") == "val" and isinstance(loss, (int, float)) and not isinstance(loss, bool)
-              and math.isfinite(loss)):
+        elif line.get("split") == "val" and is_number(loss) and step is not None:
             curve[int(step)] = float(loss)
     return curve, per_step
 

@@ -19,11 +19,12 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from collections.abc import Iterable
+from collections.abc import Iterable, Mapping
 from typing import Any
 
 from blockyard.grid import stats
 from blockyard.grid.spec import NULL_VARIANT, Design
+from blockyard.schema import is_number
 
 Point = tuple[tuple[str, Any], ...]
 GroupKey = tuple[str, Point]
@@ -40,10 +41,6 @@ def value_text(v: Any) -> str:
     if isinstance(v, bool):
         return "true" if v else "false"
     return str(v)
-
-
-def _finite(x: Any) -> bool:
-    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -74,7 +71,7 @@ def group_outcomes(rows: Iterable[dict[str, Any]]) -> dict[GroupKey, GroupOutcom
         key = (r["variant"], tuple(tuple(p) for p in r["point"]))
         g = parts.setdefault(key, {"losses": {}, "diverged": [], "failed": [], "unfinished": []})
         status, loss = r["status"], r.get("final_val_loss")
-        if status == "done" and _finite(loss):
+        if status == "done" and is_number(loss):
             g["losses"][r["seed"]] = float(loss)
         elif status in ("done", "diverged"):
             g["diverged"].append(r["seed"])
@@ -86,8 +83,8 @@ def group_outcomes(rows: Iterable[dict[str, Any]]) -> dict[GroupKey, GroupOutcom
                              tuple(v["unfinished"])) for k, v in parts.items()}
 
 
-def restrict(groups: dict[GroupKey, GroupOutcomes], seeds: dict[GroupKey, Iterable[int]]) -> dict[GroupKey,
-                                                                                                     GroupOutcomes]:
+def restrict(groups: dict[GroupKey, GroupOutcomes],
+             seeds: Mapping[GroupKey, Iterable[int]]) -> dict[GroupKey, GroupOutcomes]:
     """Each group's outcomes on the given seeds only (a look of the sequential design sees so much)."""
     out = {}
     for key, g in groups.items():
@@ -219,7 +216,8 @@ def compare_all(groups: dict[GroupKey, GroupOutcomes], reference: str | None, de
     m = family_size(groups, reference)
     a_look = look_alpha(design, m)
     refs = {g.point: g for g in groups.values() if g.variant == reference}
-    family, null = [], []
+    family: list[Comparison] = []
+    null: list[Comparison] = []
     for g in groups.values():
         if g.variant == reference or g.point not in refs:
             continue

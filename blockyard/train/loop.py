@@ -117,7 +117,7 @@ def train_step(
             (loss / denom).backward()
         loss_sum += loss.item()
     params = [p for p in model.parameters() if p.grad is not None]
-    norm = torch.nn.utils.get_total_norm([p.grad for p in params])
+    norm = torch.nn.utils.get_total_norm([g for p in params if (g := p.grad) is not None])
     # torch's clip_grad_norm_, minus its pass over every gradient where its factor is exactly 1.0
     if grad_clip > 0 and not grad_clip / (norm + 1e-6) >= 1.0:
         torch.nn.utils.clip_grads_with_norm_(params, grad_clip, norm)
@@ -238,7 +238,8 @@ def _build(cfg: Config, cfg_hash: str, runtime: Runtime) -> Setup:
 
 
 def _param_counts(model: nn.Module) -> dict[str, int]:
-    groups = model.param_groups() if hasattr(model, "param_groups") else {}
+    param_groups = getattr(model, "param_groups", None)  # blockyard's models have it; a plain module not
+    groups: dict[str, int] = param_groups() if param_groups is not None else {}
     total = groups.get("total", sum(p.numel() for p in model.parameters()))
     return {"total": int(total), "non_embedding": int(groups.get("non_embedding", total))}
 
@@ -323,8 +324,8 @@ def run_training(
             from blockyard.cost.memory import warn_if_too_large  # activations that will not fit: say so first
 
             warn_if_too_large(cfg, s.data.vocab_size, lambda m: show.message(f"warning: {m}"))
-            if warning := compile_warning(s.compiled):
-                show.message(f"warning: {warning}")
+            if why := compile_warning(s.compiled):
+                show.message(f"warning: {why}")
             _warn_if_disk_short(out, s, show)
             built = (build(cfg, s.data) for build in eval_hook_builders)
             return _train(s, out, action, show, (*eval_hooks, *(hook for hook in built if hook is not None)))
@@ -393,7 +394,9 @@ class _Segment:
     def __init__(self, s: Setup, out: Path, show: Progress, eval_hooks: Sequence[EvalHook]) -> None:
         self.s, self.out, self.show, self.eval_hooks = s, out, show, eval_hooks
         self.cfg = s.cfg.train
-        self.step, self.loop, self.metrics, self.tb = 0, LoopState(), None, None
+        self.step, self.loop = 0, LoopState()
+        self.metrics: MetricsLog | None = None  # open() sets both before the first step
+        self.tb: TensorBoardLog | None = None
         self.saved_step: int | None = None  # the newest checkpoint this run has on disk
         self.rss = PeakRSS(0)
         self.t_start = time.perf_counter()
@@ -418,19 +421,26 @@ class _Segment:
                 f"{s.runtime.device} x{s.runtime.threads} threads, {s.runtime.precision}")
         self.finish("running")
 
+    def records(self) -> tuple[MetricsLog, TensorBoardLog]:
+        """metrics.jsonl and the TensorBoard log, which ``open`` set."""
+        if self.metrics is None or self.tb is None:
+            raise RuntimeError("the run's records are not open yet")
+        return self.metrics, self.tb
+
     def wall(self) -> float:
         return self.loop.wall_s + time.perf_counter() - self.t_start
 
     def finish(self, status: str, **extra: Any) -> dict[str, Any]:
         self.loop.peak_rss_bytes = self.rss.sample()
-        summary = build_summary(status, self.s, self.metrics, self.loop, self.step, self.wall(), **extra)
+        summary = build_summary(status, self.s, self.records()[0], self.loop, self.step, self.wall(), **extra)
         write_json(self.out / SUMMARY_FILE, summary, what="the run summary")
         return summary
 
     def save(self) -> None:
         self.loop.peak_rss_bytes = self.rss.sample()
-        self.metrics.sync()
-        self.tb.flush()
+        metrics, tb = self.records()
+        metrics.sync()
+        tb.flush()
         state = asdict(self.loop) | {"wall_s": self.wall()}
         s = self.s
         ckpt.save_checkpoint(self.out / CHECKPOINT_DIR, step=self.step, config_hash=s.cfg_hash, model=s.model,
@@ -440,8 +450,9 @@ class _Segment:
         self.saved_step = self.step
 
     def log(self, line: dict[str, Any]) -> None:
-        self.metrics.append(line)
-        self.tb.log(line)
+        metrics, tb = self.records()
+        metrics.append(line)
+        tb.log(line)
 
     def train_one_step(self) -> StepStats:
         """Step ``self.step + 1`` on micro-batches ``(step - 1) * grad_accum + i`` (the data position is the step)."""
@@ -491,8 +502,9 @@ class _Segment:
         cfg, total = self.cfg, self.s.total
         while self.step < total and not stop.requested:
             stats = self.train_one_step()
-            step = self.step
-            why = divergence(stats.loss, self.loop.first_loss, cfg.diverge_factor)
+            step, first_loss = self.step, self.loop.first_loss
+            assert first_loss is not None  # train_one_step sets it at step 1
+            why = divergence(stats.loss, first_loss, cfg.diverge_factor)
             if why or step == 1 or step % cfg.log_every == 0 or step == total:
                 self.log_train(stats)
             if why:
@@ -576,7 +588,7 @@ def exit_code(summary: dict[str, Any]) -> int:
     if status == "diverged":
         return 3
     if status == "interrupted":
-        return {"SIGINT": 130, "SIGTERM": 143}.get(summary.get("interrupted_by"), 130)
+        return {"SIGINT": 130, "SIGTERM": 143}.get(str(summary.get("interrupted_by")), 130)
     return 1
 
 
