@@ -11,6 +11,7 @@ from __future__ import annotations
 import argparse
 import sys
 from collections.abc import Callable
+from typing import Any
 
 from blockyard.errors import UserError
 
@@ -48,12 +49,14 @@ def _add_train(sub: argparse._SubParsersAction) -> None:
 
 def _cmd_train(args: argparse.Namespace) -> int:
     from blockyard.config import load_config
+    from blockyard.eval.probes import make_eval_hook
     from blockyard.train import train_from_cli
 
     if args.wait < 0:
         raise UserError(f"--wait {args.wait:g}: must be >= 0 seconds")
     cfg = load_config(args.config, args.overrides)
-    return train_from_cli(cfg, out=args.out, force=args.force, check=args.check, wait_s=args.wait)
+    return train_from_cli(cfg, out=args.out, force=args.force, check=args.check, wait_s=args.wait,
+                          eval_hook_builders=[make_eval_hook])  # eval.probes plug into the trainer from above
 
 
 # ----------------------------------------------------------------------------- blocks
@@ -203,8 +206,9 @@ def _add_bench(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(func=_cmd_bench)
 
 
-def _given(**options: object) -> dict[str, object]:
-    """The options the user set (not None): the rest keep the defaults of the function they go to."""
+def _given(**options: Any) -> dict[str, Any]:
+    """The options the user set (not None): the rest keep the defaults of the function they go to.
+    (Values come from argparse, untyped: the function they go to states their types.)"""
     return {key: value for key, value in options.items() if value is not None}
 
 

@@ -65,7 +65,7 @@ def write_failure(error: OSError, path: Path, what: str, needed_bytes: int | Non
 
     None when ``error`` is not a storage failure (a bug, or a wrong path: the caller re-raises it).
     """
-    reason = STORAGE_ERRORS.get(error.errno)
+    reason = None if error.errno is None else STORAGE_ERRORS.get(error.errno)
     if reason is None:
         return None
     message = f"cannot write {path} ({what}): {reason}"

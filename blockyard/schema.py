@@ -11,11 +11,14 @@ from __future__ import annotations
 import dataclasses
 import types
 import typing
-from typing import Any, TypeVar
+from typing import TYPE_CHECKING, Any, TypeVar
 
 from blockyard.errors import ConfigError
 
-T = TypeVar("T")
+if TYPE_CHECKING:
+    from _typeshed import DataclassInstance
+
+T = TypeVar("T", bound="DataclassInstance")
 
 
 def opt(
@@ -93,7 +96,7 @@ def coerce(value: Any, tp: Any, path: str) -> Any:
         if isinstance(value, str):
             return value
         raise ConfigError(path, f"expected a string, got {value!r}")
-    if dataclasses.is_dataclass(tp):
+    if isinstance(tp, type) and dataclasses.is_dataclass(tp):
         return parse(tp, value, path)
     raise TypeError(f"unsupported annotation {tp!r} at {path}")
 
@@ -158,6 +161,15 @@ def to_dict(obj: Any) -> Any:
     return obj
 
 
+def field_default(f: dataclasses.Field[Any]) -> Any:
+    """The default of a config field (its value, or what its factory builds); every config field has one."""
+    if f.default is not dataclasses.MISSING:
+        return f.default
+    if f.default_factory is not dataclasses.MISSING:
+        return f.default_factory()
+    raise TypeError(f"field {f.name!r} has no default: declare it with opt() or opt_factory()")
+
+
 def describe(cls: type, prefix: str = "") -> list[tuple[str, Any, str]]:
     """(dotted key, default, help) for every field of ``cls``, nested sections included."""
     rows: list[tuple[str, Any, str]] = []
@@ -165,9 +177,8 @@ def describe(cls: type, prefix: str = "") -> list[tuple[str, Any, str]]:
     for f in dataclasses.fields(cls):
         key = f"{prefix}{f.name}"
         tp = hints[f.name]
-        if dataclasses.is_dataclass(tp):
+        if isinstance(tp, type) and dataclasses.is_dataclass(tp):
             rows.extend(describe(tp, key + "."))
             continue
-        default = f.default if f.default is not dataclasses.MISSING else f.default_factory()
-        rows.append((key, to_dict(default), f.metadata.get("help", "")))
+        rows.append((key, to_dict(field_default(f)), f.metadata.get("help", "")))
     return rows

@@ -34,7 +34,7 @@ from blockyard.config import Config, load_config
 from blockyard.cost import analytic as cost
 from blockyard.errors import UserError
 from blockyard.mixers import state_nbytes
-from blockyard.model import build_model
+from blockyard.model import LanguageModel, build_model
 from blockyard.plotting import pyplot
 from blockyard.text import aligned_table, binary_bytes
 
@@ -67,7 +67,7 @@ def tile_state(state: Any, batch: int) -> Any:
 
 
 @torch.no_grad()
-def states_at(model: torch.nn.Module, contexts: list[int], seed: int = 0) -> dict[int, list[Any]]:
+def states_at(model: LanguageModel, contexts: list[int], seed: int = 0) -> dict[int, list[Any]]:
     """The batch-1 states after stepping random tokens to each of ``contexts``."""
     gen = torch.Generator().manual_seed(seed)
     tokens = torch.randint(0, model.vocab_size, (max(contexts),), generator=gen)
@@ -87,7 +87,7 @@ MAX_REPS = 200
 
 
 @torch.no_grad()
-def time_steps(model: torch.nn.Module, states: list[Any], batch: int, reps: int) -> float:
+def time_steps(model: LanguageModel, states: list[Any], batch: int, reps: int) -> float:
     """Median seconds of one decode step from ``states`` (each rep from the same state): at least
     ``reps`` steps, more for a fast step so that they span ``MIN_TIMED_S`` (at most ``MAX_REPS``)."""
     token = torch.zeros(batch, dtype=torch.long)
@@ -109,7 +109,7 @@ class _Subject:
 
     name: str
     cfg: Config
-    model: torch.nn.Module
+    model: LanguageModel
     snapshots: dict[int, list[Any]]
 
 

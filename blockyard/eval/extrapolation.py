@@ -122,6 +122,8 @@ def windows_loss(model: torch.nn.Module, batches: Batches, n_buckets: int) -> Bu
     for x, y in batches:
         part = position_bucket_loss(model(x), y, n_buckets)
         total = part if total is None else total + part
+    if total is None:
+        raise ValueError("no windows to evaluate")
     return total
 
 
@@ -170,8 +172,7 @@ def format_table(rows: list[dict[str, Any]]) -> str:
 def merge_eval(old: dict[str, Any] | None, new: dict[str, Any]) -> dict[str, Any]:
     """eval.json after an evaluation: rows of other lengths (and probes) survive if they were
     measured on the same checkpoint of the same config; otherwise the file starts over."""
-    same = old is not None and old.get("step") == new["step"] and old.get("config_hash") == new["config_hash"]
-    if not same:
+    if old is None or old.get("step") != new["step"] or old.get("config_hash") != new["config_hash"]:
         return new
     by_length = {r["length"]: r for r in old.get("lengths", [])}
     by_length.update({r["length"]: r for r in new.get("lengths", [])})
@@ -248,7 +249,7 @@ def plot_length_extrapolation(evals: dict[str, list[dict[str, Any]]], path: str 
     variant label to the eval.json dicts of its runs (seeds)."""
     plt = pyplot()
     fig, (ax_len, ax_pos) = plt.subplots(1, 2, figsize=(11, 4))
-    seq_lens = set()
+    seq_lens: set[int] = set()
     for label, runs in evals.items():
         runs = [e for e in runs if e and e.get("lengths")]
         lengths, losses = mean_by_length(runs)

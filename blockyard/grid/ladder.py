@@ -208,8 +208,8 @@ def rung_summary(ladder: Ladder, reference: str | None, cells: Sequence[RungCell
         ref = [c for c in at if c.variant == reference] or at
         params = sorted({c.params_non_embedding for c in ref})
         tokens = sorted({c.tokens for c in ref})
-        secs = [c.seconds for c in at]
-        t = sum(secs) if secs and all(s is not None for s in secs) else None  # type: ignore[misc]
+        secs = [c.seconds for c in at if c.seconds is not None]
+        t = sum(secs) if at and len(secs) == len(at) else None  # unknown if any cell's time is
         total_time = None if t is None or total_time is None else total_time + t
         rows.append([str(k), ladder.overrides_text(k), " / ".join(f"{p:,d}" for p in params),
                      " / ".join(f"{x:,d}" for x in tokens), str(len(at)), "-" if t is None else format_duration(t)])

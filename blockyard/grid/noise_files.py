@@ -31,8 +31,8 @@ def val_curve(run_dir: Path) -> tuple[dict[int, float], float | None]:
         step, loss = line.get("step"), line.get("loss")
         if line.get("split") == "train" and line.get("tokens") and step:
             per_step = line["tokens"] / step
-        elif line.get("split") == "val" and is_finite_number(loss):
-            curve[int(line["step"])] = float(loss)
+        elif line.get("split") == "val" and is_finite_number(loss) and step is not None:
+            curve[int(step)] = float(loss)
     return curve, per_step
 
 

@@ -150,7 +150,8 @@ def grid_progress(grid_dir: str | Path, rows: list[CellRow] | None = None,
     finished_rates = [r["tokens_per_s"] for r in rows if r["status"] == "done" and r.get("tokens_per_s")]
     fallback = sum(finished_rates) / len(finished_rates) if finished_rates else None
     rates = [c.tokens_per_s or fallback for c in cells if c.status == "running"]
-    eta = tokens_left / sum(rates) if rates and all(rates) else None
+    known = [rate for rate in rates if rate]
+    eta = tokens_left / sum(known) if rates and len(known) == len(rates) else None
     return GridProgress(name=name, eta_s=eta, cells=cells, more_rounds=more_rounds, **counts)
 
 

@@ -78,9 +78,9 @@ def plot_gap_vs_params(
         ax.plot(curve_n, gap_at(tr, curve_n), "-", color=color,
                 label=f"{label}: {tr.slope:+.4f}/doubling [{tr.slope_low:+.4f}, {tr.slope_high:+.4f}], {tr.trend}")
         if tr.target is not None:
-            ax.errorbar([tr.target], [tr.gap_at_target], yerr=[[tr.gap_at_target - tr.gap_low],
-                                                                [tr.gap_high - tr.gap_at_target]],
-                        fmt="s", color=color, capsize=3)
+            gap, gap_low, gap_high = tr.gap_at_target, tr.gap_low, tr.gap_high
+            assert gap is not None and gap_low is not None and gap_high is not None  # set with the target
+            ax.errorbar([tr.target], [gap], yerr=[[gap - gap_low], [gap_high - gap]], fmt="s", color=color, capsize=3)
         if tr.crossover is not None:
             ax.plot([tr.crossover], [0.0], "x", color=color, ms=9)
             ax.plot([max(tr.crossover_low, curve_n[0]), min(tr.crossover_high, curve_n[-1])], [0.0, 0.0], "-",

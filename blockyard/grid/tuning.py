@@ -197,7 +197,8 @@ def _log_range(raw: dict[str, Any]) -> list[float]:
 def default_tuning_seeds(verdict_seeds: tuple[int, ...]) -> tuple[int, ...]:
     """``tune.seeds`` left out: the first ``DEFAULT_TUNING_SEEDS`` integers from 100 up that are not verdict seeds.
     Three, not one: a value that survives one seed says little about the cliff above it (issue 26)."""
-    taken, out, s = set(verdict_seeds), [], TUNING_SEED_START
+    taken, s = set(verdict_seeds), TUNING_SEED_START
+    out: list[int] = []
     while len(out) < DEFAULT_TUNING_SEEDS:
         if s not in taken:
             out.append(s)

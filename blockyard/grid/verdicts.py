@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from collections.abc import Iterable
+from collections.abc import Iterable, Mapping
 from typing import Any, TypedDict
 
 from blockyard.grid import stats
@@ -85,8 +85,8 @@ def group_outcomes(rows: Iterable[CellOutcome]) -> dict[GroupKey, GroupOutcomes]
                              tuple(v["unfinished"])) for k, v in parts.items()}
 
 
-def restrict(groups: dict[GroupKey, GroupOutcomes], seeds: dict[GroupKey, Iterable[int]]) -> dict[GroupKey,
-                                                                                                     GroupOutcomes]:
+def restrict(groups: dict[GroupKey, GroupOutcomes],
+             seeds: Mapping[GroupKey, Iterable[int]]) -> dict[GroupKey, GroupOutcomes]:
     """Each group's outcomes on the given seeds only (a look of the sequential design sees so much)."""
     out = {}
     for key, g in groups.items():
