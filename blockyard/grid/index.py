@@ -138,9 +138,10 @@ class GridIndex:
         except sqlite3.Error as e:
             code = getattr(e, "sqlite_errorcode", None)
             number = None if code is None else _SQLITE_STORAGE.get(code & 0xFF)
-            if number is None:
+            failure = None if number is None else fs.write_failure(OSError(number, str(e)), self.path, "the grid index")
+            if failure is None:
                 raise
-            raise fs.write_failure(OSError(number, str(e)), self.path, "the grid index") from None
+            raise failure from None
 
     @contextlib.contextmanager
     def transaction(self) -> Iterator[sqlite3.Connection]:

@@ -147,7 +147,7 @@ def grid_progress(grid_dir: str | Path, rows: list[CellRow] | None = None,
             cells.append(cp)
             tokens_left += max(0, cp.tokens_planned - cp.tokens_done)
     # A cell that has just started has no speed yet: count it at the mean speed of finished cells.
-    finished_rates = [r["tokens_per_s"] for r in rows if r["status"] == "done" and r.get("tokens_per_s")]
+    finished_rates = [rate for r in rows if r["status"] == "done" and (rate := r.get("tokens_per_s"))]
     fallback = sum(finished_rates) / len(finished_rates) if finished_rates else None
     rates = [c.tokens_per_s or fallback for c in cells if c.status == "running"]
     known = [rate for rate in rates if rate]
