@@ -24,7 +24,7 @@ PACKAGE_DIR = Path(__file__).resolve().parent.parent / "blockyard"
 #: before every module, so it counts as the lowest layer.
 LAYERS: tuple[tuple[str, ...], ...] = (
     ("", "errors", "text", "palette"),  # import nothing of the package
-    ("fs",),  # file locks, atomic writes
+    ("fs", "plotting"),  # file locks, atomic writes; headless matplotlib in our palette
     ("schema", "integrity", "rundir"),  # dataclass <-> dict; sha256 manifests; reading run dirs without torch
     ("data", "kernels"),  # corpora, tokenizers, tasks, batches; scan and fused kernels
     ("mixers",),
