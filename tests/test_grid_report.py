@@ -14,9 +14,9 @@ from scipy import stats as sps
 from blockyard.cli import main
 from blockyard.errors import UserError
 from blockyard.grid import stats
+from blockyard.grid.griddir import grid_lock
 from blockyard.grid.index import open_index
 from blockyard.grid.report import CAUTION, VERDICT_COLUMNS, write_report
-from blockyard.grid.run import grid_lock
 from blockyard.grid.spec import Design, SeedSchedule
 from blockyard.grid.status import grid_progress, status_text
 from blockyard.rundir import writing

@@ -15,7 +15,8 @@ from blockyard.cost.analytic import flops_per_token
 from blockyard.errors import UserError
 from blockyard.grid.fairness import MATCH_TOLERANCE, apply_matching, count_params, planned_tokens
 from blockyard.grid.index import open_index
-from blockyard.grid.run import _plan_rows, makespan, plan_cells, run_grid
+from blockyard.grid.plan import makespan, plan_cells, plan_rows
+from blockyard.grid.run import run_grid
 from blockyard.grid.spec import expand_cells, load_grid
 
 BASE = {
@@ -390,7 +391,7 @@ def test_changed_verdict_rules_are_refused_without_force(tmp_path, capsys):
     grid_dir.mkdir()
     spec = load_grid(write_grid(tmp_path, text % "0.01", "first.yaml"))
     with open_index(grid_dir) as index:
-        index.plan(_plan_rows(plan_cells(spec, threads=1)))
+        index.plan(plan_rows(plan_cells(spec, threads=1)))
         index.set_meta({"design": spec.design.to_json(), "threads": "1"})
     before = tree_snapshot(grid_dir)
     changed = write_grid(tmp_path, text % "0.05", "changed.yaml")
@@ -443,7 +444,7 @@ def test_planning_a_grid_builds_no_model_and_loads_no_report_libraries():
         "def spy(self, *a, **k):\n"
         "    built.append(type(self).__name__); orig(self, *a, **k)\n"
         "nn.Module.__init__ = spy\n"
-        "from blockyard.grid.run import plan_cells\n"
+        "from blockyard.grid.plan import plan_cells\n"
         "from blockyard.grid.spec import load_grid\n"
         f"plan = plan_cells(load_grid({str(CONFIGS / 'default.yaml')!r}), 1)\n"
         "assert len(plan) == 21 and plan[0].cost.params_total > 0, plan\n"
