@@ -11,7 +11,7 @@ from typing import TYPE_CHECKING
 from blockyard.grid.fairness import planned_steps
 from blockyard.grid.ladder import Ladder, RungCell, rung_summary
 from blockyard.grid.plan import PlannedCell, makespan, measured_speeds, round_wall
-from blockyard.grid.spec import Design, GridSpec
+from blockyard.grid.spec import Design, GridSpec, SeedSchedule
 from blockyard.grid.tuning import TUNING_DIR
 from blockyard.rundir import format_duration
 from blockyard.text import aligned_table
@@ -47,7 +47,7 @@ def dry_run_text(plan: list[PlannedCell], workers: int, threads: int, measure: b
         total = list(seconds.values())
         lines += ["", f"{len(plan)} cells. Estimated time: {_wall_text([total], workers)}. {how}"]
         return "\n".join(lines)
-    rounds = _round_seconds(plan, seconds, design)
+    rounds = _round_seconds(plan, seconds, schedule)
     lines += ["", f"Seeds until decided (first {schedule.first}, most {schedule.most}, {schedule.step} per round):",
               f"  best case, every comparison decided after round 1: {len(rounds[0])} cells, "
               f"{_wall_text(rounds[:1], workers)}",
@@ -69,10 +69,10 @@ def _cell_row(p: PlannedCell, speed: float | None) -> list[str]:
     ]
 
 
-def _round_seconds(plan: list[PlannedCell], seconds: dict[str, float], design: Design) -> list[list[float]]:
+def _round_seconds(plan: list[PlannedCell], seconds: dict[str, float],
+                   schedule: SeedSchedule) -> list[list[float]]:
     """Each round's cell seconds under the seed schedule (round k adds the seeds between looks k-1 and k)."""
-    assert design.schedule is not None
-    looks = (0, *design.schedule.looks())
+    looks = (0, *schedule.looks())
     return [[seconds[p.id] for p in plan if lo <= p.cell.seed < hi] for lo, hi in zip(looks, looks[1:], strict=False)]
 
 
@@ -97,10 +97,11 @@ def two_stage_dry_run(spec: GridSpec, tuning_plan: list[PlannedCell], plan: list
              dry_run_text(plan, workers, threads, design=spec.design, estimates=estimates), ""]
     stage1 = makespan([p.cost.tokens / estimates[p.id] for p in tuning_plan], workers)
     seconds = {p.id: p.cost.tokens / estimates[p.id] for p in plan}
-    if spec.design.schedule is None:
+    schedule = spec.design.schedule
+    if schedule is None:
         stage2 = {"": makespan(list(seconds.values()), workers)}
     else:
-        rounds = _round_seconds(plan, seconds, spec.design)
+        rounds = _round_seconds(plan, seconds, schedule)
         stage2 = {" best case": makespan(rounds[0], workers),
                   " worst case": sum(makespan(r, workers) for r in rounds)}
     lines += [f"Both stages{case}: {format_duration(stage1)} + {format_duration(wall)} = "

@@ -138,6 +138,7 @@ class _StopSignals:
 
 
 Running = dict[str, tuple[CellJob, Any]]  # job id -> (job, the launcher's handle), in start order
+Ended = tuple[str, int | None, str | None]  # job id, exit code (None: no code, e.g. a lost Ray worker), message
 
 
 class Launcher(Protocol):
@@ -147,7 +148,7 @@ class Launcher(Protocol):
         """Start ``job``; returns the handle ``ended`` and ``stop`` get back."""
         ...
 
-    def ended(self, running: Running) -> list[tuple[str, int | None, str | None]]:
+    def ended(self, running: Running) -> list[Ended]:
         """(job id, exit code, message) of the running cells that ended, waiting a moment when none has."""
         ...
 
@@ -189,8 +190,9 @@ class LocalProcesses:
     def start(self, job: CellJob) -> subprocess.Popen:
         return start_command(job.command(), job.log_path, job.threads)
 
-    def ended(self, running: Running) -> list[tuple[str, int | None, str | None]]:
-        out = [(cid, code, None) for cid, (_job, proc) in running.items() if (code := proc.poll()) is not None]
+    def ended(self, running: Running) -> list[Ended]:
+        out: list[Ended] = [(cid, code, None) for cid, (_job, proc) in running.items()
+                            if (code := proc.poll()) is not None]
         if not out:
             time.sleep(self.poll_s)
         return out
@@ -271,10 +273,10 @@ class RayTasks:
         return self.task.options(num_cpus=job.threads, max_retries=0, name=f"cell {job.id}").remote(
             job.command(), str(job.log_path), job.threads)
 
-    def ended(self, running: Running) -> list[tuple[str, int | None, str | None]]:
+    def ended(self, running: Running) -> list[Ended]:
         by_ref = {ref: cid for cid, (_job, ref) in running.items()}
         ready, _ = self.ray.wait(list(by_ref), num_returns=1, timeout=self.poll_s)
-        out: list[tuple[str, int | None, str | None]] = []
+        out: list[Ended] = []
         for ref in ready:
             try:
                 out.append((by_ref[ref], int(self.ray.get(ref)), None))
