@@ -106,12 +106,19 @@ def _add_grid(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--force", action="store_true",
                    help="run a changed spec in an existing grid dir (changed cells are moved to superseded/)")
     p.add_argument("--status", metavar="GRID_DIR", default=None, help="print the progress of a grid and exit")
+    p.add_argument("--keys", action="store_true",
+                   help="list the keys a grid file may hold, with their defaults and meaning, and exit")
     p.add_argument("--no-check", dest="check", action="store_false",
                    help="skip the mixer contract gate on plugin mixers, here and in every cell")
     p.set_defaults(func=_cmd_grid)
 
 
 def _cmd_grid(args: argparse.Namespace) -> int:
+    if args.keys:
+        from blockyard.grid.spec import grid_keys_text
+
+        print(grid_keys_text())
+        return 0
     if args.status:
         if args.grid:
             raise UserError("--status GRID_DIR takes no grid file")
@@ -120,7 +127,7 @@ def _cmd_grid(args: argparse.Namespace) -> int:
         print(status_text(args.status))
         return 0
     if not args.grid:
-        raise UserError("grid: give a grid YAML file (or --status GRID_DIR)")
+        raise UserError("grid: give a grid YAML file (or --status GRID_DIR, or --keys)")
     from blockyard.grid.run import run_grid
 
     return run_grid(args.grid, out=args.out, workers=args.workers, threads=args.threads, executor=args.executor,

@@ -14,11 +14,11 @@ from scipy import stats as sps
 from blockyard.cli import main
 from blockyard.errors import UserError
 from blockyard.grid import stats
+from blockyard.grid.griddir import grid_lock
 from blockyard.grid.index import open_index
 from blockyard.grid.report import write_report
 from blockyard.grid.report.sections import CAUTION
 from blockyard.grid.report.tables import VERDICT_COLUMNS
-from blockyard.grid.run import grid_lock
 from blockyard.grid.spec import Design, SeedSchedule
 from blockyard.grid.status import grid_progress, status_text
 from blockyard.rundir import writing
