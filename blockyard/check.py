@@ -24,6 +24,7 @@ from blockyard.mixers import MIXERS
 from blockyard.mixers.base import PLUGIN_MODULE_PREFIX
 from blockyard.mixers.contract import FAST_CHECKS, CheckResult, is_token_local, mixer_contract, model_contract
 from blockyard.mixers.plugins import load_plugin
+from blockyard.text import aligned_table
 
 # Width at which a bare plugin file's mixers are checked (the contract tests' width).
 CHECK_WIDTH = 32
@@ -130,9 +131,7 @@ def config_rows(cfg: Config) -> list[Row]:
 def format_rows(rows: list[Row]) -> str:
     header = ["mixer", "check", "result", "measured"]
     table = [[who, r.check, r.status, r.figure] for who, r in rows]
-    widths = [max(len(row[i]) for row in [header, *table]) for i in range(3)]
-    lines = ["  ".join([*(c.ljust(w) for c, w in zip(row[:3], widths, strict=True)), row[3]]).rstrip()
-             for row in [header, *table]]
+    lines = aligned_table(header, table).splitlines()
     failed = [f"{who} {r.check}" for who, r in rows if r.passed is False]
     warned = sum(r.warning for _, r in rows)
     lines.append("")

@@ -11,6 +11,7 @@ from __future__ import annotations
 import argparse
 import sys
 from collections.abc import Callable
+from typing import Any
 
 from blockyard.errors import UserError
 
@@ -48,12 +49,14 @@ def _add_train(sub: argparse._SubParsersAction) -> None:
 
 def _cmd_train(args: argparse.Namespace) -> int:
     from blockyard.config import load_config
+    from blockyard.eval.probes import make_eval_hook
     from blockyard.train import train_from_cli
 
     if args.wait < 0:
         raise UserError(f"--wait {args.wait:g}: must be >= 0 seconds")
     cfg = load_config(args.config, args.overrides)
-    return train_from_cli(cfg, out=args.out, force=args.force, check=args.check, wait_s=args.wait)
+    return train_from_cli(cfg, out=args.out, force=args.force, check=args.check, wait_s=args.wait,
+                          eval_hook_builders=[make_eval_hook])  # eval.probes plug into the trainer from above
 
 
 # ----------------------------------------------------------------------------- blocks
@@ -103,12 +106,19 @@ def _add_grid(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--force", action="store_true",
                    help="run a changed spec in an existing grid dir (changed cells are moved to superseded/)")
     p.add_argument("--status", metavar="GRID_DIR", default=None, help="print the progress of a grid and exit")
+    p.add_argument("--keys", action="store_true",
+                   help="list the keys a grid file may hold, with their defaults and meaning, and exit")
     p.add_argument("--no-check", dest="check", action="store_false",
                    help="skip the mixer contract gate on plugin mixers, here and in every cell")
     p.set_defaults(func=_cmd_grid)
 
 
 def _cmd_grid(args: argparse.Namespace) -> int:
+    if args.keys:
+        from blockyard.grid.spec import grid_keys_text
+
+        print(grid_keys_text())
+        return 0
     if args.status:
         if args.grid:
             raise UserError("--status GRID_DIR takes no grid file")
@@ -117,7 +127,7 @@ def _cmd_grid(args: argparse.Namespace) -> int:
         print(status_text(args.status))
         return 0
     if not args.grid:
-        raise UserError("grid: give a grid YAML file (or --status GRID_DIR)")
+        raise UserError("grid: give a grid YAML file (or --status GRID_DIR, or --keys)")
     from blockyard.grid.run import run_grid
 
     return run_grid(args.grid, out=args.out, workers=args.workers, threads=args.threads, executor=args.executor,
@@ -203,8 +213,9 @@ def _add_bench(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(func=_cmd_bench)
 
 
-def _given(**options: object) -> dict[str, object]:
-    """The options the user set (not None): the rest keep the defaults of the function they go to."""
+def _given(**options: Any) -> dict[str, Any]:
+    """The options the user set (not None): the rest keep the defaults of the function they go to.
+    (Values come from argparse, untyped: the function they go to states their types.)"""
     return {key: value for key, value in options.items() if value is not None}
 
 

@@ -10,7 +10,7 @@
   :class:`~blockyard.errors.WriteFailed` line naming the path, what was being written and, for
   space, how much it needed and how much is free (:func:`write_failure`, :func:`reporting`).
 
-Everything imports this module; it imports nothing from the package but ``errors``.
+Everything imports this module; it imports nothing from the package but ``errors`` and ``text``.
 """
 
 from __future__ import annotations
@@ -27,6 +27,7 @@ from pathlib import Path
 from typing import Any, BinaryIO
 
 from blockyard.errors import WriteFailed
+from blockyard.text import decimal_bytes
 
 #: errno -> how the message words it: the failures a user fixes outside blockyard (free space, fix permissions).
 STORAGE_ERRORS = {
@@ -47,15 +48,6 @@ PROBE_GRACE_S = 0.5
 # ----------------------------------------------------------------------------- write failures
 
 
-def format_bytes(n: float) -> str:
-    """``1536`` -> ``1.5 KB`` (decimal units, as ``df -H`` prints them)."""
-    for unit in ("B", "KB", "MB", "GB", "TB"):
-        if abs(n) < 1000 or unit == "TB":
-            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
-        n /= 1000
-    raise AssertionError("unreachable")
-
-
 def free_bytes(path: Path) -> int | None:
     """Bytes free to this user on the filesystem holding ``path`` (its nearest existing ancestor)."""
     path = Path(path).absolute()
@@ -73,14 +65,14 @@ def write_failure(error: OSError, path: Path, what: str, needed_bytes: int | Non
 
     None when ``error`` is not a storage failure (a bug, or a wrong path: the caller re-raises it).
     """
-    reason = STORAGE_ERRORS.get(error.errno)
+    reason = None if error.errno is None else STORAGE_ERRORS.get(error.errno)
     if reason is None:
         return None
     message = f"cannot write {path} ({what}): {reason}"
     if error.errno in _SPACE:
         free = free_bytes(Path(path).parent)
-        need = f"needs about {format_bytes(needed_bytes)}" if needed_bytes else "needs more space"
-        message += f" ({need}, {'?' if free is None else format_bytes(free)} free there)"
+        need = f"needs about {decimal_bytes(needed_bytes)}" if needed_bytes else "needs more space"
+        message += f" ({need}, {'?' if free is None else decimal_bytes(free)} free there)"
     return WriteFailed(message, path=Path(path), errno=error.errno)
 
 

@@ -30,7 +30,8 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import math
-from typing import Any
+from collections.abc import Sequence
+from typing import Any, cast
 
 import torch
 import torch.nn.functional as F
@@ -169,14 +170,14 @@ class Block(nn.Module):
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         x = x + self.mixer(self.mixer_norm(x))
-        if self.mlp is not None:
+        if self.mlp is not None and self.mlp_norm is not None:
             x = x + self.mlp(self.mlp_norm(x))
         return x
 
     def step(self, x_t: torch.Tensor, state: Any) -> tuple[torch.Tensor, Any]:
         y, state = self.mixer.step(self.mixer_norm(x_t), state)
         x_t = x_t + y
-        if self.mlp is not None:
+        if self.mlp is not None and self.mlp_norm is not None:
             x_t = x_t + self.mlp(self.mlp_norm(x_t))
         return x_t, state
 
@@ -201,7 +202,8 @@ class LanguageModel(nn.Module):
             extra = {"kernels": kernels} if getattr(cls, "takes_kernels", False) else {}
             mixer = cls(cfg.width, mcfg.options, layer=layer, depth=cfg.depth, **extra)
             blocks.append(Block(mixer, cfg.width, cfg.mlp_hidden, cfg.mlp, cfg.norm_eps, kernels=kernels))
-        self.blocks = nn.ModuleList(blocks)
+        # a ModuleList (so the blocks register as submodules), typed as what it holds, which ModuleList cannot say
+        self.blocks = cast(Sequence[Block], nn.ModuleList(blocks))
         self.final_norm = RMSNorm(cfg.width, cfg.norm_eps, kernels=kernels)
         self.head = None if cfg.tie_embeddings else nn.Linear(cfg.width, vocab_size, bias=False)
         # Tied head: scale its input by width^-1/2 (Raffel et al. 2020, JMLR, arXiv:1910.10683). Without it a

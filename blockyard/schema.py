@@ -3,19 +3,24 @@
 Every config section is a frozen dataclass whose fields are declared with :func:`opt`, which
 records the default, a one-line help text and the allowed values. :func:`parse` turns a plain
 dict (from YAML) into such a dataclass, rejecting unknown keys, wrong types and values outside
-the allowed range with a :class:`ConfigError` that quotes the dotted key path.
+the allowed range with a :class:`ConfigError` that quotes the dotted key path. Run configs
+(``blockyard.config``) and grid files (``blockyard.grid.spec.GridFile``) are both declared this way.
 """
 
 from __future__ import annotations
 
 import dataclasses
+import math
 import types
 import typing
-from typing import Any, TypeVar
+from typing import TYPE_CHECKING, Any, TypeVar
 
 from blockyard.errors import ConfigError
 
-T = TypeVar("T")
+if TYPE_CHECKING:
+    from _typeshed import DataclassInstance
+
+T = TypeVar("T", bound="DataclassInstance")
 
 
 def opt(
@@ -25,9 +30,17 @@ def opt(
     choices: typing.Sequence[Any] | None = None,
     min: float | None = None,
     max: float | None = None,
+    above: float | None = None,
+    allowed: str | None = None,
 ) -> Any:
-    """Declare a config field: its default, what it means, and what values are allowed."""
-    meta = {"help": help, "choices": tuple(choices) if choices else None, "min": min, "max": max}
+    """Declare a config field: its default, what it means, and what values are allowed.
+
+    ``min`` / ``max`` bound numbers inclusively; ``above`` is an exclusive lower bound and asks for a
+    finite number. ``allowed`` says in words what the field takes: a value of the wrong type or out of
+    range is then refused as ``key: <value>: <allowed>`` instead of the generic text.
+    """
+    meta = {"help": help, "choices": tuple(choices) if choices else None, "min": min, "max": max, "above": above,
+            "allowed": allowed}
     if isinstance(default, (list, dict)):
         raise TypeError("use a tuple (or a default_factory) for container defaults")
     return dataclasses.field(default=default, metadata=meta)
@@ -93,7 +106,7 @@ def coerce(value: Any, tp: Any, path: str) -> Any:
         if isinstance(value, str):
             return value
         raise ConfigError(path, f"expected a string, got {value!r}")
-    if dataclasses.is_dataclass(tp):
+    if isinstance(tp, type) and dataclasses.is_dataclass(tp):
         return parse(tp, value, path)
     raise TypeError(f"unsupported annotation {tp!r} at {path}")
 
@@ -103,10 +116,12 @@ def _check_range(value: Any, meta: typing.Mapping[str, Any], path: str) -> None:
     if choices and value not in choices:
         allowed = ", ".join(str(c) for c in choices)
         raise ConfigError(path, f"{value!r} is not allowed (allowed: {allowed})")
-    lo, hi = meta.get("min"), meta.get("max")
+    lo, hi, above = meta.get("min"), meta.get("max"), meta.get("above")
     items = value if isinstance(value, tuple) else (value,)
     for v in items:
         if isinstance(v, (int, float)) and not isinstance(v, bool):
+            if above is not None and not (math.isfinite(v) and v > above):
+                raise ConfigError(path, f"{v!r} is not allowed (must be a finite number > {above})")
             if lo is not None and v < lo:
                 raise ConfigError(path, f"{v!r} is too small (must be >= {lo})")
             if hi is not None and v > hi:
@@ -117,7 +132,7 @@ def parse(cls: type[T], data: Any, path: str = "") -> T:
     """Build the dataclass ``cls`` from a dict, validating every key; missing keys take defaults.
 
     After the fields are checked, a ``validate(self, path)`` method on ``cls`` (if any) runs the
-    cross-field checks.
+    cross-field checks. An unknown key is called a ``cls.KEY_NOUN`` (a class variable; default "key").
     """
     if data is None:
         data = {}
@@ -130,12 +145,19 @@ def parse(cls: type[T], data: Any, path: str = "") -> T:
     unknown = sorted(set(data) - set(fields))
     if unknown:
         key = f"{path}.{unknown[0]}" if path else str(unknown[0])
-        raise ConfigError(key, f"unknown key (allowed: {', '.join(sorted(fields))})")
+        noun = getattr(cls, "KEY_NOUN", "key")
+        raise ConfigError(key, f"unknown {noun} (allowed: {', '.join(sorted(fields))})")
     kwargs = {}
     for name, value in data.items():
         key = f"{path}.{name}" if path else name
-        parsed = coerce(value, hints[name], key)
-        _check_range(parsed, fields[name].metadata, key)
+        meta = fields[name].metadata
+        try:
+            parsed = coerce(value, hints[name], key)
+            _check_range(parsed, meta, key)
+        except ConfigError:
+            if not meta.get("allowed"):
+                raise
+            raise ConfigError(key, f"{value!r}: {meta['allowed']}") from None
         kwargs[name] = parsed
     obj = cls(**kwargs)
     validate = getattr(obj, "validate", None)
@@ -158,6 +180,15 @@ def to_dict(obj: Any) -> Any:
     return obj
 
 
+def field_default(f: dataclasses.Field[Any]) -> Any:
+    """The default of a config field (its value, or what its factory builds); every config field has one."""
+    if f.default is not dataclasses.MISSING:
+        return f.default
+    if f.default_factory is not dataclasses.MISSING:
+        return f.default_factory()
+    raise TypeError(f"field {f.name!r} has no default: declare it with opt() or opt_factory()")
+
+
 def describe(cls: type, prefix: str = "") -> list[tuple[str, Any, str]]:
     """(dotted key, default, help) for every field of ``cls``, nested sections included."""
     rows: list[tuple[str, Any, str]] = []
@@ -165,9 +196,8 @@ def describe(cls: type, prefix: str = "") -> list[tuple[str, Any, str]]:
     for f in dataclasses.fields(cls):
         key = f"{prefix}{f.name}"
         tp = hints[f.name]
-        if dataclasses.is_dataclass(tp):
+        if isinstance(tp, type) and dataclasses.is_dataclass(tp):
             rows.extend(describe(tp, key + "."))
             continue
-        default = f.default if f.default is not dataclasses.MISSING else f.default_factory()
-        rows.append((key, to_dict(default), f.metadata.get("help", "")))
+        rows.append((key, to_dict(field_default(f)), f.metadata.get("help", "")))
     return rows

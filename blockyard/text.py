@@ -10,20 +10,21 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from typing import Any
+from typing import Any, TypeGuard
 
 
 def aligned_table(header: Sequence[Any], rows: Sequence[Sequence[Any]], right: bool = False,
                   indent: str = "") -> str:
     """Columns padded to their widest cell, two spaces apart, one line per row, header first.
 
-    ``right`` right-aligns every column (numbers); otherwise cells are left-aligned and each line's
-    trailing spaces are stripped. ``indent`` prefixes every line.
+    ``right`` right-aligns every column (numbers), keeping a short last column's padding; otherwise
+    cells are left-aligned and each line's trailing spaces are stripped. ``indent`` prefixes every line.
     """
     table = [[str(c) for c in header], *([str(c) for c in r] for r in rows)]
     widths = [max(len(c) for c in col) for col in zip(*table, strict=True)]
-    pad = str.rjust if right else str.ljust
-    return "\n".join((indent + "  ".join(pad(c, w) for c, w in zip(r, widths, strict=True))).rstrip() for r in table)
+    if right:
+        return "\n".join(indent + "  ".join(c.rjust(w) for c, w in zip(r, widths, strict=True)) for r in table)
+    return "\n".join((indent + "  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True))).rstrip() for r in table)
 
 
 def count_text(n: float) -> str:
@@ -32,6 +33,11 @@ def count_text(n: float) -> str:
         if abs(n) >= div:
             return f"{n / div:.3g}{suffix}"
     return f"{n:.3g}" if isinstance(n, float) and not float(n).is_integer() else str(int(n))
+
+
+def percent_text(fraction: float) -> str:
+    """``0.975`` -> ``97.5%`` (four significant digits)."""
+    return f"{100 * fraction:.4g}%"
 
 
 def decimal_bytes(n: float) -> str:
@@ -60,7 +66,7 @@ def value_text(v: Any) -> str:
     return str(v)
 
 
-def is_finite_number(x: Any) -> bool:
+def is_finite_number(x: Any) -> TypeGuard[float]:
     """A real, finite number (a bool is not one): what a loss read from a record must be to count."""
     return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
 

@@ -26,7 +26,7 @@ import yaml
 from blockyard.cli import main
 from blockyard.errors import UserError
 from blockyard.grid.index import open_index
-from blockyard.grid.run import _plan_rows, plan_cells
+from blockyard.grid.plan import plan_cells, plan_rows
 from blockyard.grid.spec import load_grid
 from blockyard.model import build_model
 from blockyard.rundir import read_metrics, without_timing
@@ -138,7 +138,7 @@ def earlier_grid_dir(tmp_path: Path, spec_text: str) -> Path:
     grid_dir = tmp_path / "grid_dir"
     grid_dir.mkdir()
     with open_index(grid_dir) as index:
-        index.plan(_plan_rows(plan_cells(load_grid(write_grid(tmp_path, spec_text, "earlier.yaml")), threads=1)))
+        index.plan(plan_rows(plan_cells(load_grid(write_grid(tmp_path, spec_text, "earlier.yaml")), threads=1)))
         index.mark_finished("base-seed0", "done", summary={"final_val_loss": 1.5})
     (grid_dir / "cells" / "base-seed0").mkdir(parents=True)
     (grid_dir / "cells" / "base-seed0" / "summary.json").write_text('{"status": "done"}')

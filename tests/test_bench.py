@@ -397,6 +397,7 @@ def test_coarse_bound_is_above_the_precise_estimate(kind):
         assert coarse_bound_bytes(cfg, 256) > est.total_bytes
 
 
+@pytest.mark.slow  # about a minute: the estimator traces a width-2048, depth-48 model at 8,192 tokens
 def test_huge_config_warns_with_estimate_and_suggestions():
     cfg = config_from_dict({"model": {"width": 2048, "depth": 48}, "data": {"seq_len": 8192},
                             "train": {"batch_size": 64}})

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import subprocess
 import sys
 from pathlib import Path
@@ -13,6 +14,7 @@ from blockyard.cli import main
 from blockyard.config import config_from_dict, config_hash, dump_config, load_config, replace
 from blockyard.errors import ConfigError, UserError
 from blockyard.mixers.attention import GlobalAttentionOptions
+from blockyard.schema import opt, parse
 
 REPO = Path(__file__).resolve().parent.parent
 
@@ -305,3 +307,29 @@ def test_compiled_kernels_without_a_working_build_exit_2_at_start_up(tmp_path, c
     assert err.count("\n") == 1 and err.startswith("error: runtime.kernels: compiled: the C++ kernels do not build")
     assert "no C++ compiler found" in err and "write auto" in err
     assert not (tmp_path / "run").exists()
+
+
+@dataclasses.dataclass(frozen=True)
+class _Rates:
+    """A section declared with the schema's exclusive bound (``above``) and its words for what is allowed."""
+
+    rate: float = opt(1.0, "a rate", above=0.0, allowed="a number > 0 (per token)")
+    scale: float = opt(1.0, "a scale", above=0.0)
+
+
+@pytest.mark.parametrize("data, message", [
+    ({"rate": 0}, "rate: 0: a number > 0 (per token)"),  # the bound itself is out: "above" is exclusive
+    ({"rate": True}, "rate: True: a number > 0 (per token)"),  # a wrong type reads the same words
+    ({"rate": "fast"}, "rate: 'fast': a number > 0 (per token)"),
+    ({"scale": float("inf")}, "scale: inf is not allowed (must be a finite number > 0.0)"),
+    ({"scale": float("nan")}, "scale: nan is not allowed (must be a finite number > 0.0)"),
+    ({"scale": -1}, "scale: -1.0 is not allowed (must be a finite number > 0.0)"),
+])
+def test_exclusive_bounds_and_allowed_words_give_one_line_errors(data, message):
+    with pytest.raises(ConfigError) as err:
+        parse(_Rates, data)
+    assert str(err.value) == message
+
+
+def test_values_just_above_an_exclusive_bound_are_kept():
+    assert parse(_Rates, {"rate": 1e-12, "scale": 3}) == _Rates(rate=1e-12, scale=3.0)

@@ -14,6 +14,7 @@ from blockyard.cost import analytic as cost
 from blockyard.errors import UserError
 from blockyard.mixers import MIXERS, state_nbytes
 from blockyard.model import build_model
+from blockyard.text import binary_bytes
 
 ROOT = Path(__file__).resolve().parents[1]
 PRESETS = sorted(glob.glob(str(ROOT / "configs" / "*.yaml")))
@@ -146,7 +147,7 @@ def test_blocks_with_configs_prints_costs_and_plots(tmp_path):
     text = cost.blocks_command(PRESETS[:2], ["model.depth=3"], plot=str(out))
     cfg = load_config(PRESETS[0], ["model.depth=3"])
     assert f"{cost.param_breakdown(cfg)['total']:,d}" in text
-    assert "L=65536" in text and cost.format_bytes(cost.state_bytes(cfg, 65536)) in text
+    assert "L=65536" in text and binary_bytes(cost.state_bytes(cfg, 65536)) in text
     assert f"training FLOPs/token at seq_len={cfg.data.seq_len} " in text and "n_ctx" not in text  # our key
     assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
 
@@ -159,12 +160,6 @@ def test_blocks_bad_input_is_a_user_error(tmp_path, capsys):
     assert main(["blocks", PRESETS[0], "--plot", str(blocker / "x.png")]) == 2
     assert capsys.readouterr().err.startswith("error: --plot")
     assert main(["blocks", str(tmp_path / "missing.yaml")]) == 2
-
-
-def test_format_helpers():
-    assert cost.format_count(1234567) == "1.23M"
-    assert cost.format_bytes(1536) == "1.5 KiB"
-    assert cost.format_bytes(100) == "100 B"
 
 
 # ----------------------------------------------------------------------------- measured figures (plugins without hooks)

@@ -15,7 +15,7 @@ import pytest
 from scipy import stats as sps
 
 from blockyard.grid import stats
-from blockyard.grid.report import SKEW_FAMILY_ERROR
+from blockyard.grid.report.sections import SKEW_FAMILY_ERROR
 from blockyard.grid.rounds import plan_rounds
 from blockyard.grid.spec import Design, SeedSchedule
 from blockyard.grid.verdicts import GroupOutcomes, compare_all, restrict

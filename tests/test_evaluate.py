@@ -13,7 +13,7 @@ import torch.nn.functional as F
 import yaml
 
 from blockyard.cli import main
-from blockyard.config import config_from_dict, load_config
+from blockyard.config import config_from_dict
 from blockyard.data.task_options import PROBE_TASKS
 from blockyard.data.tasks import KEY_SENTENCE, QUESTION, TASKS, SymbolTokenizer, passkey_symbols
 from blockyard.errors import ConfigError, UserError
@@ -74,6 +74,7 @@ def root(tmp_path_factory) -> Path:
 
 
 def train(root: Path, name: str, **sections) -> Path:
+    """Train through ``blockyard train`` (the CLI plugs the probe suite into the trainer, as for a grid cell)."""
     cfg = {"model": {"width": 32, "depth": 2, "pattern": ["recurrence", "global_attention"]},
            "data": {"corpus": str(root / "corpus.txt"), "seq_len": 32, "cache_dir": str(root / "cache")},
            "train": {"steps": 30, "batch_size": 4, "warmup_steps": 2, "eval_every": 15, "checkpoint_every": 15,
@@ -82,7 +83,7 @@ def train(root: Path, name: str, **sections) -> Path:
     for section, values in sections.items():
         cfg[section] = {**cfg.get(section, {}), **values}
     (root / f"{name}.yaml").write_text(yaml.safe_dump(cfg))
-    run_training(load_config(root / f"{name}.yaml"), root / name, progress="silent")
+    assert main(["train", str(root / f"{name}.yaml"), "--out", str(root / name)]) == 0
     return root / name
 
 
@@ -258,11 +259,19 @@ def test_the_config_accepts_exactly_the_probes_that_exist():
 
 
 @pytest.mark.slow
-def test_a_probe_error_stops_training_before_the_run_dir_changes(root):
-    cfg = load_config(root / "text.yaml", ["eval.probes=[mqar]", "eval.probe_pairs=[65]"])
-    with pytest.raises(ConfigError, match="eval.probe_pairs"):
-        run_training(cfg, root / "never", progress="silent")
+def test_a_probe_error_stops_training_before_the_run_dir_changes(root, capsys):
+    args = ["--set", "eval.probes=[mqar]", "--set", "eval.probe_pairs=[65]", "--out", str(root / "never")]
+    assert main(["train", str(root / "text.yaml"), *args]) == 2
+    assert "eval.probe_pairs" in capsys.readouterr().err
     assert not (root / "never").exists()
+
+
+def test_the_trainer_refuses_probes_that_no_hook_builder_builds(tmp_path):
+    # The trainer does not import the probe suite (a higher layer); a caller that asks for probes
+    # without plugging them in is told so before anything is read or written.
+    with pytest.raises(ValueError, match="eval.probes is set"):
+        run_training(probe_cfg(), tmp_path / "run", progress="silent")
+    assert not (tmp_path / "run").exists()
 
 
 def test_probe_params_leave_the_task_config_alone():

@@ -190,8 +190,7 @@ def test_append_all_never_leaves_half_a_line(tmp_path, monkeypatch):
     assert path.read_bytes() == b'{"step": 1}\n'
 
 
-def test_format_bytes_and_free_space(tmp_path):
-    assert [fs.format_bytes(n) for n in (999, 1500, 2_500_000, 3.2e9)] == ["999 B", "1.5 KB", "2.5 MB", "3.2 GB"]
+def test_free_space_is_the_nearest_existing_folders(tmp_path):
     free = fs.free_bytes(tmp_path / "not" / "yet")  # the nearest existing folder's filesystem
     assert free == os.statvfs(tmp_path).f_bavail * os.statvfs(tmp_path).f_frsize
 

@@ -19,8 +19,9 @@ from statsmodels.stats.power import TTestPower
 from blockyard.cli import main
 from blockyard.grid import budget, stats
 from blockyard.grid.index import open_index
+from blockyard.grid.plan import plan_cells, plan_rows
 from blockyard.grid.rounds import plan_rounds
-from blockyard.grid.run import _plan_rows, plan_cells, run_grid
+from blockyard.grid.run import run_grid
 from blockyard.grid.spec import Design, SeedSchedule, load_grid
 from blockyard.grid.verdicts import GroupOutcomes, compare_all, restrict
 
@@ -154,7 +155,7 @@ def test_most_auto_replays_the_recorded_value_on_a_slower_machine(tmp_path, monk
     grid_dir = tmp_path / "grid_dir"
     grid_dir.mkdir()
     with open_index(grid_dir) as index:
-        index.plan(_plan_rows(plan_cells(spec, threads=1)))
+        index.plan(plan_rows(plan_cells(spec, threads=1)))
         index.set_meta({"design": spec.design.to_json(), "threads": "1"})
     import blockyard.grid.estimate as estimate
 

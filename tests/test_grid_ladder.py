@@ -16,8 +16,10 @@ from blockyard.cli import main
 from blockyard.grid.fairness import MATCH_TOLERANCE
 from blockyard.grid.index import open_index
 from blockyard.grid.ladder import TREND_COLUMNS, Ladder
-from blockyard.grid.report import GAP_VS_N, LOSS_VS_N, write_report
-from blockyard.grid.run import plan_cells, run_grid
+from blockyard.grid.plan import plan_cells
+from blockyard.grid.report import write_report
+from blockyard.grid.report.figures import GAP_VS_N, LOSS_VS_N
+from blockyard.grid.run import run_grid
 from blockyard.grid.spec import Design, load_grid
 from blockyard.rundir import format_duration
 

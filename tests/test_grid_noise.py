@@ -100,3 +100,22 @@ def test_resolution_compares_the_sd_trend_with_the_gain_of_doubling_the_seeds():
     # At many seeds the gain of doubling them approaches 1/sqrt(2) (the t quantile barely moves).
     many = resolution(_curve([0.05, 0.05], pairs=400))
     assert many.more_seeds == pytest.approx(1 / math.sqrt(2), rel=0.01)
+
+
+def test_noise_png_labels_tokens_in_one_unit_like_the_other_figures(tmp_path, monkeypatch):
+    """noise.png's token axes go through blockyard.plotting.label_token_axis: 1.4k ... 6k, not 0.0014M."""
+    from blockyard.grid.report import figures
+
+    drawn = []
+
+    def keep(fig, path):  # read the labels before the figure is written and closed
+        fig.canvas.draw()
+        drawn.extend([t.get_text() for t in ax.get_xticklabels() if t.get_text()] for ax in fig.axes)
+        figures.pyplot().close(fig)
+
+    monkeypatch.setattr(figures, "finish", keep)
+    curve = NoiseCurve("a", "ref", (), False, 0.05, tuple(
+        NoisePoint(i, t, 5, 0.0, 0.05, 0.1) for i, t in enumerate((1400.0, 2800.0, 4200.0, 5600.0))))
+    assert figures.noise_plot(tmp_path / "noise.png", [curve], 0.01)
+    assert len(drawn) == 2 and all(labels for labels in drawn)
+    assert all(lab == "0" or lab.endswith("k") for labels in drawn for lab in labels), drawn

@@ -14,9 +14,11 @@ from scipy import stats as sps
 from blockyard.cli import main
 from blockyard.errors import UserError
 from blockyard.grid import stats
+from blockyard.grid.griddir import grid_lock
 from blockyard.grid.index import open_index
-from blockyard.grid.report import CAUTION, VERDICT_COLUMNS, write_report
-from blockyard.grid.run import grid_lock
+from blockyard.grid.report import write_report
+from blockyard.grid.report.sections import CAUTION
+from blockyard.grid.report.tables import VERDICT_COLUMNS
 from blockyard.grid.spec import Design, SeedSchedule
 from blockyard.grid.status import grid_progress, status_text
 from blockyard.rundir import writing
@@ -355,7 +357,7 @@ def test_the_power_sentence_and_the_method_say_when_they_hold(tmp_path):
 def test_html_renders_emphasis_strong_and_code_and_leaves_products_alone():
     """Inline marks as CommonMark reads them (spec 0.31, sec. 6.2: a `*` opens emphasis when no space
     follows it and closes it when no space precedes it; code spans take their content literally)."""
-    from blockyard.grid.report import Doc
+    from blockyard.grid.report.document import Doc
 
     doc = Doc()
     doc.p("*every* group, **bold**, `a*b*c`, 2*3*4 and a * b * c")
@@ -366,39 +368,13 @@ def test_html_renders_emphasis_strong_and_code_and_leaves_products_alone():
 
 
 def test_wide_tables_scroll_inside_the_page():
-    from blockyard.grid.report import Doc
+    from blockyard.grid.report.document import Doc
 
     doc = Doc()
     doc.table([f"column {i}" for i in range(40)], [[str(i) for i in range(40)]])
     html = doc.html(Path("."), "t")
     assert ".wide{overflow-x:auto" in html
     assert re.search(r"<div class='wide'><table>.*</table></div>", html, re.S)
-
-
-def test_token_axis_reads_in_one_unit_without_an_offset():
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    from blockyard.grid.report import label_token_axis
-
-    for top, unit in ((1.4e6, "M"), (9e5, "k"), (3e9, "G")):
-        fig, ax = plt.subplots()
-        ax.plot([top / 7, top], [2.0, 1.0])
-        label_token_axis(ax.xaxis)
-        fig.canvas.draw()
-        labels = [t.get_text() for t in ax.get_xticklabels() if t.get_text()]
-        assert ax.xaxis.get_offset_text().get_text() == ""  # matplotlib's "1e6" is gone
-        assert labels and all(lab == "0" or lab.endswith(unit) for lab in labels), labels
-        plt.close(fig)
-    fig, ax = plt.subplots()
-    ax.set_xlim(0, 1.45e6)
-    ax.set_xticks([0, 2e5, 1.4e6])
-    label_token_axis(ax.xaxis)
-    fig.canvas.draw()
-    assert [t.get_text() for t in ax.get_xticklabels()] == ["0", "0.2M", "1.4M"]
-    plt.close(fig)
 
 
 def test_figures_draw_in_our_palette(tmp_path):

@@ -180,7 +180,8 @@ def test_force_drops_the_records_of_changed_cells_that_no_round_plans_yet(tmp_pa
     """After --force, a changed cell's old outcome must not survive in the index: with seeds until
     decided, a seed of a later round is not planned at once, and its stale row was replayed as if
     that round had run (and its cell, whose config had moved to superseded/, then failed to start)."""
-    from blockyard.grid.run import _plan_rows, _setup, _sync_index, current_cells, plan_cells
+    from blockyard.grid.plan import current_cells, plan_cells, plan_rows
+    from blockyard.grid.run import _setup, _sync_index
 
     def spec_file(expansion: float) -> Path:
         path = tmp_path / "grid.yaml"
@@ -199,7 +200,7 @@ def test_force_drops_the_records_of_changed_cells_that_no_round_plans_yet(tmp_pa
     universe = plan_cells(old.spec, threads=1)
     out.mkdir()
     with open_index(out) as index:  # an earlier run that went to round 2: every seed recorded done
-        index.plan(_plan_rows(universe))
+        index.plan(plan_rows(universe))
         for i, p in enumerate(universe):
             index.mark_finished(p.id, "done", summary={"final_val_loss": 2.0 + 0.01 * i})
     new = _setup(spec_file(3.0), out, None, 1, "local", None)
@@ -215,14 +216,15 @@ def test_force_drops_the_records_of_changed_cells_that_no_round_plans_yet(tmp_pa
 def test_the_grid_processs_own_progress_lines_call_a_starting_cell_running(tmp_path):
     """A cell marked running whose process has not yet taken its writer lock is running in the grid
     process's own lines, also in a dir whose lock the grid does not hold (stage 1's GRID_DIR/tuning)."""
-    from blockyard.grid.run import _plan_rows, _Recorder, plan_cells
+    from blockyard.grid.plan import plan_cells, plan_rows
+    from blockyard.grid.run import _Recorder
     from blockyard.grid.spec import load_grid
 
     path = tmp_path / "grid.yaml"
     path.write_text("name: starting\nbase:\n" + TINY_BASE + "variants:\n  one: {}\nreference: one\nseeds: [0]\n")
     lines: list[str] = []
     with open_index(tmp_path) as index:
-        index.plan(_plan_rows(plan_cells(load_grid(path), threads=1)))
+        index.plan(plan_rows(plan_cells(load_grid(path), threads=1)))
         index.mark_running("one-seed0")
         _Recorder(tmp_path, index, "starting", lines.append, 60.0).status()
     assert lines == ["grid starting: 0/1 done, 1 running, 0 failed, 0 left | ETA unknown (no speed measured yet)"]

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import subprocess
 import sys
 from pathlib import Path
@@ -15,8 +16,9 @@ from blockyard.cost.analytic import flops_per_token
 from blockyard.errors import UserError
 from blockyard.grid.fairness import MATCH_TOLERANCE, apply_matching, count_params, planned_tokens
 from blockyard.grid.index import open_index
-from blockyard.grid.run import _plan_rows, makespan, plan_cells, run_grid
-from blockyard.grid.spec import expand_cells, load_grid
+from blockyard.grid.plan import makespan, plan_cells, plan_rows
+from blockyard.grid.run import run_grid
+from blockyard.grid.spec import GridFile, expand_cells, load_grid
 
 BASE = {
     "model": {"width": 32, "depth": 2, "pattern": ["global_attention"], "mlp_expansion": 2.0},
@@ -91,6 +93,13 @@ BAD_SPECS = [
     ("variants: {a: {model.width.x: 1}}\nreference: a", "variants.a: model.width.x: model.width is a value, not"),
     ("variants: {a: {}, b: {model.mixers.global_attention.heads: 5}}\nreference: a",
      "variants.b: model.mixers.global_attention.heads: 5 does not divide"),
+    # The grid file's schema (GridFile): types and bounds read like a run config's errors.
+    ("smallest_effect: .inf", "smallest_effect: inf: a number > 0"),
+    ("tune: 3", "tune: 3: a mapping: {key: train.lr"),
+    ("variants: {a: {}}\nreference: 5", "reference: 5: the name of a variant"),
+    ("description: [1]", "description: expected string or null, got [1]"),
+    ("match: 3", "match: expected a string, got 3"),
+    ("name: 'a b'", "name: 'a b': use letters, digits"),
 ]
 
 
@@ -181,6 +190,14 @@ def test_seed_schedule_start_runs_the_same_design_on_other_seeds(tmp_path):
     assert spec.design == type(spec.design).from_json(spec.design.to_json())
     plan = {p.id: p.cell for p in plan_cells(spec, threads=1)}
     assert plan["wide-seed103"].cfg.train.seed == 103 and "ref-seed0" not in plan
+
+
+def test_grid_keys_lists_every_key_of_the_grid_file_schema(capsys):
+    assert main(["grid", "--keys"]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert lines[0].split() == ["key", "default", "meaning"]
+    assert [ln.split()[0] for ln in lines[1:]] == [f.name for f in dataclasses.fields(GridFile)]
+    assert any(ln.split()[:2] == ["smallest_effect", "0.01"] for ln in lines)
 
 
 def test_bad_seeds_and_base(tmp_path):
@@ -390,7 +407,7 @@ def test_changed_verdict_rules_are_refused_without_force(tmp_path, capsys):
     grid_dir.mkdir()
     spec = load_grid(write_grid(tmp_path, text % "0.01", "first.yaml"))
     with open_index(grid_dir) as index:
-        index.plan(_plan_rows(plan_cells(spec, threads=1)))
+        index.plan(plan_rows(plan_cells(spec, threads=1)))
         index.set_meta({"design": spec.design.to_json(), "threads": "1"})
     before = tree_snapshot(grid_dir)
     changed = write_grid(tmp_path, text % "0.05", "changed.yaml")
@@ -443,7 +460,7 @@ def test_planning_a_grid_builds_no_model_and_loads_no_report_libraries():
         "def spy(self, *a, **k):\n"
         "    built.append(type(self).__name__); orig(self, *a, **k)\n"
         "nn.Module.__init__ = spy\n"
-        "from blockyard.grid.run import plan_cells\n"
+        "from blockyard.grid.plan import plan_cells\n"
         "from blockyard.grid.spec import load_grid\n"
         f"plan = plan_cells(load_grid({str(CONFIGS / 'default.yaml')!r}), 1)\n"
         "assert len(plan) == 21 and plan[0].cost.params_total > 0, plan\n"

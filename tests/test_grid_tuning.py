@@ -25,7 +25,8 @@ from scipy import stats as sps
 from blockyard.cli import main
 from blockyard.errors import UserError
 from blockyard.grid.index import open_index
-from blockyard.grid.run import plan_cells, plan_tuning, run_grid
+from blockyard.grid.plan import plan_cells, plan_tuning
+from blockyard.grid.run import run_grid
 from blockyard.grid.spec import load_grid
 from blockyard.grid.status import status_text
 from blockyard.grid.tuning import basin, choose, mean_score, shared_value_differences, tuned_groups
@@ -229,11 +230,11 @@ def test_adding_a_tune_block_to_a_run_grid_is_refused_without_force(tmp_path, ca
     untuned = SPEC.split("    tune:")[0]
     grid_dir = tmp_path / "out"
     spec = load_grid(write_grid(tmp_path, untuned, "untuned.yaml"))
-    from blockyard.grid.run import _plan_rows
+    from blockyard.grid.plan import plan_rows
 
     grid_dir.mkdir()
     with open_index(grid_dir) as index:
-        index.plan(_plan_rows(plan_cells(spec, threads=1)))
+        index.plan(plan_rows(plan_cells(spec, threads=1)))
     before = tree_snapshot(grid_dir)
     assert main(["grid", str(write_grid(tmp_path, SPEC)), "--out", str(grid_dir), "--threads", "1"]) == 2
     err = capsys.readouterr().err
@@ -528,16 +529,17 @@ def test_dry_run_says_stage_1_runs_on_rung_1_only(tmp_path, capsys, monkeypatch)
 
 
 def _planned_grid_dir(grid_dir: Path, spec, chosen: dict) -> None:
-    from blockyard.grid.run import _plan_rows, _tuning_json
+    from blockyard.grid.plan import plan_rows
+    from blockyard.grid.run import _tuning_json
 
     grid_dir.mkdir()
     with open_index(grid_dir) as index:
-        index.plan(_plan_rows(plan_cells(spec, threads=1, chosen=chosen)))
+        index.plan(plan_rows(plan_cells(spec, threads=1, chosen=chosen)))
         index.set_meta({"name": spec.name, "tuning": _tuning_json(spec), "stage": "verdicts", "threads": "1"})
 
 
 def test_changing_tune_rungs_in_a_grid_dir_is_refused_without_force(tmp_path, capsys):
-    from blockyard.grid.run import _refuse_changed_tuning
+    from blockyard.grid.griddir import refuse_changed_tuning
 
     grid_dir = tmp_path / "out"
     _planned_grid_dir(grid_dir, load_grid(_ladder_spec(tmp_path)),
@@ -551,10 +553,10 @@ def test_changing_tune_rungs_in_a_grid_dir_is_refused_without_force(tmp_path, ca
     # A record from before `rungs` existed is the same block as today's default, not a change.
     spec = load_grid(_ladder_spec(tmp_path, rungs=None, name="default.yaml"))
     old = '{"budget": 1.0, "key": "train.lr", "seeds": [100], "values": [0.001, 0.01]}'
-    _refuse_changed_tuning(grid_dir, "default.yaml", old, spec.tuning.to_json(), True, False)
+    refuse_changed_tuning(grid_dir, "default.yaml", old, spec.tuning.to_json(), True, False)
     with pytest.raises(UserError, match="tune block differs"):
-        _refuse_changed_tuning(grid_dir, "carried.yaml", old, load_grid(_ladder_spec(tmp_path)).tuning.to_json(),
-                               True, False)
+        refuse_changed_tuning(grid_dir, "carried.yaml", old, load_grid(_ladder_spec(tmp_path)).tuning.to_json(),
+                              True, False)
 
 
 def _finish(index, rows: list[dict], loss: dict[str, float]) -> None:
@@ -568,8 +570,9 @@ def _finish(index, rows: list[dict], loss: dict[str, float]) -> None:
 @pytest.mark.parametrize("parametrization", ["standard", "mup"])
 def test_report_says_rung_1_was_tuned_and_the_value_carried(tmp_path, parametrization):
     from blockyard.config import dump_config
+    from blockyard.grid.plan import plan_rows
     from blockyard.grid.report import write_report
-    from blockyard.grid.run import _plan_rows, _tuning_json
+    from blockyard.grid.run import _tuning_json
 
     extra = "" if parametrization == "standard" else "{model.parametrization: mup, model.base_width: 16}"
     text = LADDER_TUNED if not extra else LADDER_TUNED.replace(
@@ -592,14 +595,14 @@ def test_report_says_rung_1_was_tuned_and_the_value_carried(tmp_path, parametriz
     assert expected == {"attention": 1e-3, "recurrence": 1e-2}
     (grid_dir / "tuning").mkdir(parents=True)
     with open_index(grid_dir / "tuning") as tindex:
-        tindex.plan(_plan_rows(tuning_plan))
+        tindex.plan(plan_rows(tuning_plan))
         _finish(tindex, tindex.cells(), loss)
     plan = plan_cells(spec, threads=1, chosen={(v, (("rung", 1),)): x for v, x in expected.items()})
     (grid_dir / "configs").mkdir()
     for p in plan:
         (grid_dir / "configs" / f"{p.id}.yaml").write_text(dump_config(p.cell.cfg))
     with open_index(grid_dir) as index:
-        index.plan(_plan_rows(plan))
+        index.plan(plan_rows(plan))
         index.set_meta({"name": spec.name, "reference": "attention", "match": "none",
                         "design": spec.design.to_json(), "tuning": _tuning_json(spec), "ladder": spec.ladder.to_json()})
         _finish(index, index.cells(), {p.id: 3.0 - 0.1 * dict(p.cell.point)["rung"] for p in plan})

@@ -1,18 +1,42 @@
-"""The package's layout: no import cycle, counting imports inside functions.
+"""The package's layout: layers in one order and no import cycle, counting imports inside functions.
 
 Data flows one way through the package (config -> model; corpus -> tokens -> batches; trainer
--> run records -> grid -> report), so its import graph must be acyclic. An import placed inside
-a function hides a cycle from Python (it runs late, after both modules exist) but not from a
-reader, so the graph here counts every import statement, wherever it sits. Checking a module
-graph for cycles by walking its import statements is common practice, no source.
+-> run records -> grid -> report), so its import graph must be acyclic, and no module may import
+one of a higher layer (:data:`LAYERS`, the one place the order is written). An import placed
+inside a function hides a cycle from Python (it runs late, after both modules exist) but not from
+a reader, so the graph here counts every import statement, wherever it sits. Checking a module
+graph for cycles and layer order by walking its import statements is common practice, no source.
 """
 
 from __future__ import annotations
 
 import ast
+from collections.abc import Sequence
 from pathlib import Path
 
+import pytest
+
 PACKAGE_DIR = Path(__file__).resolve().parent.parent / "blockyard"
+
+#: The package's layers, lowest first, by top-level module or subpackage: a module may import its own
+#: layer and the layers below it, never one above (a higher layer plugs into a lower one through a hook,
+#: e.g. the probe suite into the trainer as an eval hook builder). The package's ``__init__.py`` runs
+#: before every module, so it counts as the lowest layer.
+LAYERS: tuple[tuple[str, ...], ...] = (
+    ("", "errors", "text", "palette"),  # import nothing of the package
+    ("fs", "plotting"),  # file locks, atomic writes; headless matplotlib in our palette
+    ("schema", "integrity", "rundir"),  # dataclass <-> dict; sha256 manifests; reading run dirs without torch
+    ("data", "kernels"),  # corpora, tokenizers, tasks, batches; scan and fused kernels
+    ("mixers",),
+    ("config",),  # the config schema (names the mixers' and data's options)
+    ("parametrization", "model"),
+    ("cost", "check", "verify"),  # analytic and measured cost; the mixer contract gate; checkpoint checks
+    ("train",),
+    ("eval",),  # extrapolation, probes and generation of trained runs
+    ("grid",),
+    ("bench",),
+    ("cli", "__main__"),
+)
 
 
 def module_names(package_dir: Path) -> dict[str, Path]:
@@ -98,6 +122,61 @@ def find_cycle(graph: dict[str, set[str]]) -> list[str] | None:
                 on_path.add(nxt)
                 stack.append(iter(sorted(graph.get(nxt, ()))))
     return None
+
+
+def layer_of(module: str, layers: Sequence[Sequence[str]]) -> int:
+    """Index in ``layers`` of ``module``'s top-level part (``pkg.a.b`` -> ``a``; ``pkg`` itself -> ``""``)."""
+    head = module.split(".")[1] if "." in module else ""
+    for i, names in enumerate(layers):
+        if head in names:
+            return i
+    raise KeyError(f"{module}: its top-level name {head!r} is in no layer; add it to LAYERS")
+
+
+def upward_imports(graph: dict[str, set[str]], layers: Sequence[Sequence[str]]) -> list[str]:
+    """Every import of ``graph`` from a lower layer into a higher one, as ``"a (layer i) imports b (layer j)"``."""
+    found = []
+    for importer in sorted(graph):
+        low = layer_of(importer, layers)
+        for target in sorted(graph[importer]):
+            high = layer_of(target, layers)
+            if high > low:
+                found.append(f"{importer} (layer {low}) imports {target} (layer {high})")
+    return found
+
+
+def test_no_module_imports_a_higher_layer():
+    graph = import_graph(PACKAGE_DIR)
+    upward = upward_imports(graph, LAYERS)
+    assert not upward, "imports up the layer order (imports inside functions count):\n" + "\n".join(upward)
+
+
+def test_every_top_level_module_has_a_layer():
+    names = {p.stem for p in PACKAGE_DIR.glob("*.py")} | {p.parent.name for p in PACKAGE_DIR.glob("*/__init__.py")}
+    listed = {name for layer in LAYERS for name in layer}
+    assert names - {"__init__"} == listed - {""}  # no module escapes the check, and no layer names a ghost
+
+
+def test_a_planted_upward_import_is_found(tmp_path):
+    # pkg.low sits below pkg.high but imports it inside a function, where Python would not notice.
+    pkg = write_package(tmp_path, {
+        "pkg/__init__.py": "",
+        "pkg/low.py": "def f():\n    from pkg.high import g\n    return g\n",
+        "pkg/high/__init__.py": "from pkg import low\n",
+        "pkg/high/g.py": "",
+    })
+    layers = (("",), ("low",), ("high",))
+    assert upward_imports(import_graph(pkg), layers) == [
+        "pkg.low (layer 1) imports pkg.high (layer 2)", "pkg.low (layer 1) imports pkg.high.g (layer 2)"]
+    assert upward_imports(import_graph(pkg), (("",), ("high",), ("low",))) == [
+        "pkg.high (layer 1) imports pkg.low (layer 2)"]
+    assert upward_imports(import_graph(pkg), (("", "low", "high"),)) == []  # one layer: anything goes
+
+
+def test_a_module_outside_every_layer_is_an_error(tmp_path):
+    pkg = write_package(tmp_path, {"pkg/__init__.py": "", "pkg/a.py": "", "pkg/stray.py": "from pkg import a\n"})
+    with pytest.raises(KeyError, match="pkg.stray"):
+        upward_imports(import_graph(pkg), (("", "a"),))
 
 
 def test_the_package_has_no_import_cycle():

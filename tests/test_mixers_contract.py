@@ -286,7 +286,7 @@ def test_the_gate_refuses_an_undeclared_token_local_block_and_a_leaking_one(tmp_
 
 def test_the_variants_table_marks_a_declared_token_local_variant(tmp_path):
     from blockyard.check import TOKEN_LOCAL_MARK
-    from blockyard.grid.report import read_token_local
+    from blockyard.grid.report.results import read_token_local
 
     rows = []
     for variant, check in (("local", f"passed (causality) for x; {TOKEN_LOCAL_MARK}: x"), ("mixing", "passed")):

@@ -190,7 +190,8 @@ def test_the_method_says_what_the_levers_change_about_what_is_measured(tmp_path)
     """read_levers reads the cells' configs (a config from before the keys counts as their defaults)."""
     import yaml
 
-    from blockyard.grid.report import lever_items, read_levers
+    from blockyard.grid.report.results import read_levers
+    from blockyard.grid.report.sections import lever_items
 
     (tmp_path / "configs").mkdir()
     (tmp_path / "configs" / "a-seed0.yaml").write_text(yaml.safe_dump({"model": {"width": 8}}))

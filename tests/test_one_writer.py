@@ -25,8 +25,8 @@ from _helpers import child_env, comparable, start_grid, wait_until, write_tiny_r
 from blockyard.cli import main
 from blockyard.config import load_config
 from blockyard.errors import UserError
+from blockyard.grid.griddir import grid_lock
 from blockyard.grid.index import open_index
-from blockyard.grid.run import grid_lock
 from blockyard.grid.status import grid_progress, status_text
 from blockyard.rundir import read_metrics, read_summary, writer_pid, writing
 from blockyard.train import run_training

@@ -16,7 +16,8 @@ from conftest import LEAKY, LINEAR_ATTENTION
 from blockyard.errors import UserError
 from blockyard.grid.fairness import MATCH_TOLERANCE
 from blockyard.grid.index import open_index
-from blockyard.grid.run import plan_cells, run_grid
+from blockyard.grid.plan import plan_cells
+from blockyard.grid.run import run_grid
 from blockyard.grid.spec import load_grid
 from blockyard.model import build_model
 

@@ -28,6 +28,7 @@ def test_aligned_table_pads_to_the_widest_cell() -> None:
 
 def test_bytes_decimal_and_binary_differ_by_their_base() -> None:
     assert decimal_bytes(1536) == "1.5 KB"
+    assert [decimal_bytes(n) for n in (999, 1500, 2_500_000, 3.2e9)] == ["999 B", "1.5 KB", "2.5 MB", "3.2 GB"]
     assert binary_bytes(1536) == "1.5 KiB"
     assert decimal_bytes(10**9) == "1.0 GB"
     assert binary_bytes(2**30) == "1 GiB"

@@ -34,8 +34,9 @@ from blockyard.config import Config, load_config
 from blockyard.cost import analytic as cost
 from blockyard.errors import UserError
 from blockyard.mixers import state_nbytes
-from blockyard.model import build_model
-from blockyard.palette import use_palette
+from blockyard.model import LanguageModel, build_model
+from blockyard.plotting import pyplot
+from blockyard.text import aligned_table, binary_bytes
 
 REPO = Path(__file__).resolve().parents[2]
 VOCAB = 256  # byte tokens, as the presets
@@ -66,7 +67,7 @@ def tile_state(state: Any, batch: int) -> Any:
 
 
 @torch.no_grad()
-def states_at(model: torch.nn.Module, contexts: list[int], seed: int = 0) -> dict[int, list[Any]]:
+def states_at(model: LanguageModel, contexts: list[int], seed: int = 0) -> dict[int, list[Any]]:
     """The batch-1 states after stepping random tokens to each of ``contexts``."""
     gen = torch.Generator().manual_seed(seed)
     tokens = torch.randint(0, model.vocab_size, (max(contexts),), generator=gen)
@@ -86,7 +87,7 @@ MAX_REPS = 200
 
 
 @torch.no_grad()
-def time_steps(model: torch.nn.Module, states: list[Any], batch: int, reps: int) -> float:
+def time_steps(model: LanguageModel, states: list[Any], batch: int, reps: int) -> float:
     """Median seconds of one decode step from ``states`` (each rep from the same state): at least
     ``reps`` steps, more for a fast step so that they span ``MIN_TIMED_S`` (at most ``MAX_REPS``)."""
     token = torch.zeros(batch, dtype=torch.long)
@@ -108,7 +109,7 @@ class _Subject:
 
     name: str
     cfg: Config
-    model: torch.nn.Module
+    model: LanguageModel
     snapshots: dict[int, list[Any]]
 
 
@@ -141,7 +142,7 @@ def bench_models(subjects: list[_Subject], contexts: list[int], batches: list[in
                 row = {"model": sub.name, "pattern": list(sub.cfg.model.pattern), "context": L, "batch": batch,
                        "predicted_state_bytes": predicted}
                 if sub.name not in states:
-                    rows.append({**row, "skipped": f"state {cost.format_bytes(predicted)} > budget"})
+                    rows.append({**row, "skipped": f"state {binary_bytes(predicted)} > budget"})
                     continue
                 step_s = statistics.median(timed[sub.name])
                 rows.append({**row, "step_ms": 1e3 * step_s, "tokens_per_s": batch / step_s,
@@ -184,27 +185,21 @@ def format_ratios(ratios: list[dict[str, Any]]) -> str:
 
 def format_rows(rows: list[dict[str, Any]]) -> str:
     header = ["model", "batch", "context", "step ms", "tokens/s", "state (measured)", "state (cost model)"]
-    lines = [header]
+    lines = []
     for r in rows:
         if "skipped" in r:
             lines.append([r["model"], str(r["batch"]), str(r["context"]), "-", "-", r["skipped"],
-                          cost.format_bytes(r["predicted_state_bytes"])])
+                          binary_bytes(r["predicted_state_bytes"])])
             continue
         lines.append([r["model"], str(r["batch"]), str(r["context"]), f"{r['step_ms']:.2f}",
-                      f"{r['tokens_per_s']:,.0f}", cost.format_bytes(r["state_bytes"]),
-                      cost.format_bytes(r["predicted_state_bytes"])])
-    widths = [max(len(line[i]) for line in lines) for i in range(len(header))]
-    return "\n".join("  ".join(c.rjust(w) for c, w in zip(line, widths, strict=True)) for line in lines)
+                      f"{r['tokens_per_s']:,.0f}", binary_bytes(r["state_bytes"]),
+                      binary_bytes(r["predicted_state_bytes"])])
+    return aligned_table(header, lines, right=True)
 
 
 def plot_rows(rows: list[dict[str, Any]], path: Path) -> None:
     """Two panels: decode tokens/s vs context (one line per model and batch), state bytes vs context."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    use_palette(matplotlib)
-    import matplotlib.pyplot as plt
-
+    plt = pyplot()
     fig, (ax_speed, ax_state) = plt.subplots(1, 2, figsize=(11, 4))
     keys = sorted({(r["model"], r["batch"]) for r in rows}, key=lambda k: (k[1], k[0]))
     for model, batch in keys:

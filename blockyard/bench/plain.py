@@ -12,11 +12,16 @@ from __future__ import annotations
 
 import dataclasses
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
+from typing import TYPE_CHECKING, cast
 
 import torch
 import torch.nn.functional as F
 from torch import nn
+
+if TYPE_CHECKING:  # names for the converters' signatures only: the loop itself uses none of blockyard's code
+    from blockyard.mixers.attention import GlobalAttention
+    from blockyard.model import Block, LanguageModel
 
 
 @dataclasses.dataclass(frozen=True)
@@ -64,11 +69,14 @@ def rotate(x: torch.Tensor, cos: torch.Tensor, sin: torch.Tensor) -> torch.Tenso
 class PlainTransformer(nn.Module):
     """Embedding -> blocks -> RMSNorm -> tied head scaled by width^-1/2; logits (B, T, V)."""
 
+    cos: torch.Tensor  # (max_len, head_dim / 2) buffers of the rotation angles
+    sin: torch.Tensor
+
     def __init__(self, s: PlainShape, max_len: int) -> None:
         super().__init__()
         self.shape = s
         self.embed = nn.Embedding(s.vocab, s.width)
-        self.blocks = nn.ModuleList(PlainBlock(s) for _ in range(s.depth))
+        self.blocks = cast(Sequence[PlainBlock], nn.ModuleList(PlainBlock(s) for _ in range(s.depth)))
         self.norm = nn.RMSNorm(s.width, eps=s.eps)
         head_dim = s.width // s.heads
         inv_freq = s.rope_base ** (-torch.arange(0, head_dim, 2, dtype=torch.float64) / head_dim)
@@ -88,23 +96,35 @@ class PlainTransformer(nn.Module):
         return F.linear(self.norm(x) * self.shape.width**-0.5, self.embed.weight)
 
 
-def plain_shape_of(model: nn.Module) -> PlainShape:
+def _attention_of(block: Block) -> GlobalAttention:
+    """``block``'s mixer, which must be global attention: the one block the plain loop mirrors."""
+    from blockyard.mixers.attention import GlobalAttention
+
+    if not isinstance(block.mixer, GlobalAttention):
+        raise TypeError(f"the plain loop mirrors global attention only, not {block.mixer.kind!r}")
+    return block.mixer
+
+
+def plain_shape_of(model: LanguageModel) -> PlainShape:
     """The ``PlainShape`` of one of blockyard's global-attention ``LanguageModel`` (MHA, gated MLP, tied head)."""
     cfg = model.cfg
-    mixer = model.blocks[0].mixer
+    mixer = _attention_of(model.blocks[0])
     return PlainShape(vocab=model.vocab_size, width=cfg.width, depth=cfg.depth, heads=mixer.heads,
                       mlp_hidden=cfg.mlp_hidden, rope_base=mixer.options.rope_base, eps=cfg.norm_eps)
 
 
-def load_blockyard_weights(plain: PlainTransformer, model: nn.Module) -> None:
+def load_blockyard_weights(plain: PlainTransformer, model: LanguageModel) -> None:
     """Copy the weights of one of blockyard's ``LanguageModel``s into ``plain`` (same shapes, different names)."""
     with torch.no_grad():
         plain.embed.weight.copy_(model.embed.weight)
         plain.norm.weight.copy_(model.final_norm.weight)
         for mine, theirs in zip(plain.blocks, model.blocks, strict=True):
             mine.norm1.weight.copy_(theirs.mixer_norm.weight)
-            mine.qkv.weight.copy_(theirs.mixer.qkv.weight)
-            mine.attn_out.weight.copy_(theirs.mixer.out.weight)
+            attention = _attention_of(theirs)
+            mine.qkv.weight.copy_(attention.qkv.weight)
+            mine.attn_out.weight.copy_(attention.out.weight)
+            if theirs.mlp_norm is None or theirs.mlp is None:
+                raise TypeError("the plain loop mirrors blocks with an MLP only (model.mlp_hidden > 0)")
             mine.norm2.weight.copy_(theirs.mlp_norm.weight)
             mine.up.weight.copy_(theirs.mlp.proj_in.weight)
             mine.down.weight.copy_(theirs.mlp.proj_out.weight)
@@ -131,7 +151,8 @@ def plain_train_step(model: nn.Module, optimizer: torch.optim.Optimizer, x: torc
     return loss
 
 
-def random_batches(vocab: int, batch: int, seq_len: int, count: int, seed: int = 0) -> list[tuple[torch.Tensor, ...]]:
+def random_batches(vocab: int, batch: int, seq_len: int, count: int,
+                   seed: int = 0) -> list[tuple[torch.Tensor, torch.Tensor]]:
     """``count`` (x, y) next-token batches of uniform random tokens (speed does not depend on the text)."""
     g = torch.Generator().manual_seed(seed)
     out = []

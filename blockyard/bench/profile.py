@@ -6,18 +6,21 @@ import contextlib
 import time
 from collections.abc import Iterator
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import torch
 from torch import nn
 
 from blockyard.bench.cases import BenchCase, trainer_parts
 
+if TYPE_CHECKING:
+    from blockyard.model import LanguageModel
+
 _LABEL = "bench::"
 
 
 @contextlib.contextmanager
-def labelled_forward(model: nn.Module) -> Iterator[None]:
+def labelled_forward(model: LanguageModel) -> Iterator[None]:
     """Open a profiler range around the forward of each part of the model, named by its block kind.
 
     Ranges nest: the innermost one names an op (mixer:<kind>, mlp, embedding); ops of a block

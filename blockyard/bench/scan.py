@@ -16,6 +16,8 @@ def _bench_scan_module() -> Any:
     if not path.exists():
         return None
     spec = importlib.util.spec_from_file_location("blockyard_bench_scan", path)
+    if spec is None or spec.loader is None:
+        raise ImportError(f"{path}: cannot be loaded as a module")
     module = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(module)
     return module

@@ -84,7 +84,9 @@ def _run_bench(steps: int, warmup: int, rounds: int, profile: bool, cases: tuple
         cases = _without_bf16_cases(cases, result, log)
     with tempfile.TemporaryDirectory(prefix="blockyard-bench-cache-") as cache:
         cache_dir = Path(cache)
-        per_round, peaks, runs = [], [], {}
+        per_round: list[dict[str, float]] = []
+        peaks: list[dict[str, float]] = []
+        runs: dict[str, Any] = {}
         for i in range(rounds):
             log(f"round {i + 1}/{rounds}: peaks ({result['machine']['threads']} threads) ...")
             peaks.append(_peaks(result["machine"]["bf16"], gemm_n, copy_bytes))

@@ -24,8 +24,9 @@ from blockyard.cost import measured
 from blockyard.errors import UserError
 from blockyard.mixers import MIXERS
 from blockyard.model import MLP
-from blockyard.palette import use_palette
+from blockyard.plotting import pyplot
 from blockyard.schema import describe
+from blockyard.text import aligned_table, binary_bytes, count_text
 
 # Context lengths at which ``blockyard blocks`` reports state bytes: a short prompt, a long
 # document, a book.
@@ -155,31 +156,6 @@ def state_bytes(cfg: Config | ModelConfig, context: int, batch: int = 1) -> int:
     return sum(layer_state_bytes(model, context, batch))
 
 
-# ----------------------------------------------------------------------------- formatting
-
-
-def format_count(n: float) -> str:
-    """1234567 -> '1.23M' (SI prefixes, three significant digits)."""
-    for div, suffix in ((1e12, "T"), (1e9, "G"), (1e6, "M"), (1e3, "k")):
-        if abs(n) >= div:
-            return f"{n / div:.3g}{suffix}"
-    return f"{n:.3g}" if isinstance(n, float) and not float(n).is_integer() else str(int(n))
-
-
-def format_bytes(n: float) -> str:
-    """Binary prefixes: 1536 -> '1.5 KiB'."""
-    for div, suffix in ((2**40, "TiB"), (2**30, "GiB"), (2**20, "MiB"), (2**10, "KiB")):
-        if n >= div:
-            return f"{n / div:.3g} {suffix}"
-    return f"{int(n)} B"
-
-
-def _table(header: list[str], rows: list[list[str]]) -> str:
-    widths = [max(len(str(c)) for c in col) for col in zip(header, *rows, strict=True)]
-    lines = ["  ".join(str(c).ljust(w) for c, w in zip(r, widths, strict=True)).rstrip() for r in [header, *rows]]
-    return "\n".join(lines)
-
-
 def describe_registry() -> str:
     """The registered mixer kinds, their summary and option keys with defaults (read from code)."""
     parts = []
@@ -204,24 +180,24 @@ def describe_config(cfg: Config, vocab_size: int | None = None) -> str:
         "parameters",
     ]
     for key, n in params.items():
-        lines.append(f"  {key:<24} {n:>12,d}  ({format_count(n)})")
+        lines.append(f"  {key:<24} {n:>12,d}  ({count_text(n)})")
     lines += ["", "layers"]
     states = {L: layer_state_bytes(model, L) for L in REPORT_CONTEXTS}
     header = ["layer", "name", "kind", "mixer params", "extra FLOPs/tok"] + [f"state@{L}" for L in REPORT_CONTEXTS]
     rows = [
-        [str(r.layer), r.name, r.kind, f"{r.mixer_params:,d}", format_count(r.extra_flops_per_token)]
-        + [format_bytes(states[L][r.layer]) for L in REPORT_CONTEXTS]
+        [str(r.layer), r.name, r.kind, f"{r.mixer_params:,d}", count_text(r.extra_flops_per_token)]
+        + [binary_bytes(states[L][r.layer]) for L in REPORT_CONTEXTS]
         for r in layer_costs(model, cfg.data.seq_len)
     ]
-    lines += ["  " + line for line in _table(header, rows).splitlines()]
+    lines.append(aligned_table(header, rows, indent="  "))
     lines += [
         "",
         f"training FLOPs/token at seq_len={cfg.data.seq_len} (6N + mixer terms, embeddings excluded; "
         "Kaplan et al. 2020): "
-        f"{format_count(flops['total'])}  (6N {format_count(flops['dense'])}, "
-        f"mixers {format_count(flops['mixer_extra'])}; head 6*d*vocab {format_count(flops['head'])} not included)",
+        f"{count_text(flops['total'])}  (6N {count_text(flops['dense'])}, "
+        f"mixers {count_text(flops['mixer_extra'])}; head 6*d*vocab {count_text(flops['head'])} not included)",
         "inference state per sequence: "
-        + ", ".join(f"L={L}: {format_bytes(sum(states[L]))}" for L in REPORT_CONTEXTS),
+        + ", ".join(f"L={L}: {binary_bytes(sum(states[L]))}" for L in REPORT_CONTEXTS),
     ]
     note = measured_note(model)
     return "\n".join(lines + ([note] if note else []))
@@ -238,12 +214,7 @@ def measured_note(model: ModelConfig) -> str:
 
 def plot_state_bytes(cfgs: list[Config], path: str | Path, contexts: list[int] | None = None) -> Path:
     """Log-log PNG of inference state bytes (batch 1) vs context length, one line per config."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    use_palette(matplotlib)
-    import matplotlib.pyplot as plt
-
+    plt = pyplot()
     contexts = contexts or [2**k for k in range(4, 18)]
     fig, ax = plt.subplots(figsize=(6, 4))
     for cfg in cfgs:

@@ -22,13 +22,16 @@ from __future__ import annotations
 
 import dataclasses
 from collections.abc import Callable
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import torch
 import torch.nn.functional as F
 from torch import nn
 
 from blockyard.config import Config, ModelConfig
+
+if TYPE_CHECKING:
+    from blockyard.model import LanguageModel
 
 
 @dataclasses.dataclass(frozen=True)
@@ -53,7 +56,7 @@ def _fake_mode() -> Any:
     return FakeTensorMode()
 
 
-def saved_bytes_by_part(model: nn.Module, tokens: torch.Tensor) -> tuple[dict[str, int], int, int]:
+def saved_bytes_by_part(model: LanguageModel, tokens: torch.Tensor) -> tuple[dict[str, int], int, int]:
     """Run forward + mean cross-entropy, counting saved-for-backward storages per part.
 
     Returns (bytes by part, largest saved storage, bytes of one block's input). Works on real and

@@ -50,6 +50,9 @@ class CorpusData(TokenData):
     """Windows of a prepared text corpus (memmaps; nothing is copied into memory)."""
 
     is_task = False
+    train_tokens: np.ndarray  # a corpus has all three splits (an empty split is an empty array)
+    val_tokens: np.ndarray
+    test_tokens: np.ndarray
 
     def __init__(self, prepared: PreparedCorpus, seq_len: int, seed: int, batch_size: int, eval_windows: int):
         self.prepared = prepared

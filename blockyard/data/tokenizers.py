@@ -14,9 +14,12 @@ import json
 import re
 from collections.abc import Iterable, Iterator
 from pathlib import Path
-from typing import Protocol
+from typing import TYPE_CHECKING, Protocol
 
 import numpy as np
+
+if TYPE_CHECKING:  # the type only: the code imports the library where it uses it
+    from tokenizers import Tokenizer as LibraryTokenizer
 
 UNKNOWN_CHAR = "\ufffd"
 PIECE_CHARS = 1 << 20
@@ -190,7 +193,7 @@ class BpeTokenizer:
 
     kind = "bpe"
 
-    def __init__(self, backend: object, vocab_size: int) -> None:
+    def __init__(self, backend: LibraryTokenizer, vocab_size: int) -> None:
         self.backend = backend
         self.vocab_size = vocab_size
         self.learned_size = backend.get_vocab_size()
@@ -198,7 +201,7 @@ class BpeTokenizer:
             raise ValueError(f"learned vocabulary {self.learned_size} exceeds {vocab_size}")
 
     @staticmethod
-    def empty_backend() -> object:
+    def empty_backend() -> LibraryTokenizer:
         from tokenizers import Tokenizer as LibraryTokenizer
         from tokenizers import decoders, models, pre_tokenizers
 

@@ -26,11 +26,11 @@ from typing import Any
 import torch
 import torch.nn.functional as F
 
-from blockyard import fs
 from blockyard.data.batches import IGNORE_INDEX
 from blockyard.errors import UserError
-from blockyard.palette import use_palette
+from blockyard.plotting import finish, pyplot
 from blockyard.rundir import EVAL_FILE, read_json, read_metrics, writing
+from blockyard.text import aligned_table
 
 Batches = list[tuple[torch.Tensor, torch.Tensor]]
 
@@ -122,6 +122,8 @@ def windows_loss(model: torch.nn.Module, batches: Batches, n_buckets: int) -> Bu
     for x, y in batches:
         part = position_bucket_loss(model(x), y, n_buckets)
         total = part if total is None else total + part
+    if total is None:
+        raise ValueError("no windows to evaluate")
     return total
 
 
@@ -160,19 +162,17 @@ def format_table(rows: list[dict[str, Any]]) -> str:
     """Lengths down, position buckets across (nats per token)."""
     n = max(len(r["bucket_loss"]) for r in rows)
     header = ["length", "tokens", "loss", "bits/tok"] + [f"b{i + 1}" for i in range(n)]
-    lines = [header]
+    lines = []
     for r in rows:
         buckets = [f"{v:.3f}" for v in r["bucket_loss"]] + [""] * (n - len(r["bucket_loss"]))
         lines.append([r["label"], str(r["length"]), f"{r['loss']:.4f}", f"{r['bits_per_token']:.3f}", *buckets])
-    widths = [max(len(line[i]) for line in lines) for i in range(len(header))]
-    return "\n".join("  ".join(c.rjust(w) for c, w in zip(line, widths, strict=True)) for line in lines)
+    return aligned_table(header, lines, right=True)
 
 
 def merge_eval(old: dict[str, Any] | None, new: dict[str, Any]) -> dict[str, Any]:
     """eval.json after an evaluation: rows of other lengths (and probes) survive if they were
     measured on the same checkpoint of the same config; otherwise the file starts over."""
-    same = old is not None and old.get("step") == new["step"] and old.get("config_hash") == new["config_hash"]
-    if not same:
+    if old is None or old.get("step") != new["step"] or old.get("config_hash") != new["config_hash"]:
         return new
     by_length = {r["length"]: r for r in old.get("lengths", [])}
     by_length.update({r["length"]: r for r in new.get("lengths", [])})
@@ -243,29 +243,13 @@ def mean_buckets(evals: list[dict[str, Any]], length: int) -> tuple[list[float],
     return centres, means
 
 
-def save_figure(fig: Any, path: str | Path) -> Path:
-    """Write ``fig`` as a PNG at ``path`` (folders created), close it, return the path."""
-    import matplotlib.pyplot as plt
-
-    out = Path(path)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    fs.atomic_write(out, lambda f: fig.savefig(f, format="png", dpi=120), what="a report plot")
-    plt.close(fig)
-    return out
-
-
 def plot_length_extrapolation(evals: dict[str, list[dict[str, Any]]], path: str | Path) -> Path:
     """PNG for a grid report: per variant (key), loss vs evaluation length, and loss per position
     at the longest length all its runs share; the training seq_len is marked. ``evals`` maps a
     variant label to the eval.json dicts of its runs (seeds)."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    use_palette(matplotlib)
-    import matplotlib.pyplot as plt
-
+    plt = pyplot()
     fig, (ax_len, ax_pos) = plt.subplots(1, 2, figsize=(11, 4))
-    seq_lens = set()
+    seq_lens: set[int] = set()
     for label, runs in evals.items():
         runs = [e for e in runs if e and e.get("lengths")]
         lengths, losses = mean_by_length(runs)
@@ -286,8 +270,7 @@ def plot_length_extrapolation(evals: dict[str, list[dict[str, Any]]], path: str 
     ax_pos.set_xlabel("position in the window (bucket centre)")
     ax_len.set_title("length extrapolation")
     ax_pos.set_title("loss by position at the longest length")
-    fig.tight_layout()
-    return save_figure(fig, path)
+    return finish(fig, path, dpi=120)
 
 
 def probe_curves(line: dict[str, Any]) -> dict[str, list[tuple[int, float]]]:
@@ -304,12 +287,7 @@ def probe_curves(line: dict[str, Any]) -> dict[str, list[tuple[int, float]]]:
 def plot_probe_accuracy(lines: dict[str, list[dict[str, Any]]], path: str | Path) -> Path | None:
     """PNG for a grid report: one panel per probe, accuracy vs size, one line per variant (key),
     averaged over its runs' final val lines. Returns the path, or None when no line holds probes."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    use_palette(matplotlib)
-    import matplotlib.pyplot as plt
-
+    plt = pyplot()
     by_variant = {label: [probe_curves(line) for line in runs] for label, runs in lines.items()}
     names = sorted({p for curves in by_variant.values() for c in curves for p in c})
     if not names:
@@ -330,8 +308,7 @@ def plot_probe_accuracy(lines: dict[str, list[dict[str, Any]]], path: str | Path
         ax.set_title(f"probe: {name}")
         ax.grid(True, which="both", alpha=0.3)
         ax.legend(fontsize=7)
-    fig.tight_layout()
-    return save_figure(fig, path)
+    return finish(fig, path, dpi=120)
 
 
 def report_figures(out_dir: str | Path, run_dirs: dict[str, list[Path]]) -> list[tuple[str, str]]:

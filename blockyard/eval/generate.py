@@ -11,11 +11,16 @@ from __future__ import annotations
 import dataclasses
 import sys
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import torch
 
 from blockyard.errors import UserError
+
+if TYPE_CHECKING:
+    from blockyard.config import Config
+    from blockyard.data import TokenData
+    from blockyard.model import LanguageModel
 
 
 @dataclasses.dataclass(frozen=True)
@@ -48,7 +53,7 @@ def sample_next(
 
 
 @torch.no_grad()
-def prefill(model: torch.nn.Module, prompt: torch.Tensor, states: list[Any]) -> tuple[torch.Tensor, list[Any]]:
+def prefill(model: LanguageModel, prompt: torch.Tensor, states: list[Any]) -> tuple[torch.Tensor, list[Any]]:
     """Step the prompt ``(B, T)`` through the model; returns logits ``(B, T, V)`` and the states after it."""
     logits = []
     for t in range(prompt.shape[1]):
@@ -59,7 +64,7 @@ def prefill(model: torch.nn.Module, prompt: torch.Tensor, states: list[Any]) -> 
 
 @torch.no_grad()
 def generate(
-    model: torch.nn.Module,
+    model: LanguageModel,
     prompt: torch.Tensor,
     n_tokens: int,
     *,
@@ -97,9 +102,9 @@ class LoadedRun:
     """A trained run ready for inference: its config, data (tokenizer, windows) and model at ``step``."""
 
     path: Path
-    cfg: Any  # blockyard.config.Config
-    data: Any  # blockyard.data.TokenData
-    model: torch.nn.Module
+    cfg: Config
+    data: TokenData
+    model: LanguageModel
     step: int
 
 

@@ -27,7 +27,7 @@ from __future__ import annotations
 
 import dataclasses
 from collections.abc import Callable, Sequence
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
@@ -35,6 +35,10 @@ import torch
 from blockyard.data.batches import IGNORE_INDEX, count_correct, stream_rng
 from blockyard.data.tasks import FILLER, KEY_SENTENCE, QUESTION, TASKS, mqar_min_seq_len, task_batches
 from blockyard.errors import ConfigError
+
+if TYPE_CHECKING:
+    from blockyard.config import Config
+    from blockyard.model import LanguageModel
 
 Batch = tuple[torch.Tensor, torch.Tensor]
 PROBE_STREAM = 21  # generator stream of the passkey probes (the data layer uses 11-14)
@@ -175,7 +179,7 @@ def run_probe_sets(model: torch.nn.Module, sets: Sequence[ProbeSet], device: Any
 
 
 def run_probes(
-    model: torch.nn.Module, cfg: Any, tokenizer: Any, names: Sequence[str] | None = None
+    model: LanguageModel, cfg: Config, tokenizer: Any, names: Sequence[str] | None = None
 ) -> dict[str, float]:
     """Build and run the probes of ``names`` (default ``cfg.eval.probes``) on ``model``: {metric: accuracy}."""
     device = next(model.parameters()).device
@@ -183,7 +187,9 @@ def run_probes(
 
 
 def make_eval_hook(cfg: Any, data: Any) -> Callable[[torch.nn.Module, Any], dict[str, float]] | None:
-    """The trainer's eval hook for ``cfg.eval.probes`` (None when empty).
+    """The trainer's eval hook for ``cfg.eval.probes`` (None when empty): an ``EvalHookBuilder`` of
+    ``blockyard.train.loop``, passed to ``run_training`` by ``blockyard train`` (the trainer, a lower layer,
+    does not import the evaluation code).
 
     The probe batches are built here, once, so a probe that cannot run on this model fails
     before training starts, and every evaluation sees the same sequences.

@@ -2,7 +2,9 @@
 
 - ``spec``: the grid file format and its expansion into cells.
 - ``fairness``: params / FLOPs per cell, and matching variants on parameters or FLOPs.
-- ``run``: the grid dir, resume, the index updates; ``executors``: local processes or Ray tasks.
+- ``plan``: the cells with fairness and threads applied, costs, hashes, time estimates; ``dryrun``: ``--dry-run``'s
+  text; ``griddir``: the grid dir's lock and refusals, superseded cells moved aside.
+- ``run``: rounds of cells trained, resume, the index updates; ``executors``: local processes or Ray tasks.
 - ``index``: the SQLite record of every cell; ``status``: the progress line.
 - ``stats``: pure statistics (intervals, verdict rule, power, sequential levels); ``verdicts``: the
   comparisons of a grid and their family; ``rounds``: seeds added until decided.

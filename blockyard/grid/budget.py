@@ -1,6 +1,6 @@
 """Plan a grid's budget before spending it: what its worst case can decide, and ``seeds: {most: auto}``.
 
-Pure functions over numbers (the dry run in ``blockyard.grid.run`` measures the times and reads
+Pure functions over numbers (the dry run (``blockyard.grid.dryrun``) measures the times and reads
 the noise, ``blockyard.grid.noise_files``):
 
 - The paired sd of a comparison comes from an earlier grid of similar models (``--noise-from``;

@@ -14,6 +14,9 @@ main thread. On Linux each child asks the kernel for SIGTERM when the grid proce
 (``PR_SET_PDEATHSIG``), so even ``kill -9`` of the grid stops its cells, which then checkpoint.
 The Ray executor runs the same command inside Ray tasks (``num_cpus`` = threads per cell); with a
 multi-machine cluster the grid dir must be on a filesystem every machine sees at the same path.
+
+Both run the same loop (``run_jobs``); what differs, how a cell is started, found ended and stopped,
+is a ``Launcher``: ``LocalProcesses`` or ``RayTasks``.
 """
 
 from __future__ import annotations
@@ -106,14 +109,15 @@ def _die_with_parent(parent_pid: int) -> Callable[[], None] | None:
     return setup
 
 
-def start_cell_process(job: CellJob) -> subprocess.Popen:
-    job.log_path.parent.mkdir(parents=True, exist_ok=True)
-    log = open(job.log_path, "ab")  # noqa: SIM115 - the child holds it; closed right after the fork
+def start_command(command: list[str], log_path: Path, threads: int, tag: str = "") -> subprocess.Popen:
+    """Start a cell's command, its output appended to ``log_path`` after a dated header line (``tag`` in it)."""
+    log_path.parent.mkdir(parents=True, exist_ok=True)
+    log = open(log_path, "ab")  # noqa: SIM115 - the child holds it; closed right after the fork
     try:
-        log.write(f"\n=== {time.strftime('%Y-%m-%d %H:%M:%S')} {' '.join(job.command())}\n".encode())
+        log.write(f"\n=== {time.strftime('%Y-%m-%d %H:%M:%S')} {tag}{' '.join(command)}\n".encode())
         log.flush()
-        return subprocess.Popen(job.command(), stdout=log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
-                                env=child_env(job.threads), preexec_fn=_die_with_parent(os.getpid()))
+        return subprocess.Popen(command, stdout=log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
+                                env=child_env(threads), preexec_fn=_die_with_parent(os.getpid()))
     finally:
         log.close()
 
@@ -133,47 +137,88 @@ class _StopSignals:
             signal.signal(s, handler)
 
 
-def _stop_processes(running: dict[str, tuple[CellJob, subprocess.Popen]], events: Events) -> None:
-    """SIGTERM every running cell (the trainer checkpoints and exits 143), wait, then record them."""
-    for _job, proc in running.values():
-        if proc.poll() is None:
-            try:
-                proc.send_signal(signal.SIGTERM)
-            except ProcessLookupError:
-                pass
-    deadline = time.monotonic() + STOP_GRACE_S
-    for job, proc in running.values():
-        try:
-            code = proc.wait(timeout=max(0.1, deadline - time.monotonic()))
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            code = proc.wait()
-        events.finished(job, code, "stopped by the grid")
+Running = dict[str, tuple[CellJob, Any]]  # job id -> (job, the launcher's handle), in start order
+Ended = tuple[str, int | None, str | None]  # job id, exit code (None: no code, e.g. a lost Ray worker), message
 
 
-def run_local(jobs: list[CellJob], workers: int, events: Events, *, poll_s: float = 0.5) -> None:
-    """Run ``jobs`` as subprocesses, at most ``workers`` at a time; raises GridStopped on a signal."""
+class Launcher(Protocol):
+    """What differs between executors: how a cell is started, how ended cells are found, how all are stopped."""
+
+    def start(self, job: CellJob) -> Any:
+        """Start ``job``; returns the handle ``ended`` and ``stop`` get back."""
+        ...
+
+    def ended(self, running: Running) -> list[Ended]:
+        """(job id, exit code, message) of the running cells that ended, waiting a moment when none has."""
+        ...
+
+    def stop(self, running: Running) -> dict[str, int | None]:
+        """Stop every running cell cleanly (it checkpoints), waiting up to ``STOP_GRACE_S``; each one's exit code."""
+        ...
+
+
+def run_jobs(jobs: list[CellJob], workers: int, events: Events, launcher: Launcher) -> None:
+    """The one executor loop: keep up to ``workers`` cells running, report each start and end to ``events``;
+    on SIGINT / SIGTERM stop the running cells through ``launcher``, record them, and raise GridStopped."""
     queue = list(jobs)
-    running: dict[str, tuple[CellJob, subprocess.Popen]] = {}
+    running: Running = {}
     with _StopSignals():
         try:
             while queue or running:
                 while queue and len(running) < workers:
                     job = queue.pop(0)
-                    running[job.id] = (job, start_cell_process(job))
+                    running[job.id] = (job, launcher.start(job))
                     events.started(job)
-                for cid, (job, proc) in list(running.items()):
-                    code = proc.poll()
-                    if code is not None:
-                        del running[cid]
-                        events.finished(job, code, None)
+                for cid, code, message in launcher.ended(running) if running else []:
+                    job, _handle = running.pop(cid)
+                    events.finished(job, code, message)
                 events.tick()
-                if running:
-                    time.sleep(poll_s)
         except GridStopped:
             signal.signal(signal.SIGINT, signal.SIG_IGN)  # a second Ctrl-C must not cut the cleanup
-            _stop_processes(running, events)
+            codes = launcher.stop(running)
+            for cid, (job, _handle) in running.items():
+                events.finished(job, codes.get(cid), "stopped by the grid")
             raise
+
+
+@dataclasses.dataclass(frozen=True)
+class LocalProcesses:
+    """Cells as child processes of the grid process, polled every ``poll_s`` seconds."""
+
+    poll_s: float = 0.5
+
+    def start(self, job: CellJob) -> subprocess.Popen:
+        return start_command(job.command(), job.log_path, job.threads)
+
+    def ended(self, running: Running) -> list[Ended]:
+        out: list[Ended] = [(cid, code, None) for cid, (_job, proc) in running.items()
+                            if (code := proc.poll()) is not None]
+        if not out:
+            time.sleep(self.poll_s)
+        return out
+
+    def stop(self, running: Running) -> dict[str, int | None]:
+        """SIGTERM every running cell (the trainer checkpoints and exits 143), wait, kill what outlives the grace."""
+        for _job, proc in running.values():
+            if proc.poll() is None:
+                try:
+                    proc.send_signal(signal.SIGTERM)
+                except ProcessLookupError:
+                    pass
+        deadline = time.monotonic() + STOP_GRACE_S
+        codes: dict[str, int | None] = {}
+        for cid, (_job, proc) in running.items():
+            try:
+                codes[cid] = proc.wait(timeout=max(0.1, deadline - time.monotonic()))
+            except subprocess.TimeoutExpired:
+                proc.kill()
+                codes[cid] = proc.wait()
+        return codes
+
+
+def run_local(jobs: list[CellJob], workers: int, events: Events, *, poll_s: float = 0.5) -> None:
+    """Run ``jobs`` as subprocesses, at most ``workers`` at a time; raises GridStopped on a signal."""
+    run_jobs(jobs, workers, events, LocalProcesses(poll_s))
 
 
 # ----------------------------------------------------------------------------- ray
@@ -189,22 +234,16 @@ def import_ray() -> Any:
 
 def run_cell_command(command: list[str], log_path: str, threads: int) -> int:
     """Body of a Ray task: run one cell's command to its end; stop it cleanly if the task is cancelled."""
-    job_log = Path(log_path)
-    job_log.parent.mkdir(parents=True, exist_ok=True)
-    with open(job_log, "ab") as log:
-        log.write(f"\n=== {time.strftime('%Y-%m-%d %H:%M:%S')} (ray) {' '.join(command)}\n".encode())
-        log.flush()
-        proc = subprocess.Popen(command, stdout=log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
-                                env=child_env(threads), preexec_fn=_die_with_parent(os.getpid()))
+    proc = start_command(command, Path(log_path), threads, "(ray) ")
+    try:
+        return proc.wait()
+    except BaseException:
+        proc.send_signal(signal.SIGTERM)
         try:
-            return proc.wait()
-        except BaseException:
-            proc.send_signal(signal.SIGTERM)
-            try:
-                proc.wait(timeout=STOP_GRACE_S)
-            except subprocess.TimeoutExpired:
-                proc.kill()
-            raise
+            proc.wait(timeout=STOP_GRACE_S)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+        raise
 
 
 def connect_ray(address: str | None, cores: int) -> Any:
@@ -222,6 +261,41 @@ def connect_ray(address: str | None, cores: int) -> Any:
     return ray
 
 
+@dataclasses.dataclass(frozen=True)
+class RayTasks:
+    """Cells as Ray tasks (``run_cell_command``, ``num_cpus`` = the cell's threads), waited on ``poll_s`` at a time."""
+
+    ray: Any  # the connected module (``connect_ray``)
+    task: Any  # ``ray.remote(run_cell_command)``
+    poll_s: float = 1.0
+
+    def start(self, job: CellJob) -> Any:
+        return self.task.options(num_cpus=job.threads, max_retries=0, name=f"cell {job.id}").remote(
+            job.command(), str(job.log_path), job.threads)
+
+    def ended(self, running: Running) -> list[Ended]:
+        by_ref = {ref: cid for cid, (_job, ref) in running.items()}
+        ready, _ = self.ray.wait(list(by_ref), num_returns=1, timeout=self.poll_s)
+        out: list[Ended] = []
+        for ref in ready:
+            try:
+                out.append((by_ref[ref], int(self.ray.get(ref)), None))
+            except Exception as e:  # a lost worker or node: the cell is failed, the grid goes on
+                out.append((by_ref[ref], None, f"ray task failed: {str(e).strip().splitlines()[-1][:200]}"))
+        return out
+
+    def stop(self, running: Running) -> dict[str, int | None]:
+        """Cancel every task (``run_cell_command`` then SIGTERMs its cell, which checkpoints) and wait for it."""
+        for _job, ref in running.values():
+            self.ray.cancel(ref)
+        for _job, ref in running.values():
+            try:
+                self.ray.get(ref, timeout=STOP_GRACE_S)
+            except Exception:
+                pass
+        return dict.fromkeys(running, 143)
+
+
 def run_ray(jobs: list[CellJob], workers: int | None, events: Events, *, address: str | None, cores: int,
             poll_s: float = 1.0) -> None:
     """Run ``jobs`` as Ray tasks (at most ``workers`` in flight; None: as the cluster's CPUs allow)."""
@@ -230,37 +304,6 @@ def run_ray(jobs: list[CellJob], workers: int | None, events: Events, *, address
         if workers is None:
             cpus = int(ray.cluster_resources().get("CPU", 1))
             workers = max(1, cpus // max(1, min((j.threads for j in jobs), default=1)))
-        task = ray.remote(run_cell_command)
-        queue = list(jobs)
-        in_flight: dict[Any, CellJob] = {}
-        with _StopSignals():
-            try:
-                while queue or in_flight:
-                    while queue and len(in_flight) < workers:
-                        job = queue.pop(0)
-                        ref = task.options(num_cpus=job.threads, max_retries=0, name=f"cell {job.id}").remote(
-                            job.command(), str(job.log_path), job.threads)
-                        in_flight[ref] = job
-                        events.started(job)
-                    ready, _ = ray.wait(list(in_flight), num_returns=1, timeout=poll_s)
-                    for ref in ready:
-                        job = in_flight.pop(ref)
-                        try:
-                            code, message = int(ray.get(ref)), None
-                        except Exception as e:  # a lost worker or node: the cell is failed, the grid goes on
-                            code, message = None, f"ray task failed: {str(e).strip().splitlines()[-1][:200]}"
-                        events.finished(job, code, message)
-                    events.tick()
-            except GridStopped:
-                signal.signal(signal.SIGINT, signal.SIG_IGN)
-                for ref in in_flight:
-                    ray.cancel(ref)
-                for ref, job in in_flight.items():
-                    try:
-                        ray.get(ref, timeout=STOP_GRACE_S)
-                    except Exception:
-                        pass
-                    events.finished(job, 143, "stopped by the grid")
-                raise
+        run_jobs(jobs, workers, events, RayTasks(ray, ray.remote(run_cell_command), poll_s))
     finally:
         ray.shutdown()

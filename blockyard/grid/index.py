@@ -17,7 +17,7 @@ import sqlite3
 import time
 from collections.abc import Iterator
 from pathlib import Path
-from typing import Any
+from typing import Any, TypedDict
 
 from blockyard import fs
 
@@ -59,6 +59,41 @@ CREATE TABLE IF NOT EXISTS cells (
     peak_rss_bytes INTEGER
 );
 """
+
+
+
+class CellRow(TypedDict):
+    """One cell's record as ``GridIndex.cells`` returns it: the columns above, point and adjustments decoded.
+
+    What flows from the index to the verdicts, the report and ``--status``; the summary columns are None
+    until the cell has finished (and stay None where its summary lacks them).
+    """
+
+    id: str
+    position: int
+    variant: str
+    seed: int
+    point: list[tuple[str, Any]]  # [(dotted axis key, value)], in the axes' order
+    config_hash: str
+    adjustments: dict[str, Any]  # fairness adjustments: dotted key -> value used
+    planned_tokens: int
+    flops_per_token: float | None
+    status: str  # pending, running, done, diverged, failed, interrupted
+    attempts: int
+    started_at: float | None
+    ended_at: float | None
+    exit_code: int | None
+    message: str | None
+    final_val_loss: float | None
+    best_val_loss: float | None
+    params_total: int | None
+    params_non_embedding: int | None
+    tokens_seen: int | None
+    steps: int | None
+    wall_s: float | None
+    tokens_per_s: float | None
+    peak_rss_bytes: int | None
+
 
 # SQLite's primary result codes (sqlite.org/rescode.html) for storage failures, as the errno they stand for.
 _SQLITE_STORAGE = {13: errno.ENOSPC, 10: errno.EIO, 8: errno.EROFS, 3: errno.EACCES, 14: errno.EACCES}
@@ -103,9 +138,10 @@ class GridIndex:
         except sqlite3.Error as e:
             code = getattr(e, "sqlite_errorcode", None)
             number = None if code is None else _SQLITE_STORAGE.get(code & 0xFF)
-            if number is None:
+            failure = None if number is None else fs.write_failure(OSError(number, str(e)), self.path, "the grid index")
+            if failure is None:
                 raise
-            raise fs.write_failure(OSError(number, str(e)), self.path, "the grid index") from None
+            raise failure from None
 
     @contextlib.contextmanager
     def transaction(self) -> Iterator[sqlite3.Connection]:
@@ -196,18 +232,18 @@ class GridIndex:
                  cell_id),
             )
 
-    def cells(self) -> list[dict[str, Any]]:
-        """Every cell's record as a dict (point and adjustments decoded), in plan order."""
+    def cells(self) -> list[CellRow]:
+        """Every cell's record (point and adjustments decoded), in plan order."""
         rows = self._db.execute("SELECT * FROM cells ORDER BY position").fetchall()
         out = []
         for r in rows:
             d = dict(r)
             d["point"] = [tuple(p) for p in json.loads(d["point"])]
             d["adjustments"] = json.loads(d["adjustments"])
-            out.append(d)
+            out.append(CellRow(**d))  # type: ignore[typeddict-item]  # the columns are CellRow's keys
         return out
 
-    def cell(self, cell_id: str) -> dict[str, Any] | None:
+    def cell(self, cell_id: str) -> CellRow | None:
         return next((c for c in self.cells() if c["id"] == cell_id), None)
 
 

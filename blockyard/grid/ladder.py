@@ -26,12 +26,12 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import math
 from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 from blockyard.errors import ConfigError
 from blockyard.rundir import format_duration
+from blockyard.text import aligned_table
 
 RUNG = "rung"  # the point key of a rung
 LADDER_KEYS = ("ladder", "tokens_per_param", "ladder_target")
@@ -70,19 +70,16 @@ class Ladder:
                          for key, v in self.rungs[k - 1].items()) or "-"
 
 
-def _is_number(x: Any) -> bool:
-    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
-
-
-def parse_ladder(data: Mapping[str, Any], check_key: Callable[[str, Any], str]) -> Ladder | None:
-    """The ladder keys of a grid mapping, validated (None when the grid has no ``ladder``).
+def parse_ladder(raw: Any, tpp: float | None, target: float | None,
+                 check_key: Callable[[str, Any], str]) -> Ladder | None:
+    """The grid's ``ladder`` (rungs), with ``tokens_per_param`` and ``ladder_target`` (numbers > 0, already checked
+    by the grid file's schema), validated; None when the grid has no ``ladder``.
 
     ``check_key(path, key)`` is the spec's check of one override key (dotted, not reserved).
     """
-    raw = data.get("ladder")
     if raw is None:
-        for key in LADDER_KEYS[1:]:
-            if key in data:
+        for key, value in zip(LADDER_KEYS[1:], (tpp, target), strict=True):
+            if value is not None:
                 raise ConfigError(key, "needs a ladder: (a list of rungs, each a mapping of dotted keys to values)")
         return None
     allowed = f"a list of at least {MIN_RUNGS} rungs, smallest first, each a mapping of dotted keys to values"
@@ -100,19 +97,12 @@ def parse_ladder(data: Mapping[str, Any], check_key: Callable[[str, Any], str]) 
     for k, text in enumerate(texts, start=1):
         if texts.index(text) != k - 1:
             raise ConfigError(f"ladder.{RUNG}{k}", f"repeats rung {texts.index(text) + 1}; every rung needs its size")
-    tpp = data.get("tokens_per_param")
-    if tpp is not None and (not _is_number(tpp) or tpp <= 0):
-        raise ConfigError("tokens_per_param", f"{tpp!r}: a number > 0 (training tokens per non-embedding parameter "
-                          "of the reference at each rung; about 20 is compute-optimal)")
     if tpp is not None:
         for k, rung in enumerate(rungs, start=1):
             if BUDGET_KEY in rung:
                 raise ConfigError(f"ladder.{RUNG}{k}.{BUDGET_KEY}",
                                   "set by tokens_per_param; set each key in one place")
-    target = data.get("ladder_target")
-    if target is not None and (not _is_number(target) or target <= 0):
-        raise ConfigError("ladder_target", f"{target!r}: a non-embedding parameter count (> 0) to extrapolate to")
-    return Ladder(tuple(rungs), None if tpp is None else float(tpp), None if target is None else float(target))
+    return Ladder(tuple(rungs), tpp, target)
 
 
 def check_conflicts(ladder: Ladder, axes: Mapping[str, Any], variants: Mapping[str, Mapping[str, Any]]) -> None:
@@ -212,18 +202,17 @@ def rung_summary(ladder: Ladder, reference: str | None, cells: Sequence[RungCell
         ref = [c for c in at if c.variant == reference] or at
         params = sorted({c.params_non_embedding for c in ref})
         tokens = sorted({c.tokens for c in ref})
-        secs = [c.seconds for c in at]
-        t = sum(secs) if secs and all(s is not None for s in secs) else None  # type: ignore[misc]
+        secs = [c.seconds for c in at if c.seconds is not None]
+        t = sum(secs) if at and len(secs) == len(at) else None  # unknown if any cell's time is
         total_time = None if t is None or total_time is None else total_time + t
         rows.append([str(k), ladder.overrides_text(k), " / ".join(f"{p:,d}" for p in params),
                      " / ".join(f"{x:,d}" for x in tokens), str(len(at)), "-" if t is None else format_duration(t)])
     rows.append(["total", "", "", "", str(len(cells)), "-" if total_time is None else format_duration(total_time)])
-    widths = [max(len(r[i]) for r in [header, *rows]) for i in range(len(header))]
     budget_text = (f"{ladder.tokens_per_param:g} tokens per non-embedding parameter of the reference"
                    if ladder.tokens_per_param is not None else "the base's budget at every rung (fixed)")
     lines = [f"Ladder: {len(ladder.rungs)} rungs; token budget: {budget_text}"
              + (f"; target N={ladder.target:.3g}" if ladder.target else "")]
-    lines += ["  " + "  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)).rstrip() for r in [header, *rows]]
+    lines += aligned_table(header, rows, indent="  ").splitlines()
     return lines
 
 

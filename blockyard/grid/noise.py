@@ -24,7 +24,7 @@ from collections.abc import Mapping
 import numpy as np
 
 from blockyard.grid import stats
-from blockyard.grid.verdicts import Family, GroupKey
+from blockyard.grid.verdicts import Family, GroupKey, point_text
 
 # seed -> evaluation step -> validation loss, for one group
 Curves = Mapping[int, Mapping[int, float]]
@@ -53,6 +53,12 @@ class NoiseCurve:
     null_control: bool
     alpha: float  # the two-sided level of its verdict's interval
     points: tuple[NoisePoint, ...]
+
+    @property
+    def label(self) -> str:
+        """The comparison in words; the null control's marked as the A/A comparison it is."""
+        return (self.variant + (" (A/A)" if self.null_control else "")
+                + (f" at {point_text(self.point)}" if self.point else ""))
 
     @property
     def final(self) -> NoisePoint | None:

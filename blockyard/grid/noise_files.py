@@ -7,20 +7,19 @@ and ``blockyard.grid.verdicts``'.
 
 from __future__ import annotations
 
-import math
 from pathlib import Path
-from typing import Any
 
 from blockyard.errors import UserError
 from blockyard.grid.budget import NoiseEstimate, pooled_sd
-from blockyard.grid.index import INDEX_NAME, open_index
+from blockyard.grid.index import INDEX_NAME, CellRow, open_index
 from blockyard.grid.spec import Design
 from blockyard.grid.status import cell_dir
 from blockyard.grid.verdicts import GroupKey, compare_all, group_outcomes, point_text
 from blockyard.rundir import METRICS_FILE, read_metrics
+from blockyard.text import is_finite_number
 
 
-def _key(row: dict[str, Any]) -> GroupKey:
+def _key(row: CellRow) -> GroupKey:
     return (row["variant"], tuple(tuple(p) for p in row["point"]))
 
 
@@ -32,13 +31,12 @@ def val_curve(run_dir: Path) -> tuple[dict[int, float], float | None]:
         step, loss = line.get("step"), line.get("loss")
         if line.get("split") == "train" and line.get("tokens") and step:
             per_step = line["tokens"] / step
-        elif (line.get("split") == "val" and isinstance(loss, (int, float)) and not isinstance(loss, bool)
-              and math.isfinite(loss)):
+        elif line.get("split") == "val" and is_finite_number(loss) and step is not None:
             curve[int(step)] = float(loss)
     return curve, per_step
 
 
-def grid_curves(grid_dir: Path, rows: list[dict[str, Any]]) -> tuple[dict[GroupKey, dict[int, dict[int, float]]],
+def grid_curves(grid_dir: Path, rows: list[CellRow]) -> tuple[dict[GroupKey, dict[int, dict[int, float]]],
                                                                      dict[GroupKey, float]]:
     """Per group: seed -> step -> val loss of its done cells; and the group's training tokens per step."""
     curves: dict[GroupKey, dict[int, dict[int, float]]] = {}

@@ -1,4 +1,8 @@
-"""Run a grid: plan its cells, guard the grid dir, train what is left, record it, write the report.
+"""Run a grid: train what its plan still needs, round after round, record it, write the report.
+
+The pieces it drives: ``blockyard.grid.plan`` (the cells, their costs and hashes),
+``blockyard.grid.dryrun`` (``--dry-run``'s text), ``blockyard.grid.griddir`` (the lock and the
+refusals of a grid dir holding another spec), ``blockyard.grid.executors`` (local processes or Ray).
 
 Grid dir layout::
 
@@ -26,32 +30,50 @@ dirs to ``GRID_DIR/superseded/`` rather than deleting anything.
 
 from __future__ import annotations
 
-import contextlib
 import dataclasses
-import hashlib
 import json
 import os
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
-from blockyard import fs
-from blockyard.config import config_hash, dump_config, replace
+from blockyard.config import dump_config
 from blockyard.errors import UserError
 from blockyard.grid import executors
-from blockyard.grid.fairness import CellCost, apply_budgets, apply_matching, cell_cost, planned_steps
+from blockyard.grid.dryrun import budget_plan, dry_run_text, two_stage_dry_run
+from blockyard.grid.griddir import (
+    archive_spec,
+    cell_changes,
+    check_grid_dir,
+    grid_lock,
+    plugin_copies,
+    refuse_changed_design,
+    refuse_changed_spec,
+    refuse_changed_tuning,
+    supersede,
+    write_if_changed,
+)
 from blockyard.grid.index import FINISHED, INDEX_NAME, ROUNDS_COMPLETE, ROUNDS_META, ROUNDS_OPEN, GridIndex, open_index
-from blockyard.grid.ladder import Ladder, RungCell, rung_summary
-from blockyard.grid.spec import NULL_VARIANT, Cell, Design, GridSpec, expand_cells, load_grid, tuned_cells, tuning_cells
-from blockyard.grid.status import LOCK_NAME, cell_dir, grid_progress
-from blockyard.grid.tuning import TUNING_DIR, Tuning, chosen_values, tuned_groups
+from blockyard.grid.plan import (
+    PlannedCell,
+    cost_note,
+    current_cells,
+    fingerprint,
+    first_seeds,
+    makespan,
+    measured_speeds,
+    plan_cells,
+    plan_rows,
+    plan_tuning,
+    round_wall,
+)
+from blockyard.grid.spec import Design, GridSpec, load_grid
+from blockyard.grid.status import cell_dir, grid_progress
+from blockyard.grid.tuning import TUNING_DIR, chosen_values, tuned_groups
 from blockyard.rundir import format_duration, read_summary
 from blockyard.schema import to_dict
 from blockyard.verify import reopen_if_final_checkpoint_damaged
-
-if TYPE_CHECKING:
-    from blockyard.grid.budget import NoiseEstimate
 
 DEFAULT_ROOT = Path("runs") / "grids"
 STATUS_EVERY_S = 30.0
@@ -65,322 +87,6 @@ def available_cores() -> int:
         return len(os.sched_getaffinity(0))
     except AttributeError:
         return os.cpu_count() or 1
-
-
-@dataclasses.dataclass(frozen=True)
-class PlannedCell:
-    cell: Cell
-    cost: CellCost
-    config_hash: str
-
-    @property
-    def id(self) -> str:
-        return self.cell.id
-
-
-def plan_cells(spec: GridSpec, threads: int, chosen: dict[tuple, float] | None = None) -> list[PlannedCell]:
-    """Every potential cell with fairness adjustments and ``runtime.threads`` applied, its cost and config hash.
-
-    The null control is the reference under another init seed: it is not matched (the reference
-    is the target), so its config differs from the reference's in ``train.init_seed`` only.
-    With a ``tune`` block, ``chosen`` ((variant, point) -> value, from stage 1) sets each verdict cell's
-    tuned key; without it the cells keep the base config's value (what a dry run shows before tuning).
-    """
-    cells = _matched_cells(spec)
-    if chosen is not None:
-        cells = tuned_cells(spec, cells, chosen)
-    return _planned(cells, threads)
-
-
-def plan_tuning(spec: GridSpec, threads: int) -> list[PlannedCell]:
-    """Stage 1's cells (none without a ``tune`` block): matched before tuning, as the verdict cells are."""
-    return _planned(tuning_cells(spec, _matched_cells(spec)), threads)
-
-
-def _matched_cells(spec: GridSpec) -> list[Cell]:
-    cells = apply_budgets(spec, expand_cells(spec))
-    matched = apply_matching(spec, [c for c in cells if c.variant != NULL_VARIANT])
-    by_id = {c.id: c for c in matched}
-    return [by_id.get(c.id, c) for c in cells]
-
-
-def _planned(cells: list[Cell], threads: int) -> list[PlannedCell]:
-    costs: dict[tuple, CellCost] = {}
-    planned = []
-    for cell in cells:
-        cfg = replace(cell.cfg, {"runtime.threads": threads})
-        cell = dataclasses.replace(cell, cfg=cfg)
-        key = (cell.variant, cell.point)  # the seed changes neither params nor FLOPs
-        if key not in costs:
-            costs[key] = cell_cost(cfg)
-        planned.append(PlannedCell(cell, costs[key], config_hash(cfg)))
-    return planned
-
-
-def fingerprint(plan: list[PlannedCell]) -> str:
-    blob = json.dumps({p.id: p.config_hash for p in plan}, sort_keys=True)
-    return hashlib.sha256(blob.encode()).hexdigest()[:16]
-
-
-# ----------------------------------------------------------------------------- dry run
-
-
-def dry_run_text(plan: list[PlannedCell], workers: int, threads: int, measure: bool = True,
-                 design: Design | None = None, estimates: dict[str, float] | None = None,
-                 ladder: Ladder | None = None, reference: str | None = None) -> str:
-    """The cells with params, FLOPs/token, tokens and (measured-speed) estimated time; with a seed
-    schedule, the best case (every comparison decided after round 1) and the worst (all to ``most``);
-    with a ladder, each rung's parameters, tokens and cell time.
-    ``estimates``: tokens/s per cell id, measured already (else measured here)."""
-    if estimates is None:
-        estimates = _estimates(plan, threads) if measure else {}
-    header = ["cell", "adjustment", "params (non-emb)", "FLOPs/token", "steps", "tokens", "tokens/s", "est. time"]
-    rows = []
-    for p in plan:
-        speed = estimates.get(p.id)
-        est = p.cost.tokens / speed if speed else None
-        adj = ", ".join(f"{k}={v:.4g}" if isinstance(v, float) else f"{k}={v}" for k, v in p.cell.adjustments.items())
-        rows.append([
-            p.id, adj or "-", f"{p.cost.params_non_embedding:,d}",
-            "n/a" if p.cost.flops_per_token is None else f"{p.cost.flops_per_token:,.0f}",
-            str(planned_steps(p.cell.cfg)), f"{p.cost.tokens:,d}",
-            f"{speed:,.0f}" if speed else "-", format_duration(est) if est is not None else "-",
-        ])
-    widths = [max(len(str(c)) for c in col) for col in zip(header, *rows, strict=True)]
-    lines = ["  ".join(str(c).ljust(w) for c, w in zip(r, widths, strict=True)).rstrip() for r in [header, *rows]]
-    seconds = {p.id: p.cost.tokens / estimates[p.id] for p in plan if p.id in estimates}
-    if ladder is not None:
-        lines += ["", *rung_summary(ladder, reference, [
-            RungCell(p.cell.point, p.cell.variant, p.cost.params_non_embedding, p.cost.tokens, seconds.get(p.id))
-            for p in plan])]
-    if not measure:
-        return "\n".join(lines)
-    how = (f"{workers} worker(s) x {threads} thread(s); from a measured micro-benchmark (forward + backward + "
-           "AdamW steps on random tokens, here, at each cell's thread count); evaluation, checkpoints and "
-           "start-up are not included.")
-    schedule = design.schedule if design else None
-    if schedule is None:
-        total = list(seconds.values())
-        lines += ["", f"{len(plan)} cells. Estimated time: {_wall_text([total], workers)}. {how}"]
-        return "\n".join(lines)
-    looks = (0, *schedule.looks())
-    rounds = [[seconds[p.id] for p in plan if lo <= p.cell.seed < hi] for lo, hi in zip(looks, looks[1:], strict=False)]
-    lines += ["", f"Seeds until decided (first {schedule.first}, most {schedule.most}, {schedule.step} per round):",
-              f"  best case, every comparison decided after round 1: {len(rounds[0])} cells, "
-              f"{_wall_text(rounds[:1], workers)}",
-              f"  worst case, {len(rounds)} rounds, every group to {schedule.most} seeds: {len(plan)} cells, "
-              f"{_wall_text(rounds, workers)}",
-              how]
-    return "\n".join(lines)
-
-
-def two_stage_dry_run(spec: GridSpec, tuning_plan: list[PlannedCell], plan: list[PlannedCell], workers: int,
-                      threads: int, tuned: bool) -> str:
-    """Both stages of a tuned grid, each with its cells and estimated time, then the total (``tuned``:
-    stage 1 has finished, so ``plan`` holds the chosen values)."""
-    assert spec.tuning is not None
-    t = spec.tuning
-    estimates = _estimates(tuning_plan + plan, threads)
-    where = ("at each variant's chosen value" if tuned else
-             f"at each variant's value chosen in stage 1 (shown at the base config's {t.key}; the cost does not "
-             "depend on it unless the key changes the model or the budget)")
-    if t.carried:
-        where += ", rung 1's value at every rung"
-    lines = [f"stage 1 of 2, tuning {t.key} over {len(t.values)} values x {len(t.seeds)} tuning seed(s) "
-             f"({', '.join(map(str, t.seeds))}), budget {t.budget:g} x the verdict cells'"
-             + (", on rung 1 only (tune.rungs: first; each variant's value is carried up the ladder)"
-                if t.carried else "") + f": {len(tuning_plan)} cells under {TUNING_DIR}/",
-             dry_run_text(tuning_plan, workers, threads, estimates=estimates), "",
-             f"stage 2 of 2, verdict cells {where}: {len(plan)} cells",
-             dry_run_text(plan, workers, threads, design=spec.design, estimates=estimates), ""]
-    stage1 = makespan([p.cost.tokens / estimates[p.id] for p in tuning_plan], workers)
-    seconds = {p.id: p.cost.tokens / estimates[p.id] for p in plan}
-    schedule = spec.design.schedule
-    if schedule is None:
-        stage2 = {"": makespan(list(seconds.values()), workers)}
-    else:
-        looks = (0, *schedule.looks())
-        rounds = [[seconds[p.id] for p in plan if lo <= p.cell.seed < hi] for lo, hi in zip(looks, looks[1:],
-                                                                                          strict=False)]
-        stage2 = {" best case": makespan(rounds[0], workers),
-                  " worst case": sum(makespan(r, workers) for r in rounds)}
-    lines += [f"Both stages{case}: {format_duration(stage1)} + {format_duration(wall)} = "
-              f"{format_duration(stage1 + wall)} (estimate)" for case, wall in stage2.items()]
-    return "\n".join(lines)
-
-
-def _estimates(plan: list[PlannedCell], threads: int) -> dict[str, float]:
-    """Measured training tokens/s per cell (one benchmark per distinct model, batch shape and runtime)."""
-    from blockyard.grid.estimate import measure_tokens_per_s
-
-    speeds: dict[str, float] = {}
-    out = {}
-    for p in plan:
-        cfg = p.cell.cfg
-        # Speed depends on the model, the batch shape and the runtime only (not on lr, seed or budget).
-        key = json.dumps([to_dict(cfg.model), cfg.data.seq_len, cfg.train.batch_size, cfg.train.grad_accum,
-                          to_dict(cfg.runtime)], sort_keys=True, default=str)
-        if key not in speeds:
-            speeds[key] = measure_tokens_per_s(cfg, threads)
-        out[p.id] = speeds[key]
-    return out
-
-
-def _wall_text(rounds: list[list[float]], workers: int) -> str:
-    """Estimated wall time of rounds of cells run one round after the other, each on ``workers`` at once."""
-    wall = sum(makespan(r, workers) for r in rounds)
-    return f"{format_duration(wall)} for the grid ({format_duration(sum(map(sum, rounds)))} of cell time)"
-
-
-def makespan(seconds: list[float], workers: int) -> float:
-    """Wall time of cells handed out in plan order to whichever of ``workers`` frees up first (as the
-    local executor does)."""
-    slots = [0.0] * max(1, workers)
-    for s in seconds:
-        slots[slots.index(min(slots))] += s
-    return max(slots)
-
-
-# ----------------------------------------------------------------------------- the grid dir
-
-
-@contextlib.contextmanager
-def grid_lock(grid_dir: Path) -> Iterator[None]:
-    """Hold ``GRID_DIR/grid.lock`` (an OS lock: released by the kernel even after kill -9)."""
-    try:
-        with fs.reporting(grid_dir / LOCK_NAME, "the grid's lock"), contextlib.ExitStack() as held:
-            held.enter_context(fs.hold_lock(grid_dir / LOCK_NAME))
-            lock = held.pop_all()
-    except fs.LockBusy as busy:
-        holder = f"pid {busy.holder}" if busy.holder > 0 else ""
-        raise UserError(f"{grid_dir}: another grid process{f' ({holder})' if holder else ''} is running this "
-                        f"grid; watch it with: blockyard grid --status {grid_dir}") from None
-    with lock:
-        yield
-
-
-def _check_grid_dir(grid_dir: Path) -> bool:
-    """True when ``grid_dir`` already holds a grid; refuses a non-empty dir that is not one."""
-    if grid_dir.exists() and not grid_dir.is_dir():
-        raise UserError(f"{grid_dir}: exists and is not a directory (pass another --out)")
-    if (grid_dir / INDEX_NAME).exists():
-        return True
-    if grid_dir.is_dir() and any(grid_dir.iterdir()):
-        raise UserError(f"{grid_dir}: is not empty and holds no grid ({INDEX_NAME} missing); pass another --out")
-    return False
-
-
-def _changes(old: dict[str, str], new: dict[str, str]) -> tuple[list[str], list[str], list[str]]:
-    changed = sorted(i for i in new if i in old and old[i] != new[i])
-    added = sorted(i for i in new if i not in old)
-    removed = sorted(i for i in old if i not in new)
-    return changed, added, removed
-
-
-def _refuse_changed_spec(grid_dir: Path, grid_file: str | Path, old: dict[str, str], new: dict[str, str],
-                         force: bool, hint: str = "", grows: bool = False) -> None:
-    """Refuse (unless ``force``) a spec whose cells differ from the grid dir's; ``grows``: a seed schedule,
-    whose potential cells not run yet are expected, not new."""
-    changed, added, removed = _changes(old, new)
-    if grows:
-        added = []
-    if not old or force or not (changed or added or removed):
-        return
-    what = ", ".join(f"{len(v)} {k}" for k, v in (("changed", changed), ("new", added), ("removed", removed)) if v)
-    example = (changed or added or removed)[0]
-    raise UserError(
-        f"{grid_dir}: holds a grid whose cells differ from {grid_file} ({what}; e.g. {example}){hint}; pass --out "
-        "for a new grid dir, or --force to run the new cells here (changed and removed cells are moved to "
-        "superseded/, nothing is deleted)")
-
-
-def _refuse_changed_tuning(grid_dir: Path, grid_file: str | Path, old: str | None, new: str, has_cells: bool,
-                           force: bool) -> None:
-    """A changed (added, removed) ``tune`` block changes the verdict cells' values: like a changed grid.
-    Compared as parsed blocks, so a block recorded before a key existed equals one with its default."""
-    if force or not has_cells or Tuning.from_json(old) == Tuning.from_json(new):
-        return
-    raise UserError(
-        f"{grid_dir}: holds a grid whose tune block differs from {grid_file}'s (it decides each variant's "
-        "value, so the verdict cells would change); pass --out for a new grid dir, or --force to run it here "
-        "(changed cells are moved to superseded/, nothing is deleted)")
-
-
-def _refuse_changed_design(grid_dir: Path, grid_file: str | Path, old: str | None, new: Design, force: bool) -> None:
-    """A changed smallest effect, seed schedule or null control moves the goalposts of verdicts already seen."""
-    if old is None or force or Design.from_json(old) == new:
-        return
-    raise UserError(
-        f"{grid_dir}: its verdict rules (smallest_effect, seeds schedule, null_control) differ from {grid_file}'s; "
-        "changing them after seeing results invalidates the error guarantee: pass --out for a new grid dir, or "
-        "--force to apply them here anyway (the report then says so)")
-
-
-def _unique_path(path: Path) -> Path:
-    if not path.exists():
-        return path
-    n = 2
-    while path.with_name(f"{path.name}.{n}").exists():
-        n += 1
-    return path.with_name(f"{path.name}.{n}")
-
-
-def _archive_spec(grid_dir: Path, text: str) -> None:
-    """Write grid.yaml; an earlier, different copy is kept as grid.<n>.yaml."""
-    current = grid_dir / "grid.yaml"
-    if current.exists() and current.read_text() != text:
-        n = 1
-        while (grid_dir / f"grid.{n}.yaml").exists():
-            n += 1
-        current.rename(grid_dir / f"grid.{n}.yaml")
-    if not current.exists():
-        fs.atomic_write_text(current, text, what="the grid spec")
-
-
-def _supersede(grid_dir: Path, ids: list[str], old_hashes: dict[str, str]) -> list[str]:
-    """Move the dirs (and configs, logs) of cells whose config changed to superseded/; returns what moved."""
-    moved = []
-    for cid in ids:
-        target = _unique_path(grid_dir / "superseded" / f"{cid}.{old_hashes.get(cid, 'old')}")
-        for src, name in ((cell_dir(grid_dir, cid), "run"), (grid_dir / "configs" / f"{cid}.yaml", "config.yaml"),
-                          (grid_dir / "logs" / f"{cid}.log", "train.log")):
-            if src.exists():
-                target.mkdir(parents=True, exist_ok=True)
-                src.rename(target / name)
-        if target.exists():
-            moved.append(str(target.relative_to(grid_dir)))
-    return moved
-
-
-def _plugin_copies(p: PlannedCell, grid_dir: Path) -> list[str] | None:
-    """Copy the cell's plugin files into GRID_DIR/plugins; the entries its config names them by
-    (relative to GRID_DIR/configs), or None without plugins."""
-    if not p.cell.cfg.plugins:
-        return None
-    from blockyard.mixers.plugins import copy_plugins  # imports torch: not at module level, or `grid --status` would
-
-    return [f"../plugins/{c.name}" for c in copy_plugins(p.cell.cfg.plugins, grid_dir / "plugins")]
-
-
-def _cost_note(plan: list[PlannedCell]) -> str:
-    """Which cost figures were measured (plugin mixers without formulas), for the report."""
-    from blockyard.cost.analytic import measured_note
-
-    return " ".join(dict.fromkeys(note for p in plan if (note := measured_note(p.cell.cfg.model))))
-
-
-def _plan_rows(plan: list[PlannedCell]) -> list[dict[str, Any]]:
-    return [{
-        "id": p.id, "variant": p.cell.variant, "seed": p.cell.seed, "point": [list(kv) for kv in p.cell.point],
-        "config_hash": p.config_hash, "adjustments": p.cell.adjustments, "planned_tokens": p.cost.tokens,
-        "flops_per_token": p.cost.flops_per_token, "params_total": p.cost.params_total,
-        "params_non_embedding": p.cost.params_non_embedding,
-    } for p in plan]
-
-
-def _write_if_changed(path: Path, text: str) -> None:
-    if not path.exists() or path.read_text() != text:
-        fs.atomic_write_text(path, text, what="a cell's config")
 
 
 def prepare_data(plan: list[PlannedCell], echo: Callable[[str], None]) -> None:
@@ -536,7 +242,7 @@ def _setup(grid_file: str | Path, out: str | Path | None, workers: int | None, t
     """Read the spec and what the grid dir already holds; settle threads and workers."""
     spec = load_grid(grid_file)
     grid_dir = Path(out) if out else DEFAULT_ROOT / spec.name
-    exists = _check_grid_dir(grid_dir)
+    exists = check_grid_dir(grid_dir)
     cores = available_cores()
     recorded_threads, old_design, old_tuning = None, None, None
     old_hashes: dict[str, str] = {}
@@ -572,49 +278,31 @@ def _sync_index(s: _Setup, index: GridIndex, universe: list[PlannedCell], force:
     new = {p.id: p.config_hash for p in universe}
     grows = s.spec.design.schedule is not None
     old = {r["id"]: r["config_hash"] for r in index.cells()}
-    changed, added, removed = _changes(old, new)
+    changed, added, removed = cell_changes(old, new)
     if old and (changed or removed or (added and not grows)):
-        _refuse_changed_spec(s.grid_dir, s.grid_file, old, new, force, s.hint, grows)
-        moved = _supersede(s.grid_dir, changed + removed, old)
+        refuse_changed_spec(s.grid_dir, s.grid_file, old, new, force, s.hint, grows)
+        moved = supersede(s.grid_dir, changed + removed, old)
         if moved:
             echo(f"moved {len(moved)} superseded cell(s) to {s.grid_dir / 'superseded'}")
         # A changed cell's row goes too: its outcome belongs to the old config, and with seeds until
         # decided a later round (not planned now) would otherwise replay and report it.
         index.remove_unplanned(set(new) - set(changed))
     old_design = index.get_meta("design")
-    _refuse_changed_design(s.grid_dir, s.grid_file, old_design, s.spec.design, force)
+    refuse_changed_design(s.grid_dir, s.grid_file, old_design, s.spec.design, force)
     design_changed = index.get_meta("design_changed") or ""
     if old_design and Design.from_json(old_design) != s.spec.design and old:
         design_changed = "1"
-    _archive_spec(s.grid_dir, s.spec.text)
+    archive_spec(s.grid_dir, s.spec.text)
     index.set_meta({"name": s.spec.name, "description": s.spec.description, "reference": s.spec.reference or "",
                     "match": s.spec.match, "threads": str(s.threads), "fingerprint": fingerprint(universe),
                     "grid_file": str(Path(s.grid_file).resolve()), "design": s.spec.design.to_json(),
-                    "design_changed": design_changed, "cost_note": _cost_note(universe),
+                    "design_changed": design_changed, "cost_note": cost_note(universe),
                     "tuning": _tuning_json(s.spec), "stage": "verdicts",
                     "ladder": s.spec.ladder.to_json() if s.spec.ladder else ""})
 
 
 def _tuning_json(spec: GridSpec) -> str:
     return spec.tuning.to_json() if spec.tuning else ""
-
-
-def current_cells(spec: GridSpec, universe: list[PlannedCell], rows: list[dict[str, Any]]) -> tuple[
-        list[PlannedCell], str | None, bool]:
-    """The cells the grid needs now, a line on its rounds (None for a fixed seed list), and whether it is complete.
-
-    With a seed schedule the rounds are replayed from the recorded outcomes (``blockyard.grid.rounds``).
-    """
-    if spec.design.schedule is None:
-        return universe, None, True
-    # Deciding a round needs the statistics (scipy): loaded only by grids with a seed schedule.
-    from blockyard.grid.rounds import plan_rounds
-    from blockyard.grid.verdicts import group_outcomes
-
-    keys = list(dict.fromkeys((p.cell.variant, p.cell.point) for p in universe))
-    state = plan_rounds(spec.design, keys, spec.reference, spec.seeds, group_outcomes(rows))
-    cells = [p for p in universe if state.needs((p.cell.variant, p.cell.point), p.cell.seed)]
-    return cells, f"round {state.rounds}: {state.reason}", state.complete
 
 
 def _jobs(grid_dir: Path, ids: list[str], threads: int, check: bool) -> list[executors.CellJob]:
@@ -650,8 +338,8 @@ def _train(s: _Setup, grid_dir: Path, index: GridIndex, cells: list[PlannedCell]
     """Write the cells' configs, record them in the index, train those not finished; False when stopped."""
     (grid_dir / "configs").mkdir(exist_ok=True)
     for p in cells:
-        _write_if_changed(grid_dir / "configs" / f"{p.id}.yaml", dump_config(p.cell.cfg, _plugin_copies(p, grid_dir)))
-    index.plan(_plan_rows(cells))
+        write_if_changed(grid_dir / "configs" / f"{p.id}.yaml", dump_config(p.cell.cfg, plugin_copies(p, grid_dir)))
+    index.plan(plan_rows(cells))
     todo = _reconcile(grid_dir, index)
     if not retry_failed:
         failed = {r["id"] for r in index.cells() if r["status"] == "failed"}
@@ -688,9 +376,9 @@ def _tuning_stage(s: _Setup, index: GridIndex, tuning_plan: list[PlannedCell], f
     with open_index(tdir) as tindex:
         new = {p.id: p.config_hash for p in tuning_plan}
         old = {r["id"]: r["config_hash"] for r in tindex.cells()}
-        changed, _added, removed = _changes(old, new)
+        changed, _added, removed = cell_changes(old, new)
         if changed or removed:  # only with --force: checked before anything was written
-            moved = _supersede(tdir, changed + removed, old)
+            moved = supersede(tdir, changed + removed, old)
             if moved:
                 echo(f"moved {len(moved)} superseded tuning cell(s) to {tdir / 'superseded'}")
             tindex.remove_unplanned(set(new) - set(changed))
@@ -761,25 +449,25 @@ def run_grid(
         workers = s.workers or max(1, s.cores // s.threads)
         echo(f"grid {s.spec.name}: {len(tuning_plan) + len(universe)} cells -> {s.grid_dir}"
              + (" (exists)" if s.exists else ""))
-        estimates = _estimates(universe, s.threads)
+        estimates = measured_speeds(universe, s.threads)
         echo(two_stage_dry_run(s.spec, tuning_plan, universe, workers, s.threads, chosen is not None) if tuning_plan
              else dry_run_text(universe, workers, s.threads, design=s.spec.design, ladder=s.spec.ladder,
                                reference=s.spec.reference, estimates=estimates))
-        echo(_budget_plan(s.spec, universe, estimates, workers, noise))
+        echo(budget_plan(s.spec, universe, estimates, workers, noise))
         return 0
     # Checked before anything is written (a refused command leaves the dir as it was), and again
     # under the lock in case another process changed the grid in between. The verdict cells of a
     # tuned grid are known here only once stage 1 has ended; else they are checked after it.
-    _refuse_changed_tuning(s.grid_dir, grid_file, s.old_tuning, _tuning_json(s.spec), bool(s.old_hashes), force)
+    refuse_changed_tuning(s.grid_dir, grid_file, s.old_tuning, _tuning_json(s.spec), bool(s.old_hashes), force)
     if tuning_plan:
-        _refuse_changed_spec(s.grid_dir / TUNING_DIR, grid_file, s.old_tuning_hashes,
+        refuse_changed_spec(s.grid_dir / TUNING_DIR, grid_file, s.old_tuning_hashes,
                              {p.id: p.config_hash for p in tuning_plan}, force, s.hint)
     if not tuning_plan or chosen is not None:
         new = {p.id: p.config_hash for p in universe}
-        _refuse_changed_spec(s.grid_dir, grid_file, s.old_hashes, new, force, s.hint,
+        refuse_changed_spec(s.grid_dir, grid_file, s.old_hashes, new, force, s.hint,
                              s.spec.design.schedule is not None)
-    _refuse_changed_design(s.grid_dir, grid_file, s.old_design, s.spec.design, force)
-    unfinished = [p for p in universe if p.cell.seed in s.spec.seeds[:_first_seeds(s.spec)]
+    refuse_changed_design(s.grid_dir, grid_file, s.old_design, s.spec.design, force)
+    unfinished = [p for p in universe if p.cell.seed in s.spec.seeds[:first_seeds(s.spec)]
                   and (read_summary(cell_dir(s.grid_dir, p.id)) or {}).get("status") not in FINISHED]
     unfinished += [p for p in tuning_plan if (read_summary(cell_dir(s.grid_dir / TUNING_DIR, p.id))
                                              or {}).get("status") not in FINISHED]
@@ -795,6 +483,7 @@ def run_grid(
             if chosen is None:
                 return 130
             universe = plan_cells(s.spec, s.threads, chosen)
+            assert s.spec.tuning is not None  # a tuning plan comes from the grid's tune block
             echo(f"stage 2 of 2: verdict cells, each variant at its chosen {s.spec.tuning.key}"
                  + (" (rung 1's, at every rung)" if s.spec.tuning.carried else ""))
         _sync_index(s, index, universe, force, echo)
@@ -817,27 +506,6 @@ def run_grid(
     return 0
 
 
-def _round_wall(spec: GridSpec, plan: list[PlannedCell], estimates: dict[str, float],
-                workers: int) -> Callable[[int], float]:
-    """Wall seconds of a round that adds k seeds to every group (from one seed's cells, in plan order)."""
-    per_group = [p.cost.tokens / estimates[p.id] for p in plan if p.cell.seed == spec.seeds[0]]
-    return lambda k: makespan([x for x in per_group for _ in range(k)], workers)
-
-
-def _budget_plan(spec: GridSpec, plan: list[PlannedCell], estimates: dict[str, float], workers: int,
-                 noise: NoiseEstimate | None) -> str:
-    """The dry run's budget plan (``blockyard.grid.budget.plan_lines``); empty without comparisons."""
-    from blockyard.grid.budget import ASSUMED_PAIRED_SD, ASSUMED_SOURCE, NoiseEstimate, plan_lines  # noqa: F811
-    from blockyard.grid.verdicts import family_size
-
-    m = family_size(dict.fromkeys((p.cell.variant, p.cell.point) for p in plan), spec.reference)
-    if m == 0:
-        return ""
-    noise = noise or NoiseEstimate(ASSUMED_PAIRED_SD, None, ASSUMED_SOURCE)
-    return "\n".join(plan_lines(spec.design, m, len(spec.seeds), noise,
-                                _round_wall(spec, plan, estimates, workers)))
-
-
 def _resolve_auto_most(s: _Setup, tuning_plan: list[PlannedCell], echo: Callable[[str], None]) -> _Setup:
     """``seeds.most: auto``: the grid dir's recorded value for this schedule, else the most seeds whose worst case
     (after stage 1, if any) fits in ``budget_hours`` at the measured speed; echoed, and recorded with the design."""
@@ -845,22 +513,19 @@ def _resolve_auto_most(s: _Setup, tuning_plan: list[PlannedCell], echo: Callable
 
     schedule = s.spec.design.schedule
     assert schedule is not None and schedule.budget_hours is not None
+    hours = schedule.budget_hours
 
     def fit() -> int:
         workers = s.workers or max(1, s.cores // s.threads)
         first_round = plan_cells(s.spec, s.threads)
-        estimates = _estimates(first_round + tuning_plan, s.threads)
+        estimates = measured_speeds(first_round + tuning_plan, s.threads)
         stage1 = makespan([p.cost.tokens / estimates[p.id] for p in tuning_plan], workers) if tuning_plan else 0.0
         later_tuning_seeds = [t for t in (s.spec.tuning.seeds if s.spec.tuning else ()) if t >= schedule.first]
-        return fit_most(schedule, schedule.budget_hours * 3600 - stage1,
-                        _round_wall(s.spec, first_round, estimates, workers), cap=min(later_tuning_seeds, default=None))
+        return fit_most(schedule, hours * 3600 - stage1,
+                        round_wall(s.spec, first_round, estimates, workers), cap=min(later_tuning_seeds, default=None))
 
     most, recorded = resolve_most(schedule, Design.from_json(s.old_design) if s.old_design else None, fit)
     echo(f"seeds.most: auto -> {most} " + ("(recorded in the grid dir when it started)" if recorded else
                                            f"(the worst case fits in budget_hours {schedule.budget_hours:g} here)"))
     return dataclasses.replace(s, spec=with_most(s.spec, most))
 
-
-def _first_seeds(spec: GridSpec) -> int:
-    """How many of ``spec.seeds`` the first round trains (all of a fixed list)."""
-    return spec.design.schedule.first if spec.design.schedule else len(spec.seeds)

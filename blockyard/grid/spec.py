@@ -22,6 +22,8 @@ A grid file (YAML) holds::
     tokens_per_param: 20             #   each rung's budget and a size to extrapolate to
     ladder_target: 1.0e7
 
+The top-level keys are declared in ``GridFile`` with the run configs' schema machinery
+(``blockyard.schema``: types, defaults, allowed values, help; ``blockyard grid --keys`` lists them).
 Every cell is (variant, rung, one value per axis, seed). Each cell's config is validated by
 ``blockyard.config``; errors name the variant, axis or cell they come from.
 
@@ -36,21 +38,20 @@ import copy
 import dataclasses
 import itertools
 import json
-import math
 import re
 from pathlib import Path
-from typing import Any
+from typing import Any, ClassVar, TypeGuard, cast
 
 from blockyard.config import Config, config_from_dict, read_yaml, resolve_extends, set_dotted
 from blockyard.errors import ConfigError, UserError
-from blockyard.grid.ladder import LADDER_KEYS, RUNG, Ladder, check_conflicts, parse_ladder, rung_overrides, rung_points
+from blockyard.grid.ladder import MIN_RUNGS, RUNG, Ladder, check_conflicts, parse_ladder, rung_overrides, rung_points
 from blockyard.grid.tuning import Tuning, check_tuned_key, parse_tuning, value_for
+from blockyard.schema import describe, opt, parse
+from blockyard.text import aligned_table
 
 MATCH_MODES = ("none", "params", "flops")
 # The key each match mode adjusts (blockyard.grid.fairness); a tuning may not search it.
 MATCHED_KEYS = {"params": "model.mlp_expansion", "flops": "train.tokens"}
-GRID_KEYS = ("name", "description", "base", "variants", "reference", "axes", "seeds", "match", "smallest_effect",
-             "null_control", "tune", "budget_hours", *LADDER_KEYS)
 SCHEDULE_KEYS = ("first", "most", "step", "start")
 AUTO = "auto"  # seeds.most: auto (with budget_hours)
 DEFAULT_SMALLEST_EFFECT = 0.01  # nats per token
@@ -64,6 +65,67 @@ NULL_INIT_OFFSET = 1_000_000
 _SEED_KEYS = ("train.seed", "train.data_seed", "train.init_seed")
 _RESERVED_KEYS = (*_SEED_KEYS, "name")
 _NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]*$")
+_NAME_RULE = "use letters, digits, '_', '.' and '-' (it names the grid dir)"
+
+
+@dataclasses.dataclass(frozen=True)
+class GridFile:
+    """The grid file's top-level keys: type, default, allowed values and meaning (``blockyard grid --keys``).
+
+    Read by ``blockyard.schema.parse`` like a run config, so an unknown key, a wrong type or a value
+    out of range is the same one-line error. ``seeds`` and ``ladder`` take several shapes and are
+    checked by their own parsers (``_parse_seeds``, ``blockyard.grid.ladder.parse_ladder``); the rules
+    between keys (a reference needs variants, budget_hours needs seeds.most: auto) by ``parse_grid``.
+    """
+
+    KEY_NOUN: ClassVar[str] = "grid key"
+
+    name: str | None = opt(None, "the grid's name; names its dir under runs/grids/ (default: the file's stem)",
+                           allowed=_NAME_RULE)
+    description: str | None = opt(None, "one line of why the grid exists (the report's first line)")
+    base: str | dict | None = opt(None, "required: the base config, a path relative to the grid file or an inline "
+                                  "mapping (extends: is followed)",
+                                  allowed="a config path (relative to the grid file) or an inline mapping")
+    variants: dict | None = opt(None, "named sets of dotted-key overrides, name -> {dotted.key: value}; none: one "
+                                f"variant, {BASE_VARIANT}", allowed="a mapping: variant name -> {dotted.key: value}")
+    reference: str | None = opt(None, "the variant every other one is compared against (required with variants)",
+                                allowed="the name of a variant")
+    axes: dict | None = opt(None, "dotted key -> list of values; the axes are crossed with each other and the "
+                            "variants", allowed="a mapping: dotted.key -> [values]")
+    seeds: Any = opt(None, "required: a list of distinct seeds >= 0 (each sets train.seed: init and data), or "
+                     "{first: F, most: M, step: S, start: K}: seeds added in rounds until every comparison is "
+                     "decided (blockyard.grid.rounds); most: auto with budget_hours")
+    match: str = opt("none", "fairness: none, params (variants matched to the reference's parameter count through "
+                     "model.mlp_expansion) or flops (through train.tokens); blockyard.grid.fairness",
+                     choices=MATCH_MODES)
+    smallest_effect: float = opt(DEFAULT_SMALLEST_EFFECT, "nats/token: the smallest difference that matters "
+                                 "(blockyard.grid.verdicts)", above=0.0,
+                                 allowed=f"a number > 0 (nats per token; default {DEFAULT_SMALLEST_EFFECT})")
+    null_control: bool = opt(False, f"add the reference again under another init seed ({NULL_VARIANT}): a "
+                             "measured check that the grid finds no difference where there is none",
+                             allowed="true or false")
+    tune: dict | None = opt(None, "choose each variant's value of one numeric key in a first stage: {key, values, "
+                            "seeds, budget, rungs} (blockyard.grid.tuning)",
+                            allowed="a mapping: {key: train.lr, values: [...], seeds: [...], budget: 1.0}")
+    budget_hours: float | None = opt(None, "with seeds.most: auto: the hours the worst case may take "
+                                     "(blockyard.grid.budget)", above=0.0,
+                                     allowed="a number of hours > 0 (with seeds.most: auto)")
+    ladder: Any = opt(None, f"rungs of model size, smallest first: a list of at least {MIN_RUNGS} mappings of dotted "
+                      "keys (blockyard.grid.ladder)")
+    tokens_per_param: float | None = opt(
+        None, "with a ladder: each rung's token budget as this many tokens per non-embedding parameter of the "
+        "reference", above=0.0, allowed="a number > 0 (training tokens per non-embedding parameter of the reference "
+        "at each rung; about 20 is compute-optimal)")
+    ladder_target: float | None = opt(None, "with a ladder: a non-embedding parameter count to extrapolate the gaps "
+                                      "to", above=0.0, allowed="a non-embedding parameter count (> 0) to extrapolate "
+                                      "to")
+
+
+def grid_keys_text() -> str:
+    """Every grid-file key with its default and meaning (``blockyard grid --keys``), from ``GridFile``."""
+    rows = [(key, "-" if default is None else json.dumps(default), help_text)
+            for key, default, help_text in describe(GridFile)]
+    return aligned_table(["key", "default", "meaning"], rows)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -173,50 +235,41 @@ def parse_grid(
     text: str | None = None,
 ) -> GridSpec:
     """Validate a grid mapping (the parsed YAML); relative paths resolve against ``base_dir``."""
-    unknown = sorted(set(data) - set(GRID_KEYS))
-    if unknown:
-        raise ConfigError(str(unknown[0]), f"unknown grid key (allowed: {', '.join(GRID_KEYS)})")
-    name = data.get("name") or default_name
-    if not isinstance(name, str) or not _NAME_RE.match(name):
-        raise ConfigError("name", f"{name!r}: use letters, digits, '_', '.' and '-' (it names the grid dir)")
-    description = data.get("description") or ""
-    if not isinstance(description, str):
-        raise ConfigError("description", "expected a string")
-    base = _parse_base(data.get("base"), base_dir)
-    variants = _parse_variants(data.get("variants"))
-    reference = _parse_reference(data.get("reference"), variants, declared="variants" in data)
-    axes = _parse_axes(data.get("axes"))
-    seeds, schedule = _parse_seeds(data.get("seeds"), data.get("budget_hours"))
-    design = Design(_parse_smallest_effect(data.get("smallest_effect", DEFAULT_SMALLEST_EFFECT)), schedule,
-                    _parse_null_control(data.get("null_control", False), reference, variants))
-    match = data.get("match", "none")
-    if match not in MATCH_MODES:
-        raise ConfigError("match", f"{match!r} is not allowed (allowed: {', '.join(MATCH_MODES)})")
-    if match != "none" and reference is None:
-        raise ConfigError("match", f"match: {match} needs variants and a reference to match against")
+    f = parse(GridFile, data)
+    name = f.name or default_name
+    if not _NAME_RE.match(name):
+        raise ConfigError("name", f"{name!r}: {_NAME_RULE}")
+    base = _parse_base(f.base, base_dir)
+    variants = _parse_variants(f.variants)
+    reference = _parse_reference(f.reference, variants, declared=f.variants is not None)
+    axes = _parse_axes(f.axes)
+    seeds, schedule = _parse_seeds(f.seeds, f.budget_hours)
+    design = Design(f.smallest_effect, schedule, _check_null_control(f.null_control, reference, variants))
+    if f.match != "none" and reference is None:
+        raise ConfigError("match", f"match: {f.match} needs variants and a reference to match against")
     for key in axes:
         for vname, overrides in variants.items():
             if key in overrides:
                 raise ConfigError(f"axes.{key}", f"also set by variants.{vname}; set each key in one place")
     set_by = {**{k: f"variants.{v}" for v, o in variants.items() for k in o}, **{k: "axes" for k in axes}}
-    ladder = parse_ladder(data, _check_override_key)
+    ladder = parse_ladder(f.ladder, f.tokens_per_param, f.ladder_target, _check_override_key)
     if ladder is not None:
         check_conflicts(ladder, axes, variants)
         for i, rung in enumerate(ladder.rungs, start=1):
             for k in rung:
                 set_by.setdefault(k, ladder.rung_path(i))
-    tuning = parse_tuning(data.get("tune"), seeds=seeds, reserved=_RESERVED_KEYS, matched_key=MATCHED_KEYS.get(match),
+    tuning = parse_tuning(f.tune, seeds=seeds, reserved=_RESERVED_KEYS, matched_key=MATCHED_KEYS.get(f.match),
                           set_by=set_by, has_ladder=ladder is not None)
     spec = GridSpec(
         name=name,
-        description=description.strip(),
+        description=(f.description or "").strip(),
         text=text if text is not None else json.dumps(data, indent=2, default=str),
         base=base,
         variants=variants,
         reference=reference,
         axes=axes,
         seeds=seeds,
-        match=match,
+        match=f.match,
         design=design,
         tuning=tuning,
         ladder=ladder,
@@ -225,7 +278,7 @@ def parse_grid(
     return spec
 
 
-def _parse_base(raw: Any, base_dir: Path) -> dict[str, Any]:
+def _parse_base(raw: str | dict | None, base_dir: Path) -> dict[str, Any]:
     if raw is None:
         raise ConfigError("base", "required: a config path (relative to the grid file) or an inline mapping")
     if isinstance(raw, str):
@@ -235,9 +288,7 @@ def _parse_base(raw: Any, base_dir: Path) -> dict[str, Any]:
         except UserError as e:
             raise ConfigError("base", str(e)) from None
         return resolve_extends(data, path.parent, (path,))
-    if isinstance(raw, dict):
-        return resolve_extends(copy.deepcopy(raw), base_dir)
-    raise ConfigError("base", f"expected a config path or a mapping, got {raw!r}")
+    return resolve_extends(copy.deepcopy(raw), base_dir)
 
 
 def _check_override_key(path: str, key: Any) -> str:
@@ -251,10 +302,10 @@ def _check_override_key(path: str, key: Any) -> str:
     return key
 
 
-def _parse_variants(raw: Any) -> dict[str, dict[str, Any]]:
+def _parse_variants(raw: dict | None) -> dict[str, dict[str, Any]]:
     if raw is None:
         return {BASE_VARIANT: {}}
-    if not isinstance(raw, dict) or not raw:
+    if not raw:
         raise ConfigError("variants", "expected a mapping: variant name -> {dotted.key: value, ...}")
     variants: dict[str, dict[str, Any]] = {}
     for vname, overrides in raw.items():
@@ -270,7 +321,7 @@ def _parse_variants(raw: Any) -> dict[str, dict[str, Any]]:
     return variants
 
 
-def _parse_reference(raw: Any, variants: dict[str, dict[str, Any]], *, declared: bool) -> str | None:
+def _parse_reference(raw: str | None, variants: dict[str, dict[str, Any]], *, declared: bool) -> str | None:
     if not declared:
         if raw is not None:
             raise ConfigError("reference", "names a variant, but the grid declares no variants")
@@ -279,14 +330,12 @@ def _parse_reference(raw: Any, variants: dict[str, dict[str, Any]], *, declared:
         raise ConfigError("reference", f"required with variants: one of {', '.join(variants)}")
     if raw not in variants:
         raise ConfigError("reference", f"{raw!r} is not a variant (variants: {', '.join(variants)})")
-    return str(raw)
+    return raw
 
 
-def _parse_axes(raw: Any) -> dict[str, tuple[Any, ...]]:
+def _parse_axes(raw: dict | None) -> dict[str, tuple[Any, ...]]:
     if raw is None:
         return {}
-    if not isinstance(raw, dict):
-        raise ConfigError("axes", "expected a mapping: dotted.key -> [values]")
     axes: dict[str, tuple[Any, ...]] = {}
     for key, values in raw.items():
         _check_override_key("axes", key)
@@ -299,7 +348,7 @@ def _parse_axes(raw: Any) -> dict[str, tuple[Any, ...]]:
     return axes
 
 
-def _parse_seeds(raw: Any, budget_hours: Any = None) -> tuple[tuple[int, ...], SeedSchedule | None]:
+def _parse_seeds(raw: Any, budget_hours: float | None = None) -> tuple[tuple[int, ...], SeedSchedule | None]:
     """A list of seeds (fixed design), or ``{first, most, step}`` (seeds 0 .. most - 1, added in rounds);
     ``most: auto`` goes with ``budget_hours`` and nothing else."""
     schedule = _parse_schedule(raw) if isinstance(raw, dict) else None
@@ -321,7 +370,7 @@ def _parse_seeds(raw: Any, budget_hours: Any = None) -> tuple[tuple[int, ...], S
     return tuple(raw), None
 
 
-def _is_int(x: Any) -> bool:
+def _is_int(x: Any) -> TypeGuard[int]:
     return isinstance(x, int) and not isinstance(x, bool)
 
 
@@ -340,32 +389,21 @@ def _parse_schedule(raw: dict[str, Any]) -> SeedSchedule:
     start = raw.get("start", 0)
     if not _is_int(start) or start < 0:
         raise ConfigError("seeds.start", f"{start!r}: an integer >= 0 (the first seed number; default 0)")
-    return SeedSchedule(first, first if auto else most, step, auto=auto, start=start)
+    return SeedSchedule(first, first if auto else cast(int, most), step, auto=auto, start=start)
 
 
-def _parse_budget_hours(raw: Any) -> float:
+def _parse_budget_hours(raw: float | None) -> float:
     if raw is None:
         raise ConfigError("seeds.most", "auto needs the grid key budget_hours: H (hours the worst case may take)")
-    if isinstance(raw, bool) or not isinstance(raw, (int, float)) or not math.isfinite(raw) or raw <= 0:
-        raise ConfigError("budget_hours", f"{raw!r}: a number of hours > 0 (with seeds.most: auto)")
-    return float(raw)
-
-
-def _parse_smallest_effect(raw: Any) -> float:
-    if isinstance(raw, bool) or not isinstance(raw, (int, float)) or not math.isfinite(raw) or raw <= 0:
-        raise ConfigError("smallest_effect", f"{raw!r}: a number > 0 (nats per token; default "
-                          f"{DEFAULT_SMALLEST_EFFECT})")
-    return float(raw)
-
-
-def _parse_null_control(raw: Any, reference: str | None, variants: dict[str, dict[str, Any]]) -> bool:
-    if not isinstance(raw, bool):
-        raise ConfigError("null_control", f"{raw!r}: true or false")
-    if raw and reference is None:
-        raise ConfigError("null_control", "needs variants and a reference (the null control repeats the reference)")
-    if raw and NULL_VARIANT in variants:
-        raise ConfigError("null_control", f"the grid already has a variant named {NULL_VARIANT}; rename it")
     return raw
+
+
+def _check_null_control(on: bool, reference: str | None, variants: dict[str, dict[str, Any]]) -> bool:
+    if on and reference is None:
+        raise ConfigError("null_control", "needs variants and a reference (the null control repeats the reference)")
+    if on and NULL_VARIANT in variants:
+        raise ConfigError("null_control", f"the grid already has a variant named {NULL_VARIANT}; rename it")
+    return on
 
 
 # ----------------------------------------------------------------------------- configs
@@ -415,11 +453,12 @@ def _validate_pieces(spec: GridSpec) -> None:
             except ConfigError as e:
                 detail = str(e).removeprefix(f"{key}: ")
                 raise ConfigError(f"axes.{key}", f"value {_value_text(value)}: {detail}") from None
-    for k, rung in enumerate(spec.ladder.rungs if spec.ladder else (), start=1):
+    ladder = spec.ladder
+    for k, rung in enumerate(ladder.rungs if ladder is not None else (), start=1):
         try:
             config_with(spec.base, rung)
         except ConfigError as e:
-            raise ConfigError(spec.ladder.rung_path(k), str(e)) from None
+            raise ConfigError(ladder.rung_path(k) if ladder is not None else "ladder", str(e)) from None
     if spec.tuning is not None:
         _validate_tuning(spec, spec.tuning)
 

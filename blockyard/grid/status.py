@@ -18,11 +18,10 @@ from __future__ import annotations
 import dataclasses
 import time
 from pathlib import Path
-from typing import Any
 
 from blockyard import fs
 from blockyard.errors import UserError
-from blockyard.grid.index import FINISHED, INDEX_NAME, ROUNDS_META, ROUNDS_OPEN, open_index
+from blockyard.grid.index import FINISHED, INDEX_NAME, ROUNDS_META, ROUNDS_OPEN, CellRow, open_index
 from blockyard.grid.tuning import TUNING_DIR, Tuning
 from blockyard.rundir import format_duration, last_train_line, summary_status, writer_pid
 
@@ -87,7 +86,7 @@ class GridProgress:
         return ", ".join(parts) + f" | {eta}"
 
 
-def cell_status(grid_dir: Path, row: dict[str, Any], grid_alive: bool) -> str:
+def cell_status(grid_dir: Path, row: CellRow, grid_alive: bool) -> str:
     """A cell's status as it is now: the index's, corrected by the cell's run dir.
 
     Its own summary saying done or diverged wins (the grid may have died before recording it);
@@ -104,7 +103,7 @@ def cell_status(grid_dir: Path, row: dict[str, Any], grid_alive: bool) -> str:
     return status
 
 
-def _cell_progress(grid_dir: Path, row: dict[str, Any], status: str) -> CellProgress:
+def _cell_progress(grid_dir: Path, row: CellRow, status: str) -> CellProgress:
     last = last_train_line(cell_dir(grid_dir, row["id"]))
     return CellProgress(
         id=row["id"],
@@ -116,7 +115,7 @@ def _cell_progress(grid_dir: Path, row: dict[str, Any], status: str) -> CellProg
     )
 
 
-def grid_progress(grid_dir: str | Path, rows: list[dict[str, Any]] | None = None,
+def grid_progress(grid_dir: str | Path, rows: list[CellRow] | None = None,
                   name: str | None = None, grid_alive: bool | None = None,
                   more_rounds: bool | None = None) -> GridProgress:
     """Counts and ETA from the index rows (read from ``grid_dir`` when not given) and the cells' run dirs.
@@ -148,10 +147,11 @@ def grid_progress(grid_dir: str | Path, rows: list[dict[str, Any]] | None = None
             cells.append(cp)
             tokens_left += max(0, cp.tokens_planned - cp.tokens_done)
     # A cell that has just started has no speed yet: count it at the mean speed of finished cells.
-    finished_rates = [r["tokens_per_s"] for r in rows if r["status"] == "done" and r.get("tokens_per_s")]
+    finished_rates = [rate for r in rows if r["status"] == "done" and (rate := r.get("tokens_per_s"))]
     fallback = sum(finished_rates) / len(finished_rates) if finished_rates else None
     rates = [c.tokens_per_s or fallback for c in cells if c.status == "running"]
-    eta = tokens_left / sum(rates) if rates and all(rates) else None
+    known = [rate for rate in rates if rate]
+    eta = tokens_left / sum(known) if rates and len(known) == len(rates) else None
     return GridProgress(name=name, eta_s=eta, cells=cells, more_rounds=more_rounds, **counts)
 
 

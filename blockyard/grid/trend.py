@@ -247,11 +247,11 @@ def fit_power_law(
                 warnings.simplefilter("ignore", optimize.OptimizeWarning)  # pcov inf: no interval, said below
                 full, pcov = _fit_full(x, y, None)
             alpha_se, dof = float(math.sqrt(pcov[2, 2])) if pcov[2, 2] >= 0 else math.nan, len(x) - 3
-        except (RuntimeError, ValueError) as e:
-            notes.append(f"the E + A N^-alpha fit did not converge ({e}); fitted log L on log N without E")
+        except (RuntimeError, ValueError) as err:
+            notes.append(f"the E + A N^-alpha fit did not converge ({err}); fitted log L on log N without E")
     if full is None:
-        b, alpha = _fit_log(x, y)
-        e, b, alpha = 0.0, float(b), float(alpha)
+        b_fit, alpha_fit = _fit_log(x, y)
+        e, b, alpha = 0.0, float(b_fit), float(alpha_fit)
         if dof >= 1:
             alpha_se = float(stats.linregress(np.log(x), np.log(y)).stderr)
     else:

@@ -14,9 +14,8 @@ from pathlib import Path
 
 import numpy as np
 
-from blockyard.eval.extrapolation import save_figure
 from blockyard.grid.trend import GapTrend, PowerLawFit, gap_at, gap_band, predict_loss
-from blockyard.palette import use_palette
+from blockyard.plotting import finish, pyplot
 
 
 def _span(n_min: float, n_max: float, target: float | None) -> np.ndarray:
@@ -34,12 +33,7 @@ def plot_loss_vs_params(
     ylabel: str = "validation loss (nats/token)",
 ) -> Path:
     """PNG: per variant (key of ``fits``), ``points[variant] = (n per rung, per-seed losses per rung)``."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    use_palette(matplotlib)
-    import matplotlib.pyplot as plt
-
+    plt = pyplot()
     fig, ax = plt.subplots(figsize=(7, 4.5))
     for label, fit in fits.items():
         n, losses = points[label]
@@ -62,20 +56,14 @@ def plot_loss_vs_params(
     ax.set_title("loss against size: dots = seeds, circles = rung means, lines = fits")
     ax.grid(True, which="both", alpha=0.3)
     ax.legend(fontsize=7)
-    fig.tight_layout()
-    return save_figure(fig, path)
+    return finish(fig, path, dpi=120)
 
 
 def plot_gap_vs_params(
     trends: Mapping[str, GapTrend], path: str | Path, *, unit: str = "nats/token"
 ) -> Path:
     """PNG: per comparison (key), the paired gap (variant - reference) against N with its fitted line."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    use_palette(matplotlib)
-    import matplotlib.pyplot as plt
-
+    plt = pyplot()
     fig, ax = plt.subplots(figsize=(7, 4.5))
     ax.axhline(0.0, color="black", lw=1)
     for label, tr in trends.items():
@@ -90,9 +78,9 @@ def plot_gap_vs_params(
         ax.plot(curve_n, gap_at(tr, curve_n), "-", color=color,
                 label=f"{label}: {tr.slope:+.4f}/doubling [{tr.slope_low:+.4f}, {tr.slope_high:+.4f}], {tr.trend}")
         if tr.target is not None:
-            ax.errorbar([tr.target], [tr.gap_at_target], yerr=[[tr.gap_at_target - tr.gap_low],
-                                                                [tr.gap_high - tr.gap_at_target]],
-                        fmt="s", color=color, capsize=3)
+            gap, gap_low, gap_high = tr.gap_at_target, tr.gap_low, tr.gap_high
+            assert gap is not None and gap_low is not None and gap_high is not None  # set with the target
+            ax.errorbar([tr.target], [gap], yerr=[[gap - gap_low], [gap_high - gap]], fmt="s", color=color, capsize=3)
         if tr.crossover is not None:
             ax.plot([tr.crossover], [0.0], "x", color=color, ms=9)
             ax.plot([max(tr.crossover_low, curve_n[0]), min(tr.crossover_high, curve_n[-1])], [0.0, 0.0], "-",
@@ -105,5 +93,4 @@ def plot_gap_vs_params(
                  fontsize=9)
     ax.grid(True, which="both", alpha=0.3)
     ax.legend(fontsize=7)
-    fig.tight_layout()
-    return save_figure(fig, path)
+    return finish(fig, path, dpi=120)

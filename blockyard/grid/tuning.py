@@ -43,8 +43,10 @@ from typing import Any
 
 from blockyard.config import Config
 from blockyard.errors import ConfigError
+from blockyard.grid.index import CellRow
 from blockyard.grid.ladder import RUNG
 from blockyard.schema import to_dict
+from blockyard.text import is_finite_number
 
 TUNE_KEYS = ("key", "values", "seeds", "budget", "rungs")
 # tune.rungs: which rungs of a ladder stage 1 tunes (the others take rung 1's value under "first").
@@ -168,7 +170,7 @@ def _parse_values(raw: Any, key: str) -> tuple[float, ...]:
         values = raw
     else:
         raise ConfigError("tune.values", f"{raw!r}: {allowed}")
-    if len(values) < 2 or any(not _is_number(v) for v in values):
+    if len(values) < 2 or any(not is_finite_number(v) for v in values):
         raise ConfigError("tune.values", f"{values!r}: {allowed}")
     if len(set(values)) != len(values):
         raise ConfigError("tune.values", f"lists a value twice; {allowed}")
@@ -182,9 +184,9 @@ def _log_range(raw: dict[str, Any]) -> list[float]:
     if unknown:
         raise ConfigError(f"tune.values.{unknown[0]}", f"unknown key (allowed: {', '.join(RANGE_KEYS)})")
     low, high, count = raw.get("low"), raw.get("high"), raw.get("count")
-    if not _is_number(low) or low <= 0:
+    if not is_finite_number(low) or low <= 0:
         raise ConfigError("tune.values.low", f"{low!r}: a number > 0 (the values are log-spaced)")
-    if not _is_number(high) or high <= low:
+    if not is_finite_number(high) or high <= low:
         raise ConfigError("tune.values.high", f"{high!r}: a number > tune.values.low ({low})")
     if not isinstance(count, int) or isinstance(count, bool) or count < 2:
         raise ConfigError("tune.values.count", f"{count!r}: an integer >= 2")
@@ -195,7 +197,8 @@ def _log_range(raw: dict[str, Any]) -> list[float]:
 def default_tuning_seeds(verdict_seeds: tuple[int, ...]) -> tuple[int, ...]:
     """``tune.seeds`` left out: the first ``DEFAULT_TUNING_SEEDS`` integers from 100 up that are not verdict seeds.
     Three, not one: a value that survives one seed says little about the cliff above it (issue 26)."""
-    taken, out, s = set(verdict_seeds), [], TUNING_SEED_START
+    taken, s = set(verdict_seeds), TUNING_SEED_START
+    out: list[int] = []
     while len(out) < DEFAULT_TUNING_SEEDS:
         if s not in taken:
             out.append(s)
@@ -223,7 +226,7 @@ def _parse_seeds(raw: Any, verdict_seeds: tuple[int, ...]) -> tuple[int, ...]:
 
 
 def _parse_budget(raw: Any) -> float:
-    if not _is_number(raw) or not 0 < raw <= 1:
+    if not is_finite_number(raw) or not 0 < raw <= 1:
         raise ConfigError("tune.budget", f"{raw!r}: a number in (0, 1], the tuning cells' token budget as a "
                           "fraction of the verdict cells'")
     return float(raw)
@@ -240,10 +243,6 @@ def _parse_rungs(raw: Any, has_ladder: bool) -> str:
     return str(raw)
 
 
-def _is_number(x: Any) -> bool:
-    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
-
-
 def check_tuned_key(tuning: Tuning, configs: dict[str, Config]) -> None:
     """The tuned key must hold a number in every variant's config (``configs``: variant name -> config)."""
     for name, cfg in configs.items():
@@ -253,7 +252,7 @@ def check_tuned_key(tuning: Tuning, configs: dict[str, Config]) -> None:
                 raise ConfigError("tune.key", f"{tuning.key} is not a config key (of variant {name}); tune a numeric "
                                   "config key such as train.lr")
             node = node[part]
-        if not _is_number(node):
+        if not is_finite_number(node):
             raise ConfigError("tune.key", f"{tuning.key} is {node!r} in variant {name}, not a number; tune a numeric "
                               "config key such as train.lr")
 
@@ -348,17 +347,17 @@ class TunedGroup:
         return all(math.isinf(m) for m in self.means.values())
 
 
-def _score(row: dict[str, Any]) -> float | None:
+def _score(row: CellRow) -> float | None:
     """A tuning cell's score: its final loss; +inf when diverged or failed; None while it may still train."""
     loss = row.get("final_val_loss")
     if row["status"] == "done":
-        return float(loss) if _is_number(loss) else math.inf
+        return float(loss) if is_finite_number(loss) else math.inf
     if row["status"] in ("diverged", "failed"):
         return math.inf
     return None
 
 
-def split_point(row: dict[str, Any], key: str) -> tuple[Point, float]:
+def split_point(row: CellRow, key: str) -> tuple[Point, float]:
     """A tuning cell's (verdict point, tuned value): its point is the verdict point with the tuned key appended."""
     point = tuple(tuple(p) for p in row["point"])
     if not point or point[-1][0] != key:
@@ -366,7 +365,7 @@ def split_point(row: dict[str, Any], key: str) -> tuple[Point, float]:
     return point[:-1], point[-1][1]
 
 
-def tuned_groups(rows: Iterable[dict[str, Any]], tuning: Tuning, smallest_effect: float) -> list[TunedGroup] | None:
+def tuned_groups(rows: Iterable[CellRow], tuning: Tuning, smallest_effect: float) -> list[TunedGroup] | None:
     """Every tuned (variant, point) with its chosen value and basin, in row order; None while a cell may still train."""
     parts: dict[GroupKey, dict[float, dict[int, float]]] = {}
     for r in rows:

@@ -10,7 +10,7 @@ Divergence is an outcome: where the two groups of a comparison diverged on diffe
 verdict comes from the worst-rank composite (``DivergenceTest``), never from the seeds one group
 lost. A decided verdict that changes when any single seed is left out is marked ``fragile``.
 
-Pure functions over cell records (dicts with ``variant, point, seed, status, final_val_loss``):
+Pure functions over cell records (``CellOutcome``: ``variant, point, seed, status, final_val_loss``):
 no I/O, so the report, the round planner (``blockyard.grid.rounds``) and later stages (tuning,
 size ladders: anything that yields groups keyed by variant and point) share them.
 """
@@ -19,11 +19,12 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from collections.abc import Iterable
-from typing import Any
+from collections.abc import Iterable, Mapping
+from typing import Any, TypedDict
 
 from blockyard.grid import stats
 from blockyard.grid.spec import NULL_VARIANT, Design
+from blockyard.text import is_finite_number, percent_text, value_text
 
 Point = tuple[tuple[str, Any], ...]
 GroupKey = tuple[str, Point]
@@ -32,18 +33,6 @@ GroupKey = tuple[str, Point]
 def point_text(point: Point) -> str:
     """``model.width=64, model.depth=3``; ``-`` without axes."""
     return ", ".join(f"{k}={value_text(v)}" for k, v in point) or "-"
-
-
-def value_text(v: Any) -> str:
-    if isinstance(v, (list, tuple)):
-        return "[" + ", ".join(value_text(x) for x in v) + "]"
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    return str(v)
-
-
-def _finite(x: Any) -> bool:
-    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -67,14 +56,24 @@ class GroupOutcomes:
         return set(self.losses) | set(self.diverged)
 
 
-def group_outcomes(rows: Iterable[dict[str, Any]]) -> dict[GroupKey, GroupOutcomes]:
+class CellOutcome(TypedDict):
+    """What the verdicts read of a cell's record: the index's ``CellRow`` is one, and so is a simulated cell."""
+
+    variant: str
+    point: list[tuple[str, Any]]
+    seed: int
+    status: str  # done, diverged, failed; anything else is unfinished
+    final_val_loss: float | None
+
+
+def group_outcomes(rows: Iterable[CellOutcome]) -> dict[GroupKey, GroupOutcomes]:
     """Cell records grouped by (variant, point), in the order the rows list them."""
     parts: dict[GroupKey, dict[str, Any]] = {}
     for r in rows:
         key = (r["variant"], tuple(tuple(p) for p in r["point"]))
         g = parts.setdefault(key, {"losses": {}, "diverged": [], "failed": [], "unfinished": []})
         status, loss = r["status"], r.get("final_val_loss")
-        if status == "done" and _finite(loss):
+        if status == "done" and is_finite_number(loss):
             g["losses"][r["seed"]] = float(loss)
         elif status in ("done", "diverged"):
             g["diverged"].append(r["seed"])
@@ -86,8 +85,8 @@ def group_outcomes(rows: Iterable[dict[str, Any]]) -> dict[GroupKey, GroupOutcom
                              tuple(v["unfinished"])) for k, v in parts.items()}
 
 
-def restrict(groups: dict[GroupKey, GroupOutcomes], seeds: dict[GroupKey, Iterable[int]]) -> dict[GroupKey,
-                                                                                                     GroupOutcomes]:
+def restrict(groups: dict[GroupKey, GroupOutcomes],
+             seeds: Mapping[GroupKey, Iterable[int]]) -> dict[GroupKey, GroupOutcomes]:
     """Each group's outcomes on the given seeds only (a look of the sequential design sees so much)."""
     out = {}
     for key, g in groups.items():
@@ -219,7 +218,8 @@ def compare_all(groups: dict[GroupKey, GroupOutcomes], reference: str | None, de
     m = family_size(groups, reference)
     a_look = look_alpha(design, m)
     refs = {g.point: g for g in groups.values() if g.variant == reference}
-    family, null = [], []
+    family: list[Comparison] = []
+    null: list[Comparison] = []
     for g in groups.values():
         if g.variant == reference or g.point not in refs:
             continue
@@ -282,7 +282,7 @@ def _divergence_note(d: DivergenceTest, alpha_look: float) -> str:
               f"only), McNemar exact p = {d.mcnemar_p:.3g}")
     if not d.reachable:
         return (f"{stats.DIVERGENCE_DIFFERS}: {counts}; no rank test on {d.pairs} pair(s) can reach "
-                f"{100 * alpha_look:.4g}%")
+                f"{percent_text(alpha_look)}")
     p = min(d.rank.p_less, d.rank.p_greater)
     rule = "by the worst-rank composite" if d.verdict != stats.UNDECIDED else stats.DIVERGENCE_DIFFERS
     return f"{rule}: {counts}; signed-rank one-sided p = {p:.3g}"

@@ -34,7 +34,7 @@ from __future__ import annotations
 import dataclasses
 import math
 from collections.abc import Callable, Collection, Iterator
-from typing import Any
+from typing import Any, Protocol, runtime_checkable
 
 import torch
 from torch import nn
@@ -58,6 +58,15 @@ BATCH = 2
 
 Forward = Callable[[torch.Tensor], torch.Tensor]
 StepFn = Callable[[torch.Tensor, Any], tuple[torch.Tensor, Any]]
+
+
+@runtime_checkable
+class Steps(Protocol):
+    """The step path a mixer, and a model assembled from mixers, gives: a fresh state, then one token at a time."""
+
+    def init_state(self, batch: int) -> Any: ...
+
+    def step(self, x_t: torch.Tensor, state: Any) -> tuple[torch.Tensor, Any]: ...
 
 
 @dataclasses.dataclass(frozen=True)
@@ -267,6 +276,12 @@ def check_determinism(forward: Forward, x: torch.Tensor) -> CheckResult:
     return CheckResult("determinism", diff == 0.0, f"two forwards differ by {diff:.2g}", diff)
 
 
+def is_frozen_dataclass(obj: object) -> bool:
+    """Whether ``obj`` is an instance of a dataclass declared ``frozen=True``."""
+    params = getattr(obj, "__dataclass_params__", None)  # what dataclasses sets on the class it makes
+    return dataclasses.is_dataclass(obj) and not isinstance(obj, type) and bool(params is not None and params.frozen)
+
+
 @torch.no_grad()
 def check_state(mixer: Mixer, x: torch.Tensor) -> CheckResult:
     """States are frozen dataclasses of batch-first tensors, and ``step`` leaves its input state as it was."""
@@ -277,7 +292,7 @@ def check_state(mixer: Mixer, x: torch.Tensor) -> CheckResult:
                                    "state tensors are batch-first")
     state = mixer.init_state(x.shape[0])
     for t in range(x.shape[1]):
-        if not (dataclasses.is_dataclass(state) and state.__dataclass_params__.frozen):
+        if not is_frozen_dataclass(state):
             return CheckResult("state", False, f"the state before token {t} is a {type(state).__name__}, "
                                "not a frozen dataclass", position=t)
         before = [(path, tensor, tensor._version, tensor.clone()) for path, tensor in state_tensors(state)]
@@ -391,6 +406,8 @@ def mixer_contract(cls: type[Mixer], width: int, options: Any, *, seq_len: int =
 def model_contract(model: nn.Module, vocab: int, *, seq_len: int = 32, batch: int = BATCH,
                    checks: Collection[str] = MODEL_CHECKS) -> list[CheckResult]:
     """Causality, step == forward, gradients and determinism of an assembled model (token ids in)."""
+    if not isinstance(model, Steps):
+        raise TypeError(f"{type(model).__name__} has no step path (init_state and step)")
     tokens = torch.randint(0, vocab, (batch, seq_len), generator=torch.Generator().manual_seed(3))
     was_training = model.training
     model.eval()

@@ -72,8 +72,8 @@ class LSTMMixer(Mixer):
         if self.base_hidden is None or self.base_hidden == self.hidden:
             return
         bound = self.base_hidden**-0.5
-        for bias in (self.lstm.bias_ih_l0, self.lstm.bias_hh_l0):
-            nn.init.uniform_(bias, -bound, bound)
+        for name in ("bias_ih_l0", "bias_hh_l0"):
+            nn.init.uniform_(self.lstm.get_parameter(name), -bound, bound)
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         y, _ = self.lstm(x)

@@ -43,7 +43,7 @@ from torch import nn
 from blockyard.errors import ConfigError
 from blockyard.kernels import check_backend, linear_scan, uses_fused_op
 from blockyard.kernels.ops import causal_conv_fused, compiled_ops, gelu_mul_fused, rg_lru_fused
-from blockyard.mixers.base import Mixer, register_mixer
+from blockyard.mixers.base import Mixer, mark_residual_out, register_mixer
 from blockyard.schema import opt
 
 Scan = Callable[[torch.Tensor, torch.Tensor, torch.Tensor | None], torch.Tensor]
@@ -412,7 +412,7 @@ class RecurrenceBlock(Mixer):
                      if options.conv_width > 0 else None)
         self.lru = RGLRU(rec, options, kernels=kernels)
         self.proj_out = nn.Linear(rec, width, bias=False)
-        self.proj_out.residual_out = True
+        mark_residual_out(self.proj_out)
 
     def reset_special_parameters(self) -> None:
         if self.conv is not None:
@@ -453,9 +453,9 @@ class RecurrenceBlock(Mixer):
         math as ``_mix`` on one token, with a handful of ops instead of a few dozen. Returns a new state."""
         gate, rec = self.proj_in(x_t).chunk(2, dim=-1)
         lru, conv = self.lru, self.conv
-        weights = [None] * 2 if conv is None else [conv.weight, conv.bias]
+        weights: list[torch.Tensor | None] = [None, None] if conv is None else [conv.weight, conv.bias]
         for g in (lru.gate_a, lru.gate_x):
-            weights += [None] * 2 if g is None else [g.weight, g.bias]
+            weights += [None, None] if g is None else [g.weight, g.bias]
         h, tail = compiled_ops().rglru_step(rec.float().contiguous(), state.conv_tail, *weights, lru.decay,
                                             state.h, float(self.options.c), self.options.input_norm)
         y = self.proj_out(F.gelu(gate) * h.to(gate.dtype))

@@ -46,6 +46,7 @@ from blockyard.rundir import (
     TENSORBOARD_DIR,
     writing,
 )
+from blockyard.text import decimal_bytes
 from blockyard.train import checkpoint as ckpt
 from blockyard.train.allocator import keep_freed_memory
 from blockyard.train.averaging import WeightAverage, ema_decay, half_life_steps
@@ -67,6 +68,10 @@ from blockyard.train.signals import StopRequest
 Batch = tuple[torch.Tensor, torch.Tensor]
 #: An extra evaluation metric: (model, runtime) -> {name: value}, merged into each val line.
 EvalHook = Callable[[nn.Module, Runtime], dict[str, float]]
+#: Builds an eval hook once the run's data is loaded, before training (so a hook that cannot run fails
+#: first): (config, data) -> hook, or None when the config asks for none. Layers above the trainer plug in
+#: so, e.g. the probe suite (``blockyard.eval.probes.make_eval_hook``, passed in by ``blockyard train``).
+EvalHookBuilder = Callable[[Config, Any], EvalHook | None]
 
 
 # ----------------------------------------------------------------------------- math of one step
@@ -113,7 +118,7 @@ def train_step(
             (loss / denom).backward()
         loss_sum += loss.item()
     params = [p for p in model.parameters() if p.grad is not None]
-    norm = torch.nn.utils.get_total_norm([p.grad for p in params])
+    norm = torch.nn.utils.get_total_norm([g for p in params if (g := p.grad) is not None])
     # torch's clip_grad_norm_, minus its pass over every gradient where its factor is exactly 1.0
     if grad_clip > 0 and not grad_clip / (norm + 1e-6) >= 1.0:
         torch.nn.utils.clip_grads_with_norm_(params, grad_clip, norm)
@@ -234,7 +239,8 @@ def _build(cfg: Config, cfg_hash: str, runtime: Runtime) -> Setup:
 
 
 def _param_counts(model: nn.Module) -> dict[str, int]:
-    groups = model.param_groups() if hasattr(model, "param_groups") else {}
+    param_groups = getattr(model, "param_groups", None)  # blockyard's models have it; a plain module not
+    groups: dict[str, int] = param_groups() if param_groups is not None else {}
     total = groups.get("total", sum(p.numel() for p in model.parameters()))
     return {"total": int(total), "non_embedding": int(groups.get("non_embedding", total))}
 
@@ -279,17 +285,22 @@ def run_training(
     force: bool = False,
     progress: str | Progress | None = None,
     eval_hooks: Sequence[EvalHook] = (),
+    eval_hook_builders: Sequence[EvalHookBuilder] = (),
     check: bool = True,
     wait_s: float = 0.0,
 ) -> dict[str, Any]:
     """Train ``cfg`` into ``out_dir`` (fresh, resumed, or not at all when done); the summary.
 
     ``progress``: None/"auto" (tqdm bar on a TTY, log lines otherwise), "log", "bar",
-    "silent", "warnings", or a :class:`Progress`. ``check``: run the mixer contract gate on
+    "silent", "warnings", or a :class:`Progress`. ``eval_hooks`` and the hooks that
+    ``eval_hook_builders`` build add metrics to every val line. ``check``: run the mixer contract gate on
     plugin mixers first (``blockyard.check.gate``). The run holds the dir's writer lock throughout;
     another live writer is waited for up to ``wait_s`` seconds. Raises UserError for bad input or
     a busy dir (the dir untouched), WriteFailed when a file cannot be written (nothing earlier lost).
     """
+    if cfg.eval.probes and not eval_hook_builders:  # a caller's slip, not the user's: say so before any work
+        raise ValueError("eval.probes is set but no eval_hook_builders were given to build the probes "
+                         "(pass [blockyard.eval.probes.make_eval_hook], as `blockyard train` does)")
     out = Path(out_dir)
     cfg_hash = config_hash(cfg)
     show = make_progress(progress)
@@ -314,13 +325,11 @@ def run_training(
             from blockyard.cost.memory import warn_if_too_large  # activations that will not fit: say so first
 
             warn_if_too_large(cfg, s.data.vocab_size, lambda m: show.message(f"warning: {m}"))
-            if warning := compile_warning(s.compiled):
-                show.message(f"warning: {warning}")
+            if why := compile_warning(s.compiled):
+                show.message(f"warning: {why}")
             _warn_if_disk_short(out, s, show)
-            from blockyard.eval.probes import make_eval_hook  # eval.probes; builds (and checks) the probes first
-
-            probes = make_eval_hook(cfg, s.data)
-            return _train(s, out, action, show, (*eval_hooks, probes) if probes else tuple(eval_hooks))
+            built = (build(cfg, s.data) for build in eval_hook_builders)
+            return _train(s, out, action, show, (*eval_hooks, *(hook for hook in built if hook is not None)))
         finally:
             torch.set_num_threads(threads_before)
 
@@ -343,9 +352,9 @@ def _warn_if_disk_short(out: Path, s: Setup, show: Progress) -> None:
     need = (s.cfg.train.keep_checkpoints + 1) * each
     free = fs.free_bytes(out)
     if free is not None and free < need:
-        show.message(f"warning: {out}: {fs.format_bytes(free)} free, but train.keep_checkpoints "
-                     f"{s.cfg.train.keep_checkpoints} checkpoints of about {fs.format_bytes(each)} (+1 being "
-                     f"written) need {fs.format_bytes(need)}; the run will stop with exit code 4 when the disk "
+        show.message(f"warning: {out}: {decimal_bytes(free)} free, but train.keep_checkpoints "
+                     f"{s.cfg.train.keep_checkpoints} checkpoints of about {decimal_bytes(each)} (+1 being "
+                     f"written) need {decimal_bytes(need)}; the run will stop with exit code 4 when the disk "
                      "is full (free space, then rerun the same command to resume)")
 
 
@@ -386,7 +395,9 @@ class _Segment:
     def __init__(self, s: Setup, out: Path, show: Progress, eval_hooks: Sequence[EvalHook]) -> None:
         self.s, self.out, self.show, self.eval_hooks = s, out, show, eval_hooks
         self.cfg = s.cfg.train
-        self.step, self.loop, self.metrics, self.tb = 0, LoopState(), None, None
+        self.step, self.loop = 0, LoopState()
+        self.metrics: MetricsLog | None = None  # open() sets both before the first step
+        self.tb: TensorBoardLog | None = None
         self.saved_step: int | None = None  # the newest checkpoint this run has on disk
         self.rss = PeakRSS(0)
         self.t_start = time.perf_counter()
@@ -411,19 +422,26 @@ class _Segment:
                 f"{s.runtime.device} x{s.runtime.threads} threads, {s.runtime.precision}")
         self.finish("running")
 
+    def records(self) -> tuple[MetricsLog, TensorBoardLog]:
+        """metrics.jsonl and the TensorBoard log, which ``open`` set."""
+        if self.metrics is None or self.tb is None:
+            raise RuntimeError("the run's records are not open yet")
+        return self.metrics, self.tb
+
     def wall(self) -> float:
         return self.loop.wall_s + time.perf_counter() - self.t_start
 
     def finish(self, status: str, **extra: Any) -> dict[str, Any]:
         self.loop.peak_rss_bytes = self.rss.sample()
-        summary = build_summary(status, self.s, self.metrics, self.loop, self.step, self.wall(), **extra)
+        summary = build_summary(status, self.s, self.records()[0], self.loop, self.step, self.wall(), **extra)
         write_json(self.out / SUMMARY_FILE, summary, what="the run summary")
         return summary
 
     def save(self) -> None:
         self.loop.peak_rss_bytes = self.rss.sample()
-        self.metrics.sync()
-        self.tb.flush()
+        metrics, tb = self.records()
+        metrics.sync()
+        tb.flush()
         state = asdict(self.loop) | {"wall_s": self.wall()}
         s = self.s
         ckpt.save_checkpoint(self.out / CHECKPOINT_DIR, step=self.step, config_hash=s.cfg_hash, model=s.model,
@@ -433,8 +451,9 @@ class _Segment:
         self.saved_step = self.step
 
     def log(self, line: dict[str, Any]) -> None:
-        self.metrics.append(line)
-        self.tb.log(line)
+        metrics, tb = self.records()
+        metrics.append(line)
+        tb.log(line)
 
     def train_one_step(self) -> StepStats:
         """Step ``self.step + 1`` on micro-batches ``(step - 1) * grad_accum + i`` (the data position is the step)."""
@@ -484,8 +503,9 @@ class _Segment:
         cfg, total = self.cfg, self.s.total
         while self.step < total and not stop.requested:
             stats = self.train_one_step()
-            step = self.step
-            why = divergence(stats.loss, self.loop.first_loss, cfg.diverge_factor)
+            step, first_loss = self.step, self.loop.first_loss
+            assert first_loss is not None  # train_one_step sets it at step 1
+            why = divergence(stats.loss, first_loss, cfg.diverge_factor)
             if why or step == 1 or step % cfg.log_every == 0 or step == total:
                 self.log_train(stats)
             if why:
@@ -569,12 +589,12 @@ def exit_code(summary: dict[str, Any]) -> int:
     if status == "diverged":
         return 3
     if status == "interrupted":
-        return {"SIGINT": 130, "SIGTERM": 143}.get(summary.get("interrupted_by"), 130)
+        return {"SIGINT": 130, "SIGTERM": 143}.get(str(summary.get("interrupted_by")), 130)
     return 1
 
 
 def train_from_cli(cfg: Config, out: str | Path | None = None, force: bool = False, check: bool = True,
-                   wait_s: float = 0.0) -> int:
+                   wait_s: float = 0.0, eval_hook_builders: Sequence[EvalHookBuilder] = ()) -> int:
     """``blockyard train``: run into ``out`` (default :func:`default_run_dir`); the exit code."""
     return exit_code(run_training(cfg, Path(out) if out else default_run_dir(cfg), force=force, check=check,
-                                  wait_s=wait_s))
+                                  wait_s=wait_s, eval_hook_builders=eval_hook_builders))

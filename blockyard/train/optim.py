@@ -54,7 +54,8 @@ def param_groups(model: nn.Module, weight_decay: float, decay_all: bool = False)
     at the peak lr.
     """
     embeddings = _embedding_param_ids(model)
-    multipliers = model.lr_multipliers() if hasattr(model, "lr_multipliers") else {}
+    lr_multipliers = getattr(model, "lr_multipliers", None)  # blockyard's models have it; a plain module not
+    multipliers: dict[str, float] = lr_multipliers() if lr_multipliers is not None else {}
     buckets: dict[tuple[bool, float], list[nn.Parameter]] = {(True, 1.0): [], (False, 1.0): []}
     for name, p in model.named_parameters():
         if not p.requires_grad:
@@ -63,7 +64,7 @@ def param_groups(model: nn.Module, weight_decay: float, decay_all: bool = False)
         buckets.setdefault((decay_all or is_matrix, multipliers.get(name, 1.0)), []).append(p)
     groups = []
     for (decay, scale), params in sorted(buckets.items(), key=lambda kv: (kv[0][1] != 1.0, not kv[0][0], kv[0][1])):
-        group = {"group": "decay" if decay else "no_decay", "params": params,
+        group: dict[str, Any] = {"group": "decay" if decay else "no_decay", "params": params,
                  "weight_decay": weight_decay if decay else 0.0}
         if scale != 1.0:
             group["group"] += f" x{scale:.4g}"
