@@ -150,7 +150,8 @@ def collect(grid_dir: Path, windows: int) -> dict[str, dict[int, dict]]:
 
 def paired_sd(cells: dict[str, dict[int, dict]], a: str, b: str, field: str) -> tuple[float, int]:
     seeds = sorted(set(cells.get(a, {})) & set(cells.get(b, {})))
-    d = np.array([cells[b][s][field] - cells[a][s][field] for s in seeds])
+    d = np.array([cells[b][s].get(field, math.nan) - cells[a][s].get(field, math.nan) for s in seeds])
+    d = d[np.isfinite(d)]  # a setting read without the re-evaluation has no *_more fields
     return (float(np.std(d, ddof=1)) if len(d) > 1 else math.nan), len(d)
 
 
@@ -170,6 +171,8 @@ def table(out: Path, windows: int) -> str:
                 if windows else ()):
             ab = [paired_sd(cells, ref, v, field) if v in cells else (math.nan, 0) for v in others]
             aa, n = paired_sd(cells, ref, NULL, field) if NULL in cells else (math.nan, 0)
+            if n == 0 and not any(k for _, k in ab):
+                continue
             rows.append(f"| init {setting} | {label} | " + " | ".join(f"{sd:.4f} (n={k})" for sd, k in ab)
                         + f" | {aa:.4f} (n={n}) | {wall:.0f} |")
     head = ("| init | evaluated | " + " | ".join(f"A/B sd {v} - {ref}" for v in others)
