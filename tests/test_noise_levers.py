@@ -199,10 +199,15 @@ def test_the_method_says_what_the_levers_change_about_what_is_measured(tmp_path)
         yaml.safe_dump({"model": {"init_draws": "by_path"}, "train": {"ema_half_life": 0.1}}))
     rows = [{"id": "a-seed0", "variant": "a", "point": []}, {"id": "b-seed0", "variant": "b", "point": []}]
     levers = read_levers(tmp_path, rows)
-    assert levers == {"model.init_draws": {"by_path"}, "train.ema_half_life": {0.0, 0.1}}
+    assert levers == {"model.init_draws": {"by_path"}, "train.ema_half_life": {0.0, 0.1}, "train.lr": {3e-3}}
     text = " ".join(lever_items(levers))
     assert "keyed by the init seed and its path" in text and "upper bound" in text
     assert "exponential moving average" in text and "`raw_loss`" in text
     assert lever_items({"model.init_draws": frozenset({"by_path"}), "train.ema_half_life": frozenset({0.0})}) == \
         lever_items({"model.init_draws": frozenset({"by_path"})})
     assert "one random stream" in lever_items({"model.init_draws": frozenset({"stream"})})[0]
+    # One untuned rate: the verdict holds for it only; a rate below the default says what it trades.
+    (rate,) = lever_items({"train.lr": frozenset({1.5e-3})})
+    assert "`train.lr: 0.0015`" in rate and "below the trainer's default 0.003" in rate and "this rate only" in rate
+    assert "below" not in lever_items({"train.lr": frozenset({3e-3})})[0]
+    assert lever_items({"train.lr": frozenset({1e-3, 3e-3})}) == []  # tuned per variant: no single rate to name

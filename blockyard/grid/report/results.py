@@ -11,6 +11,7 @@ import dataclasses
 from pathlib import Path
 from typing import Any
 
+from blockyard.config import TrainConfig
 from blockyard.errors import UserError
 from blockyard.grid.fairness import MATCH_TOLERANCE
 from blockyard.grid.index import INDEX_NAME, CellRow, GridIndex, open_index
@@ -196,12 +197,14 @@ def read_parametrizations(grid_dir: Path, rows: list[CellRow]) -> dict[str, str]
     return {v: next(iter(p)) if len(p) == 1 else "mixed" for v, p in seen.items()}
 
 
-LEVER_KEYS = (("model", "init_draws", "by_path"), ("train", "ema_half_life", 0.0))
+DEFAULT_LR = TrainConfig().lr  # the trainer's peak learning rate when a config gives none
+LEVER_KEYS = (("model", "init_draws", "by_path"), ("train", "ema_half_life", 0.0), ("train", "lr", DEFAULT_LR))
 
 
 def read_levers(grid_dir: Path, rows: list[CellRow]) -> dict[str, frozenset[Any]]:
-    """``model.init_draws`` and ``train.ema_half_life`` -> the values the cells' configs (GRID_DIR/configs/) use,
-    one config read per group; a config without the key (written before it existed) counts as its default."""
+    """``model.init_draws``, ``train.ema_half_life`` and ``train.lr`` -> the values the cells' configs
+    (GRID_DIR/configs/) use, one config read per group; a config without the key (written before it
+    existed) counts as its default."""
     from blockyard.config import read_yaml
 
     seen: dict[str, set[Any]] = {f"{sec}.{key}": set() for sec, key, _ in LEVER_KEYS}

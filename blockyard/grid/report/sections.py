@@ -19,7 +19,7 @@ from blockyard.grid.ladder import split_point as split_rung
 from blockyard.grid.noise import NoiseCurve, resolution_text
 from blockyard.grid.report.document import Doc
 from blockyard.grid.report.figures import BAND, NOISE_PLOT, TUNING_PLOT
-from blockyard.grid.report.results import GridResults, TuningResults, mean_of
+from blockyard.grid.report.results import DEFAULT_LR, GridResults, TuningResults, mean_of
 from blockyard.grid.spec import NULL_INIT_OFFSET, NULL_VARIANT
 from blockyard.grid.tuning import TunedGroup, Tuning, shared_value_differences
 from blockyard.grid.verdicts import Comparison, Family, common_seed_means, group_outcomes, point_text
@@ -78,6 +78,13 @@ def lever_items(levers: dict[str, frozenset[Any]]) -> list[str]:
             "Weight average (`train.ema_half_life` " + ", ".join(f"{v:g}" for v in ema) + " of the run): the loss "
             "is that of an exponential moving average of the weights, not of the last trained weights (whose loss "
             "is `raw_loss` in each run's metrics). It measures the averaged model, which lags the trained one.")
+    rates = sorted(float(v) for v in levers.get("train.lr", frozenset()))
+    if len(rates) == 1:
+        lower = (f"; it is below the trainer's default {DEFAULT_LR:g}, which trades loss for less seed-to-seed "
+                 "noise (README, \"What cuts the noise\")") if rates[0] < DEFAULT_LR else ""
+        items.append(f"Learning rate (`train.lr: {rates[0]:g}`): the same peak rate for every variant, not tuned "
+                     f"per variant{lower}. Every loss is that of a model trained at this rate, and a verdict holds for "
+                     "this rate only: another rate can move a comparison.")
     return items
 
 
