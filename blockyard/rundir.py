@@ -16,7 +16,7 @@ import contextlib
 import json
 from collections.abc import Iterator
 from pathlib import Path
-from typing import Any
+from typing import Any, TypedDict, cast
 
 from blockyard import fs
 from blockyard.errors import UserError
@@ -42,6 +42,50 @@ RECORD_NAMES = (CONFIG_FILE, METRICS_FILE, SUMMARY_FILE, ENV_FILE, CHECKPOINT_DI
 TIMING_FIELDS = ("tokens_per_s", "wall_s")
 
 
+# ----------------------------------------------------------------------------- records
+
+
+class ParamCounts(TypedDict):
+    """Parameters of the model a run trained: all of them, and those outside the embedding and head."""
+
+    total: int
+    non_embedding: int
+
+
+class Divergence(TypedDict):
+    """Where and why a run stopped as diverged."""
+
+    step: int
+    loss: float
+    reason: str
+
+
+class RunSummary(TypedDict, total=False):
+    """``summary.json``: what a run last said of itself (written at every checkpoint and at the end).
+
+    What the grid's index, ``--status``, resume and ``verify`` read; a summary from an older version may
+    lack any key, so readers use ``.get``.
+    """
+
+    status: str  # running, done, diverged, interrupted, failed
+    name: str
+    config_hash: str
+    steps: int
+    total_steps: int
+    tokens_seen: int
+    final_val_loss: float | None
+    final_val_bits_per_token: float | None
+    best_val_loss: float | None
+    params: ParamCounts
+    wall_s: float
+    tokens_per_s: float | None
+    peak_rss_bytes: int | None
+    updated_at: str
+    diverged: Divergence  # status diverged only
+    interrupted_by: str  # status interrupted only: the signal's name, or what reopened the run
+    reopened: str  # written by verify when it reopens a finished run whose final checkpoint is damaged
+
+
 # ----------------------------------------------------------------------------- reading
 
 
@@ -54,14 +98,15 @@ def read_json(path: Path) -> dict[str, Any] | None:
     return data if isinstance(data, dict) else None
 
 
-def read_summary(run_dir: Path) -> dict[str, Any] | None:
+def read_summary(run_dir: Path) -> RunSummary | None:
     """``RUN_DIR/summary.json`` (status, final losses, steps, time), None when absent or unreadable."""
-    return read_json(Path(run_dir) / SUMMARY_FILE)
+    return cast("RunSummary | None", read_json(Path(run_dir) / SUMMARY_FILE))
 
 
 def summary_status(run_dir: Path) -> str | None:
     """running, done, diverged, interrupted or failed, as the run last wrote it; None before it wrote any."""
-    return (read_summary(run_dir) or {}).get("status")
+    summary = read_summary(run_dir)
+    return None if summary is None else summary.get("status")
 
 
 def parse_metrics(text: str) -> list[dict[str, Any]]:

@@ -16,7 +16,7 @@ from pathlib import Path
 
 from blockyard import fs, integrity
 from blockyard.errors import UserError
-from blockyard.rundir import CHECKPOINT_DIR, PLUGIN_DIR, SUMMARY_FILE, read_summary
+from blockyard.rundir import CHECKPOINT_DIR, PLUGIN_DIR, SUMMARY_FILE, RunSummary, read_summary
 
 _TOKEN_MANIFEST = "manifest.json"  # blockyard.data.cache.MANIFEST (not imported: it pulls in numpy)
 
@@ -106,6 +106,7 @@ def reopen_if_final_checkpoint_damaged(run_dir: Path) -> str | None:
         return None
     moved = integrity.move_aside(newest[-1])
     reason = f"final checkpoint {newest[-1].name} damaged ({verdict.why}); moved to {moved.parent.name}/"
-    summary = {**summary, "status": "interrupted", "interrupted_by": "damaged checkpoint", "reopened": reason}
-    fs.atomic_write_text(Path(run_dir) / SUMMARY_FILE, json.dumps(summary, indent=1), what="the run summary")
+    reopened: RunSummary = {**summary, "status": "interrupted", "interrupted_by": "damaged checkpoint",
+                            "reopened": reason}
+    fs.atomic_write_text(Path(run_dir) / SUMMARY_FILE, json.dumps(reopened, indent=1), what="the run summary")
     return reason

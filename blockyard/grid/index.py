@@ -15,11 +15,12 @@ import errno
 import json
 import sqlite3
 import time
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping, Sequence
 from pathlib import Path
 from typing import Any, TypedDict
 
 from blockyard import fs
+from blockyard.rundir import RunSummary
 
 INDEX_NAME = "index.sqlite"
 BUSY_TIMEOUT_S = 60.0
@@ -60,6 +61,21 @@ CREATE TABLE IF NOT EXISTS cells (
 );
 """
 
+
+
+class PlanRow(TypedDict):
+    """A planned cell as ``GridIndex.plan`` takes it (``blockyard.grid.plan.plan_rows`` writes them)."""
+
+    id: str
+    variant: str
+    seed: int
+    point: list[list[Any]]  # [[dotted axis key, value]], in the axes' order
+    config_hash: str
+    adjustments: dict[str, Any]
+    planned_tokens: int
+    flops_per_token: float | None
+    params_total: int | None
+    params_non_embedding: int | None
 
 
 class CellRow(TypedDict):
@@ -169,7 +185,7 @@ class GridIndex:
 
     # ----- cells
 
-    def plan(self, rows: list[dict[str, Any]]) -> None:
+    def plan(self, rows: Sequence[PlanRow]) -> None:
         """Insert planned cells; a cell already present with the same config hash keeps its record.
 
         A cell whose config hash changed (only after ``--force``) is reset to pending.
@@ -212,15 +228,15 @@ class GridIndex:
         cell_id: str,
         status: str,
         *,
-        summary: dict[str, Any] | None = None,
+        summary: RunSummary | None = None,
         exit_code: int | None = None,
         message: str | None = None,
         ended_at: float | None = None,
     ) -> None:
         """Record a cell's outcome and, from its summary.json, its final metrics."""
-        summary = summary or {}
-        params = summary.get("params") or {}
-        values: dict[str, Any] = {c: summary.get(c) for c in _SUMMARY_COLUMNS}
+        fields: Mapping[str, Any] = summary or {}  # an older summary may lack any key
+        params = fields.get("params") or {}
+        values: dict[str, Any] = {c: fields.get(c) for c in _SUMMARY_COLUMNS}
         if params:
             values["params_total"] = params.get("total")
             values["params_non_embedding"] = params.get("non_embedding")

@@ -10,10 +10,11 @@ import dataclasses
 import hashlib
 import json
 from collections.abc import Callable, Sequence
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
 
 from blockyard.config import config_hash, replace
 from blockyard.grid.fairness import CellCost, apply_budgets, apply_matching, cell_cost
+from blockyard.grid.index import PlanRow
 from blockyard.grid.spec import NULL_VARIANT, Cell, GridSpec, expand_cells, tuned_cells, tuning_cells
 from blockyard.schema import to_dict
 
@@ -76,7 +77,7 @@ def fingerprint(plan: list[PlannedCell]) -> str:
     return hashlib.sha256(blob.encode()).hexdigest()[:16]
 
 
-def plan_rows(plan: list[PlannedCell]) -> list[dict[str, Any]]:
+def plan_rows(plan: list[PlannedCell]) -> list[PlanRow]:
     """The planned cells as grid-index rows (``GridIndex.plan``)."""
     return [{
         "id": p.id, "variant": p.cell.variant, "seed": p.cell.seed, "point": [list(kv) for kv in p.cell.point],

@@ -36,7 +36,6 @@ import os
 import time
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any
 
 from blockyard.config import dump_config
 from blockyard.errors import UserError
@@ -71,7 +70,7 @@ from blockyard.grid.plan import (
 from blockyard.grid.spec import Design, GridSpec, load_grid
 from blockyard.grid.status import cell_dir, grid_progress
 from blockyard.grid.tuning import TUNING_DIR, chosen_values, tuned_groups
-from blockyard.rundir import format_duration, read_summary
+from blockyard.rundir import RunSummary, format_duration, read_summary
 from blockyard.schema import to_dict
 from blockyard.verify import reopen_if_final_checkpoint_damaged
 
@@ -120,9 +119,9 @@ def last_log_line(path: Path) -> str | None:
     return lines[-1][:300] if lines else None
 
 
-def outcome(exit_code: int | None, summary: dict[str, Any] | None) -> str:
+def outcome(exit_code: int | None, summary: RunSummary | None) -> str:
     """The cell status from the trainer's exit code, cross-checked with its summary.json."""
-    status = (summary or {}).get("status")
+    status = None if summary is None else summary.get("status")
     if exit_code == 0:
         return "done" if status == "done" else "failed"
     if exit_code == EXIT_DIVERGED:

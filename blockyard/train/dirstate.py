@@ -12,14 +12,13 @@ import shutil
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
 
 import yaml
 
 from blockyard.config import Config, config_from_dict, config_hash, dict_hash, saved_config_data
 from blockyard.errors import UserError
 from blockyard.mixers.plugins import copy_plugins, is_loaded, repair_copies, resolve_plugin_paths
-from blockyard.rundir import CONFIG_FILE, PLUGIN_DIR, RECORD_NAMES, is_empty, read_summary
+from blockyard.rundir import CONFIG_FILE, PLUGIN_DIR, RECORD_NAMES, RunSummary, is_empty, read_summary
 
 
 @dataclass(frozen=True)
@@ -28,7 +27,7 @@ class DirState:
     foreign (files but no config.yaml)."""
 
     kind: str
-    summary: dict[str, Any] | None = None
+    summary: RunSummary | None = None
     stored_hash: str | None = None
 
 

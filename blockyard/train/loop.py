@@ -44,6 +44,7 @@ from blockyard.rundir import (
     METRICS_FILE,
     SUMMARY_FILE,
     TENSORBOARD_DIR,
+    RunSummary,
     writing,
 )
 from blockyard.text import decimal_bytes
@@ -334,7 +335,7 @@ def run_training(
             torch.set_num_threads(threads_before)
 
 
-def _report_finished(out: Path, summary: dict[str, Any], show: Progress) -> dict[str, Any]:
+def _report_finished(out: Path, summary: RunSummary, show: Progress) -> dict[str, Any]:
     if summary.get("status") == "diverged":
         show.message(f"{out}: diverged earlier, at step {summary.get('steps')}; not retraining "
                      "(lower train.lr, or use --force to retrain)")
@@ -342,7 +343,7 @@ def _report_finished(out: Path, summary: dict[str, Any], show: Progress) -> dict
         loss = summary.get("final_val_loss")
         show.message(f"{out}: already done ({summary.get('steps')} steps, val loss "
                      f"{'?' if loss is None else f'{loss:.4f}'}); not retraining (use --force to retrain)")
-    return summary
+    return dict(summary)
 
 
 def _warn_if_disk_short(out: Path, s: Setup, show: Progress) -> None:
