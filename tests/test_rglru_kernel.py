@@ -196,7 +196,7 @@ def test_fused_step_equals_the_composed_step_and_leaves_the_state_alone(kernels,
 
 
 # ----------------------------------------------------------------------------- causal depthwise conv
-# The C++ conv (rglru_cpu.cpp, causal_conv_*) against the block's reference ``causal_depthwise_conv``,
+# The C++ conv (conv_cpu.cpp, causal_conv_*) against the block's reference ``causal_depthwise_conv``,
 # which is torch's grouped F.conv1d over (tail, x): y_t = bias + sum_k w[:, k] x_{t-K+1+k}
 # (De et al. 2024, fig. 2: a causal depthwise Conv1D).
 

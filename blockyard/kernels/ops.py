@@ -155,7 +155,7 @@ def rg_lru_fused(x: Tensor, decay: Tensor, gate_a_logits: Tensor | None = None, 
 
 @torch.library.custom_op("blockyard::causal_conv", mutates_args=())
 def causal_conv_op(x: Tensor, tail: Tensor | None, weight: Tensor, bias: Tensor) -> Tensor:
-    """y_t = bias + sum_k weight[:, k] x_{t-K+1+k} per channel, (B, T, C) in and out (``rglru_cpu.cpp``)."""
+    """y_t = bias + sum_k weight[:, k] x_{t-K+1+k} per channel, (B, T, C) in and out (``conv_cpu.cpp``)."""
     return compiled_ops().causal_conv_forward(x, tail, weight, bias)
 
 

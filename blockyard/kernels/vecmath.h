@@ -1,6 +1,7 @@
-// Vectorisable math shared by the CPU kernels (rglru_cpu.cpp, geglu_cpu.cpp): branch-free
-// polynomial exp, expm1 and erf that GCC vectorises inside the kernels' loops (the C library's
-// scalar calls would keep those loops scalar), and loads / stores that compute bfloat16 in float.
+// Vectorisable math shared by the CPU kernels (rglru_cpu.cpp, conv_cpu.cpp, geglu_cpu.cpp,
+// rmsnorm_cpu.cpp): branch-free polynomial exp, expm1 and erf that GCC vectorises inside the
+// kernels' loops (the C library's scalar calls would keep those loops scalar), and loads / stores
+// that compute bfloat16 in float.
 #pragma once
 
 #include <c10/util/BFloat16.h>
