@@ -94,7 +94,7 @@ def test_dry_run_with_noise_from_plans_with_the_pooled_measured_sd(tmp_path, fix
 def test_dry_run_without_noise_states_the_assumption_and_what_cannot_be_decided(tmp_path, fixed_speed):
     text = _dry(_spec(tmp_path, "[0, 1, 2]"), tmp_path / "never")
     sd = budget.ASSUMED_PAIRED_SD
-    assert f"paired sd {sd:.4f} nats/token is an ASSUMPTION: the default grid's paired sd" in text
+    assert f"paired sd {sd:.4f} nats/token is an ASSUMPTION: the default grid's models' paired sd" in text
     assert "CANNOT DECIDE" in text
     block = text.split("CANNOT DECIDE")[1]
     # More seeds: the smallest n whose fixed design (level 0.05) decides 0.01 at the assumed sd (statsmodels).
