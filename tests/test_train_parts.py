@@ -86,14 +86,21 @@ def test_parse_metrics_stops_at_a_cut_line():
 
 
 def test_peak_rss_sees_a_released_allocation():
-    # The process's high-water mark may already sit above today's RSS (earlier tests in this process),
-    # so the block is sized to climb past it: whatever headroom there is, plus 96 MiB.
+    # An anonymous mapping, not the heap: an earlier test may have told malloc to keep freed memory
+    # (train.allocator.keep_freed_memory), and a heap block would then reuse pages already resident.
+    # The process's high-water mark may also sit above today's RSS (earlier tests in this process),
+    # so the mapping is sized to climb past it: whatever headroom there is, plus 96 MiB.
+    import mmap
+
     rss_before = current_rss_bytes()
     size = max(0, peak_rss_bytes() - rss_before) + 96 * 2**20
-    block = np.ones(size // 8)  # every page written
-    del block
+    block = mmap.mmap(-1, size)
+    pages = np.frombuffer(block, dtype=np.uint8)
+    pages[::4096] = 1  # one write a page: every page resident
+    del pages
+    block.close()  # returned to the system: the current RSS falls back
     probe = PeakRSS(previous_peak=1)
-    # Freed already, still counted in the peak (current RSS from psutil, an independent reader).
+    # Released already, still counted in the peak (current RSS from psutil, an independent reader).
     assert probe.sample() >= rss_before + size - 6 * 2**20
     assert PeakRSS(previous_peak=10**15).sample() == 10**15  # an earlier segment's larger peak is kept
 
