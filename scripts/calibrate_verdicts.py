@@ -12,10 +12,12 @@ it at or below 5%.
 
 Cells are ordinary run dirs under ``--out`` (default: a temporary folder, removed at the end).
 
-Measured with ``--comparisons 40 --seeds 3 --steps 60 --workers 1`` (240 runs, 167 s of training
-on the project's 2-core machine, shared with other jobs): 1 better, 39 undecided; false-positive
-rate 1/40 = 0.025, 95% Clopper-Pearson interval [0.001, 0.132]; median paired sd of two runs of
-the same model 0.0133 nats/token (so at 3 seeds nothing is called equivalent at 0.01).
+Measured under the current defaults (weights drawn by path; the null control's other init seed shares
+nothing with the reference, so keyed draws do not lower an A/A pair's noise) with ``--comparisons 200
+--seeds 3 --steps 60 --workers 2`` (1,200 runs, 148 s on the project's idle 2-core machine): 3 better,
+1 worse, 5 equivalent, 191 undecided; false-positive rate 4/200 = 0.020, 95% Clopper-Pearson interval
+[0.005, 0.050]; median paired sd of two runs of the same model 0.0119 nats/token. (Before, at 40
+comparisons: 1/40 = 0.025, [0.001, 0.132].)
 """
 
 from __future__ import annotations
