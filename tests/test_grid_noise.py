@@ -102,6 +102,31 @@ def test_resolution_compares_the_sd_trend_with_the_gain_of_doubling_the_seeds():
     assert many.more_seeds == pytest.approx(1 / math.sqrt(2), rel=0.01)
 
 
+def test_the_sd_trend_carries_the_ols_interval_and_an_uncertain_trend_decides_nothing():
+    """The exponent's 95% interval is the OLS slope's t interval on log sd vs log tokens (statsmodels' OLS
+    conf_int, any regression text); a trend whose interval straddles the seeds' factor calls no better buy."""
+    import statsmodels.api as sm
+
+    from blockyard.grid.noise import sd_exponent
+
+    # Four noisy evaluations, the shape two 5-seed demo runs gave (the point estimate swings; issue 26's note).
+    sds = [0.030, 0.018, 0.026, 0.015]
+    swinging = _curve(sds)
+    tokens = [p.tokens for p in swinging.points]
+    ols = sm.OLS(np.log(sds), sm.add_constant(np.log(tokens))).fit()
+    (low, high) = ols.conf_int(alpha=0.05)[1]
+    e = sd_exponent(tokens, sds)
+    assert e is not None and e.b == pytest.approx(ols.params[1]) and (e.low, e.high) == pytest.approx((low, high))
+    r = resolution(swinging)
+    assert r.longer_low == pytest.approx(2**low) and r.longer_high == pytest.approx(2**high)
+    assert r.longer_low < r.more_seeds < r.longer_high and r.better_buy == "unclear"
+    text = resolution_text(swinging, "a")
+    assert "too uncertain" in text and "95% CI" in text
+    # Two evaluations: a slope but no interval (no degrees of freedom); the point estimate decides, as before.
+    two = resolution(_curve([0.08, 0.04]))
+    assert two.longer == pytest.approx(0.5) and two.longer_low is None and two.better_buy == "longer training"
+
+
 def test_noise_png_labels_tokens_in_one_unit_like_the_other_figures(tmp_path, monkeypatch):
     """noise.png's token axes go through blockyard.plotting.label_token_axis: 1.4k ... 6k, not 0.0014M."""
     from blockyard.grid.report import figures

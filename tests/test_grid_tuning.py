@@ -427,15 +427,13 @@ def test_shipped_tuned_grid_tunes_the_default_grids_mixers():
     root = Path(__file__).resolve().parents[1] / "configs" / "grids"
     tuned, default = load_grid(root / "tuned-mixers.yaml"), load_grid(root / "default.yaml")
     assert tuned.variants == default.variants and tuned.reference == default.reference
-    # Same models, data and matching; the design (smallest effect, seed schedule) may differ: the default grid
-    # moved to 0.07 and up to 7 seeds (issue 26), and the tuned grid keeps the design it was run and timed with
-    # until it is rerun under the new tuning rule.
+    # Same models, data, matching and verdict design (smallest effect, seed schedule): only the rate differs
     untuned = {k: v for k, v in default.base.items() if k != "train"}
     assert {k: v for k, v in tuned.base.items() if k != "train"} == untuned and tuned.match == default.match
     # train.lr is what the tuned grid tunes, so its base value may differ; every other train key is shared
     lr_free = [{k: v for k, v in g.base.get("train", {}).items() if k != "lr"} for g in (tuned, default)]
     assert lr_free[0] == lr_free[1]
-    assert tuned.design.null_control == default.design.null_control
+    assert tuned.design == default.design and tuned.seeds == default.seeds
     assert tuned.tuning.key == "train.lr" and len(tuned.tuning.values) >= 4
     assert set(tuned.tuning.seeds).isdisjoint(tuned.seeds)
     cells = plan_tuning(tuned, threads=1)

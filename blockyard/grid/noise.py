@@ -12,8 +12,12 @@ Whether longer training or more seeds buys resolution (``resolution``): over the
 evaluations, sd ~ tokens^b (least squares on logs), so doubling the tokens scales the detectable
 difference by about 2^b; doubling the seeds scales it by detectable(2n) / detectable(n) (about
 1/sqrt(2), more at few seeds: the t quantile shrinks too). Both double the compute, so the
-smaller factor is the better buy. A trend fitted over a few evaluations is a description of this
-run, not a law (the mean difference moves with training too).
+smaller factor is the better buy. The trend's exponent carries a 95% interval (the least-squares
+slope's t interval, k - 2 degrees of freedom over k evaluations); longer training is called the
+better buy only when the whole interval beats more seeds, and more seeds only when the whole
+interval loses, else the sentence says the trend cannot tell (at 5 seeds, 4 evaluations swing the
+point estimate from -67% to +87% per doubling between two runs of one design). A trend fitted over a
+few evaluations describes this run, not a law (the mean difference moves with training too).
 """
 
 from __future__ import annotations
@@ -22,6 +26,7 @@ import dataclasses
 from collections.abc import Mapping
 
 import numpy as np
+import scipy.stats
 
 from blockyard.grid import stats
 from blockyard.grid.verdicts import Family, GroupKey, point_text
@@ -96,12 +101,31 @@ def noise_curves(family: Family, curves: Mapping[GroupKey, Curves],
 # ----------------------------------------------------------------------------- what buys resolution
 
 
-def sd_exponent(tokens: list[float], sds: list[float]) -> float | None:
-    """b of sd ~ tokens^b, least squares on logs over the points given (None with fewer than 2 or a zero sd)."""
+TREND_CONFIDENCE = 0.95  # of the interval on the sd trend's exponent
+
+
+@dataclasses.dataclass(frozen=True)
+class Exponent:
+    """b of sd ~ tokens^b with its ``TREND_CONFIDENCE`` interval (None with only 2 points: no degrees of freedom)."""
+
+    b: float
+    low: float | None
+    high: float | None
+
+
+def sd_exponent(tokens: list[float], sds: list[float]) -> Exponent | None:
+    """b of sd ~ tokens^b, least squares on logs over the points given (None with fewer than 2 or a zero sd).
+
+    The interval is the slope's t interval (scipy's ``linregress`` standard error, k - 2 df)."""
     if len(tokens) < 2 or any(s <= 0 for s in sds) or len(set(tokens)) < 2:
         return None
-    slope, _ = np.polyfit(np.log(tokens), np.log(sds), 1)
-    return float(slope)
+    y = np.log(sds)
+    fit = scipy.stats.linregress(np.log(tokens), y)
+    if len(tokens) < 3:
+        return Exponent(float(fit.slope), None, None)
+    stderr = 0.0 if np.ptp(y) == 0 else float(fit.stderr)  # a constant sd: linregress gives nan (r is 0/0)
+    half = float(scipy.stats.t.ppf(0.5 + TREND_CONFIDENCE / 2, len(tokens) - 2)) * stderr
+    return Exponent(float(fit.slope), float(fit.slope) - half, float(fit.slope) + half)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -109,14 +133,23 @@ class Resolution:
     """Per doubling of compute: the factor on the detectable difference from more tokens and from more seeds."""
 
     longer: float | None  # 2^b from the sd trend over the last evaluations (None: no trend)
+    longer_low: float | None  # 2^b's interval (None: too few evaluations for one)
+    longer_high: float | None
     more_seeds: float  # detectable(2n) / detectable(n) at the same sd and level
     evaluations: int  # evaluations the trend was fitted over
 
     @property
     def better_buy(self) -> str:
-        if self.longer is None or self.more_seeds <= self.longer:
+        """"more seeds", "longer training", or "unclear" when the trend's interval straddles the seeds' factor."""
+        if self.longer is None:
             return "more seeds"
-        return "longer training"
+        low = self.longer if self.longer_low is None else self.longer_low
+        high = self.longer if self.longer_high is None else self.longer_high
+        if high < self.more_seeds:
+            return "longer training"
+        if low >= self.more_seeds:
+            return "more seeds"
+        return "unclear"
 
 
 def resolution(curve: NoiseCurve, last: int = TREND_EVALUATIONS) -> Resolution | None:
@@ -126,11 +159,14 @@ def resolution(curve: NoiseCurve, last: int = TREND_EVALUATIONS) -> Resolution |
         return None
     end = usable[-1]
     tail = [p for p in usable if p.pairs == end.pairs][-last:]
-    b = sd_exponent([p.tokens for p in tail], [p.sd for p in tail])  # type: ignore[misc]
+    e = sd_exponent([p.tokens for p in tail], [p.sd for p in tail])  # type: ignore[misc]
     now = stats.detectable_difference(end.pairs, 1.0, curve.alpha)
     doubled = stats.detectable_difference(2 * end.pairs, 1.0, curve.alpha)
     assert now is not None and doubled is not None
-    return Resolution(None if b is None else 2.0**b, doubled / now, len(tail))
+    if e is None:
+        return Resolution(None, None, None, doubled / now, len(tail))
+    return Resolution(2.0**e.b, None if e.low is None else 2.0**e.low, None if e.high is None else 2.0**e.high,
+                      doubled / now, len(tail))
 
 
 def resolution_text(curve: NoiseCurve, label: str) -> str | None:
@@ -144,9 +180,13 @@ def resolution_text(curve: NoiseCurve, label: str) -> str | None:
     if r.longer is None:
         return f"{label}: {seeds}; too few evaluations to tell what longer training does."
     moved = "fell" if r.longer < 1 else "rose"
+    interval = ("" if r.longer_low is None or r.longer_high is None else
+                f" ({TREND_CONFIDENCE:.0%} CI {r.longer_low - 1:+.0%} to {r.longer_high - 1:+.0%})")
     longer = (f"over its last {r.evaluations} evaluations the paired sd {moved} by {abs(1 - r.longer):.0%} per "
-              "doubling of tokens")
-    verdict = ("more seeds buy more resolution than longer training" if r.better_buy == "more seeds" else
-               "longer training buys more resolution than more seeds (if the trend holds)")
+              f"doubling of tokens{interval}")
+    verdict = {"more seeds": "more seeds buy more resolution than longer training",
+               "longer training": "longer training buys more resolution than more seeds (if the trend holds)",
+               "unclear": "the trend is too uncertain to say whether longer training buys more than more seeds"
+               }[r.better_buy]
     return f"{label}: {longer}, while {seeds}; at equal compute, {verdict}."
 
