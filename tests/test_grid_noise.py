@@ -144,3 +144,13 @@ def test_noise_png_labels_tokens_in_one_unit_like_the_other_figures(tmp_path, mo
     assert figures.noise_plot(tmp_path / "noise.png", [curve], 0.01)
     assert len(drawn) == 2 and all(labels for labels in drawn)
     assert all(lab == "0" or lab.endswith("k") for labels in drawn for lab in labels), drawn
+
+
+def test_noise_csv_writes_an_axis_point_as_results_csv_does():
+    """A boolean axis value reads `true` in noise.csv as in results.csv and verdicts.csv (one writer, point_cell)."""
+    from blockyard.grid.report.tables import noise_rows, point_cell
+
+    point = (("model.mixers.recurrence.gate", True), ("model.width", 64))
+    curve = NoiseCurve("a", "ref", point, False, 0.05, (NoisePoint(10, 1280.0, 3, 0.01, 0.02, 0.05),))
+    [row] = noise_rows([curve])
+    assert row[2] == point_cell(point) == "model.mixers.recurrence.gate=true; model.width=64"

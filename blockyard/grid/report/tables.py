@@ -40,7 +40,7 @@ NOISE_COLUMNS = ("variant", "reference", "point", "null_control", "step", "token
 
 def noise_rows(curves: list[NoiseCurve]) -> list[list[Any]]:
     """noise.csv: one row per comparison and evaluation step."""
-    return [[c.variant, c.reference, "; ".join(f"{k}={v}" for k, v in c.point), c.null_control, p.step, p.tokens,
+    return [[c.variant, c.reference, point_cell(c.point), c.null_control, p.step, p.tokens,
              p.pairs, p.mean_diff, p.sd, p.detectable, c.alpha] for c in curves for p in c.points]
 
 
