@@ -175,6 +175,19 @@ def test_damaged_token_cache_is_moved_aside_and_prepared_again(root, capsys):
     assert comparable(out) == comparable(root / "reference")
 
 
+def test_a_token_cache_from_before_checksums_is_used_with_a_note_that_says_how_to_rebuild_it(tmp_path, capsys):
+    from blockyard.data.cache import damage
+
+    folder = tmp_path / "plays-bytes-0123"
+    folder.mkdir()
+    (folder / "train.bin").write_bytes(b"\x01\x02")
+    (folder / "manifest.json").write_text("{}")
+    assert damage(folder) == []  # nothing to fail: used, not moved aside
+    err = capsys.readouterr().err
+    assert err.startswith(f"note: token cache {folder} was prepared before checksums") and err.count("\n") == 1
+    assert "delete the folder" in err
+
+
 @pytest.fixture(scope="module")
 def delay_run(root) -> tuple[Path, Path]:
     """The delay block (examples/plugins/delay.py, written without the package's helpers) trained 20 steps."""

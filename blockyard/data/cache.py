@@ -191,7 +191,8 @@ def damage(folder: Path) -> list[integrity.FileCheck]:
     names = [p.name for p in folder.iterdir() if p.is_file() and p.name != integrity.SUMS_FILE]
     checks = integrity.check_folder(folder, names, listed_are_required=True)
     if checks and all(c.status == integrity.UNVERIFIABLE for c in checks):
-        print(f"note: token cache {folder} was prepared before checksums: used unverified", file=sys.stderr)
+        print(f"note: token cache {folder} was prepared before checksums: used unverified (delete the folder to "
+              "have it prepared again, with checksums)", file=sys.stderr)
     return [c for c in checks if c.status == integrity.DAMAGED]
 
 
