@@ -140,7 +140,7 @@ at::Tensor conv_forward(const at::Tensor& x, const c10::optional<at::Tensor>& ta
   const Blocking blk = choose_blocking(B, C);
   AT_DISPATCH_FLOATING_TYPES_AND(at::kBFloat16, x.scalar_type(), "blockyard_causal_conv_forward", [&] {
     using I = scalar_t;
-    using S = std::conditional_t<std::is_same_v<I, double>, double, float>;
+    using S = compute_t<I>;
     const I* px = x.const_data_ptr<I>();
     const I* pt = opt_ptr<I>(tail);
     const S* pw = wt.const_data_ptr<S>();
@@ -174,7 +174,7 @@ std::tuple<at::Tensor, at::Tensor, at::Tensor, at::Tensor> conv_backward(const a
     const Blocking blk = choose_blocking(B, C);
     AT_DISPATCH_FLOATING_TYPES_AND(at::kBFloat16, x.scalar_type(), "blockyard_causal_conv_backward", [&] {
       using I = scalar_t;
-      using S = std::conditional_t<std::is_same_v<I, double>, double, float>;
+      using S = compute_t<I>;
       const S* pg = grad_y.const_data_ptr<S>();
       const I* px = x.const_data_ptr<I>();
       const I* pt = opt_ptr<I>(tail);

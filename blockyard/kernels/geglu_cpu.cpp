@@ -17,6 +17,7 @@
 #include <ATen/ops/empty.h>
 #include <torch/library.h>
 
+#include "cpu_common.h"
 #include "vecmath.h"
 
 #include <algorithm>
@@ -26,13 +27,10 @@
 #include <type_traits>
 #include <vector>
 
-#ifndef BLOCKYARD_SCAN_NS
-#define BLOCKYARD_SCAN_NS blockyard_scan
-#endif
-
 namespace {
 
 using namespace blockyard_vecmath;
+using namespace blockyard_cpu;
 
 // out[j] = GeLU(a[j]) * b[j] over one row, in the compute type S.
 template <typename S>
@@ -112,9 +110,6 @@ void check_h(const at::Tensor& h) {
               "geglu: h must be a contiguous CPU tensor with an even last dim");
 }
 
-// Rows per parallel chunk: about 16k elements, so that a chunk outweighs the thread hand-off.
-int64_t grain_rows(int64_t H) { return std::max<int64_t>(1, 16384 / std::max<int64_t>(H, 1)); }
-
 at::Tensor geglu_forward(const at::Tensor& h) {
   check_h(h);
   const int64_t H = h.size(-1) / 2, N = H ? h.numel() / (2 * H) : 0;
@@ -124,7 +119,7 @@ at::Tensor geglu_forward(const at::Tensor& h) {
   if (out.numel() == 0) return out;
   AT_DISPATCH_FLOATING_TYPES_AND(at::kBFloat16, h.scalar_type(), "blockyard_geglu_forward", [&] {
     using I = scalar_t;
-    using S = std::conditional_t<std::is_same_v<I, double>, double, float>;
+    using S = compute_t<I>;
     const I* ph = h.const_data_ptr<I>();
     I* po = out.mutable_data_ptr<I>();
     at::parallel_for(0, N, grain_rows(H),
@@ -142,7 +137,7 @@ at::Tensor geglu_backward(const at::Tensor& grad, const at::Tensor& h) {
   if (dh.numel() == 0) return dh;
   AT_DISPATCH_FLOATING_TYPES_AND(at::kBFloat16, h.scalar_type(), "blockyard_geglu_backward", [&] {
     using I = scalar_t;
-    using S = std::conditional_t<std::is_same_v<I, double>, double, float>;
+    using S = compute_t<I>;
     const I* pg = grad.const_data_ptr<I>();
     const I* ph = h.const_data_ptr<I>();
     I* pd = dh.mutable_data_ptr<I>();
@@ -169,7 +164,7 @@ at::Tensor gelu_mul_forward(const at::Tensor& a, const at::Tensor& b) {
   if (out.numel() == 0) return out;
   AT_DISPATCH_FLOATING_TYPES_AND(at::kBFloat16, a.scalar_type(), "blockyard_gelu_mul_forward", [&] {
     using I = scalar_t;
-    using S = std::conditional_t<std::is_same_v<I, double>, double, float>;
+    using S = compute_t<I>;
     const I* pa = a.const_data_ptr<I>();
     const I* pb = b.const_data_ptr<I>();
     I* po = out.mutable_data_ptr<I>();
@@ -189,7 +184,7 @@ std::tuple<at::Tensor, at::Tensor> gelu_mul_backward(const at::Tensor& grad, con
   if (da.numel() == 0) return {da, db};
   AT_DISPATCH_FLOATING_TYPES_AND(at::kBFloat16, a.scalar_type(), "blockyard_gelu_mul_backward", [&] {
     using I = scalar_t;
-    using S = std::conditional_t<std::is_same_v<I, double>, double, float>;
+    using S = compute_t<I>;
     const I* pg = grad.const_data_ptr<I>();
     const I* pa = a.const_data_ptr<I>();
     const I* pb = b.const_data_ptr<I>();

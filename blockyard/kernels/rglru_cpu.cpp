@@ -194,7 +194,7 @@ at::Tensor rglru_forward(const at::Tensor& x, const c10::optional<at::Tensor>& g
   const Args args{T, C, c};
   AT_DISPATCH_FLOATING_TYPES_AND(at::kBFloat16, x.scalar_type(), "blockyard_rglru_forward", [&] {
     using I = scalar_t;
-    using S = std::conditional_t<std::is_same_v<I, double>, double, float>;
+    using S = compute_t<I>;
     const I* px = x.const_data_ptr<I>();
     const I* pa = opt_ptr<I>(gate_a);
     const I* pg = opt_ptr<I>(gate_x);
@@ -239,7 +239,7 @@ std::tuple<at::Tensor, at::Tensor, at::Tensor, at::Tensor, at::Tensor> rglru_bac
   const Args args{T, C, c};
   AT_DISPATCH_FLOATING_TYPES_AND(at::kBFloat16, x.scalar_type(), "blockyard_rglru_backward", [&] {
     using I = scalar_t;
-    using S = std::conditional_t<std::is_same_v<I, double>, double, float>;
+    using S = compute_t<I>;
     const S* pgh = grad_h.const_data_ptr<S>();
     const I* px = x.const_data_ptr<I>();
     const I* pa = opt_ptr<I>(gate_a);

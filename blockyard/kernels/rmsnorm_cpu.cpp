@@ -20,6 +20,7 @@
 #include <ATen/ops/zeros.h>
 #include <torch/library.h>
 
+#include "cpu_common.h"
 #include "vecmath.h"
 
 #include <algorithm>
@@ -29,16 +30,10 @@
 #include <type_traits>
 #include <vector>
 
-#ifndef BLOCKYARD_SCAN_NS
-#define BLOCKYARD_SCAN_NS blockyard_scan
-#endif
-
 namespace {
 
 using namespace blockyard_vecmath;
-
-// Rows per work chunk: about 16k elements, so that a chunk outweighs the thread hand-off.
-int64_t chunk_rows(int64_t D) { return std::max<int64_t>(1, 16384 / std::max<int64_t>(D, 1)); }
+using namespace blockyard_cpu;
 
 // Sums over a row run in kLanes interleaved partial sums, added up at the end: an order fixed by the
 // source, so GCC may vectorise the loop without -ffast-math (which would let it reorder any sum).
@@ -109,12 +104,12 @@ std::tuple<at::Tensor, at::Tensor> rms_norm_forward(const at::Tensor& x, const a
   if (x.numel() == 0) return {y, rstd};
   AT_DISPATCH_FLOATING_TYPES_AND(at::kBFloat16, x.scalar_type(), "blockyard_rms_norm_forward", [&] {
     using I = scalar_t;
-    using S = std::conditional_t<std::is_same_v<I, double>, double, float>;
+    using S = compute_t<I>;
     const I* px = x.const_data_ptr<I>();
     const S* pw = weight.const_data_ptr<S>();
     I* py = y.mutable_data_ptr<I>();
     S* pr = rstd.mutable_data_ptr<S>();
-    at::parallel_for(0, N, chunk_rows(D), [&](int64_t r0, int64_t r1) {
+    at::parallel_for(0, N, grain_rows(D), [&](int64_t r0, int64_t r1) {
       for (int64_t n = r0; n < r1; ++n) {
         const S ms = sum_squares<I, S>(px + n * D, D) / static_cast<S>(D);
         const S r = S(1) / std::sqrt(ms + static_cast<S>(eps));
@@ -134,13 +129,13 @@ std::tuple<at::Tensor, at::Tensor> rms_norm_backward(const at::Tensor& grad_y, c
               "rms_norm: grad_y must be a contiguous tensor like x");
   const int64_t N = x.size(0), D = x.size(1);
   at::Tensor dx = at::empty_like(x);
-  const int64_t rows = chunk_rows(D), chunks = (N + rows - 1) / rows;
+  const int64_t rows = grain_rows(D), chunks = (N + rows - 1) / rows;
   // One partial dw per chunk (fixed chunks: the sum does not depend on the thread count), summed after.
   at::Tensor partial = at::zeros({std::max<int64_t>(chunks, 1), D}, weight.options());
   if (x.numel() > 0) {
     AT_DISPATCH_FLOATING_TYPES_AND(at::kBFloat16, x.scalar_type(), "blockyard_rms_norm_backward", [&] {
       using I = scalar_t;
-      using S = std::conditional_t<std::is_same_v<I, double>, double, float>;
+      using S = compute_t<I>;
       const I* pg = grad_y.const_data_ptr<I>();
       const I* px = x.const_data_ptr<I>();
       const S* pw = weight.const_data_ptr<S>();

@@ -25,23 +25,20 @@
 #include <c10/util/complex.h>
 #include <torch/library.h>
 
+#include "cpu_common.h"
+#include "vecmath.h"
+
 #include <algorithm>
 #include <tuple>
 
-#ifndef BLOCKYARD_SCAN_NS
-#define BLOCKYARD_SCAN_NS blockyard_scan
-#endif
-
-// The time loops are compiled for several x86 vector extensions and the best one the CPU has is
-// chosen at load time (GCC/Clang function multi-versioning), so the build stays portable (no
-// -march=native) yet uses AVX2 / AVX-512 where present.
-#if defined(__x86_64__) && (defined(__GNUC__) || defined(__clang__))
-#define BLOCKYARD_VECTOR_CLONES __attribute__((target_clones("avx512f", "avx2", "default")))
-#else
-#define BLOCKYARD_VECTOR_CLONES
-#endif
-
 namespace {
+
+using namespace blockyard_cpu;
+
+// Elements per parallel task: the plain scan does one multiply-add per element, less work than the
+// other kernels' elements (8k there), so a task needs more of them to outweigh the thread hand-off.
+// It moves no result, only where a small problem stops being split.
+constexpr int64_t kScanGrainElements = 1 << 15;
 
 template <typename T>
 inline T conj_value(T x) {
@@ -62,8 +59,8 @@ inline void step_row(const T* __restrict__ a, const T* __restrict__ b, const T* 
 
 // The forward scan of one work item (one batch row, channels [c0, c0 + n)), t from 0 up.
 template <typename T>
-BLOCKYARD_VECTOR_CLONES void forward_item(const T* a, const T* b, const T* h0, T* h, int64_t row, int64_t c0, int64_t n,
-                                        int64_t steps, int64_t channels) {
+BLOCKYARD_CLONES void forward_item(const T* a, const T* b, const T* h0, T* h, int64_t row, int64_t c0, int64_t n,
+                                   int64_t steps, int64_t channels) {
   const T* prev = h0 + row * channels + c0;
   for (int64_t t = 0; t < steps; ++t) {
     const int64_t off = (row * steps + t) * channels + c0;
@@ -93,9 +90,9 @@ inline void mul_conj_row(const T* __restrict__ x, const T* __restrict__ y, T* __
 
 // The reverse scan of one work item (one batch row, channels [c0, c0 + n)), t from T-1 down to 0.
 template <typename T, bool kGradA>
-BLOCKYARD_VECTOR_CLONES void reverse_item(const T* gh, const T* a, const T* h, const T* h0, T* g, T* grad_a,
-                                        T* grad_h0, int64_t row, int64_t c0, int64_t n, int64_t steps,
-                                        int64_t channels) {
+BLOCKYARD_CLONES void reverse_item(const T* gh, const T* a, const T* h, const T* h0, T* g, T* grad_a,
+                                   T* grad_h0, int64_t row, int64_t c0, int64_t n, int64_t steps,
+                                   int64_t channels) {
   for (int64_t t = steps - 1; t >= 0; --t) {
     const int64_t off = (row * steps + t) * channels + c0;
     const T* h_prev = t > 0 ? h + off - channels : h0 + row * channels + c0;
@@ -109,31 +106,6 @@ BLOCKYARD_VECTOR_CLONES void reverse_item(const T* gh, const T* a, const T* h, c
   // dL/dh0 = conj(a_0) * g_0, written as g_0 * conj(a_0) (the product commutes exactly).
   const int64_t off0 = row * steps * channels + c0;
   mul_conj_row(g + off0, a + off0, grad_h0 + row * channels + c0, n);
-}
-
-// How the (B, C) plane is cut into work items: `blocks` channel blocks of `width` channels per
-// batch row. Whole rows keep each item's memory contiguous (best for the prefetcher); rows are
-// cut only when there are too few batch rows to keep every thread busy.
-struct Blocking {
-  int64_t blocks;
-  int64_t width;
-};
-
-Blocking choose_blocking(int64_t batch, int64_t channels) {
-  const int64_t wanted_items = 4 * static_cast<int64_t>(at::get_num_threads());
-  int64_t blocks = batch >= wanted_items ? 1 : (wanted_items + batch - 1) / std::max<int64_t>(batch, 1);
-  const int64_t min_width = 16;  // one cache line of float32
-  blocks = std::max<int64_t>(1, std::min(blocks, (channels + min_width - 1) / min_width));
-  int64_t width = (channels + blocks - 1) / blocks;
-  width = (width + min_width - 1) / min_width * min_width;
-  blocks = (channels + width - 1) / width;
-  return {blocks, width};
-}
-
-// Items per parallel task, so that tiny problems run on one thread instead of paying for a fork.
-int64_t grain_items(int64_t steps, int64_t width) {
-  const int64_t min_elements = 1 << 15;
-  return std::max<int64_t>(1, min_elements / std::max<int64_t>(1, steps * width));
 }
 
 void check_inputs(const at::Tensor& a, const at::Tensor& b, const at::Tensor& h0) {
@@ -158,7 +130,7 @@ at::Tensor scan_forward(const at::Tensor& a, const at::Tensor& b, const at::Tens
     const scalar_t* pb = b.const_data_ptr<scalar_t>();
     const scalar_t* p0 = h0.const_data_ptr<scalar_t>();
     scalar_t* ph = h.mutable_data_ptr<scalar_t>();
-    at::parallel_for(0, B * blk.blocks, grain_items(T, blk.width), [&](int64_t begin, int64_t end) {
+    at::parallel_for(0, B * blk.blocks, grain_items(T, blk.width, kScanGrainElements), [&](int64_t begin, int64_t end) {
       for (int64_t item = begin; item < end; ++item) {
         const int64_t row = item / blk.blocks;
         const int64_t c0 = (item % blk.blocks) * blk.width;
@@ -194,7 +166,7 @@ std::tuple<at::Tensor, at::Tensor, at::Tensor> scan_backward(const at::Tensor& g
     scalar_t* pg = grad_b.mutable_data_ptr<scalar_t>();  // g_t is dL/db_t: computed in place
     scalar_t* pga = need_grad_a ? grad_a.mutable_data_ptr<scalar_t>() : nullptr;
     scalar_t* pg0 = grad_h0.mutable_data_ptr<scalar_t>();
-    at::parallel_for(0, B * blk.blocks, grain_items(T, blk.width), [&](int64_t begin, int64_t end) {
+    at::parallel_for(0, B * blk.blocks, grain_items(T, blk.width, kScanGrainElements), [&](int64_t begin, int64_t end) {
       for (int64_t item = begin; item < end; ++item) {
         const int64_t row = item / blk.blocks;
         const int64_t c0 = (item % blk.blocks) * blk.width;

@@ -1,7 +1,8 @@
 // Vectorisable math shared by the CPU kernels (rglru_cpu.cpp, conv_cpu.cpp, geglu_cpu.cpp,
 // rmsnorm_cpu.cpp): branch-free polynomial exp, expm1 and erf that GCC vectorises inside the
 // kernels' loops (the C library's scalar calls would keep those loops scalar), and loads / stores
-// that compute bfloat16 in float.
+// that compute bfloat16 in float; and the multi-versioning attribute every kernel loop carries
+// (scan_cpu.cpp uses only that).
 #pragma once
 
 #include <c10/util/BFloat16.h>
