@@ -122,9 +122,10 @@ def test_the_sd_trend_carries_the_ols_interval_and_an_uncertain_trend_decides_no
     assert r.longer_low < r.more_seeds < r.longer_high and r.better_buy == "unclear"
     text = resolution_text(swinging, "a")
     assert "too uncertain" in text and "95% CI" in text
-    # Two evaluations: a slope but no interval (no degrees of freedom); the point estimate decides, as before.
+    # Two evaluations: a slope but no interval (no degrees of freedom left): the sentence cannot tell either.
     two = resolution(_curve([0.08, 0.04]))
-    assert two.longer == pytest.approx(0.5) and two.longer_low is None and two.better_buy == "longer training"
+    assert two.longer == pytest.approx(0.5) and two.longer_low is None and two.better_buy == "unclear"
+    assert "2 evaluations: no interval" in resolution_text(_curve([0.08, 0.04]), "a")
 
 
 def test_noise_png_labels_tokens_in_one_unit_like_the_other_figures(tmp_path, monkeypatch):

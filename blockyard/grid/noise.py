@@ -15,9 +15,10 @@ difference by about 2^b; doubling the seeds scales it by detectable(2n) / detect
 smaller factor is the better buy. The trend's exponent carries a 95% interval (the least-squares
 slope's t interval, k - 2 degrees of freedom over k evaluations); longer training is called the
 better buy only when the whole interval beats more seeds, and more seeds only when the whole
-interval loses, else the sentence says the trend cannot tell (at 5 seeds, 4 evaluations swing the
-point estimate from -67% to +87% per doubling between two runs of one design). A trend fitted over a
-few evaluations describes this run, not a law (the mean difference moves with training too).
+interval loses; else, or with only 2 evaluations (no interval), the sentence says the trend
+cannot tell (at 5 seeds, 4 evaluations swung the point estimate from -67% to +87% per doubling
+between two runs of one design). A trend fitted over a few evaluations describes this run, not a
+law (the mean difference moves with training too).
 """
 
 from __future__ import annotations
@@ -140,14 +141,15 @@ class Resolution:
 
     @property
     def better_buy(self) -> str:
-        """"more seeds", "longer training", or "unclear" when the trend's interval straddles the seeds' factor."""
+        """"more seeds", "longer training", or "unclear" when the trend's interval straddles the seeds' factor
+        or there is none (2 evaluations fit a line exactly: no degrees of freedom left to judge it)."""
         if self.longer is None:
             return "more seeds"
-        low = self.longer if self.longer_low is None else self.longer_low
-        high = self.longer if self.longer_high is None else self.longer_high
-        if high < self.more_seeds:
+        if self.longer_low is None or self.longer_high is None:
+            return "unclear"
+        if self.longer_high < self.more_seeds:
             return "longer training"
-        if low >= self.more_seeds:
+        if self.longer_low >= self.more_seeds:
             return "more seeds"
         return "unclear"
 
@@ -180,7 +182,7 @@ def resolution_text(curve: NoiseCurve, label: str) -> str | None:
     if r.longer is None:
         return f"{label}: {seeds}; too few evaluations to tell what longer training does."
     moved = "fell" if r.longer < 1 else "rose"
-    interval = ("" if r.longer_low is None or r.longer_high is None else
+    interval = (" (2 evaluations: no interval)" if r.longer_low is None or r.longer_high is None else
                 f" ({TREND_CONFIDENCE:.0%} CI {r.longer_low - 1:+.0%} to {r.longer_high - 1:+.0%})")
     longer = (f"over its last {r.evaluations} evaluations the paired sd {moved} by {abs(1 - r.longer):.0%} per "
               f"doubling of tokens{interval}")
