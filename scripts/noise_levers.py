@@ -40,19 +40,19 @@ NULL = "null-control"
 # Training settings: name -> overrides of the grid's base (the average is on in all: it changes no training).
 # Each names its peak lr: the default grid's base moved to 1.5e-3 once that lever was measured, and the
 # settings measured before it ran at the trainer's 3e-3, so they pin it to reproduce the table.
-TRAINER_LR = 3e-3
+BEFORE_LR = 3e-3  # the trainer's default when the settings before the lr lever were measured
 SETTINGS = {
-    "stream": {"model.init_draws": "stream", "train.ema_half_life": 0.1, "train.lr": TRAINER_LR},
-    "by_path": {"model.init_draws": "by_path", "train.ema_half_life": 0.1, "train.lr": TRAINER_LR},
+    "stream": {"model.init_draws": "stream", "train.ema_half_life": 0.1, "train.lr": BEFORE_LR},
+    "by_path": {"model.init_draws": "by_path", "train.ema_half_life": 0.1, "train.lr": BEFORE_LR},
     # shorter runs, more seeds: 300 of the 700 steps (0.43 of the compute per cell)
-    "short": {"model.init_draws": "by_path", "train.ema_half_life": 0.1, "train.lr": TRAINER_LR,
+    "short": {"model.init_draws": "by_path", "train.ema_half_life": 0.1, "train.lr": BEFORE_LR,
               "train.steps": 300, "train.eval_every": 50, "train.checkpoint_every": 150},
     # half the peak lr (1.5e-3 against the trainer's 3e-3): a calmer trajectory, at a higher loss
     "low_lr": {"model.init_draws": "by_path", "train.ema_half_life": 0.1, "train.lr": 1.5e-3},
     # the geometric middle of the two (3e-3 / sqrt 2): where the loss / noise trade of the rate turns
     "mid_lr": {"model.init_draws": "by_path", "train.ema_half_life": 0.1, "train.lr": 2.1e-3},
     # twice the batch at half the steps: the same tokens, half the gradient noise per step
-    "big_batch": {"model.init_draws": "by_path", "train.ema_half_life": 0.1, "train.lr": TRAINER_LR,
+    "big_batch": {"model.init_draws": "by_path", "train.ema_half_life": 0.1, "train.lr": BEFORE_LR,
                   "train.batch_size": 32, "train.steps": 350, "train.warmup_steps": 25, "train.eval_every": 50,
                   "train.checkpoint_every": 175},
 }
